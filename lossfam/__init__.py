@@ -1,0 +1,17 @@
+"""lossfam: a noise model for the target becomes the matching loss for gradient-trained models.
+
+The loss of a noise model is the negative log of its density (or mass): a
+Gaussian gives squared error, Laplace absolute error, Bernoulli log loss, and
+so on.  ``lossfam.family(name, **params)`` returns a family with the per-row
+nll, its gradient and Hessian in the raw score, the link, the baseline score,
+maximum-likelihood nuisance parameters and the predictive law.
+
+Engine adapters live in ``lossfam.lightgbm``, ``lossfam.xgboost`` and
+``lossfam.sklearn``; they import their engine only when used.
+"""
+from .families import Family
+from .registry import available, family, register, unregister
+
+__version__ = "0.1.0"
+
+__all__ = ["Family", "available", "family", "register", "unregister", "__version__"]

@@ -1,0 +1,13 @@
+"""The built-in noise models, one per module."""
+from ._base import Family
+from .asymmetric_laplace import AsymmetricLaplace
+from .bernoulli import Bernoulli
+from .gamma import Gamma
+from .gaussian import Gaussian
+from .huber import Huber, HuberLaw
+from .laplace import Laplace
+from .poisson import Poisson
+
+BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma)
+
+__all__ = ["Family", "HuberLaw", "BUILT_IN"] + [c.__name__ for c in BUILT_IN]

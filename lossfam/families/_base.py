@@ -1,0 +1,209 @@
+"""The family base class: what every noise model provides, and the checks around it.
+
+A family is a noise model for a target ``y`` given a raw score ``raw`` (what a
+linear model or a boosted ensemble adds up).  It is the composition of
+
+* a **link** (``lossfam.links``) that maps the response-scale prediction
+  ``mu`` to ``raw``, and
+* a **kernel**: the negative log-likelihood per row, in nats with every
+  constant kept, together with its first two derivatives in ``raw``.
+
+The public methods (``nll``, ``grad_hess``, ``deviance``, ``baseline``,
+``fit_params``, ``distribution``) validate their input once and then call the
+kernel hooks below, which assume valid float64 arrays:
+
+=====================  ======================================================
+hook                   returns
+=====================  ======================================================
+``_nll(y, raw)``       per-row nll (nats)
+``_grad_hess(y, raw)`` (d nll / d raw, d^2 nll / d raw^2 or its surrogate)
+``_deviance(y, raw)``  per-row unit deviance (default: 2 (nll - nll at mu = y))
+``_baseline(y, w, o)`` the constant raw score minimising sum w nll(y, c + o)
+``_fit_params(y,r,w)`` dict of maximum-likelihood nuisance parameters
+``_distribution(raw)`` the predictive law per row (frozen scipy.stats law)
+=====================  ======================================================
+
+A user family subclasses :class:`Family`, declares ``name``, ``link_function``,
+``target_domain`` and its parameter domains, implements ``_nll`` and
+``_grad_hess`` (the rest have generic numerical defaults), and is registered
+with :func:`lossfam.register`.
+"""
+from __future__ import annotations
+
+import dataclasses
+from typing import ClassVar
+
+import numpy as np
+from scipy import optimize
+
+from .. import _checks
+from .._checks import Domain
+from ..links import Link
+
+
+@dataclasses.dataclass(frozen=True)
+class Family:
+    """Base class of all noise models.  Subclasses are frozen dataclasses whose
+    fields are the nuisance parameters (keyword-only, validated on construction)."""
+
+    name: ClassVar[str] = "family"
+    link_function: ClassVar[Link]
+    #: admissible targets for gradient, Hessian, deviance and baseline
+    target_domain: ClassVar[Domain]
+    #: admissible targets for nll (stricter for count laws); None: target_domain
+    nll_domain: ClassVar[Domain | None] = None
+    #: domain of every nuisance parameter, by field name
+    param_domains: ClassVar[dict] = {}
+    #: False when ``_grad_hess`` returns a surrogate (not the second derivative)
+    exact_hessian: ClassVar[bool] = True
+    #: True when y is a count or a label (the law has a mass function)
+    discrete: ClassVar[bool] = False
+    #: what the response-scale prediction ``inverse_link(raw)`` is
+    prediction_kind: ClassVar[str] = "mean"
+
+    def __post_init__(self):
+        for f in dataclasses.fields(self):
+            dom = self.param_domains.get(f.name)
+            if dom is not None:
+                v = _checks.check_param(f.name, getattr(self, f.name), dom, self.name)
+                object.__setattr__(self, f.name, v)
+
+    # ------------------------------------------------------------------ info
+    @property
+    def params(self) -> dict:
+        """The nuisance parameters as a plain dict (empty when there are none)."""
+        return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+
+    def with_params(self, **params) -> "Family":
+        """A copy with some nuisance parameters replaced (validated)."""
+        unknown = set(params) - set(self.params)
+        if unknown:
+            raise ValueError(
+                f"{self.name}: unknown parameter(s) {sorted(unknown)}; "
+                f"valid parameters: {sorted(self.params) or 'none'}"
+            )
+        return dataclasses.replace(self, **params)
+
+    # ------------------------------------------------------------------ link
+    def link(self, prediction):
+        """raw = g(prediction), the raw score of a response-scale prediction."""
+        return self.link_function(prediction)
+
+    def inverse_link(self, raw):
+        """prediction = g^{-1}(raw): the mean, or the location for location families."""
+        raw = _checks.check_raw(raw, None, self.name)
+        return self.link_function.inverse(raw)
+
+    # ------------------------------------------------------------------ checks
+    def check_target(self, y, *, for_nll: bool = True) -> np.ndarray:
+        """Validate targets; ``for_nll`` applies the stricter support of the nll."""
+        dom = (self.nll_domain or self.target_domain) if for_nll else self.target_domain
+        return _checks.check_target(y, dom, self.name)
+
+    def _inputs(self, y, raw, *, for_nll: bool):
+        y = self.check_target(y, for_nll=for_nll)
+        raw = _checks.check_raw(raw, y, self.name)
+        return y, raw
+
+    # ------------------------------------------------------------------ public math
+    def nll(self, y, raw) -> np.ndarray:
+        """Per-row negative log-likelihood in nats, every constant included."""
+        y, raw = self._inputs(y, raw, for_nll=True)
+        with np.errstate(over="ignore"):
+            return self._nll(y, raw)
+
+    def grad_hess(self, y, raw, weight=None):
+        """(gradient, Hessian) of weight * nll with respect to the raw score.
+
+        The Hessian is exact unless ``exact_hessian`` is False, in which case it
+        is the family's documented positive surrogate.
+        """
+        y, raw = self._inputs(y, raw, for_nll=False)
+        w = _checks.check_weight(weight, y, self.name)
+        with np.errstate(over="ignore"):
+            g, h = self._grad_hess(y, raw)
+            if w is not None:
+                g = np.multiply(g, w, out=g if g.shape == w.shape else None)
+                h = np.multiply(h, w, out=h if h.shape == w.shape else None)
+        return g, h
+
+    def deviance(self, y, raw) -> np.ndarray:
+        """Per-row unit deviance: >= 0, and 0 where the prediction equals y."""
+        y, raw = self._inputs(y, raw, for_nll=False)
+        with np.errstate(over="ignore"):
+            return self._deviance(y, raw)
+
+    def baseline(self, y, weight=None, *, offset=None) -> float:
+        """The constant raw score c minimising the weighted mean of nll(y, c + offset).
+
+        ``offset`` is an optional per-row raw-scale offset (e.g. log exposure).
+        Raises ValueError when no finite minimiser exists (e.g. all labels equal).
+        """
+        y = self.check_target(y, for_nll=False)
+        _checks.check_nonempty(y, self.name)
+        w = _checks.check_weight(weight, y, self.name, need_positive_sum=True)
+        o = None if offset is None else _checks.check_raw(offset, y, self.name + " offset")
+        if w is None:
+            w = np.ones_like(y)
+        with np.errstate(over="ignore"):
+            c = float(self._baseline(y, w, o))
+        if not np.isfinite(c):
+            raise ValueError(f"{self.name}: no finite constant raw score minimises the nll for these targets")
+        return c
+
+    def fit_params(self, y, raw, weight=None) -> "Family":
+        """A copy with the nuisance parameters at their maximum-likelihood values given raw."""
+        if not self.params:
+            return self
+        y, raw = self._inputs(y, raw, for_nll=False)
+        _checks.check_nonempty(y, self.name)
+        w = _checks.check_weight(weight, y, self.name, need_positive_sum=True)
+        if w is None:
+            w = np.ones_like(y)
+        with np.errstate(over="ignore"):
+            new = self._fit_params(y, raw, w)
+        return dataclasses.replace(self, **new)
+
+    def distribution(self, raw):
+        """The predictive law per row: a frozen scipy.stats distribution where scipy has it."""
+        raw = _checks.check_raw(raw, None, self.name)
+        return self._distribution(raw)
+
+    # ------------------------------------------------------------------ generic hooks
+    def _nll(self, y, raw):  # pragma: no cover - abstract
+        raise NotImplementedError(f"{type(self).__name__} must implement _nll")
+
+    def _grad_hess(self, y, raw):  # pragma: no cover - abstract
+        raise NotImplementedError(f"{type(self).__name__} must implement _grad_hess")
+
+    def _deviance(self, y, raw):
+        """Generic unit deviance 2 (nll(y, raw) - nll(y, g(y))), the saturated model."""
+        sat = self.link_function._forward(y)
+        return np.maximum(2.0 * (self._nll(y, raw) - self._nll(y, sat)), 0.0)
+
+    def _baseline(self, y, w, offset):
+        """Generic: minimise the weighted mean nll over a scalar with scipy's Brent method."""
+        o = 0.0 if offset is None else offset
+        sw = w.sum()
+
+        def mean_nll(c):
+            return float(np.dot(w, self._nll(y, c + o)) / sw)
+
+        res = optimize.minimize_scalar(mean_nll)
+        return res.x
+
+    def _fit_params(self, y, raw, w):
+        """Generic: maximise the weighted log-likelihood over the log of each parameter."""
+        names = list(self.params)
+        start = np.log([self.params[n] for n in names])
+        sw = w.sum()
+
+        def objective(logp):
+            fam = dataclasses.replace(self, **dict(zip(names, np.exp(logp))))
+            return float(np.dot(w, fam._nll(y, raw)) / sw)
+
+        res = optimize.minimize(objective, start, method="Nelder-Mead")
+        return dict(zip(names, np.exp(res.x)))
+
+    def _distribution(self, raw):  # pragma: no cover - abstract
+        raise NotImplementedError(f"{type(self).__name__} has no predictive distribution")

@@ -1,0 +1,202 @@
+r"""Huber errors: the Huber loss as a proper likelihood.
+
+With rho_delta(u) = u^2 / 2 for |u| <= delta and delta |u| - delta^2 / 2
+otherwise, location mu = raw (identity link), fixed tuning constant delta > 0
+and scale s > 0, the density is Huber's least-favourable law (Huber, 1964,
+"Robust estimation of a location parameter", Ann. Math. Statist. 35):
+
+    p(y) = exp(-rho_delta((y - mu) / s)) / (s C(delta)),
+    C(delta) = sqrt(2 pi) (2 Phi(delta) - 1) + 2 exp(-delta^2 / 2) / delta
+
+(the Gaussian core integrates to sqrt(2 pi)(2 Phi(delta) - 1); each
+exponential tail integrates to exp(-delta^2/2)/delta).  With u = (y - raw)/s
+and psi(u) = clip(u, -delta, delta):
+
+    nll      = rho_delta(u) + log(s) + log C(delta)
+    gradient = -psi(u) / s
+    Hessian  = 1 / s^2 for |u| <= delta, 0 outside: replaced by the surrogate
+               h = min(1, delta / |u|) / s^2, the curvature of the quadratic
+               that majorises rho_delta at u (the iteratively reweighted
+               least-squares weight psi(u)/u).  Exact inside the core,
+               positive and finite everywhere, continuous at |u| = delta.
+    deviance = 2 s^2 rho_delta(u)                 (2 s^2 (nll - nll at raw = y))
+    baseline = the weighted Huber M-estimate of location: the root of
+               sum w psi((y - c)/s) = 0 (monotone in c; scipy.optimize.brentq)
+    s^       = root of sum w psi(u) u = sum w     (d/ds of the weighted nll; the
+               left side falls monotonically in s; brentq on log s)
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import optimize, special, stats
+
+from .._checks import POSITIVE, REAL
+from ..links import IDENTITY
+from ._base import Family
+
+
+def huber_rho(u, delta):
+    a = np.abs(u)
+    return np.where(a <= delta, 0.5 * u * u, delta * a - 0.5 * delta * delta)
+
+
+def huber_log_norm(delta):
+    """log C(delta), the log normalising constant of the unit-scale Huber density."""
+    core = np.sqrt(2.0 * np.pi) * (2.0 * special.ndtr(delta) - 1.0)
+    tails = 2.0 * np.exp(-0.5 * delta * delta) / delta
+    return float(np.log(core + tails))
+
+
+class HuberLaw:
+    """Huber's least-favourable law per row: logpdf, pdf, cdf, sf, ppf, mean, var, interval, rvs.
+
+    A small vectorised distribution object in the spirit of a frozen scipy.stats law.
+    """
+
+    def __init__(self, loc, scale, delta):
+        self.loc = np.asarray(loc, dtype=float)
+        self.scale = float(scale)
+        self.delta = float(delta)
+        self._log_c = huber_log_norm(self.delta)
+        d = self.delta
+        self._tail_mass = np.exp(-0.5 * d * d) / d / np.exp(self._log_c)  # mass below -delta (unit law)
+
+    def _u(self, y):
+        return (np.asarray(y, dtype=float) - self.loc) / self.scale
+
+    def logpdf(self, y):
+        return -huber_rho(self._u(y), self.delta) - np.log(self.scale) - self._log_c
+
+    def pdf(self, y):
+        return np.exp(self.logpdf(y))
+
+    def _unit_cdf_lower(self, u):
+        """P(U <= u) for u <= 0 (U has the unit-scale law)."""
+        d = self.delta
+        c = np.exp(self._log_c)
+        tail = np.exp(d * np.minimum(u, -d) + 0.5 * d * d) / d / c
+        core = np.sqrt(2.0 * np.pi) * (special.ndtr(u) - special.ndtr(-d)) / c
+        return np.where(u < -d, tail, self._tail_mass + core)
+
+    def cdf(self, y):
+        u = self._u(y)
+        lower = self._unit_cdf_lower(-np.abs(u))
+        return np.where(u <= 0, lower, 1.0 - lower)
+
+    def sf(self, y):
+        u = self._u(y)
+        lower = self._unit_cdf_lower(-np.abs(u))
+        return np.where(u >= 0, lower, 1.0 - lower)
+
+    def _unit_ppf_lower(self, p):
+        """Inverse of the unit cdf for p <= 1/2."""
+        d = self.delta
+        c = np.exp(self._log_c)
+        with np.errstate(divide="ignore"):
+            u_tail = (np.log(np.maximum(p, 1e-300) * d * c) - 0.5 * d * d) / d
+        inner = (p - self._tail_mass) * c / np.sqrt(2.0 * np.pi) + special.ndtr(-d)
+        u_core = special.ndtri(np.clip(inner, 0.0, 0.5))
+        u = np.where(p < self._tail_mass, u_tail, u_core)
+        return np.where(p <= 0, -np.inf, u)
+
+    def ppf(self, q):
+        q = np.asarray(q, dtype=float)
+        lower = self._unit_ppf_lower(np.minimum(q, 1.0 - q))
+        u = np.where(q <= 0.5, lower, -lower)
+        return self.loc + self.scale * u
+
+    def isf(self, q):
+        return self.ppf(1.0 - np.asarray(q, dtype=float))
+
+    def mean(self):
+        return self.loc.copy()
+
+    def median(self):
+        return self.loc.copy()
+
+    def var(self):
+        d = self.delta
+        c = np.exp(self._log_c)
+        # E U^2: core sqrt(2 pi)[(2 Phi(d) - 1) - 2 d phi(d)] plus two tails
+        # int_d^inf u^2 exp(-d u + d^2/2) du = exp(-d^2/2) (d^2 + 2 d (1/d) + 2/d^2)/d
+        core = np.sqrt(2.0 * np.pi) * (2.0 * special.ndtr(d) - 1.0) - 2.0 * d * np.exp(-0.5 * d * d)
+        tail = np.exp(-0.5 * d * d) * (d * d + 2.0 + 2.0 / (d * d)) / d
+        return np.full_like(self.loc, (core + 2.0 * tail) / c * self.scale**2)
+
+    def std(self):
+        return np.sqrt(self.var())
+
+    def interval(self, confidence):
+        a = 0.5 * (1.0 - confidence)
+        return self.ppf(np.full_like(self.loc, a)), self.ppf(np.full_like(self.loc, 1.0 - a))
+
+    def rvs(self, size=None, random_state=None):
+        rng = np.random.default_rng(random_state)
+        shape = self.loc.shape if size is None else size
+        return self.ppf(rng.uniform(size=shape))
+
+
+@dataclass(frozen=True)
+class Huber(Family):
+    delta: float = 1.345
+    scale: float = 1.0
+
+    name = "huber"
+    link_function = IDENTITY
+    target_domain = REAL
+    param_domains = {"delta": POSITIVE, "scale": POSITIVE}
+    exact_hessian = False
+    prediction_kind = "location"
+
+    def _nll(self, y, raw):
+        u = (y - raw) / self.scale
+        return huber_rho(u, self.delta) + (np.log(self.scale) + huber_log_norm(self.delta))
+
+    def _grad_hess(self, y, raw):
+        s, d = self.scale, self.delta
+        u = (raw - y) / s
+        g = np.clip(u, -d, d)
+        g /= s
+        a = np.abs(u)
+        np.maximum(a, d, out=a)
+        h = np.divide(d / (s * s), a, out=a)
+        return g, h
+
+    def _deviance(self, y, raw):
+        u = (y - raw) / self.scale
+        return 2.0 * self.scale**2 * huber_rho(u, self.delta)
+
+    def _baseline(self, y, w, offset):
+        t = y if offset is None else y - offset
+        s, d = self.scale, self.delta
+
+        def score(c):
+            return float(np.dot(w, np.clip((t - c) / s, -d, d)))
+
+        lo, hi = float(t.min()), float(t.max())
+        if lo == hi:
+            return lo
+        return optimize.brentq(score, lo, hi, xtol=1e-14 * max(1.0, abs(lo), abs(hi)), rtol=4 * np.finfo(float).eps)
+
+    def _fit_params(self, y, raw, w):
+        r = y - raw
+        d = self.delta
+        sw = w.sum()
+        if not np.any(r[w > 0] != 0):
+            raise ValueError("huber: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
+
+        def excess(log_s):
+            u = r / np.exp(log_s)
+            return float(np.dot(w, np.clip(u, -d, d) * u) / sw) - 1.0
+
+        amax = float(np.max(np.abs(r)))
+        lo, hi = np.log(amax) - 50.0, np.log(amax) + 5.0
+        while excess(lo) < 0:
+            lo -= 50.0
+        log_s = optimize.brentq(excess, lo, hi, xtol=1e-13)
+        return {"scale": float(np.exp(log_s))}
+
+    def _distribution(self, raw):
+        return HuberLaw(raw, self.scale, self.delta)
