@@ -1,0 +1,281 @@
+r"""Diagnostics of a fitted noise model: quantile residuals, PIT, QQ data, calibration, coverage.
+
+Every function takes a family (a name or a :class:`lossfam.Family`), the
+targets ``y`` and the raw scores ``raw`` of a fitted model, and reads the
+predictive law from ``family.distribution(raw)`` (a frozen scipy.stats law,
+or lossfam's ``HuberLaw``).
+
+Probability integral transform (PIT) and quantile residuals
+-----------------------------------------------------------
+For a continuous law with cdf F, the PIT of a target is u = F(y) and the
+quantile residual is z = Phi^{-1}(u).  When the model is right, u is
+Uniform(0, 1) and z is standard normal, whatever the family.
+
+For a discrete law (counts, labels) F jumps at each y, so F(y) is not uniform.
+The randomized quantile residual (Dunn and Smyth, 1996, "Randomized quantile
+residuals", J. Comput. Graph. Stat. 5(3), 236-244) draws u uniformly between
+the two sides of the jump,
+
+    u = F(y - 1) + V P(Y = y),      V ~ Uniform(0, 1)   (seeded),
+
+which is exactly Uniform(0, 1) under the model.  ``unit_interval=True`` applies
+the same idea to a continuous law scored on integer targets (a continuous
+law for a value that was rounded): u = F(y - 1/2) + V (F(y + 1/2) - F(y - 1/2)).
+
+Numerics.  u and 1 - u are carried as logarithms: log u from ``logcdf`` (and
+log P(Y = y) from ``logpmf``), log(1 - u) from ``logsf``, combined with
+``logaddexp`` so that neither tail cancels (1 - F(y) is never formed by a
+subtraction).  Then z = ndtri_exp(log u) on the lower half and
+z = -ndtri_exp(log(1 - u)) on the upper half (``scipy.special.ndtri_exp`` is
+Phi^{-1}(e^x), accurate for very negative x).  Where a law's tail underflows
+(its ``logcdf`` returns -inf, e.g. scipy's gamma far below the mean), u or
+1 - u is clipped up to ``TINY`` = the smallest normal float64 (2.2e-308)
+*for the normal transform only*, so |z| <= 37.5: the residual stays finite and
+still says "far out in the tail".  Input data are never clipped; ``pit`` returns
+the unclipped u.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy import stats
+from scipy.special import ndtri_exp
+
+from . import _checks
+from .registry import family as _make_family
+
+#: smallest u (and 1 - u) fed to the normal transform: the smallest normal float64
+TINY = float(np.finfo(np.float64).tiny)
+_LOG_TINY = float(np.log(TINY))
+
+__all__ = [
+    "TINY",
+    "pit",
+    "quantile_residuals",
+    "qq_data",
+    "ks_statistic",
+    "calibration_table",
+    "interval_coverage",
+    "log_interval_probability",
+]
+
+
+# ---------------------------------------------------------------------- helpers
+def _inputs(family, y, raw, *, for_nll=True):
+    fam = _make_family(family)
+    y = fam.check_target(y, for_nll=for_nll)
+    raw = _checks.check_raw(raw, y, fam.name)
+    if y.ndim != 1:
+        raise ValueError(f"{fam.name}: y must be one-dimensional, got shape {y.shape}")
+    return fam, y, raw
+
+
+def _rng(seed):
+    return seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
+
+
+def _log_tails(law, x):
+    """(log F(x), log S(x)) from the law's logcdf/logsf when it has them, else log of cdf/sf."""
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore", under="ignore"):
+        lc = law.logcdf(x) if hasattr(law, "logcdf") else np.log(law.cdf(x))
+        ls = law.logsf(x) if hasattr(law, "logsf") else np.log(law.sf(x))
+    return np.asarray(lc, dtype=float), np.asarray(ls, dtype=float)
+
+
+def _log1mexp(x):
+    """log(1 - e^x) for x <= 0, accurate at both ends (log(-expm1(x)) near 0, log1p(-e^x) far)."""
+    x = np.asarray(x, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(x > -np.log(2.0), np.log(-np.expm1(x)), np.log1p(-np.exp(x)))
+
+
+def _log_interval_prob_law(law, a, b):
+    """log P(a < Y <= b) = log(F(b) - F(a)) for a < b, without cancellation.
+
+    Below the median it is log F(b) + log(1 - F(a)/F(b)); above it the same with
+    the survival function, log S(a) + log(1 - S(b)/S(a)).  Both are exact
+    identities; each side is used where its terms are not close to 1.
+    """
+    lca, lsa = _log_tails(law, a)
+    lcb, lsb = _log_tails(law, b)
+    with np.errstate(invalid="ignore"):
+        low = lcb + _log1mexp(np.minimum(lca - lcb, 0.0))
+        high = lsa + _log1mexp(np.minimum(lsb - lsa, 0.0))
+    out = np.where(lcb <= np.log(0.5), low, high)
+    return np.where(np.isnan(out), -np.inf, out)
+
+
+def log_interval_probability(family, y, raw, half_width=0.5):
+    r"""log P(y - h < Y <= y + h) under a continuous family's law (h = ``half_width``).
+
+    This scores a continuous law on integer-valued targets on the same footing
+    as a count law: the probability it gives to the unit interval around each y
+    (a density is not a probability).  Where both tails underflow so that the
+    difference is 0 in float64 (a row very far out in a tail), the midpoint
+    rule log(2 h p(y)) is used instead, so the score stays finite.
+    """
+    fam, y, raw = _inputs(family, y, raw)
+    law = fam.distribution(raw)
+    out = _log_interval_prob_law(law, y - half_width, y + half_width)
+    bad = ~np.isfinite(out)
+    if np.any(bad):
+        with np.errstate(divide="ignore"):
+            mid = np.asarray(law.logpdf(y), dtype=float) + np.log(2.0 * half_width)
+        out = np.where(bad, mid, out)
+    return out
+
+
+def _log_pit(fam, y, raw, seed, unit_interval):
+    """(log u, log(1 - u)) of the (randomized) probability integral transform."""
+    law = fam.distribution(raw)
+    if fam.discrete or unit_interval:
+        if fam.discrete:
+            with np.errstate(divide="ignore"):
+                log_mass = np.asarray(law.logpmf(y), dtype=float)
+            below, above = y - 1.0, y
+        else:
+            if not np.all(np.floor(y) == y):
+                raise ValueError(f"{fam.name}: unit_interval=True needs integer-valued targets")
+            log_mass = _log_interval_prob_law(law, y - 0.5, y + 0.5)
+            below, above = y - 0.5, y + 0.5
+        lc_below, _ = _log_tails(law, below)
+        _, ls_above = _log_tails(law, above)
+        v = _rng(seed).random(y.shape)
+        with np.errstate(divide="ignore"):
+            log_u = np.logaddexp(lc_below, np.log(v) + log_mass)
+            log_1mu = np.logaddexp(ls_above, np.log1p(-v) + log_mass)
+        return log_u, log_1mu
+    return _log_tails(law, y)
+
+
+# ---------------------------------------------------------------------- public
+def pit(family, y, raw, *, seed=0, unit_interval=False) -> np.ndarray:
+    """Probability integral transform u of each target (randomized for discrete families).
+
+    ``seed`` (an int or a numpy Generator) draws the uniforms of the randomized
+    transform; it is unused for continuous laws unless ``unit_interval=True``.
+    Returns u in [0, 1], unclipped.
+    """
+    fam, y, raw = _inputs(family, y, raw)
+    log_u, log_1mu = _log_pit(fam, y, raw, seed, unit_interval)
+    return np.where(log_u <= log_1mu, np.exp(log_u), -np.expm1(log_1mu))
+
+
+def quantile_residuals(family, y, raw, *, seed=0, unit_interval=False) -> np.ndarray:
+    """Quantile residuals z = Phi^{-1}(u), standard normal when the model is right.
+
+    Discrete families get the randomized residual of Dunn and Smyth (1996),
+    seeded by ``seed``.  u and 1 - u are clipped up to ``TINY`` for the normal
+    transform only (|z| <= 37.5); see the module docstring.
+    """
+    fam, y, raw = _inputs(family, y, raw)
+    log_u, log_1mu = _log_pit(fam, y, raw, seed, unit_interval)
+    lo = np.maximum(log_u, _LOG_TINY)
+    hi = np.maximum(log_1mu, _LOG_TINY)
+    return np.where(lo <= hi, ndtri_exp(lo), -ndtri_exp(hi))
+
+
+def qq_data(residuals):
+    """(theoretical, sample) quantiles for a normal QQ plot of the residuals.
+
+    The sample quantiles are the sorted finite residuals; the theoretical ones
+    are Phi^{-1}((i - 3/8) / (n + 1/4)), i = 1..n (Blom's plotting positions,
+    common practice for normal QQ plots).
+    """
+    z = np.asarray(residuals, dtype=float).ravel()
+    bad = ~np.isfinite(z)
+    if np.any(bad):
+        raise ValueError(f"qq_data: residuals must be finite; {int(bad.sum())} rows are not")
+    n = z.size
+    if n == 0:
+        raise ValueError("qq_data: no residuals")
+    i = np.arange(1, n + 1, dtype=float)
+    return stats.norm.ppf((i - 0.375) / (n + 0.25)), np.sort(z)
+
+
+def ks_statistic(residuals) -> float:
+    """Kolmogorov-Smirnov distance between the residuals' empirical cdf and N(0, 1)."""
+    z = np.asarray(residuals, dtype=float).ravel()
+    if z.size == 0:
+        raise ValueError("ks_statistic: no residuals")
+    return float(stats.kstest(z, "norm").statistic)
+
+
+def calibration_table(family, y, raw, *, bins=10, strategy="quantile", weight=None) -> dict:
+    """Binned predicted probability against the observed rate, for 0/1 targets.
+
+    The predicted probability that y = 1 is ``law.sf(0.5)`` = P(Y > 1/2), which
+    is p itself for bernoulli.  Rows are binned by it: ``strategy="quantile"``
+    gives bins with about equal counts, ``"uniform"`` equal-width bins on [0, 1].
+    Returns a dict of equal-length arrays (empty bins dropped): ``lower``,
+    ``upper`` (bin edges), ``predicted`` (mean predicted probability),
+    ``observed`` (rate of y = 1), ``count`` (rows) and ``weight`` (their total
+    weight; equal to count when unweighted).  Means are weighted when
+    ``weight`` is given.
+    """
+    fam = _make_family(family)
+    y = _checks.as_float_array(y, "y", fam.name)
+    _checks.BINARY.check(y, "y (for a calibration table)", fam.name)
+    raw = _checks.check_raw(raw, y, fam.name)
+    w = _checks.check_weight(weight, y, fam.name, need_positive_sum=True)
+    w = np.ones_like(y) if w is None else np.asarray(w, dtype=float)
+    if int(bins) < 1:
+        raise ValueError(f"calibration_table: bins must be >= 1, got {bins!r}")
+    bins = int(bins)
+    p = np.asarray(fam.distribution(raw).sf(0.5), dtype=float)
+    if strategy == "quantile":
+        edges = np.quantile(p, np.linspace(0.0, 1.0, bins + 1))
+        edges[0], edges[-1] = min(edges[0], 0.0), max(edges[-1], 1.0)
+        edges = np.unique(edges)
+    elif strategy == "uniform":
+        edges = np.linspace(0.0, 1.0, bins + 1)
+    else:
+        raise ValueError(f"calibration_table: strategy must be 'quantile' or 'uniform', got {strategy!r}")
+    idx = np.clip(np.searchsorted(edges, p, side="right") - 1, 0, edges.size - 2)
+    nb = edges.size - 1
+    count = np.bincount(idx, minlength=nb)
+    wsum = np.bincount(idx, weights=w, minlength=nb)
+    keep = (count > 0) & (wsum > 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        pred = np.bincount(idx, weights=w * p, minlength=nb) / wsum
+        obs = np.bincount(idx, weights=w * y, minlength=nb) / wsum
+    return {
+        "lower": edges[:-1][keep],
+        "upper": edges[1:][keep],
+        "predicted": pred[keep],
+        "observed": obs[keep],
+        "count": count[keep],
+        "weight": wsum[keep],
+    }
+
+
+def interval_coverage(family, y, raw, levels=(0.5, 0.8, 0.9, 0.95), *, weight=None) -> dict:
+    """Nominal against observed coverage of the central prediction intervals.
+
+    For each level the interval is ``family.distribution(raw).interval(level)``
+    (closed, [lo, hi]); the observed coverage is the (weighted) fraction of
+    rows with lo <= y <= hi.  For a discrete law the interval's end points are
+    quantiles, so its probability is at least the level and coverage above
+    nominal is expected.  Returns a dict of arrays: ``level``, ``observed``,
+    ``mean_width`` (mean of hi - lo) and ``count`` (rows).
+    """
+    fam, y, raw = _inputs(family, y, raw, for_nll=False)
+    w = _checks.check_weight(weight, y, fam.name, need_positive_sum=True)
+    w = np.ones_like(y) if w is None else np.asarray(w, dtype=float)
+    levels = np.atleast_1d(np.asarray(levels, dtype=float))
+    if np.any(~((levels > 0) & (levels < 1))):
+        raise ValueError(f"interval_coverage: levels must be strictly between 0 and 1, got {levels.tolist()}")
+    law = fam.distribution(raw)
+    observed, width = [], []
+    for level in levels:
+        lo, hi = law.interval(level)
+        lo = np.broadcast_to(np.asarray(lo, dtype=float), y.shape)
+        hi = np.broadcast_to(np.asarray(hi, dtype=float), y.shape)
+        inside = (lo <= y) & (y <= hi)
+        observed.append(float(np.dot(w, inside) / w.sum()))
+        width.append(float(np.mean(hi - lo)))
+    return {
+        "level": levels,
+        "observed": np.asarray(observed),
+        "mean_width": np.asarray(width),
+        "count": np.full(levels.shape, y.size),
+    }
