@@ -1,0 +1,313 @@
+r"""Exact solvers for penalised maximum likelihood in a linear model (numpy and scipy only).
+
+The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / sum w:
+
+    raw_i = x_i . coef + intercept + offset_i
+    F(coef, intercept) = sum_i v_i nll(y_i, raw_i) + alpha / 2 ||coef||^2
+
+(the intercept is not penalised).  Three solvers, chosen by the family:
+
+``newton``
+    Smooth families (exact Hessian).  With g_i, h_i the first two derivatives of
+    nll in raw, the gradient and Hessian of F are
+
+        dF/dcoef = X^T (v g) + alpha coef,          dF/dintercept = sum v g
+        d2F      = [X 1]^T diag(v h) [X 1] + alpha diag(1, ..., 1, 0)
+
+    The Newton direction solves d2F d = -dF by Cholesky (scipy.linalg.cho_factor);
+    a backtracking (Armijo) line search on F makes each step a descent step, so
+    the iteration converges from any start for a convex nll and quadratically
+    near the optimum.  If the Cholesky factorisation fails (a singular design
+    with alpha = 0, or a non-convex user family) the matrix is damped by
+    lambda I with lambda growing tenfold until it factorises (a
+    Levenberg-Marquardt step).  X^T diag(v h) X is accumulated in row blocks
+    with one BLAS symmetric rank-k update (dsyrk) per block on the pre-scaled
+    rows sqrt(v h) x_i.  Stops when max |dF| <= tol.
+
+    Families whose Hessian is a surrogate (``exact_hessian`` False, e.g. a user
+    family) use the same iteration with the surrogate in place of d2F: each
+    step is then a majorise-minimise step (linear, not quadratic, convergence).
+
+``huber``
+    The Huber nll is convex and once continuously differentiable in raw; its
+    second derivative is 1/s^2 inside the core |u| <= delta and 0 outside.
+    Newton's iteration with that generalised Hessian (a semismooth Newton
+    method) and the line search above terminates once the set of core rows
+    settles; if the core rows alone give a singular matrix, that iteration uses
+    the family's surrogate curvature instead.  The scale s is fitted by
+    maximum likelihood jointly with the coefficients by alternating the two
+    blocks (coefficients given s to max |dF| <= tol; s given the coefficients
+    by ``Huber.fit_params``) until s changes by less than 1e-10 relatively.
+    With theta = coef / s and tau = 1 / s the unpenalised nll is
+    rho(tau y - x theta) - log tau + const, jointly convex in (theta, tau), so
+    the alternation (block coordinate descent on a smooth convex function)
+    reaches the joint maximum-likelihood estimate.
+
+``quantile_lp``
+    Laplace and asymmetric Laplace: minimising sum v rho_tau(y - raw) is the
+    linear programme
+
+        minimise   sum_i v_i (tau u_i + (1 - tau) l_i)
+        subject to x_i . coef + intercept + u_i - l_i = y_i - offset_i,  u, l >= 0
+
+    (u - l is the residual), solved exactly by scipy.optimize.linprog with
+    HiGHS on a sparse constraint matrix.  The scale b does not change the
+    minimiser when alpha = 0.  With alpha > 0 the problem becomes a quadratic
+    programme, which linprog cannot solve; the estimator refuses it.
+"""
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+from scipy import linalg, optimize, sparse
+from scipy.linalg.blas import dsyrk
+
+_BLOCK = 32768  # rows per block when accumulating X^T diag(h) X
+_EPS = np.finfo(float).eps
+
+
+@dataclasses.dataclass
+class LinearFit:
+    """What a solver returns."""
+
+    coef: np.ndarray
+    intercept: float
+    raw: np.ndarray  # fitted raw scores, offset included
+    n_iter: int
+    objective: float  # F at the solution (mean weighted nll + penalty); LP: sum v rho_tau
+    grad_norm: float  # max |dF| at the solution (nan for the LP)
+    converged: bool
+    family: object  # the family used (huber: with its fitted scale)
+
+
+def weighted_gram(X, hv, buf=None):
+    """X^T diag(hv) X for a C-contiguous float64 X.
+
+    For hv >= 0 the rows are scaled by sqrt(hv) block by block and each block
+    is added with dsyrk (half the flops of a general product, no n x p
+    temporary); otherwise a plain product is used.
+    """
+    n, p = X.shape
+    if p == 0:
+        return np.zeros((0, 0))
+    if n and np.min(hv) >= 0:
+        sq = np.sqrt(hv)
+        m = min(_BLOCK, n)
+        if buf is None or buf.shape[0] < m:
+            buf = np.empty((m, p))
+        c = np.zeros((p, p), order="F")
+        for s in range(0, n, m):
+            e = min(n, s + m)
+            a = np.multiply(X[s:e], sq[s:e, None], out=buf[: e - s])
+            c = dsyrk(1.0, a.T, beta=1.0, c=c, trans=0, lower=0, overwrite_c=1)
+        return np.triu(c) + np.triu(c, 1).T
+    return X.T @ (hv[:, None] * X)
+
+
+def _solve_spd(H, rhs):
+    """Solve H d = rhs for a symmetric H, damping H + lam I until Cholesky succeeds."""
+    try:
+        return linalg.cho_solve(linalg.cho_factor(H, check_finite=False), rhs, check_finite=False)
+    except (linalg.LinAlgError, ValueError):
+        pass
+    scale = max(float(np.max(np.abs(np.diag(H)))), 1e-300) if H.size else 1.0
+    lam = 1e-10 * scale
+    eye = np.eye(H.shape[0])
+    for _ in range(40):
+        try:
+            fac = linalg.cho_factor(H + lam * eye, check_finite=False)
+            return linalg.cho_solve(fac, rhs, check_finite=False)
+        except (linalg.LinAlgError, ValueError):
+            lam *= 10.0
+    raise FloatingPointError("the Newton system could not be factorised even after damping")
+
+
+def _raw(X, coef, intercept, offset):
+    raw = X @ coef if X.shape[1] else np.zeros(X.shape[0])
+    raw += intercept
+    if offset is not None:
+        raw += offset
+    return raw
+
+
+def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+           curvature=None, buf=None) -> LinearFit:
+    """Damped Newton iteration for F (see the module docstring).
+
+    ``curvature(fam, y, raw, h)`` may replace the family's Hessian per row
+    (used for Huber's generalised Hessian); it returns None to keep ``h``.
+    """
+    n, p = X.shape
+    coef = np.array(coef, dtype=float)
+    intercept = float(intercept)
+    raw = _raw(X, coef, intercept, offset)
+    nfree = p + int(fit_intercept)
+
+    def objective(raw_, coef_):
+        with np.errstate(over="ignore", invalid="ignore"):
+            per_row = fam._nll(y, raw_)
+        val = float(np.dot(v, per_row)) + 0.5 * alpha * float(coef_ @ coef_)
+        noise = 16.0 * _EPS * float(np.dot(v, np.abs(per_row)))
+        return val, noise
+
+    F, noise = objective(raw, coef)
+    converged = False
+    gnorm = np.inf
+    it = 0
+    for it in range(max_iter + 1):
+        with np.errstate(over="ignore", invalid="ignore"):
+            g, h = fam._grad_hess(y, raw)
+        if curvature is not None:
+            alt = curvature(fam, y, raw, h)
+        else:
+            alt = None
+        g *= v
+        grad = np.empty(nfree)
+        grad[:p] = X.T @ g if p else 0.0
+        grad[:p] += alpha * coef
+        if fit_intercept:
+            grad[p] = g.sum()
+        gnorm = float(np.max(np.abs(grad))) if nfree else 0.0
+        if not np.isfinite(gnorm):
+            raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+        if gnorm <= tol:
+            converged = True
+            break
+        if it == max_iter:
+            break
+        d = None
+        for hh in ([alt, h] if alt is not None else [h]):
+            hv = hh * v
+            H = np.empty((nfree, nfree))
+            H[:p, :p] = weighted_gram(X, hv, buf)
+            H[np.arange(p), np.arange(p)] += alpha
+            if fit_intercept:
+                xh = X.T @ hv if p else np.zeros(0)
+                H[:p, p] = xh
+                H[p, :p] = xh
+                H[p, p] = hv.sum()
+            if hh is alt:
+                # the generalised Hessian may be singular: use it only if it factorises
+                try:
+                    fac = linalg.cho_factor(H, check_finite=False)
+                    d = -linalg.cho_solve(fac, grad, check_finite=False)
+                    break
+                except (linalg.LinAlgError, ValueError):
+                    continue
+            d = -_solve_spd(H, grad)
+        dc = d[:p]
+        db = d[p] if fit_intercept else 0.0
+        draw = X @ dc if p else np.zeros(n)
+        draw += db
+        slope = float(grad @ d)
+        t = 1.0
+        accepted = False
+        for _ in range(60):
+            raw_new = raw + t * draw
+            coef_new = coef + t * dc
+            F_new, noise_new = objective(raw_new, coef_new)
+            if np.isfinite(F_new) and F_new <= F + 1e-4 * t * slope + max(noise, noise_new):
+                accepted = True
+                break
+            t *= 0.5
+        if not accepted:
+            break  # no descent possible: at the rounding level of F, or a broken family
+        step = t * np.max(np.abs(d)) if nfree else 0.0
+        coef, intercept, raw, F, noise = coef_new, intercept + t * db, raw_new, F_new, noise_new
+        if step <= 4.0 * _EPS * (1.0 + max(np.max(np.abs(coef), initial=0.0), abs(intercept))):
+            # the step no longer changes the parameters: nothing more can be gained
+            converged = converged or gnorm <= max(tol, 1e3 * noise)
+            it += 1
+            break
+    return LinearFit(coef, intercept, raw, it, F, gnorm, converged, fam)
+
+
+def huber_curvature(fam, y, raw, h):
+    """Generalised second derivative of the Huber nll: 1/s^2 in the core, 0 outside."""
+    u = np.abs(y - raw) / fam.scale
+    return np.where(u <= fam.delta, 1.0 / (fam.scale * fam.scale), 0.0)
+
+
+def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+                buf=None) -> LinearFit:
+    """Coefficients and scale of the Huber family by alternating maximisation (module docstring)."""
+    raw = _raw(X, coef, intercept, offset)
+    fam = fam.fit_params(y, raw, w)
+    total = 0
+    fit = None
+    for _ in range(max(1, max_iter)):
+        fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+                     curvature=huber_curvature, buf=buf)
+        total += max(fit.n_iter, 1)
+        coef, intercept = fit.coef, fit.intercept
+        try:
+            new = fam.fit_params(y, fit.raw, w)
+        except ValueError:
+            break  # zero residuals: the scale has no maximum-likelihood value; keep the last one
+        change = abs(np.log(new.scale / fam.scale))
+        fam = new
+        if change <= 1e-10 and fit.converged:
+            break
+    fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+                 curvature=huber_curvature, buf=buf)
+    fit.n_iter = total + fit.n_iter
+    return fit
+
+
+def quantile_lp(X, y, v, offset, tau, fit_intercept) -> LinearFit:
+    """Exact minimiser of sum v rho_tau(y - raw) by linear programming (HiGHS)."""
+    n, p = X.shape
+    keep = v > 0
+    Xk, vk = X[keep], v[keep]
+    target = y[keep] - (offset[keep] if offset is not None else 0.0)
+    m = Xk.shape[0]
+    blocks = [sparse.csr_matrix(Xk)]
+    if fit_intercept:
+        blocks.append(sparse.csr_matrix(np.ones((m, 1))))
+    eye = sparse.identity(m, format="csr")
+    blocks += [eye, -eye]
+    A = sparse.hstack(blocks, format="csr")
+    nfree = p + int(fit_intercept)
+    c = np.concatenate([np.zeros(nfree), tau * vk, (1.0 - tau) * vk])
+    bounds = [(None, None)] * nfree + [(0, None)] * (2 * m)
+    res = optimize.linprog(c, A_eq=A, b_eq=target, bounds=bounds, method="highs")
+    if res.status != 0:
+        raise RuntimeError(f"the linear programme for the quantile fit failed: {res.message}")
+    coef = np.asarray(res.x[:p], dtype=float)
+    intercept = float(res.x[p]) if fit_intercept else 0.0
+    raw = _raw(X, coef, intercept, offset)
+    r = y - raw
+    obj = float(np.dot(v, np.maximum(tau * r, (tau - 1.0) * r)))
+    return LinearFit(coef, intercept, raw, int(res.nit), obj, np.nan, True, None)
+
+
+def separation_margin(X, y01, v, fit_intercept) -> float:
+    """Detect (quasi-)complete separation of binary labels by linear programming.
+
+    With s_i = 2 y_i - 1 and z_i = s_i [x_i, 1], the data are separated exactly
+    when some direction beta has z_i . beta >= 0 for every row and > 0 for at
+    least one.  The linear programme
+
+        maximise sum_i z_i . beta   subject to  z_i . beta >= 0,  -1 <= beta_j <= 1
+
+    has optimum 0 when the logistic maximum-likelihood estimate is finite and a
+    positive optimum when it does not exist (a standard detection programme;
+    Konis, 2007, Linear programming algorithms for detecting separated data in
+    binary logistic regression models, DPhil thesis, Oxford -- recalled from
+    memory).  Returns that optimum divided by sum |z_i| (0 means not separated).
+    """
+    keep = v > 0
+    Xk = X[keep]
+    s = 2.0 * y01[keep] - 1.0
+    Z = Xk * s[:, None]
+    if fit_intercept:
+        Z = np.hstack([Z, s[:, None]])
+    if Z.shape[1] == 0:
+        return 0.0
+    total = Z.sum(axis=0)
+    res = optimize.linprog(-total, A_ub=-Z, b_ub=np.zeros(Z.shape[0]),
+                           bounds=[(-1.0, 1.0)] * Z.shape[1], method="highs")
+    if res.status != 0:
+        return 0.0
+    return max(0.0, -float(res.fun)) / max(float(np.abs(Z).sum()), 1e-300)

@@ -1,0 +1,2 @@
+class LossfamBoostRegressor: pass
+class LossfamBoostClassifier: pass

@@ -1,0 +1,321 @@
+"""Linear models fitted by penalised maximum likelihood under any lossfam family.
+
+See ``lossfam/_sk/_solvers.py`` for the objective and the solvers.
+"""
+from __future__ import annotations
+
+import numbers
+import warnings
+
+import numpy as np
+from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin
+from sklearn.exceptions import ConvergenceWarning
+from sklearn.utils.multiclass import check_classification_targets, type_of_target
+from sklearn.utils.validation import check_is_fitted, validate_data
+
+from .. import _checks
+from ..families import AsymmetricLaplace, Bernoulli, Huber, Laplace
+from ..registry import family as make_family
+from . import _solvers
+from .metrics import d2_score
+
+
+class UnboundedLikelihoodWarning(UserWarning):
+    """The likelihood has no finite maximiser: the fitted coefficients diverge.
+
+    Raised for an unpenalised (alpha = 0) binary fit on (quasi-)separated
+    classes: some linear score orders the two labels perfectly, so the log
+    likelihood keeps rising as the coefficients grow and fitted probabilities
+    reach 0 or 1.  Use alpha > 0 for a finite, penalised estimate.
+    """
+
+
+def _check_hyper(est):
+    a = est.alpha
+    if isinstance(a, bool) or not isinstance(a, numbers.Real) or not (np.isfinite(a) and a >= 0):
+        raise ValueError(f"{type(est).__name__}: alpha must be a finite number >= 0, got {a!r}")
+    m = est.max_iter
+    if isinstance(m, bool) or not isinstance(m, numbers.Integral) or m < 1:
+        raise ValueError(f"{type(est).__name__}: max_iter must be an integer >= 1, got {m!r}")
+    t = est.tol
+    if isinstance(t, bool) or not isinstance(t, numbers.Real) or not (np.isfinite(t) and t >= 0):
+        raise ValueError(f"{type(est).__name__}: tol must be a finite number >= 0, got {t!r}")
+    if not isinstance(est.fit_intercept, (bool, np.bool_)):
+        raise ValueError(f"{type(est).__name__}: fit_intercept must be True or False, got {est.fit_intercept!r}")
+
+
+def _check_offset(offset, n, owner):
+    if offset is None:
+        return None
+    o = _checks.as_float_array(offset, "offset", owner)
+    if o.ndim != 1 or o.shape[0] != n:
+        raise ValueError(f"{owner}: offset has shape {o.shape} but X has {n} rows; pass one offset per row")
+    _checks.REAL.check(o, "offset", owner)
+    return np.ascontiguousarray(o)
+
+
+def _check_sample_weight(sample_weight, y, owner):
+    if sample_weight is None:
+        return np.ones_like(y)
+    w = _checks.as_float_array(sample_weight, "sample_weight", owner)
+    if w.ndim == 0:
+        w = np.full_like(y, float(w))
+    if w.shape != y.shape:
+        raise ValueError(f"{owner}: sample_weight has shape {w.shape} but y has shape {y.shape}")
+    _checks.NONNEGATIVE.check(w, "sample_weight", owner)
+    if not w.sum() > 0:
+        raise ValueError(f"{owner}: sample weights sum to zero; at least one row needs a positive weight")
+    return np.ascontiguousarray(w)
+
+
+def _fit_linear(est, fam, X, y, w, offset):
+    """Solve the penalised problem for ``fam``; set coef_, intercept_, n_iter_, objective_; return the fit."""
+    owner = type(est).__name__
+    n, p = X.shape
+    v = w / w.sum()
+    alpha = float(est.alpha)
+    if isinstance(fam, (Laplace, AsymmetricLaplace)):
+        if alpha > 0:
+            raise ValueError(
+                f"{owner}: alpha > 0 is not supported for the {fam.name} family. The ridge-penalised "
+                "absolute-error problem is a quadratic programme and scipy's linprog (HiGHS) solves only "
+                "linear programmes exactly; rather than return an approximate answer, this estimator "
+                "fits laplace and asymmetric_laplace with alpha=0 only."
+            )
+        tau = fam.quantile if isinstance(fam, AsymmetricLaplace) else 0.5
+        return _solvers.quantile_lp(X, y, v, offset, tau, est.fit_intercept)
+    if est.fit_intercept:
+        intercept = fam.baseline(y, w, offset=offset)
+    else:
+        intercept = 0.0
+    coef = np.zeros(p)
+    args = (X, y, v, offset, alpha, est.fit_intercept, est.max_iter, est.tol, coef, intercept)
+    if isinstance(fam, Huber):
+        return _solvers.huber_joint(fam, X, y, w, *args[2:])
+    return _solvers.newton(fam, *args)
+
+
+def _finish(est, fam, fit, y, w):
+    """Attributes shared by both estimators; nuisance parameters by maximum likelihood."""
+    est.coef_ = fit.coef
+    est.intercept_ = float(fit.intercept)
+    est.n_iter_ = int(fit.n_iter)
+    est.objective_ = float(fit.objective)
+    if not fit.converged:
+        warnings.warn(
+            f"{type(est).__name__} ({fam.name}): Newton's method stopped after {fit.n_iter} iterations "
+            f"with max |gradient| = {fit.grad_norm:.3g} > tol = {est.tol}; raise max_iter or tol, or add "
+            "a ridge penalty (alpha > 0) if the design is singular",
+            ConvergenceWarning,
+            stacklevel=3,
+        )
+    if fit.family is not None and isinstance(fam, Huber):
+        est.family_ = fit.family  # the scale was fitted jointly with the coefficients
+        return
+    try:
+        est.family_ = fam.fit_params(y, fit.raw, w)
+    except ValueError as exc:
+        warnings.warn(
+            f"{type(est).__name__}: the nuisance parameters of {fam.name} keep their given values "
+            f"{fam.params} because they have no maximum-likelihood value here ({exc})",
+            UserWarning,
+            stacklevel=3,
+        )
+        est.family_ = fam
+
+
+def _warn_if_separated(est, X, y01, w, raw):
+    """With alpha = 0, warn when the binary MLE does not exist (see UnboundedLikelihoodWarning)."""
+    if est.alpha > 0:
+        return
+    margin = (2.0 * y01 - 1.0) * raw
+    if not np.any((margin > 13.8) & (w > 0)):  # no fitted probability within 1e-6 of its label
+        return
+    if _solvers.separation_margin(X, y01, w, est.fit_intercept) > 1e-9:
+        warnings.warn(
+            f"{type(est).__name__}: the two classes are (quasi-)separated by a linear score, so the "
+            "unpenalised maximum-likelihood estimate does not exist: coefficients diverge and fitted "
+            "probabilities reach 0 or 1. The returned coefficients are where Newton's method stopped; "
+            "use alpha > 0 for a finite estimate.",
+            UnboundedLikelihoodWarning,
+            stacklevel=3,
+        )
+
+
+class LikelihoodRegressor(RegressorMixin, BaseEstimator):
+    """Linear model fitted by penalised maximum likelihood under a lossfam family.
+
+    Minimises ``(1 / sum w) sum w nll(y, X coef + intercept + offset) + alpha / 2 ||coef||^2``
+    (intercept unpenalised) for the family ``lossfam.family(family, **family_params)``.
+
+    Solvers: Newton's method with a line search and Cholesky solves for smooth
+    families (starting from the intercept at ``family.baseline``); linear
+    programming (HiGHS) for laplace and asymmetric_laplace (alpha = 0 only);
+    semismooth Newton with the scale fitted jointly by maximum likelihood for
+    huber.  During the coefficient fit, nuisance parameters other than the
+    Huber scale keep their given values (they matter only when alpha > 0);
+    afterwards ``family_`` holds them at their maximum-likelihood values.
+
+    Parameters
+    ----------
+    family : str or lossfam.Family, default="gaussian"
+    family_params : dict or None, default=None
+        Nuisance parameters of the family (e.g. ``{"quantile": 0.9}``).
+    alpha : float >= 0, default=0.0
+        Ridge penalty on the coefficients.
+    fit_intercept : bool, default=True
+    max_iter : int, default=100
+        Maximum Newton iterations.
+    tol : float, default=1e-8
+        Stop when the largest absolute gradient component of the objective is <= tol.
+
+    Attributes
+    ----------
+    coef_, intercept_, family_, n_iter_, objective_ (the minimised objective; for the
+    linear programme the weighted mean pinball loss), n_features_in_, feature_names_in_.
+    """
+
+    def __init__(self, family="gaussian", family_params=None, alpha=0.0, fit_intercept=True,
+                 max_iter=100, tol=1e-8):
+        self.family = family
+        self.family_params = family_params
+        self.alpha = alpha
+        self.fit_intercept = fit_intercept
+        self.max_iter = max_iter
+        self.tol = tol
+
+    def _make_family(self):
+        return make_family(self.family, **(self.family_params or {}))
+
+    def __sklearn_tags__(self):
+        tags = super().__sklearn_tags__()
+        try:
+            fam = self._make_family()
+        except Exception:  # invalid parameters are reported by fit, not here
+            return tags
+        tags.target_tags.positive_only = not bool(fam.target_domain.inside(np.array([-1.0]))[0])
+        return tags
+
+    def fit(self, X, y, sample_weight=None, offset=None):
+        """Fit the coefficients; ``offset`` is a per-row raw-scale offset (e.g. log exposure)."""
+        _check_hyper(self)
+        fam = self._make_family()
+        X, y = validate_data(self, X, y, dtype=np.float64, order="C", y_numeric=True)
+        owner = type(self).__name__
+        y = fam.check_target(y, for_nll=False)
+        w = _check_sample_weight(sample_weight, y, owner)
+        offset = _check_offset(offset, X.shape[0], owner)
+        fit = _fit_linear(self, fam, X, y, w, offset)
+        _finish(self, fam, fit, y, w)
+        if isinstance(fam, Bernoulli):
+            _warn_if_separated(self, X, y, w, fit.raw)
+        return self
+
+    def _raw_score(self, X, offset):
+        check_is_fitted(self)
+        X = validate_data(self, X, reset=False, dtype=np.float64)
+        raw = X @ self.coef_ + self.intercept_
+        o = _check_offset(offset, X.shape[0], type(self).__name__)
+        return raw if o is None else raw + o
+
+    def predict_raw(self, X, offset=None):
+        """The raw score X coef + intercept (+ offset), on the link scale."""
+        return self._raw_score(X, offset)
+
+    def predict(self, X, offset=None):
+        """The prediction on the response scale: ``family_.inverse_link(raw)`` (mean, median or quantile)."""
+        return self.family_.inverse_link(self._raw_score(X, offset))
+
+    def predict_distribution(self, X, offset=None):
+        """The predictive law of each row: ``family_.distribution(raw)``."""
+        return self.family_.distribution(self._raw_score(X, offset))
+
+    def score(self, X, y, sample_weight=None):
+        """D^2: the fraction of (weighted) deviance explained, relative to the weighted baseline of y."""
+        return d2_score(y, self.predict(X), self.family_, sample_weight=sample_weight)
+
+
+class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
+    """Binary logistic regression as penalised Bernoulli maximum likelihood.
+
+    Minimises ``(1 / sum w) sum w logloss + alpha / 2 ||coef||^2`` by Newton's
+    method.  The positive class is ``classes_[1]`` (the larger label).  With
+    ``alpha=0`` the unpenalised maximum-likelihood estimate is returned where it
+    exists; on (quasi-)separated classes an ``UnboundedLikelihoodWarning`` is
+    issued (detected by a linear programme, see ``separation_margin``).
+
+    Parameters
+    ----------
+    alpha : float >= 0, default=1e-4
+        Ridge penalty (a small default keeps the estimate finite on separable data).
+    fit_intercept : bool, default=True
+    max_iter : int, default=100
+    tol : float, default=1e-8
+    """
+
+    def __init__(self, alpha=1e-4, fit_intercept=True, max_iter=100, tol=1e-8):
+        self.alpha = alpha
+        self.fit_intercept = fit_intercept
+        self.max_iter = max_iter
+        self.tol = tol
+
+    def __sklearn_tags__(self):
+        tags = super().__sklearn_tags__()
+        tags.classifier_tags.multi_class = False
+        return tags
+
+    def fit(self, X, y, sample_weight=None, offset=None):
+        _check_hyper(self)
+        X, y = validate_data(self, X, y, dtype=np.float64, order="C")
+        check_classification_targets(y)
+        owner = type(self).__name__
+        kind = type_of_target(y, input_name="y")
+        if kind != "binary":
+            raise ValueError(
+                f"Only binary classification is supported. The type of the target is {kind}; "
+                f"{owner} models two classes."
+            )
+        self.classes_ = np.unique(y)
+        if self.classes_.size < 2:
+            raise ValueError(
+                f"{owner} needs two classes to fit; only one class ({self.classes_[0]!r}) is present"
+            )
+        y01 = (y == self.classes_[1]).astype(np.float64)
+        w = _check_sample_weight(sample_weight, y01, owner)
+        present = np.unique(y01[w > 0])
+        if present.size < 2:
+            raise ValueError(
+                f"{owner} needs two classes with positive sample weight; only class "
+                f"{self.classes_[int(present[0])]!r} has positive weight"
+            )
+        offset = _check_offset(offset, X.shape[0], owner)
+        fam = make_family("bernoulli")
+        fit = _fit_linear(self, fam, X, y01, w, offset)
+        _finish(self, fam, fit, y01, w)
+        _warn_if_separated(self, X, y01, w, fit.raw)
+        return self
+
+    def decision_function(self, X, offset=None):
+        """The raw score (log odds of ``classes_[1]``)."""
+        check_is_fitted(self)
+        X = validate_data(self, X, reset=False, dtype=np.float64)
+        raw = X @ self.coef_ + self.intercept_
+        o = _check_offset(offset, X.shape[0], type(self).__name__)
+        return raw if o is None else raw + o
+
+    def predict_proba(self, X, offset=None):
+        p = self.family_.inverse_link(self.decision_function(X, offset))
+        return np.column_stack([1.0 - p, p])
+
+    def predict_log_proba(self, X, offset=None):
+        raw = self.decision_function(X, offset)
+        from scipy.special import log_expit
+
+        return np.column_stack([log_expit(-raw), log_expit(raw)])
+
+    def predict(self, X, offset=None):
+        return self.classes_[(self.decision_function(X, offset) > 0).astype(int)]
+
+    def predict_distribution(self, X, offset=None):
+        """The predictive Bernoulli law of each row (of the event ``y == classes_[1]``)."""
+        return self.family_.distribution(self.decision_function(X, offset))
