@@ -79,6 +79,7 @@ class LinearFit:
     grad_norm: float  # max |dF| at the solution (nan for the LP)
     converged: bool
     family: object  # the family used (huber: with its fitted scale)
+    nuisance_fitted: bool = True  # huber: False when the scale had no maximum-likelihood value
 
 
 def weighted_gram(X, hv, buf=None):
@@ -105,22 +106,42 @@ def weighted_gram(X, hv, buf=None):
     return X.T @ (hv[:, None] * X)
 
 
-def _solve_spd(H, rhs):
-    """Solve H d = rhs for a symmetric H, damping H + lam I until Cholesky succeeds."""
+def _cholesky(H):
+    """Cholesky factor of H, or None when H is not numerically positive definite.
+
+    A factorisation whose smallest pivot is below 1e-12 of the largest is
+    refused: H is then singular to working precision (e.g. more coefficients
+    than informative rows with alpha = 0) and its solve would be noise.
+    """
     try:
-        return linalg.cho_solve(linalg.cho_factor(H, check_finite=False), rhs, check_finite=False)
+        fac = linalg.cho_factor(H, check_finite=False)
     except (linalg.LinAlgError, ValueError):
-        pass
-    scale = max(float(np.max(np.abs(np.diag(H)))), 1e-300) if H.size else 1.0
-    lam = 1e-10 * scale
-    eye = np.eye(H.shape[0])
-    for _ in range(40):
-        try:
-            fac = linalg.cho_factor(H + lam * eye, check_finite=False)
-            return linalg.cho_solve(fac, rhs, check_finite=False)
-        except (linalg.LinAlgError, ValueError):
-            lam *= 10.0
-    raise FloatingPointError("the Newton system could not be factorised even after damping")
+        return None
+    piv = np.abs(np.diag(fac[0]))
+    if piv.size and not (np.min(piv) ** 2 > 1e-12 * np.max(piv) ** 2):
+        return None
+    return fac
+
+
+def _solve_spd(H, rhs):
+    """Solve H d = rhs for the Newton step.
+
+    Cholesky when H is numerically positive definite; otherwise the symmetric
+    eigendecomposition H = V diag(lam) V^T with d = V diag(1 / |lam|) V^T rhs
+    over the eigenvalues with |lam| > 1e-12 max |lam| (a pseudo-inverse step:
+    it stays in the span of the data rows, so a rank-deficient problem gets the
+    solution in that span; |lam| keeps the step a descent direction when a user
+    family's Hessian is indefinite).
+    """
+    fac = _cholesky(H)
+    if fac is not None:
+        return linalg.cho_solve(fac, rhs, check_finite=False)
+    lam, V = linalg.eigh(H, check_finite=False)
+    mag = np.abs(lam)
+    keep = mag > 1e-12 * max(float(mag.max(initial=0.0)), 1e-300)
+    coef = np.zeros_like(lam)
+    coef[keep] = (V[:, keep].T @ rhs) / mag[keep]
+    return V @ coef
 
 
 def _raw(X, coef, intercept, offset):
@@ -188,13 +209,12 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
                 H[p, :p] = xh
                 H[p, p] = hv.sum()
             if hh is alt:
-                # the generalised Hessian may be singular: use it only if it factorises
-                try:
-                    fac = linalg.cho_factor(H, check_finite=False)
-                    d = -linalg.cho_solve(fac, grad, check_finite=False)
-                    break
-                except (linalg.LinAlgError, ValueError):
+                # the generalised Hessian may be singular: use it only if it is well conditioned
+                fac = _cholesky(H)
+                if fac is None:
                     continue
+                d = -linalg.cho_solve(fac, grad, check_finite=False)
+                break
             d = -_solve_spd(H, grad)
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
@@ -233,7 +253,11 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
                 buf=None) -> LinearFit:
     """Coefficients and scale of the Huber family by alternating maximisation (module docstring)."""
     raw = _raw(X, coef, intercept, offset)
-    fam = fam.fit_params(y, raw, w)
+    scale_fitted = True
+    try:
+        fam = fam.fit_params(y, raw, w)
+    except ValueError:
+        scale_fitted = False  # every residual is zero at the start: keep the given scale
     total = 0
     fit = None
     for _ in range(max(1, max_iter)):
@@ -244,7 +268,8 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
         try:
             new = fam.fit_params(y, fit.raw, w)
         except ValueError:
-            break  # zero residuals: the scale has no maximum-likelihood value; keep the last one
+            scale_fitted = False  # zero residuals: the scale has no maximum-likelihood value
+            break
         change = abs(np.log(new.scale / fam.scale))
         fam = new
         if change <= 1e-10 and fit.converged:
@@ -252,6 +277,7 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
     fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
                  curvature=huber_curvature, buf=buf)
     fit.n_iter = total + fit.n_iter
+    fit.nuisance_fitted = scale_fitted
     return fit
 
 

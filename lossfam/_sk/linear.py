@@ -111,6 +111,13 @@ def _finish(est, fam, fit, y, w):
         )
     if fit.family is not None and isinstance(fam, Huber):
         est.family_ = fit.family  # the scale was fitted jointly with the coefficients
+        if not fit.nuisance_fitted:
+            warnings.warn(
+                f"{type(est).__name__}: every residual is zero, so the huber scale has no "
+                f"maximum-likelihood value; it keeps the value {fit.family.scale}",
+                UserWarning,
+                stacklevel=3,
+            )
         return
     try:
         est.family_ = fam.fit_params(y, fit.raw, w)
@@ -224,15 +231,18 @@ class LikelihoodRegressor(RegressorMixin, BaseEstimator):
 
     def predict(self, X, offset=None):
         """The prediction on the response scale: ``family_.inverse_link(raw)`` (mean, median or quantile)."""
-        return self.family_.inverse_link(self._raw_score(X, offset))
+        raw = self._raw_score(X, offset)
+        return self.family_.inverse_link(raw)
 
     def predict_distribution(self, X, offset=None):
         """The predictive law of each row: ``family_.distribution(raw)``."""
-        return self.family_.distribution(self._raw_score(X, offset))
+        raw = self._raw_score(X, offset)
+        return self.family_.distribution(raw)
 
     def score(self, X, y, sample_weight=None):
         """D^2: the fraction of (weighted) deviance explained, relative to the weighted baseline of y."""
-        return d2_score(y, self.predict(X), self.family_, sample_weight=sample_weight)
+        pred = self.predict(X)
+        return d2_score(y, pred, self.family_, sample_weight=sample_weight)
 
 
 class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
@@ -304,7 +314,8 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
         return raw if o is None else raw + o
 
     def predict_proba(self, X, offset=None):
-        p = self.family_.inverse_link(self.decision_function(X, offset))
+        raw = self.decision_function(X, offset)
+        p = self.family_.inverse_link(raw)
         return np.column_stack([1.0 - p, p])
 
     def predict_log_proba(self, X, offset=None):
@@ -314,8 +325,10 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
         return np.column_stack([log_expit(-raw), log_expit(raw)])
 
     def predict(self, X, offset=None):
-        return self.classes_[(self.decision_function(X, offset) > 0).astype(int)]
+        raw = self.decision_function(X, offset)
+        return self.classes_[(raw > 0).astype(int)]
 
     def predict_distribution(self, X, offset=None):
         """The predictive Bernoulli law of each row (of the event ``y == classes_[1]``)."""
-        return self.family_.distribution(self.decision_function(X, offset))
+        raw = self.decision_function(X, offset)
+        return self.family_.distribution(raw)
