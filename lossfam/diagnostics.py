@@ -54,6 +54,7 @@ __all__ = [
     "qq_data",
     "ks_statistic",
     "calibration_table",
+    "calibration_bins",
     "interval_coverage",
     "log_interval_probability",
 ]
@@ -204,32 +205,46 @@ def calibration_table(family, y, raw, *, bins=10, strategy="quantile", weight=No
     """Binned predicted probability against the observed rate, for 0/1 targets.
 
     The predicted probability that y = 1 is ``law.sf(0.5)`` = P(Y > 1/2), which
-    is p itself for bernoulli.  Rows are binned by it: ``strategy="quantile"``
-    gives bins with about equal counts, ``"uniform"`` equal-width bins on [0, 1].
-    Returns a dict of equal-length arrays (empty bins dropped): ``lower``,
-    ``upper`` (bin edges), ``predicted`` (mean predicted probability),
-    ``observed`` (rate of y = 1), ``count`` (rows) and ``weight`` (their total
-    weight; equal to count when unweighted).  Means are weighted when
-    ``weight`` is given.
+    is p itself for bernoulli; the table is :func:`calibration_bins` of it.
     """
     fam = _make_family(family)
     y = _checks.as_float_array(y, "y", fam.name)
     _checks.BINARY.check(y, "y (for a calibration table)", fam.name)
     raw = _checks.check_raw(raw, y, fam.name)
-    w = _checks.check_weight(weight, y, fam.name, need_positive_sum=True)
-    w = np.ones_like(y) if w is None else np.asarray(w, dtype=float)
-    if int(bins) < 1:
-        raise ValueError(f"calibration_table: bins must be >= 1, got {bins!r}")
-    bins = int(bins)
     p = np.asarray(fam.distribution(raw).sf(0.5), dtype=float)
+    return calibration_bins(y, p, bins=bins, strategy=strategy, weight=weight)
+
+
+def calibration_bins(y, prob, *, bins=10, strategy="quantile", weight=None) -> dict:
+    """Calibration table from 0/1 targets and predicted probabilities of y = 1.
+
+    Rows are binned by ``prob``: ``strategy="quantile"`` gives bins with about
+    equal counts, ``"uniform"`` equal-width bins on [0, 1].  Returns a dict of
+    equal-length arrays (empty bins dropped): ``lower``, ``upper`` (bin
+    edges), ``predicted`` (mean predicted probability), ``observed`` (rate of
+    y = 1), ``count`` (rows) and ``weight`` (their total weight; equal to
+    count when unweighted).  Means are weighted when ``weight`` is given.
+    """
+    owner = "calibration"
+    y = _checks.as_float_array(y, "y", owner)
+    _checks.BINARY.check(y, "y", owner)
+    p = _checks.as_float_array(prob, "prob", owner)
+    if p.shape != y.shape:
+        raise ValueError(f"{owner}: prob has shape {p.shape} but y has shape {y.shape}")
+    _checks.Domain("a probability in [0, 1]", lambda a: (a >= 0) & (a <= 1)).check(p, "prob", owner)
+    w = _checks.check_weight(weight, y, owner, need_positive_sum=True)
+    w = np.ones_like(y) if w is None else np.asarray(w, dtype=float)
+    if isinstance(bins, bool) or int(bins) != bins or int(bins) < 1:
+        raise ValueError(f"{owner}: bins must be an integer >= 1, got {bins!r}")
+    bins = int(bins)
     if strategy == "quantile":
         edges = np.quantile(p, np.linspace(0.0, 1.0, bins + 1))
-        edges[0], edges[-1] = min(edges[0], 0.0), max(edges[-1], 1.0)
+        edges[0], edges[-1] = 0.0, 1.0
         edges = np.unique(edges)
     elif strategy == "uniform":
         edges = np.linspace(0.0, 1.0, bins + 1)
     else:
-        raise ValueError(f"calibration_table: strategy must be 'quantile' or 'uniform', got {strategy!r}")
+        raise ValueError(f"{owner}: strategy must be 'quantile' or 'uniform', got {strategy!r}")
     idx = np.clip(np.searchsorted(edges, p, side="right") - 1, 0, edges.size - 2)
     nb = edges.size - 1
     count = np.bincount(idx, minlength=nb)

@@ -98,7 +98,7 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options):
     if engine == "linear":
         from .sklearn import LikelihoodRegressor
 
-        est = LikelihoodRegressor(family=fam.name, family_params=fam.params, **options)
+        est = LikelihoodRegressor(family=fam, **options)
         est.fit(X, y, sample_weight=w)
         return lambda Z: np.asarray(est.predict_raw(Z), dtype=float)
     if engine == "lightgbm":
@@ -218,7 +218,10 @@ def _candidates(families, y):
         try:
             fam.check_target(y)
         except ValueError as exc:
-            out.append((fam, _label(fam, obj, None), str(exc), obj))
+            msg = str(exc)
+            if msg.startswith(fam.name + ": "):
+                msg = msg[len(fam.name) + 2:]  # the row already names the family
+            out.append((fam, _label(fam, obj, None), msg + " (rows counted from 0)", obj))
             continue
         out.append((fam, None, None, obj))
     return out
