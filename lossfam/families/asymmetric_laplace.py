@@ -60,10 +60,15 @@ class AsymmetricLaplace(Family):
     def _grad_hess(self, y, raw):
         t, b = self.quantile, self.scale
         r = raw - y  # = -(y - raw)
-        g = np.where(r > 0, (1.0 - t) / b, -t / b)
-        g[r == 0] = 0.5 - t  # subgradient choice at the kink: the average of both sides
-        g[r == 0] /= b
-        h = np.abs(r)
+        # (sign(r) + 1)/2 - tau: 1 - tau above, -tau below, and at the kink the
+        # average of both sides, 1/2 - tau (a valid subgradient)
+        g = np.sign(r)
+        g += 1.0
+        g *= 0.5
+        g -= t
+        if b != 1.0:
+            g /= b
+        h = np.abs(r, out=r)
         np.maximum(h, FLOOR * b, out=h)
         h *= 2.0 * b
         np.reciprocal(h, out=h)

@@ -8,6 +8,13 @@ With p = expit(raw) (logit link) and y in {0, 1}:
                ( = log(1 + e^raw) - y raw, evaluated without overflow)
     gradient = expit(raw) - y
     Hessian  = expit(raw) expit(-raw)             (exact; = p (1 - p) without cancellation)
+
+    For speed (two fresh arrays, no branches) the kernel uses the half-angle
+    forms p = (1 + tanh(raw/2)) / 2 and p (1 - p) = 1 / (4 cosh^2(raw/2)).
+    The Hessian keeps full relative accuracy (cosh overflows to inf, giving
+    exactly 0, only where the true value is below 1e-300); the gradient is
+    accurate to 1.2e-16 absolute, i.e. to the rounding of a number of size 1,
+    which is what a sum of gradients over rows can resolve.
     deviance = 2 nll                              (the saturated model has nll 0)
     baseline = logit(sum w y / sum w); with an offset o, the root of
                sum w (expit(c + o) - y) = 0 (monotone in c; scipy.optimize.brentq)
@@ -39,11 +46,15 @@ class Bernoulli(Family):
         return -(y * log_expit(raw) + (1.0 - y) * log_expit(-raw))
 
     def _grad_hess(self, y, raw):
-        p = expit(raw)
-        h = expit(-raw)
-        h *= p
-        p -= y
-        return p, h
+        half = np.multiply(raw, 0.5)
+        g = np.tanh(half)
+        g *= 0.5
+        g += 0.5  # expit(raw)
+        g -= y
+        h = np.cosh(half, out=half)
+        h *= h
+        np.divide(0.25, h, out=h)  # expit(raw) expit(-raw)
+        return g, h
 
     def _deviance(self, y, raw):
         return 2.0 * self._nll(y, raw)

@@ -45,7 +45,8 @@ class Gamma(Family):
 
     def _grad_hess(self, y, raw):
         k = self.shape
-        h = np.exp(-raw)
+        h = np.negative(raw)
+        np.exp(h, out=h)
         h *= y
         g = 1.0 - h
         if k != 1.0:

@@ -63,11 +63,12 @@ class Laplace(Family):
 
     def _grad_hess(self, y, raw):
         r = raw - y
-        g = np.sign(r) / self.scale
-        h = np.abs(r)
+        g = np.sign(r)
+        if self.scale != 1.0:
+            g /= self.scale
+        h = np.abs(r, out=r)
         np.maximum(h, FLOOR * self.scale, out=h)
-        h *= self.scale
-        np.reciprocal(h, out=h)
+        np.divide(1.0 / self.scale, h, out=h)
         return g, h
 
     def _deviance(self, y, raw):

@@ -1,0 +1,72 @@
+"""grad_hess time per family against the memory-bandwidth floor, measured side by side.
+
+The floor is the time numpy needs to read and write the same bytes as grad_hess does: read two
+float64 arrays (y and raw) and write two fresh float64 arrays (gradient and Hessian), i.e.
+``y.copy(); raw.copy()``.  Each timing is the median of several repeats, alternating the floor
+and the family so that machine noise hits both alike.  Two columns are reported:
+
+* ``checked``: the public ``family.grad_hess(y, raw)`` (validates y and raw, then computes);
+* ``kernel``: ``family._grad_hess(y, raw)``, the unchecked kernel the engine adapters call
+  every boosting round after validating y once.
+
+Run:  python benchmarks/grad_hess_floor.py [--rows 1e6 1e7] [--repeats 7]
+"""
+from __future__ import annotations
+
+import argparse
+import time
+
+import numpy as np
+
+import lossfam
+
+
+def make_data(name, n, rng):
+    raw = rng.normal(scale=0.5, size=n)
+    if name == "bernoulli":
+        y = (rng.uniform(size=n) < 0.5).astype(float)
+    elif name == "poisson":
+        y = rng.poisson(np.exp(raw)).astype(float)
+    elif name == "gamma":
+        y = rng.gamma(2.0, np.exp(raw) / 2.0)
+    else:
+        y = raw + rng.normal(size=n)
+    return y, raw
+
+
+def median_time(fun, repeats):
+    times = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fun()
+        times.append(time.perf_counter() - t0)
+    return float(np.median(times))
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--rows", type=float, nargs="+", default=[1e6, 1e7])
+    ap.add_argument("--repeats", type=int, default=7)
+    ap.add_argument("--families", default=",".join(lossfam.available()))
+    args = ap.parse_args(argv)
+    rng = np.random.default_rng(0)
+    print("| family | rows | floor (ms) | checked (ms) | checked / floor | kernel (ms) | kernel / floor |")
+    print("|---|---:|---:|---:|---:|---:|---:|")
+    for n in (int(r) for r in args.rows):
+        for name in args.families.split(","):
+            fam = lossfam.family(name)
+            y, raw = make_data(name, n, rng)
+            fam.grad_hess(y[:10], raw[:10])  # warm-up
+            floors, checked, kernel = [], [], []
+            for _ in range(args.repeats):  # interleave so noise hits all three alike
+                floors.append(median_time(lambda: (y.copy(), raw.copy()), 1))
+                checked.append(median_time(lambda: fam.grad_hess(y, raw), 1))
+                with np.errstate(over="ignore"):
+                    kernel.append(median_time(lambda: fam._grad_hess(y, raw), 1))
+            f, c, k = (float(np.median(v)) for v in (floors, checked, kernel))
+            print(f"| {name} | {n:.0e} | {1e3 * f:.1f} | {1e3 * c:.1f} | {c / f:.2f} | {1e3 * k:.1f} | {k / f:.2f} |",
+                  flush=True)
+
+
+if __name__ == "__main__":
+    main()
