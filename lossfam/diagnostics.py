@@ -110,9 +110,12 @@ def log_interval_probability(family, y, raw, half_width=0.5):
 
     This scores a continuous law on integer-valued targets on the same footing
     as a count law: the probability it gives to the unit interval around each y
-    (a density is not a probability).  Where both tails underflow so that the
-    difference is 0 in float64 (a row very far out in a tail), the midpoint
-    rule log(2 h p(y)) is used instead, so the score stays finite.
+    (a density is not a probability).  It is computed from log F and log S
+    (no cancellation; exact far into the tails when the law has accurate
+    ``logcdf``/``logsf``, as scipy's normal does).  Where the law's log tails
+    underflow to -inf (some scipy laws compute them as log(cdf), e.g. the gamma
+    far above its mean), the midpoint rule log(2 h p(y)) is used for those rows
+    instead, so the score stays finite.
     """
     fam, y, raw = _inputs(family, y, raw)
     law = fam.distribution(raw)

@@ -116,7 +116,7 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options):
 
         params = {**BOOST_DEFAULTS["xgboost"], "seed": seed, **options}
         booster = train(fam, params, xgb.DMatrix(X, y, weight=w), num_boost_round=rounds)
-        return lambda Z: np.asarray(booster.predict_raw(xgb.DMatrix(Z)), dtype=float)
+        return lambda Z: np.asarray(booster.predict_raw(Z), dtype=float)
     raise ValueError(f"compare: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
 
 
