@@ -63,8 +63,10 @@ import numpy as np
 from scipy import linalg, optimize, sparse
 from scipy.linalg.blas import dsyrk
 
-_BLOCK = 32768  # rows per block when accumulating X^T diag(h) X
+_BLOCK = 8192  # rows per block when accumulating X^T diag(h) X
 _EPS = np.finfo(float).eps
+SUBSAMPLE_MIN_ROWS = 100_000  # subsampled Hessians (far from the optimum) only from this many rows
+SUBSAMPLE_FRACTION = 8  # ... using one row in this many
 
 
 @dataclasses.dataclass
@@ -75,7 +77,7 @@ class LinearFit:
     intercept: float
     raw: np.ndarray  # fitted raw scores, offset included
     n_iter: int
-    objective: float  # F at the solution (mean weighted nll + penalty); LP: sum v rho_tau
+    objective: float  # F at the solution when it was evaluated, else nan; LP: sum v rho_tau
     grad_norm: float  # max |dF| at the solution (nan for the LP)
     converged: bool
     family: object  # the family used (huber: with its fitted scale)
@@ -83,27 +85,30 @@ class LinearFit:
 
 
 def weighted_gram(X, hv, buf=None):
-    """X^T diag(hv) X for a C-contiguous float64 X.
+    """(X^T diag(hv) X, X^T hv) for a C-contiguous float64 X, in one pass over X.
 
-    For hv >= 0 the rows are scaled by sqrt(hv) block by block and each block
-    is added with dsyrk (half the flops of a general product, no n x p
-    temporary); otherwise a plain product is used.
+    For hv >= 0 the rows are scaled by sqrt(hv) block by block; each block is
+    added to the Gram matrix with dsyrk (half the flops of a general product,
+    no n x p temporary) and to X^T hv as (scaled block)^T sqrt(hv) while it is
+    still in cache.  Otherwise plain products are used.
     """
     n, p = X.shape
     if p == 0:
-        return np.zeros((0, 0))
+        return np.zeros((0, 0)), np.zeros(0)
     if n and np.min(hv) >= 0:
         sq = np.sqrt(hv)
         m = min(_BLOCK, n)
         if buf is None or buf.shape[0] < m:
             buf = np.empty((m, p))
         c = np.zeros((p, p), order="F")
+        xh = np.zeros(p)
         for s in range(0, n, m):
             e = min(n, s + m)
             a = np.multiply(X[s:e], sq[s:e, None], out=buf[: e - s])
             c = dsyrk(1.0, a.T, beta=1.0, c=c, trans=0, lower=0, overwrite_c=1)
-        return np.triu(c) + np.triu(c, 1).T
-    return X.T @ (hv[:, None] * X)
+            xh += a.T @ sq[s:e]
+        return np.triu(c) + np.triu(c, 1).T, xh
+    return X.T @ (hv[:, None] * X), X.T @ hv
 
 
 def _cholesky(H):
@@ -153,42 +158,78 @@ def _raw(X, coef, intercept, offset):
 
 
 def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-           curvature=None, buf=None) -> LinearFit:
+           curvature=None, buf=None, merit="objective") -> LinearFit:
     """Damped Newton iteration for F (see the module docstring).
 
     ``curvature(fam, y, raw, h)`` may replace the family's Hessian per row
-    (used for Huber's generalised Hessian); it returns None to keep ``h``.
+    (used for Huber's generalised Hessian).
+
+    ``merit`` chooses what the backtracking line search must decrease:
+    ``"objective"`` -- F itself (Armijo: F(t) <= F(0) + 1e-4 t dF.d), safe for
+    any family; ``"gradient"`` -- ||dF||^2 (Armijo with slope -2 ||dF||^2,
+    since dF^T d2F d = -||dF||^2 for the Newton direction).  The gradient merit
+    needs no nll evaluation (the trial gradient is reused by the next step) and
+    is used for the built-in families whose nll is convex in raw, where a
+    stationary point is the minimum.  If it cannot make progress, the step
+    falls back to the objective merit.
     """
     n, p = X.shape
     coef = np.array(coef, dtype=float)
     intercept = float(intercept)
-    raw = _raw(X, coef, intercept, offset)
+    if np.any(coef):
+        raw = _raw(X, coef, intercept, offset)
+    else:
+        raw = np.full(n, intercept) if offset is None else offset + intercept
     nfree = p + int(fit_intercept)
 
     def objective(raw_, coef_):
         with np.errstate(over="ignore", invalid="ignore"):
             per_row = fam._nll(y, raw_)
         val = float(np.dot(v, per_row)) + 0.5 * alpha * float(coef_ @ coef_)
-        noise = 16.0 * _EPS * float(np.dot(v, np.abs(per_row)))
-        return val, noise
+        return val, per_row
 
-    F, noise = objective(raw, coef)
+    def noise_of(per_row):
+        return 16.0 * _EPS * float(np.dot(v, np.abs(per_row, out=per_row)))
+
+    def derivatives(raw_, coef_):
+        with np.errstate(over="ignore", invalid="ignore"):
+            g, h = fam._grad_hess(y, raw_)
+        g *= v
+        grad = np.empty(nfree)
+        if p:
+            grad[:p] = X.T @ g
+            grad[:p] += alpha * coef_
+        if fit_intercept:
+            grad[p] = g.sum()
+        return grad, h
+
+    def hessian(Xm, hv):
+        H = np.empty((nfree, nfree))
+        H[:p, :p], xh = weighted_gram(Xm, hv, buf)
+        H[np.arange(p), np.arange(p)] += alpha
+        if fit_intercept:
+            H[:p, p] = xh
+            H[p, :p] = xh
+            H[p, p] = hv.sum()
+        return H
+
+    # Inexact Newton far from the optimum: while the last step moved some raw
+    # score by more than 0.1, the Hessian is estimated from a fixed random
+    # subsample of SUBSAMPLE_FRACTION of the rows (large n only); near the
+    # optimum the full Hessian restores quadratic convergence.  The gradient is
+    # always exact, so the solution and the stopping rule are unchanged.
+    sub = None
+    if merit == "gradient" and n >= SUBSAMPLE_MIN_ROWS and p:
+        sub = slice(0, None, SUBSAMPLE_FRACTION)  # every k-th row (a singular estimate falls back to all rows)
+        Xsub = np.ascontiguousarray(X[sub])
+    last_change = np.inf
+
+    grad, h = derivatives(raw, coef)
+    F = None
     converged = False
     gnorm = np.inf
     it = 0
     for it in range(max_iter + 1):
-        with np.errstate(over="ignore", invalid="ignore"):
-            g, h = fam._grad_hess(y, raw)
-        if curvature is not None:
-            alt = curvature(fam, y, raw, h)
-        else:
-            alt = None
-        g *= v
-        grad = np.empty(nfree)
-        grad[:p] = X.T @ g if p else 0.0
-        grad[:p] += alpha * coef
-        if fit_intercept:
-            grad[p] = g.sum()
         gnorm = float(np.max(np.abs(grad))) if nfree else 0.0
         if not np.isfinite(gnorm):
             raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
@@ -197,17 +238,19 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
             break
         if it == max_iter:
             break
+        alt = curvature(fam, y, raw, h) if curvature is not None else None
         d = None
+        if sub is not None and alt is None and last_change > 0.1:
+            # far from the optimum: curvature from a row subsample is as good as the full one
+            hv = h[sub] * v[sub]
+            hv *= 1.0 / max(float(v[sub].sum()), 1e-300)
+            fac = _cholesky(hessian(Xsub, hv))
+            if fac is not None:
+                d = -linalg.cho_solve(fac, grad, check_finite=False)
         for hh in ([alt, h] if alt is not None else [h]):
-            hv = hh * v
-            H = np.empty((nfree, nfree))
-            H[:p, :p] = weighted_gram(X, hv, buf)
-            H[np.arange(p), np.arange(p)] += alpha
-            if fit_intercept:
-                xh = X.T @ hv if p else np.zeros(0)
-                H[:p, p] = xh
-                H[p, :p] = xh
-                H[p, p] = hv.sum()
+            if d is not None:
+                break
+            H = hessian(X, hh * v)
             if hh is alt:
                 # the generalised Hessian may be singular: use it only if it is well conditioned
                 fac = _cholesky(H)
@@ -220,26 +263,54 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
         db = d[p] if fit_intercept else 0.0
         draw = X @ dc if p else np.zeros(n)
         draw += db
-        slope = float(grad @ d)
-        t = 1.0
         accepted = False
-        for _ in range(60):
-            raw_new = raw + t * draw
-            coef_new = coef + t * dc
-            F_new, noise_new = objective(raw_new, coef_new)
-            if np.isfinite(F_new) and F_new <= F + 1e-4 * t * slope + max(noise, noise_new):
-                accepted = True
-                break
-            t *= 0.5
+        if merit == "gradient":
+            m0 = float(grad @ grad)
+            t = 1.0
+            for _ in range(30):
+                raw_new = raw + t * draw
+                coef_new = coef + t * dc
+                grad_new, h_new = derivatives(raw_new, coef_new)
+                m1 = float(grad_new @ grad_new)
+                if np.isfinite(m1) and m1 <= (1.0 - 2e-4 * t) * m0:
+                    accepted = True
+                    break
+                t *= 0.5
         if not accepted:
-            break  # no descent possible: at the rounding level of F, or a broken family
+            if F is None:
+                F, per_row = objective(raw, coef)
+                noise = noise_of(per_row)
+            slope = float(grad @ d)
+            t = 1.0
+            for _ in range(60):
+                raw_new = raw + t * draw
+                coef_new = coef + t * dc
+                F_new, per_row = objective(raw_new, coef_new)
+                if np.isfinite(F_new) and F_new <= F + 1e-4 * t * slope:
+                    accepted = True
+                    break
+                noise_new = noise_of(per_row)
+                if np.isfinite(F_new) and F_new <= F + max(noise, noise_new):
+                    accepted = True  # equal to F within rounding: the step cannot be judged by F
+                    break
+                t *= 0.5
+            if not accepted:
+                break  # no descent possible: a broken family or a singular problem at rounding level
+            F, noise = F_new, noise_of(per_row)
+            grad_new, h_new = derivatives(raw_new, coef_new)
+        else:
+            F = None
         step = t * np.max(np.abs(d)) if nfree else 0.0
-        coef, intercept, raw, F, noise = coef_new, intercept + t * db, raw_new, F_new, noise_new
+        last_change = t * float(np.max(np.abs(draw)))
+        coef, intercept, raw, grad, h = coef_new, intercept + t * db, raw_new, grad_new, h_new
         if step <= 4.0 * _EPS * (1.0 + max(np.max(np.abs(coef), initial=0.0), abs(intercept))):
             # the step no longer changes the parameters: nothing more can be gained
-            converged = converged or gnorm <= max(tol, 1e3 * noise)
+            gnorm = float(np.max(np.abs(grad))) if nfree else 0.0
+            converged = gnorm <= tol
             it += 1
             break
+    if F is None:
+        F = np.nan  # not evaluated (the gradient merit needs no nll values)
     return LinearFit(coef, intercept, raw, it, F, gnorm, converged, fam)
 
 

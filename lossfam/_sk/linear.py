@@ -14,7 +14,7 @@ from sklearn.utils.multiclass import check_classification_targets, type_of_targe
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from .. import _checks
-from ..families import AsymmetricLaplace, Bernoulli, Huber, Laplace
+from ..families import AsymmetricLaplace, Bernoulli, Gamma, Gaussian, Huber, Laplace, Poisson
 from ..registry import family as make_family
 from . import _solvers
 from .metrics import d2_score
@@ -69,7 +69,7 @@ def _check_sample_weight(sample_weight, y, owner):
 
 
 def _fit_linear(est, fam, X, y, w, offset):
-    """Solve the penalised problem for ``fam``; set coef_, intercept_, n_iter_, objective_; return the fit."""
+    """Solve the penalised problem for ``fam``; return the fit."""
     owner = type(est).__name__
     n, p = X.shape
     v = w / w.sum()
@@ -92,7 +92,9 @@ def _fit_linear(est, fam, X, y, w, offset):
     args = (X, y, v, offset, alpha, est.fit_intercept, est.max_iter, est.tol, coef, intercept)
     if isinstance(fam, Huber):
         return _solvers.huber_joint(fam, X, y, w, *args[2:])
-    return _solvers.newton(fam, *args)
+    # built-in families with an nll convex in raw: the cheaper gradient-norm line search
+    merit = "gradient" if type(fam) in (Gaussian, Poisson, Gamma, Bernoulli) else "objective"
+    return _solvers.newton(fam, *args, merit=merit)
 
 
 def _finish(est, fam, fit, y, w):
@@ -100,7 +102,6 @@ def _finish(est, fam, fit, y, w):
     est.coef_ = fit.coef
     est.intercept_ = float(fit.intercept)
     est.n_iter_ = int(fit.n_iter)
-    est.objective_ = float(fit.objective)
     if not fit.converged:
         warnings.warn(
             f"{type(est).__name__} ({fam.name}): Newton's method stopped after {fit.n_iter} iterations "
@@ -178,8 +179,8 @@ class LikelihoodRegressor(RegressorMixin, BaseEstimator):
 
     Attributes
     ----------
-    coef_, intercept_, family_, n_iter_, objective_ (the minimised objective; for the
-    linear programme the weighted mean pinball loss), n_features_in_, feature_names_in_.
+    coef_, intercept_, family_, n_iter_ (Newton iterations, or simplex/IPM iterations
+    of the linear programme), n_features_in_, feature_names_in_.
     """
 
     def __init__(self, family="gaussian", family_params=None, alpha=0.0, fit_intercept=True,
