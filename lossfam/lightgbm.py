@@ -101,6 +101,7 @@ score LightGBM hands it.
 """
 from __future__ import annotations
 
+import hashlib
 import math
 import weakref
 
@@ -370,18 +371,21 @@ class TrainedModel:
 
     def save(self, path):
         """Write the model (LightGBM model text + family + baseline) to ``path`` (JSON, no pickle)."""
+        text = self.booster.model_to_string()
         extra = {
             "fitted_params": self.fitted_family.params,
             "num_trees": int(self.booster.num_trees()),
+            "model_sha256": _digest(text),
         }
-        write_model_file(
-            path, engine=_ENGINE, family=self.family, baseline=self.baseline,
-            model=self.booster.model_to_string(), extra=extra,
-        )
+        write_model_file(path, engine=_ENGINE, family=self.family, baseline=self.baseline, model=text, extra=extra)
 
     def __repr__(self):
         return (f"TrainedModel(family={self.family!r}, baseline={self.baseline!r}, "
                 f"trees={self.booster.num_trees()})")
+
+
+def _digest(text: str) -> str:
+    return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
 def load(path) -> TrainedModel:
@@ -401,6 +405,9 @@ def load(path) -> TrainedModel:
         fitted = fam.with_params(**extra.get("fitted_params", {}))
     except (TypeError, ValueError) as exc:
         raise ValueError(f"{path}: the fitted parameters are malformed ({exc})") from None
+    # LightGBM's text parser can abort the whole process on damaged text, so check the digest first
+    if extra.get("model_sha256") != _digest(doc["model"]):
+        raise ValueError(f"{path}: the LightGBM model text does not match its checksum; the file is corrupted or was edited")
     try:
         booster = lgb.Booster(model_str=doc["model"])
     except lgb.basic.LightGBMError as exc:
@@ -422,6 +429,9 @@ def _field(data, name):
 
 def _label_weight(data, fam, what):
     y = _field(data, "label")
+    if y is None and isinstance(data.data, (str, bytes)) or hasattr(data.data, "__fspath__"):
+        data.construct()  # a Dataset file: its label is inside; construction reads it
+        y = data.get_label()
     if y is None:
         raise ValueError(f"{what}: the Dataset has no label; build it with lightgbm.Dataset(X, label=y)")
     y = fam.check_target(np.asarray(y, dtype=np.float64).ravel(), for_nll=False)

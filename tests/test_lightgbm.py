@@ -89,3 +89,280 @@ def test_held_out_parity_with_builtin_objective(name, fparams, builtin, kind, sc
     ours, theirs = score(yte, model.predict(Xte)), score(yte, ref.predict(Xte))
     print(f"{name} {fparams}: lossfam {ours:.5f}  built-in {theirs:.5f}")
     assert ours <= 1.01 * theirs, (ours, theirs)
+
+
+# --------------------------------------------------------------------------- lazy import
+def _run(code):
+    return subprocess.run([sys.executable, "-c", textwrap.dedent(code)], capture_output=True, text=True, timeout=120)
+
+
+def test_import_lossfam_leaves_lightgbm_unimported():
+    out = _run("""
+        import sys, lossfam, lossfam.lightgbm
+        print("lightgbm" in sys.modules)
+    """)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "False"
+
+
+def test_missing_lightgbm_names_the_extra():
+    out = _run("""
+        import sys
+        sys.modules["lightgbm"] = None  # makes "import lightgbm" fail as if it were not installed
+        import lossfam.lightgbm as lfl
+        try:
+            lfl.objective("poisson")([0.0], [1.0])  # any use needs the engine
+        except ImportError as exc:
+            print(exc)
+    """)
+    assert out.returncode == 0, out.stderr
+    assert 'pip install "lossfam[lightgbm]"' in out.stdout
+
+
+# --------------------------------------------------------------------------- exact agreement
+@pytest.mark.parametrize("name, builtin, kind", [("gaussian", "regression", "gaussian"),
+                                                  ("bernoulli", "binary", "bernoulli")])
+def test_same_start_gives_the_builtin_predictions(name, builtin, kind):
+    # With the same starting score (the family baseline in init_score for both), the gaussian gradient
+    # raw - y with Hessian 1 and the bernoulli p - y, p(1 - p) are LightGBM's own l2 and binary ones.
+    Xtr, ytr, Xte, _ = _simulate(kind)
+    fam = lossfam.family(name)
+    base = fam.baseline(ytr)
+    ref = lgb.train(dict(PARAMS, objective=builtin), lgb.Dataset(Xtr, ytr, init_score=np.full(ytr.size, base)), 50)
+    model = lfl.train(name, PARAMS, lgb.Dataset(Xtr, ytr), 50)
+    assert model.baseline == pytest.approx(base, abs=0)
+    raw_ref = base + ref.predict(Xte, raw_score=True)
+    np.testing.assert_allclose(model.predict_raw(Xte), raw_ref, rtol=0, atol=1e-6)
+    np.testing.assert_allclose(model.predict(Xte), fam.inverse_link(raw_ref), rtol=0, atol=1e-6)
+
+
+def test_objective_serves_lgb_train_and_the_sklearn_estimator():
+    Xtr, ytr, Xte, _ = _simulate("poisson")
+    fam = lossfam.family("poisson")
+    base = fam.baseline(ytr)
+    obj = lfl.objective(fam)
+    w = np.random.default_rng(5).uniform(0.5, 2.0, ytr.size)
+    b = lgb.train(dict(PARAMS, objective=obj),
+                  lgb.Dataset(Xtr, ytr, weight=w, init_score=np.full(ytr.size, base)), 30)
+    est = lgb.LGBMRegressor(objective=obj, n_estimators=30, **{k: v for k, v in PARAMS.items() if k != "seed"},
+                            random_state=PARAMS["seed"])
+    est.fit(Xtr, ytr, sample_weight=w, init_score=np.full(ytr.size, base))
+    np.testing.assert_allclose(est.predict(Xte, raw_score=True), b.predict(Xte, raw_score=True), rtol=0, atol=1e-12)
+    # the objective's output is the family's weighted gradient/Hessian (guard aside: rows well inside it)
+    raw = np.full(ytr.size, base)
+    g, h = obj(ytr, raw, w, None)
+    g_ref, h_ref = fam.grad_hess(ytr, raw, w)
+    np.testing.assert_allclose(g, g_ref, rtol=1e-12)
+    np.testing.assert_allclose(h, np.maximum(h_ref, np.abs(g_ref) / 0.5), rtol=1e-12)
+
+
+def test_step_guard_bounds_every_leaf_step():
+    # Counts far above a tiny mean: the unguarded Newton step y/mu - 1 is in the thousands.
+    rng = np.random.default_rng(11)
+    X = rng.normal(size=(2000, 3))
+    y = np.where(X[:, 0] > 1.0, rng.poisson(30.0, 2000), 0).astype(float)
+    start = np.full(y.size, np.log(0.01))
+    p = dict(PARAMS, learning_rate=1.0, num_leaves=4)
+    steps = {}
+    for guard in (None, 0.5):
+        b = lgb.train(dict(p, objective=lfl.objective("poisson", max_row_step=guard)),
+                      lgb.Dataset(X, y, init_score=start), 1)
+        steps[guard] = np.abs(b.predict(X, raw_score=True)).max()
+    assert steps[None] > 100  # the blow-up the guard exists for
+    assert steps[0.5] <= 0.5 + 1e-6
+    with pytest.raises(ValueError, match="max_row_step"):
+        lfl.objective("poisson", max_row_step=-1.0)
+
+
+# --------------------------------------------------------------------------- metric, early stopping
+def test_metric_is_mean_nll_and_drives_early_stopping():
+    Xtr, ytr, Xte, yte = _simulate("poisson")
+    evals = {}
+    model = lfl.train("poisson", dict(PARAMS, learning_rate=0.3, num_leaves=63, min_data_in_leaf=5),
+                      lgb.Dataset(Xtr, ytr), 300, valid_sets=[lgb.Dataset(Xte, yte)], valid_names=["held_out"],
+                      callbacks=[lgb.record_evaluation(evals), lgb.early_stopping(10, verbose=False)])
+    curve = evals["held_out"]["poisson_nll"]
+    best = int(np.argmin(curve)) + 1
+    assert len(curve) < 300 and model.booster.num_trees() == best  # stopped, and cut back to the best round
+    # the reported value is the mean of scipy.stats.poisson's -logpmf at the model's mean
+    assert curve[best - 1] == pytest.approx(-np.mean(stats.poisson.logpmf(yte, model.predict(Xte))), rel=1e-9)
+    # deviance flavour, sklearn-style call (y_true, y_pred, weight)
+    met = lfl.metric("poisson", kind="deviance")
+    name, value, higher = met(yte, model.predict_raw(Xte), None)
+    assert (name, higher) == ("poisson_deviance", False)
+    assert value == pytest.approx(skm.mean_poisson_deviance(yte, model.predict(Xte)), rel=1e-9)
+
+
+def test_metric_in_the_sklearn_estimator_eval_log():
+    Xtr, ytr, Xte, yte = _simulate("gamma")
+    fam = lossfam.family("gamma", shape=3.0)
+    est = lgb.LGBMRegressor(objective=lfl.objective(fam), n_estimators=20, metric="None", verbosity=-1,
+                            n_jobs=2, random_state=1)
+    est.fit(Xtr, ytr, init_score=np.full(ytr.size, fam.baseline(ytr)), eval_X=(Xte,), eval_y=(yte,),
+            eval_init_score=[np.full(yte.size, fam.baseline(ytr))], eval_metric=lfl.metric(fam))
+    log = est.evals_result_["valid_0"]["gamma_nll"]
+    raw = fam.baseline(ytr) + est.predict(Xte, raw_score=True)
+    # scipy.stats.gamma with shape k and scale mu / k
+    assert log[-1] == pytest.approx(-np.mean(stats.gamma.logpdf(yte, 3.0, scale=np.exp(raw) / 3.0)), rel=1e-9)
+
+
+# --------------------------------------------------------------------------- leaf refit bookkeeping
+def test_refit_metric_log_matches_the_final_predictions():
+    # lossfam tracks its own scores under leaf refit; the logged held-out nll must be the nll of the
+    # model it returns (scipy.stats.laplace_asymmetric as the outside density)
+    Xtr, ytr, Xte, yte = _simulate("laplace")
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    evals = {}
+    model = lfl.train(fam, PARAMS, lgb.Dataset(Xtr, ytr), 40, valid_sets=[lgb.Dataset(Xte, yte)],
+                      callbacks=[lgb.record_evaluation(evals)])
+    f = model.family  # scale fitted at the baseline before training
+    t = f.quantile
+    logpdf = stats.laplace_asymmetric.logpdf(yte, np.sqrt(t / (1 - t)), loc=model.predict(Xte),
+                                             scale=f.scale / np.sqrt(t * (1 - t)))
+    assert evals["valid_0"]["asymmetric_laplace_nll"][-1] == pytest.approx(-logpdf.mean(), rel=1e-9)
+    # 90% of held-out targets should lie at or below the predicted 0.9-quantile
+    assert np.mean(yte <= model.predict(Xte)) == pytest.approx(0.9, abs=0.02)
+
+
+def test_refit_needs_features_in_memory(tmp_path):
+    Xtr, ytr, _, _ = _simulate("laplace")
+    path = tmp_path / "train.bin"
+    lgb.Dataset(Xtr[:2000], ytr[:2000]).save_binary(str(path))
+    with pytest.raises(ValueError, match="in memory"):
+        lfl.train("laplace", PARAMS, lgb.Dataset(str(path)), 5)
+    with pytest.raises(ValueError, match="built-in metrics"):
+        lfl.train("laplace", dict(PARAMS, metric="l1"), lgb.Dataset(Xtr, ytr), 5)
+
+
+# --------------------------------------------------------------------------- save / load
+def test_save_load_in_a_fresh_process_is_bit_identical(tmp_path):
+    Xtr, ytr, Xte, _ = _simulate("gamma")
+    model = lfl.train(lossfam.family("gamma"), PARAMS, lgb.Dataset(Xtr, ytr), 30)
+    path = tmp_path / "model.json"
+    model.save(path)
+    np.save(tmp_path / "X.npy", Xte)
+    out = _run(f"""
+        import numpy as np, lossfam.lightgbm as lfl
+        m = lfl.load({str(path)!r})
+        X = np.load({str(tmp_path / 'X.npy')!r})
+        np.save({str(tmp_path / 'pred.npy')!r}, m.predict(X))
+        print(m.family.name, m.fitted_family.shape)
+    """)
+    assert out.returncode == 0, out.stderr
+    reloaded = np.load(tmp_path / "pred.npy")
+    assert np.array_equal(reloaded, model.predict(Xte))  # bit for bit
+    assert out.stdout.split()[0] == "gamma"
+    assert float(out.stdout.split()[1]) == model.fitted_family.shape
+
+
+def test_damaged_or_foreign_files_give_a_clear_error(tmp_path):
+    Xtr, ytr, _, _ = _simulate("gaussian")
+    model = lfl.train("gaussian", PARAMS, lgb.Dataset(Xtr[:2000], ytr[:2000]), 5)
+    good = tmp_path / "m.json"
+    model.save(good)
+    text = good.read_text()
+    cut = tmp_path / "cut.json"
+    cut.write_text(text[: len(text) // 2])
+    with pytest.raises(ValueError, match="truncated or corrupted"):
+        lfl.load(cut)
+    doc = json.loads(text)
+    doc["model"] = doc["model"].replace("Tree=1", "Tree=X").replace("leaf_value=", "leaf_value=zz,")
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps(doc))
+    with pytest.raises(ValueError, match="does not match its checksum"):
+        lfl.load(bad)  # checked before LightGBM parses it: its parser can abort the process on damaged text
+    foreign = tmp_path / "plain.txt"
+    model.booster.save_model(str(foreign))  # LightGBM's own text format, not a lossfam file
+    with pytest.raises(ValueError, match="not a lossfam model file"):
+        lfl.load(foreign)
+    doc = json.loads(text)
+    doc["engine"] = "xgboost"
+    other = tmp_path / "other.json"
+    other.write_text(json.dumps(doc))
+    with pytest.raises(ValueError, match="lossfam.xgboost"):
+        lfl.load(other)
+
+
+# --------------------------------------------------------------------------- weights, offsets, distribution
+@pytest.mark.parametrize("name, kind", [("poisson", "poisson"), ("laplace", "laplace")])
+def test_weights_act_like_repeated_rows(name, kind):
+    Xtr, ytr, Xte, _ = _simulate(kind)
+    # features on a 0.1 grid: fewer distinct values than max_bin, so both fits get the same histogram bins
+    Xtr, ytr, Xte = np.round(Xtr[:5000], 1), ytr[:5000], np.round(Xte, 1)
+    reps = np.random.default_rng(2).integers(1, 4, size=ytr.size)
+    p = dict(PARAMS, min_data_in_leaf=1, min_data_in_bin=1, min_sum_hessian_in_leaf=0.0, feature_pre_filter=False)
+    weighted = lfl.train(name, p, lgb.Dataset(Xtr, ytr, weight=reps.astype(float)), 30)
+    repeated = lfl.train(name, p, lgb.Dataset(np.repeat(Xtr, reps, axis=0), np.repeat(ytr, reps)), 30)
+    assert weighted.baseline == pytest.approx(repeated.baseline, rel=1e-12)
+    # same bins, same sums of weighted gradients: equal up to float32 summation order
+    a, b = weighted.predict(Xte), repeated.predict(Xte)
+    np.testing.assert_allclose(a, b, rtol=1e-4)
+
+
+def test_poisson_offset_recovers_the_rate_and_fits_the_baseline_given_it():
+    # claim counts: rate depends on x0, exposure in years varies per policy; y ~ Poisson(rate * exposure)
+    rng = np.random.default_rng(8)
+    n = 20_000
+    X = rng.normal(size=(n, 3))
+    rate = np.exp(-1.0 + 0.5 * X[:, 0])
+    exposure = rng.uniform(0.1, 3.0, n)
+    y = rng.poisson(rate * exposure).astype(float)
+    off = np.log(exposure)
+    model = lfl.train("poisson", PARAMS, lgb.Dataset(X[:15000], y[:15000]), 100, offset=off[:15000],
+                      valid_sets=[lgb.Dataset(X[15000:], y[15000:])], valid_offsets=[off[15000:]])
+    # intercept-only Poisson GLM with the same offset (statsmodels) = the baseline
+    sm = pytest.importorskip("statsmodels.api")
+    glm = sm.GLM(y[:15000], np.ones((15000, 1)), family=sm.families.Poisson(), offset=off[:15000]).fit()
+    assert model.baseline == pytest.approx(glm.params[0], abs=1e-9)
+    # predicted rate (no offset) tracks the true rate; predicted count (with offset) the expected count
+    r_hat = model.predict(X[15000:])
+    assert np.median(np.abs(np.log(r_hat / rate[15000:]))) < 0.1
+    np.testing.assert_allclose(model.predict(X[15000:], offset=off[15000:]), r_hat * exposure[15000:], rtol=1e-12)
+    # ignoring exposure gives a clearly worse held-out deviance (sklearn's mean_poisson_deviance)
+    naive = lfl.train("poisson", PARAMS, lgb.Dataset(X[:15000], y[:15000]), 100)
+    mu = exposure[15000:]
+    assert skm.mean_poisson_deviance(y[15000:], r_hat * mu) < skm.mean_poisson_deviance(y[15000:], naive.predict(X[15000:]))
+
+
+def test_distribution_uses_parameters_fitted_on_training_data():
+    Xtr, ytr, Xte, yte = _simulate("gaussian")
+    model = lfl.train(lossfam.family("gaussian", scale=1.0), PARAMS, lgb.Dataset(Xtr, ytr), 60)
+    resid = ytr - model.predict(Xtr)
+    assert model.fitted_family.scale == pytest.approx(np.sqrt(np.mean(resid ** 2)), rel=1e-9)
+    law = model.distribution(Xte)
+    np.testing.assert_allclose(law.logpdf(yte), stats.norm.logpdf(yte, model.predict(Xte), model.fitted_family.scale))
+    # the simulated noise sd is 1.5: a decent fit finds a training residual sd a little under it
+    assert 1.2 < model.fitted_family.scale < 1.6
+
+
+def test_pandas_input_and_dataset_left_clean():
+    pd = pytest.importorskip("pandas")
+    Xtr, ytr, Xte, _ = _simulate("poisson")
+    cols = [f"f{i}" for i in range(N_FEAT)]
+    dtrain = lgb.Dataset(pd.DataFrame(Xtr, columns=cols), pd.Series(ytr), free_raw_data=False)
+    model = lfl.train("poisson", PARAMS, dtrain, 20)
+    np.testing.assert_array_equal(model.predict(pd.DataFrame(Xte, columns=cols)), model.predict(Xte))
+    assert dtrain.get_init_score() is None  # the starting score lossfam set is removed again
+    again = lfl.train("poisson", PARAMS, dtrain, 20)  # and the Dataset can be reused
+    np.testing.assert_array_equal(again.predict(Xte), model.predict(Xte))
+
+
+def test_bad_input_is_refused_with_reasons():
+    Xtr, ytr, _, _ = _simulate("poisson")
+    y = ytr[:500].copy()
+    y[[3, 7]] = -1.0
+    with pytest.raises(ValueError, match=r"poisson: y must be finite and >= 0; 2 rows outside, e.g. rows \[3, 7\]"):
+        lfl.train("poisson", PARAMS, lgb.Dataset(Xtr[:500], y), 5)
+    with pytest.raises(ValueError, match="must not set the objective"):
+        lfl.train("poisson", dict(PARAMS, objective="poisson"), lgb.Dataset(Xtr, ytr), 5)
+    with pytest.raises(ValueError, match="already has an init_score"):
+        lfl.train("poisson", PARAMS, lgb.Dataset(Xtr, ytr, init_score=np.zeros(ytr.size)), 5)
+    with pytest.raises(ValueError, match="valid_offsets has 2 entries for 1 valid_sets"):
+        lfl.train("poisson", PARAMS, lgb.Dataset(Xtr, ytr), 5, valid_sets=[lgb.Dataset(Xtr, ytr)],
+                  valid_offsets=[None, None])
+    with pytest.raises(ValueError, match="offset"):
+        lfl.train("poisson", PARAMS, lgb.Dataset(Xtr, ytr), 5, offset=np.zeros(3))
+    with pytest.raises(ValueError, match="unknown family"):
+        lfl.objective("poison")
+    with pytest.raises(ValueError, match="'nll' or 'deviance'"):
+        lfl.metric("poisson", kind="aic")
