@@ -38,16 +38,24 @@ Nuisance parameters and the order of fitting
 --------------------------------------------
 Nuisance parameters are fitted on the training fold only, by
 ``family.fit_params(y_train, raw_train)`` after the location model, and the
-held-out fold is scored with them.  For the families with a surrogate Hessian
-(laplace, asymmetric_laplace, huber) the surrogate's floor is relative to the
-scale, and huber's location estimate itself depends on the scale (residuals
-beyond delta * scale are down-weighted).  So for these the order is: a pilot
-scale from the constant model (``fit_params`` at the baseline), then the
-location model, then the scale from its training residuals; huber then refits
-its location with that scale and its scale once more (one step of the
-alternating location/scale fit).  The families with exact Hessians (gaussian,
-gamma, ...) have Newton steps that do not depend on their nuisance parameter,
-so their location is fitted with the defaults, then the parameter.
+held-out fold is scored with them.  Where the location fit depends on the
+scale, the order is: scale, location, scale.
+
+* laplace, asymmetric_laplace: their location (a median or quantile) does
+  not depend on the scale, but the boosting engines' surrogate Hessian has a
+  floor relative to it.  Both adapters first fit a pilot scale at the
+  baseline (the constant model), then grow the trees; the scale is then
+  refitted on the training residuals.  The linear engine solves the
+  quantile problem exactly (a linear programme), with no scale involved.
+* huber: residuals beyond delta * scale are down-weighted, so the location
+  estimate itself depends on the scale.  The linear engine fits scale and
+  coefficients jointly.  With LightGBM: pilot scale at the baseline, trees,
+  scale from their residuals, then the trees once more at that scale
+  (``prefit_params=False``) and the scale once more (one step of the
+  alternating location/scale fit).  ``lossfam.xgboost.train`` always fits its
+  own pilot scale at the baseline, so with XGBoost huber gets the first round only.
+* gaussian, gamma (exact Hessians): the Newton step does not depend on the
+  nuisance parameter, so the location is fitted with the defaults, then the parameter.
 
 Reported parameters are the means over the training folds.
 """
@@ -65,8 +73,10 @@ ENGINES = ("linear", "lightgbm", "xgboost")
 
 #: families left out of the default candidates (see the module docstring)
 NOT_BY_DEFAULT = ("asymmetric_laplace",)
-#: families whose location fit depends on the scale: one more location/scale round
+#: families whose location fit depends on the scale: one more location/scale round ...
 _REFIT_LOCATION = ("huber",)
+#: ... with the engines that train at a given scale (the linear engine fits huber jointly)
+_REFIT_ENGINES = ("lightgbm",)
 #: central interval whose coverage is reported
 COVERAGE_LEVEL = 0.9
 #: levels of the coverage table kept for plots
@@ -90,10 +100,11 @@ __all__ = ["compare", "ENGINES", "NOT_BY_DEFAULT"]
 
 
 # ---------------------------------------------------------------------- engines
-def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options):
+def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=False):
     """Fit a location model for ``fam``; return a function X -> raw scores.
 
-    The one place that knows each engine's fitting call.
+    The one place that knows each engine's fitting call.  ``keep_params``:
+    train with the family's nuisance parameters as given (no pilot fit).
     """
     if engine == "linear":
         from .sklearn import LikelihoodRegressor
@@ -107,31 +118,26 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options):
         from .lightgbm import train
 
         params = {**BOOST_DEFAULTS["lightgbm"], "seed": seed, **options}
-        booster = train(fam, params, lgb.Dataset(X, y, weight=w), num_boost_round=rounds)
-        return lambda Z: np.asarray(booster.predict_raw(Z), dtype=float)
+        model = train(fam, params, lgb.Dataset(X, y, weight=w), num_boost_round=rounds,
+                      prefit_params=not keep_params)
+        return lambda Z: np.asarray(model.predict_raw(Z), dtype=float)
     if engine == "xgboost":
         import xgboost as xgb
 
         from .xgboost import train
 
         params = {**BOOST_DEFAULTS["xgboost"], "seed": seed, **options}
-        booster = train(fam, params, xgb.DMatrix(X, y, weight=w), num_boost_round=rounds)
-        return lambda Z: np.asarray(booster.predict_raw(Z), dtype=float)
+        model = train(fam, params, xgb.DMatrix(X, y, weight=w), num_boost_round=rounds)
+        return lambda Z: np.asarray(model.predict_raw(Z), dtype=float)
     raise ValueError(f"compare: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
 
 
-def _fit_family(fit, fam, X, y, w):
+def _fit_family(fit, engine, fam, X, y, w):
     """Location then nuisance parameters on one training fold (order: module docstring)."""
-    if fam.params and not fam.exact_hessian:
-        try:
-            const = np.full_like(y, fam.baseline(y, w))
-            fam = fam.fit_params(y, const, w)
-        except ValueError:
-            pass  # keep the given parameters as the pilot
-    predict = fit(fam, X, y, w)
+    predict = fit(fam, X, y, w, False)
     fam = fam.fit_params(y, predict(X), w)
-    if fam.name in _REFIT_LOCATION and fam.params:
-        predict = fit(fam, X, y, w)
+    if engine in _REFIT_ENGINES and fam.name in _REFIT_LOCATION and fam.params:
+        predict = fit(fam, X, y, w, True)
         fam = fam.fit_params(y, predict(X), w)
     return fam, predict
 
@@ -267,8 +273,9 @@ def _compare_detailed(X, y, families=None, engine="linear", folds=5, weight=None
     say = progress if callable(progress) else (
         (lambda msg: print(f"[lossfam compare] {msg}", file=sys.stderr, flush=True)) if progress else (lambda msg: None))
 
-    def fit(fam, Xa, ya, wa):
-        return _fit_engine(engine, fam, Xa, ya, wa, seed=seed, rounds=int(rounds), options=options)
+    def fit(fam, Xa, ya, wa, keep_params):
+        return _fit_engine(engine, fam, Xa, ya, wa, seed=seed, rounds=int(rounds), options=options,
+                           keep_params=keep_params)
 
     parts = _folds(n, int(folds), seed)
     rows, details = [], {}
@@ -288,7 +295,7 @@ def _compare_detailed(X, y, families=None, engine="linear", folds=5, weight=None
                 say(f"{engine}: {fam0.name} fold {k + 1}/{len(parts)} ({ci + 1}/{len(cands)} families)")
                 train = np.ones(n, dtype=bool)
                 train[test] = False
-                fam, predict = _fit_family(fit, fam0, X[train], y[train], w[train])
+                fam, predict = _fit_family(fit, engine, fam0, X[train], y[train], w[train])
                 raw = predict(X[test])
                 rng = np.random.default_rng([seed, k])
                 s_nll, s_z, s_u, s_in, s_p1 = _score_fold(fam, y[test], raw, integer_footing, rng)
