@@ -176,6 +176,14 @@ class _Objective:
         self.__name__ = f"{fam.name}_objective"
         self._dmatrix_type = _xgb().DMatrix
         self._cache = _TargetCache()
+        self._raw_buf = self._tmp_buf = None  # reused every round (same length)
+
+    def _buffer(self, slot, n):
+        buf = getattr(self, slot)
+        if buf is None or buf.size != n:
+            buf = np.empty(n)
+            setattr(self, slot, buf)
+        return buf
 
     def __getstate__(self):  # picklable for xgboost.dask: drop the engine class and the cache
         return {"family": self.family, "step_cap": self.step_cap, "hessian_factor": self.hessian_factor}
@@ -192,9 +200,11 @@ class _Objective:
             y = fam.check_target(first, for_nll=False)
             w = _checks.check_weight(sample_weight, y, fam.name)
             raw = second
-        raw = np.asarray(raw, dtype=np.float64).reshape(-1)
+        raw = np.asarray(raw).reshape(-1)
         if raw.shape != y.shape:
             raise ValueError(f"{fam.name}: got {raw.size} predictions for {y.size} labels")
+        if raw.dtype != np.float64:  # the engine hands float32 margins: widen into a reused buffer
+            raw = np.copyto(self._buffer("_raw_buf", raw.size), raw) or self._raw_buf
         return self.gradients(y, raw, w)
 
     def gradients(self, y, raw, w):
@@ -206,10 +216,9 @@ class _Objective:
             g *= self.hessian_factor
             h *= self.hessian_factor
         if self.step_cap is not None:
-            a = np.abs(g)
+            a = np.abs(g, out=self._buffer("_tmp_buf", g.size))
             a *= 1.0 / self.step_cap
             np.maximum(h, a, out=h)  # NaN in g or h propagates and is caught below
-            del a
         if w is not None:
             g *= w
             h *= w
