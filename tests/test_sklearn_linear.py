@@ -7,6 +7,7 @@ Outside references used below:
 * scikit-learn's d2_* and r2 scores, scipy.stats log densities, scipy.optimize for maximum likelihood;
 * datasets that ship inside statsmodels and scikit-learn (named beside each check).
 """
+import dataclasses
 import subprocess
 import sys
 import warnings
@@ -15,8 +16,11 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 from scipy import optimize, stats
+from scipy.special import expit, log_expit
 
 import lossfam
+from lossfam._checks import POSITIVE, REAL
+from lossfam.links import IDENTITY
 from lossfam.sklearn import (
     LikelihoodClassifier,
     LikelihoodRegressor,
@@ -450,3 +454,47 @@ def test_missing_sklearn_names_the_extra():
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert 'pip install "lossfam[sklearn]"' in out.stdout
+
+
+# --------------------------------------------------------------------------- a user family
+@dataclasses.dataclass(frozen=True)
+class LogisticErrors(lossfam.Family):
+    """Logistic errors with scale s: nll = -log_expit(z) - log_expit(-z) + log s, z = (y - raw)/s;
+    gradient -(2 expit(z) - 1)/s, Hessian 2 expit(z) expit(-z)/s^2 (exact)."""
+
+    scale: float = 1.0
+
+    name = "logistic_errors_sk_test"
+    link_function = IDENTITY
+    target_domain = REAL
+    param_domains = {"scale": POSITIVE}
+
+    def _nll(self, y, raw):
+        z = (y - raw) / self.scale
+        return -log_expit(z) - log_expit(-z) + np.log(self.scale)
+
+    def _grad_hess(self, y, raw):
+        z = (y - raw) / self.scale
+        return -(2 * expit(z) - 1) / self.scale, 2 * expit(z) * expit(-z) / self.scale**2
+
+    def _distribution(self, raw):
+        return stats.logistic(loc=raw, scale=self.scale)
+
+
+def test_user_family_with_exact_hessian_is_fitted_by_newton():
+    rng = np.random.default_rng(21)
+    X = rng.standard_normal((500, 3))
+    y = 0.5 + X @ [1.0, -0.5, 0.25] + rng.logistic(0.0, 0.8, 500)
+    est = LikelihoodRegressor(family=LogisticErrors()).fit(X, y)
+    assert est.n_iter_ <= 15
+
+    def total(theta):  # independent: scipy.stats.logistic with the scale held at 1, as during the fit
+        return -np.sum(stats.logistic.logpdf(y, loc=theta[0] + X @ theta[1:], scale=1.0))
+
+    ref = optimize.minimize(total, np.zeros(4), method="BFGS", options={"gtol": 1e-10})
+    np.testing.assert_allclose(params(est), ref.x, rtol=RTOL, atol=1e-7)
+    # the scale is then fitted by maximum likelihood (generic Nelder-Mead on log scale): compare loosely
+    s_ml = optimize.minimize_scalar(
+        lambda s: -np.sum(stats.logistic.logpdf(y, loc=est.predict(X), scale=s)), bounds=(0.1, 5.0),
+        method="bounded", options={"xatol": 1e-10}).x
+    np.testing.assert_allclose(est.family_.scale, s_ml, rtol=1e-3)
