@@ -2,7 +2,7 @@
 
 Usage::
 
-    lossfam compare DATA.csv --target COL [--families a,b,...] [--engine linear|lightgbm|xgboost]
+    lossfam compare DATA.csv --target COL [--families a,b:param=value,...] [--engine linear|lightgbm|xgboost]
                     [--folds 5] [--seed 0] [--rounds 100] [--weight COL] [--plots DIR] [--json] [--quiet]
     lossfam compare --demo [...]          # built-in demo data (orchard_bruises.csv)
     python -m lossfam compare ...         # the same
@@ -227,7 +227,8 @@ def _parser():
     cmp_.add_argument("data", nargs="?", help="CSV file with a header row")
     cmp_.add_argument("--target", help="name of the target column")
     cmp_.add_argument("--demo", action="store_true", help=f"use the built-in demo data ({DEMO_FILE})")
-    cmp_.add_argument("--families", help="comma-separated family names (default: every applicable family)")
+    cmp_.add_argument("--families", help="comma-separated family names, parameters as name:param=value "
+                      "(e.g. gaussian,asymmetric_laplace:quantile=0.9; default: every applicable family)")
     cmp_.add_argument("--engine", default="linear", choices=selection.ENGINES, help="model fitted per family (default: linear)")
     cmp_.add_argument("--folds", type=int, default=5, help="cross-validation folds (default: 5)")
     cmp_.add_argument("--seed", type=int, default=0, help="seed of the folds, engines and randomized residuals")
@@ -237,6 +238,34 @@ def _parser():
     cmp_.add_argument("--json", action="store_true", help="print a JSON list of rows, best first")
     cmp_.add_argument("--quiet", action="store_true", help="no progress on stderr")
     return parser
+
+
+def _parse_families(text):
+    """"gaussian,asymmetric_laplace:quantile=0.9" -> names and family objects (None: the default)."""
+    if not text:
+        return None
+    from .registry import family as make_family
+
+    out = []
+    for item in (s.strip() for s in text.split(",")):
+        if not item:
+            continue
+        name, *settings = item.split(":")
+        if not settings:
+            out.append(name.strip())
+            continue
+        params = {}
+        for setting in settings:
+            key, sep, value = setting.partition("=")
+            try:
+                params[key.strip()] = float(value)
+            except ValueError:
+                sep = ""
+            if not sep:
+                raise ValueError(f"--families: cannot read {setting!r} in {item!r}; write name:param=number, "
+                                 "e.g. asymmetric_laplace:quantile=0.9")
+        out.append(make_family(name.strip(), **params))
+    return out
 
 
 def _fail(msg):
@@ -271,10 +300,8 @@ def _compare(args):
     for note in notes:
         print(f"lossfam: note: {note}", file=sys.stderr)
     log(f"{y.size} rows, target {target!r}, features: {', '.join(features)}; engine {args.engine}, {args.folds} folds")
-    families = None
-    if args.families:
-        families = [s.strip() for s in args.families.split(",") if s.strip()]
     try:
+        families = _parse_families(args.families)
         rows, details = selection._compare_detailed(
             X, y, families=families, engine=args.engine, folds=args.folds, weight=w, seed=args.seed,
             rounds=args.rounds, progress=log,
@@ -284,10 +311,10 @@ def _compare(args):
     if args.plots is not None:
         paths = write_plots(args.plots, rows, details, y)
         log(f"wrote {len(paths)} plot(s) to {args.plots}")
-    if args.json:
-        print(json.dumps(_jsonable(rows)))
-    else:
-        print(format_table(rows))
+    try:
+        print(json.dumps(_jsonable(rows)) if args.json else format_table(rows), flush=True)
+    except BrokenPipeError:  # e.g. piped into `head`: the reader has gone, nothing more to say
+        sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - keeps the interpreter's final flush quiet
     return 0
 
 

@@ -169,3 +169,20 @@ def test_weight_column_and_missing_features(tmp_path, capsys):
                      "--families", "gaussian,laplace", "--folds", "2"]) == 0
     out = json.loads(capsys.readouterr().out)
     assert {r["family"] for r in out} == {"gaussian", "laplace"}
+
+
+def test_families_option_with_parameters(tmp_path, capsys):
+    rng = np.random.default_rng(6)
+    x = rng.normal(size=400)
+    y = x + rng.laplace(0.0, 1.0, 400) + 0.5
+    path = _write_csv(tmp_path / "q.csv", ["x", "y"], [[f"{a:.4f}", f"{b:.4f}"] for a, b in zip(x, y)])
+    assert cli.main(["compare", path, "--target", "y", "--json", "--quiet", "--folds", "2",
+                     "--families", "laplace,asymmetric_laplace:quantile=0.7"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    by = {r["family"]: r for r in rows}
+    assert set(by) == {"laplace", "asymmetric_laplace(quantile=0.7)"}
+    assert by["asymmetric_laplace(quantile=0.7)"]["params"]["quantile"] == 0.7
+    assert cli.main(["compare", path, "--target", "y", "--families", "laplace:scale"]) == 2
+    assert "name:param=number" in capsys.readouterr().err
+    assert cli.main(["compare", path, "--target", "y", "--families", "cauchy"]) == 2
+    assert "unknown family" in capsys.readouterr().err
