@@ -498,3 +498,14 @@ def test_user_family_with_exact_hessian_is_fitted_by_newton():
         lambda s: -np.sum(stats.logistic.logpdf(y, loc=est.predict(X), scale=s)), bounds=(0.1, 5.0),
         method="bounded", options={"xatol": 1e-10}).x
     np.testing.assert_allclose(est.family_.scale, s_ml, rtol=1e-3)
+
+
+def test_huber_scale_on_interpolated_data_is_reported():
+    # three rows, two features and an intercept: every residual can be zero, so the joint
+    # maximum-likelihood scale does not exist (the likelihood grows without bound as s -> 0)
+    X = np.array([[0.0, 1.0], [1.0, 0.0], [2.0, 3.0]])
+    y = np.array([1.0, 2.0, 0.5])
+    with pytest.warns(UserWarning, match="huber scale shrinks"):
+        est = LikelihoodRegressor(family="huber").fit(X, y)
+    np.testing.assert_allclose(est.predict(X), y, atol=1e-6)
+    assert est.family_.scale > 0

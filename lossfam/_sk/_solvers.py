@@ -41,7 +41,10 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     With theta = coef / s and tau = 1 / s the unpenalised nll is
     rho(tau y - x theta) - log tau + const, jointly convex in (theta, tau), so
     the alternation (block coordinate descent on a smooth convex function)
-    reaches the joint maximum-likelihood estimate.
+    reaches the joint maximum-likelihood estimate.  When the model can fit every
+    row exactly, the likelihood grows without bound as s -> 0 and no joint
+    estimate exists: if the scale falls below 1e-6 times its value at the
+    baseline the alternation stops, keeps the last scale and reports it.
 
 ``quantile_lp``
     Laplace and asymmetric Laplace: minimising sum v rho_tau(y - raw) is the
@@ -67,6 +70,7 @@ _BLOCK = 8192  # rows per block when accumulating X^T diag(h) X
 _EPS = np.finfo(float).eps
 SUBSAMPLE_MIN_ROWS = 100_000  # subsampled Hessians (far from the optimum) only from this many rows
 SUBSAMPLE_FRACTION = 8  # ... using one row in this many
+SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
 
 @dataclasses.dataclass
@@ -329,6 +333,7 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
         fam = fam.fit_params(y, raw, w)
     except ValueError:
         scale_fitted = False  # every residual is zero at the start: keep the given scale
+    scale0 = fam.scale
     total = 0
     fit = None
     for _ in range(max(1, max_iter)):
@@ -340,6 +345,11 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
             new = fam.fit_params(y, fit.raw, w)
         except ValueError:
             scale_fitted = False  # zero residuals: the scale has no maximum-likelihood value
+            break
+        if new.scale < SCALE_COLLAPSE * scale0:
+            # the residuals vanish as the scale shrinks (the model can interpolate the data): the
+            # likelihood grows without bound as s -> 0, so no joint maximum-likelihood scale exists
+            scale_fitted = False
             break
         change = abs(np.log(new.scale / fam.scale))
         fam = new

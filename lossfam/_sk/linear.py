@@ -114,8 +114,9 @@ def _finish(est, fam, fit, y, w):
         est.family_ = fit.family  # the scale was fitted jointly with the coefficients
         if not fit.nuisance_fitted:
             warnings.warn(
-                f"{type(est).__name__}: every residual is zero, so the huber scale has no "
-                f"maximum-likelihood value; it keeps the value {fit.family.scale}",
+                f"{type(est).__name__}: the residuals vanish as the huber scale shrinks (the model "
+                "fits the data exactly), so the scale has no maximum-likelihood value; it keeps the "
+                f"value {fit.family.scale:.6g}",
                 UserWarning,
                 stacklevel=3,
             )
