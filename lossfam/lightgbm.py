@@ -179,6 +179,7 @@ class _TargetCache:
         self._wref = None
         self._y = None
         self._w = None
+        self._buf = None
 
     def get(self, fam, y, w, *, for_nll):
         same = self._ref is not None and self._ref() is y
@@ -196,6 +197,13 @@ class _TargetCache:
                 return y64, w64
             self._y, self._w = y64, w64
         return self._y, self._w
+
+    def scratch(self, n):
+        """A float64 work buffer of length n, reused across rounds."""
+        buf = getattr(self, "_buf", None)
+        if buf is None or buf.size != n:
+            buf = self._buf = np.empty(n)
+        return buf
 
     def __deepcopy__(self, memo):
         return _TargetCache()
@@ -230,7 +238,10 @@ class _Objective:
             g *= self.unit
             h *= self.unit
         if self.max_row_step is not None:
-            np.maximum(h, np.abs(g) * (1.0 / self.max_row_step), out=h)
+            lim = self._cache.scratch(g.size)
+            np.abs(g, out=lim)
+            lim *= 1.0 / self.max_row_step
+            np.maximum(h, lim, out=h)
         if w is not None:
             g *= w
             h *= w
