@@ -85,6 +85,8 @@ and metrics read those scores; the refit of tree t happens at the start of
 round t + 1 (a before-iteration callback) or when the metric first asks.
 Leaf refit therefore needs the feature data in memory (not a file path) and
 refuses LightGBM's built-in metrics (they would see the unedited scores).
+Each refit uses all training rows (with bagging, the built-in uses the
+in-bag rows only).
 
 Offsets
 -------
@@ -440,7 +442,7 @@ def _field(data, name):
 
 def _label_weight(data, fam, what):
     y = _field(data, "label")
-    if y is None and isinstance(data.data, (str, bytes)) or hasattr(data.data, "__fspath__"):
+    if y is None and (isinstance(data.data, (str, bytes)) or hasattr(data.data, "__fspath__")):
         data.construct()  # a Dataset file: its label is inside; construction reads it
         y = data.get_label()
     if y is None:

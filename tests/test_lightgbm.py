@@ -224,12 +224,17 @@ def test_refit_metric_log_matches_the_final_predictions():
     assert np.mean(yte <= model.predict(Xte)) == pytest.approx(0.9, abs=0.02)
 
 
-def test_refit_needs_features_in_memory(tmp_path):
+def test_dataset_files_work_except_for_leaf_refit(tmp_path):
     Xtr, ytr, _, _ = _simulate("laplace")
     path = tmp_path / "train.bin"
     lgb.Dataset(Xtr[:2000], ytr[:2000]).save_binary(str(path))
     with pytest.raises(ValueError, match="in memory"):
         lfl.train("laplace", PARAMS, lgb.Dataset(str(path)), 5)
+    # without refit the label is read from the file and the fit equals the in-memory one
+    from_file = lfl.train("gaussian", PARAMS, lgb.Dataset(str(path)), 5)
+    in_memory = lfl.train("gaussian", PARAMS, lgb.Dataset(Xtr[:2000], ytr[:2000]), 5)
+    assert from_file.baseline == pytest.approx(in_memory.baseline, rel=1e-6)  # float32 labels in the file
+    np.testing.assert_allclose(from_file.predict(Xtr[:100]), in_memory.predict(Xtr[:100]), rtol=1e-6)
     with pytest.raises(ValueError, match="built-in metrics"):
         lfl.train("laplace", dict(PARAMS, metric="l1"), lgb.Dataset(Xtr, ytr), 5)
 
