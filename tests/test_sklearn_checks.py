@@ -31,6 +31,7 @@ ESTIMATORS = [
     LikelihoodRegressor(family="poisson", alpha=0.5),
     LikelihoodRegressor(family="laplace"),
     LikelihoodRegressor(family="asymmetric_laplace", family_params={"quantile": 0.7}),
+    LikelihoodRegressor(family="laplace", alpha=0.1),
     LikelihoodRegressor(family="huber"),
     LikelihoodClassifier(),
     LikelihoodClassifier(alpha=0.0),
@@ -44,10 +45,6 @@ _NON_UNIQUE_LP = (
     "the check fits 30 coefficients on 15 rows: the least-absolute-deviation solution is then "
     "not unique and predictions at zero-weight rows depend on which optimal vertex HiGHS returns"
 )
-_ALPHA_LP = (
-    "the check sets alpha=0.01, and the ridge-penalised absolute-error problem (a quadratic "
-    "programme) is refused with a ValueError rather than solved approximately"
-)
 _LGBM_COUNTS = (
     "LightGBM's min_child_samples counts rows, so repeated rows and integer weights grow different "
     "trees (scikit-learn marks this check as failing for its own tree ensembles too)"
@@ -57,10 +54,7 @@ _LGBM_COUNTS = (
 def expected_failures(est):
     if isinstance(est, LikelihoodRegressor) and est.family in ("laplace", "asymmetric_laplace"):
         if est.alpha == 0:
-            return {
-                "check_sample_weight_equivalence_on_dense_data": _NON_UNIQUE_LP,
-                "check_regressors_train": _ALPHA_LP,
-            }
+            return {"check_sample_weight_equivalence_on_dense_data": _NON_UNIQUE_LP}
     if isinstance(est, LossfamBoostRegressor):
         if type(est.estimator).__module__.startswith("lightgbm"):
             return {"check_sample_weight_equivalence_on_dense_data": _LGBM_COUNTS}

@@ -207,10 +207,63 @@ def test_quantile_weighted_synthetic_equals_sklearn():
     assert abs(a - b) <= 1e-8 * b
 
 
-def test_laplace_with_ridge_penalty_is_refused():
-    X, y = engel()
-    with pytest.raises(ValueError, match="alpha > 0 is not supported for the laplace family"):
-        LikelihoodRegressor(family="laplace", alpha=0.1).fit(X, y)
+def pinball_certificate(X, y, coef, intercept, tau, c, alpha, tol=1e-7):
+    """Independent optimality check for min sum c rho_tau(y - X coef - b) + alpha/2 |coef|^2.
+
+    Rows with a clearly non-zero residual have a fixed subgradient; for the rows fitted exactly a
+    subgradient in [tau - 1, tau] must exist that makes the stationarity equations hold.  That is a
+    bounded least-squares problem (scipy.optimize.lsq_linear); its residual norm is returned.
+    """
+    r = y - X @ coef - intercept
+    zero = np.abs(r) <= tol * (1 + np.abs(y).max())
+    s_fixed = np.where(r > 0, tau, tau - 1.0)[~zero]
+    A = np.vstack([X[zero].T * c[zero], c[zero]])
+    target = np.r_[alpha * coef - X[~zero].T @ (c[~zero] * s_fixed), -np.dot(c[~zero], s_fixed)]
+    if zero.sum() == 0:
+        return float(np.linalg.norm(target))
+    res = optimize.lsq_linear(A, target, bounds=(tau - 1.0, tau), method="bvls", tol=1e-14)
+    return float(np.linalg.norm(A @ res.x - target))
+
+
+@pytest.mark.parametrize("tau", [0.5, 0.1, 0.9])
+@pytest.mark.parametrize("alpha", [1e-3, 1.0, 100.0])
+def test_ridge_penalised_quantile_fit_is_certified_optimal_engel(tau, alpha):
+    X, y = engel()  # statsmodels.datasets.engel, foodexp on income
+    if tau == 0.5:
+        est = LikelihoodRegressor(family="laplace", alpha=alpha).fit(X, y)
+        c = np.full(len(y), 2.0 / len(y))  # nll = |r| / b = 2 rho_0.5(r) / b with b = 1
+    else:
+        est = LikelihoodRegressor(family="asymmetric_laplace", family_params={"quantile": tau}, alpha=alpha)
+        est.fit(X, y)
+        c = np.full(len(y), 1.0 / len(y))
+    assert pinball_certificate(X, y, est.coef_, est.intercept_, tau, c, alpha) <= 1e-9
+
+    def objective(theta):
+        r = y - X @ theta[1:] - theta[0]
+        return np.dot(c, np.maximum(tau * r, (tau - 1.0) * r)) + 0.5 * alpha * theta[1:] @ theta[1:]
+
+    ours = np.r_[est.intercept_, est.coef_]
+    # no derivative-free search from nearby starts finds a lower value
+    for shift in ([1.0, 0.0], [0.0, 1e-3], [-5.0, 0.01]):
+        other = optimize.minimize(objective, ours + shift, method="Nelder-Mead",
+                                  options={"xatol": 1e-12, "fatol": 1e-14, "maxiter": 4000})
+        assert objective(ours) <= other.fun + 1e-12 * abs(other.fun)
+
+
+def test_ridge_penalised_quantile_fit_weighted_synthetic():
+    rng = np.random.default_rng(17)
+    X = rng.standard_normal((400, 4))
+    y = X @ [1.0, -2.0, 0.5, 0.0] + rng.standard_t(3, 400)
+    w = rng.uniform(0.0, 2.0, 400)
+    w[:20] = 0.0  # rows with zero weight do not count
+    est = LikelihoodRegressor(family="asymmetric_laplace", family_params={"quantile": 0.3, "scale": 2.0},
+                              alpha=0.05).fit(X, y, sample_weight=w)
+    c = w / w.sum() / 2.0  # nll = rho / b with the given scale b = 2
+    keep = w > 0
+    assert pinball_certificate(X[keep], y[keep], est.coef_, est.intercept_, 0.3, c[keep], 0.05) <= 1e-9
+    # the penalty shrinks: the unpenalised fit has larger coefficients
+    free = LikelihoodRegressor(family="asymmetric_laplace", family_params={"quantile": 0.3}).fit(X, y, sample_weight=w)
+    assert np.linalg.norm(est.coef_) < np.linalg.norm(free.coef_)
 
 
 # --------------------------------------------------------------------------- ridge penalty

@@ -75,14 +75,13 @@ def _fit_linear(est, fam, X, y, w, offset):
     v = w / w.sum()
     alpha = float(est.alpha)
     if isinstance(fam, (Laplace, AsymmetricLaplace)):
+        if isinstance(fam, AsymmetricLaplace):
+            tau, factor = fam.quantile, 1.0 / fam.scale  # nll = rho_tau(r) / b + const
+        else:
+            tau, factor = 0.5, 2.0 / fam.scale  # nll = |r| / b + const = 2 rho_0.5(r) / b + const
         if alpha > 0:
-            raise ValueError(
-                f"{owner}: alpha > 0 is not supported for the {fam.name} family. The ridge-penalised "
-                "absolute-error problem is a quadratic programme and scipy's linprog (HiGHS) solves only "
-                "linear programmes exactly; rather than return an approximate answer, this estimator "
-                "fits laplace and asymmetric_laplace with alpha=0 only."
-            )
-        tau = fam.quantile if isinstance(fam, AsymmetricLaplace) else 0.5
+            return _solvers.ridge_pinball(X, y, v, offset, tau, factor, alpha, est.fit_intercept,
+                                          max_iter=max(est.max_iter, 100))
         return _solvers.quantile_lp(X, y, v, offset, tau, est.fit_intercept)
     if est.fit_intercept:
         intercept = fam.baseline(y, w, offset=offset)
@@ -158,10 +157,11 @@ class LikelihoodRegressor(RegressorMixin, BaseEstimator):
     (intercept unpenalised) for the family ``lossfam.family(family, **family_params)``.
 
     Solvers: Newton's method with a line search and Cholesky solves for smooth
-    families (starting from the intercept at ``family.baseline``); linear
-    programming (HiGHS) for laplace and asymmetric_laplace (alpha = 0 only);
-    semismooth Newton with the scale fitted jointly by maximum likelihood for
-    huber.  During the coefficient fit, nuisance parameters other than the
+    families (starting from the intercept at ``family.baseline``); for laplace
+    and asymmetric_laplace linear programming (HiGHS) when alpha = 0 and, when
+    alpha > 0, a smoothing continuation followed by an active-set solve of the
+    optimality conditions that certifies the exact minimiser; semismooth Newton
+    with the scale fitted jointly by maximum likelihood for huber.  During the coefficient fit, nuisance parameters other than the
     Huber scale keep their given values (they matter only when alpha > 0);
     afterwards ``family_`` holds them at their maximum-likelihood values.
 
