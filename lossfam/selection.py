@@ -200,27 +200,22 @@ def _constructible(cls):
 
 def _candidates(families, y):
     """[(family or None, label, reason, given_as_object)] for the requested or default families."""
-    explicit = families is not None
     if families is None:
-        names = [n for n in available() if n not in NOT_BY_DEFAULT]
-        families = names
+        families = [n for n in available() if n not in NOT_BY_DEFAULT]
     elif isinstance(families, str):
         families = [s.strip() for s in families.split(",") if s.strip()]
     out = []
     for spec in families:
         obj = not isinstance(spec, str)
-        if not obj:
+        if obj or spec not in available():
+            fam = make_family(spec)  # a family object, or an unknown name: ValueError listing the choices
+        else:
             try:
                 fam = make_family(spec)
-            except TypeError as exc:
-                out.append((None, str(spec), f"cannot be built without parameters ({exc}); pass a family object", obj))
+            except (TypeError, ValueError) as exc:  # a registered class without usable defaults
+                out.append((None, spec, f"cannot be built with its default parameters ({exc}); "
+                                        "pass a family object", obj))
                 continue
-            except ValueError:
-                if explicit:
-                    raise
-                continue
-        else:
-            fam = make_family(spec)
         try:
             fam.check_target(y)
         except ValueError as exc:
