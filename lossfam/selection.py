@@ -403,7 +403,7 @@ def compare(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, 
     best family's) and ``gap_se`` (its standard error, paired over rows),
     ``coverage90`` (observed coverage of the central 90% interval), ``ks``
     (Kolmogorov-Smirnov distance of the held-out quantile residuals from
-    N(0, 1)), ``params`` (fitted nuisance parameters, mean over folds),
+    N(0, 1); unweighted, over all rows), ``params`` (fitted nuisance parameters, mean over folds),
     ``scored_by`` (log density, log probability, or log probability of the
     unit interval around y), ``status`` ("ok", "not applicable", "failed")
     and ``note`` (the reason, or the footing).
