@@ -150,8 +150,8 @@ class _TargetCache:
         self.y = self.w = None
 
     def get(self, dmatrix, fam, *, for_nll):
-        if self._ref is not None and self._ref() is dmatrix:
-            return self.y, self.w
+        if self._ref is not None and self._ref() is dmatrix and dmatrix.num_row() == self.y.size:
+            return self.y, self.w  # labels are read once per DMatrix; a new DMatrix is re-read
         y = fam.check_target(dmatrix.get_label(), for_nll=for_nll)
         if y.ndim != 1:
             raise ValueError(f"{fam.name}: expected one label per row, got labels of shape {y.shape}")
@@ -557,8 +557,9 @@ def train(
 
 
 def _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval, kw):
-    booster = xgb.train(params, dtrain, num_boost_round, evals=evals, obj=obj,
-                        custom_metric=feval, maximize=False, **kw)
+    if evals:
+        kw = dict(kw, custom_metric=feval, maximize=False)
+    booster = xgb.train(params, dtrain, num_boost_round, evals=evals, obj=obj, **kw)
     extra = {}
     best = _best_iteration(booster) if kw.get("early_stopping_rounds") else None
     if best is not None and best + 1 < booster.num_boosted_rounds():
