@@ -226,13 +226,14 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
         return H
 
     # Inexact Newton far from the optimum: while the last step moved some raw
-    # score by more than 0.1, the Hessian is estimated from a fixed random
-    # subsample of SUBSAMPLE_FRACTION of the rows (large n only); near the
-    # optimum the full Hessian restores quadratic convergence.  The gradient is
-    # always exact, so the solution and the stopping rule are unchanged.
+    # score by more than 0.1, the Hessian is estimated from every
+    # SUBSAMPLE_FRACTION-th row (n >= SUBSAMPLE_MIN_ROWS only; a singular
+    # estimate falls back to all rows); near the optimum the full Hessian
+    # restores quadratic convergence.  The gradient is always exact, so the
+    # solution and the stopping rule are unchanged.
     sub = None
     if merit == "gradient" and n >= SUBSAMPLE_MIN_ROWS and p:
-        sub = slice(0, None, SUBSAMPLE_FRACTION)  # every k-th row (a singular estimate falls back to all rows)
+        sub = slice(0, None, SUBSAMPLE_FRACTION)
         Xsub = np.ascontiguousarray(X[sub])
     last_change = np.inf
 
