@@ -44,6 +44,40 @@ def _check_hyper(est):
         raise ValueError(f"{type(est).__name__}: fit_intercept must be True or False, got {est.fit_intercept!r}")
 
 
+def _check_finite_rows(X, owner):
+    """ValueError naming the rows of X that hold NaN or inf (the message contains 'NaN or inf')."""
+    total = float(np.sum(X)) if X.size else 0.0
+    if np.isfinite(total):
+        return
+    bad_cells = ~np.isfinite(X)
+    rows = np.flatnonzero(bad_cells.any(axis=1))
+    if rows.size == 0:
+        return  # the sum overflowed, every entry is finite
+    shown = rows[:5]
+    cols = [int(np.flatnonzero(bad_cells[i])[0]) for i in shown]
+    vals = ", ".join(repr(float(X[i, j])) for i, j in zip(shown, cols))
+    noun = "row" if rows.size == 1 else "rows"
+    raise ValueError(
+        f"{owner}: X contains NaN or inf in {rows.size} {noun}, e.g. {noun} "
+        f"[{', '.join(str(int(i)) for i in shown)}] (columns [{', '.join(map(str, cols))}]) = [{vals}]"
+    )
+
+
+def _prevalidate_y(fam, y):
+    """Check numeric targets against the family first, so errors name the offending rows."""
+    try:
+        arr = np.asarray(y)
+    except (TypeError, ValueError):
+        return
+    if arr.dtype.kind not in "biuf":
+        return  # non-numeric or complex targets: scikit-learn's validation reports them
+    arr = arr.astype(np.float64, copy=False)
+    if arr.ndim == 2 and arr.shape[1] == 1:
+        arr = arr[:, 0]
+    if arr.ndim == 1:
+        fam.check_target(arr, for_nll=False)
+
+
 def _check_offset(offset, n, owner):
     if offset is None:
         return None
@@ -209,8 +243,11 @@ class LikelihoodRegressor(RegressorMixin, BaseEstimator):
         """Fit the coefficients; ``offset`` is a per-row raw-scale offset (e.g. log exposure)."""
         _check_hyper(self)
         fam = self._make_family()
-        X, y = validate_data(self, X, y, dtype=np.float64, order="C", y_numeric=True)
         owner = type(self).__name__
+        if y is not None:
+            _prevalidate_y(fam, y)
+        X, y = validate_data(self, X, y, dtype=np.float64, order="C", y_numeric=True, ensure_all_finite=False)
+        _check_finite_rows(X, owner)
         y = fam.check_target(y, for_nll=False)
         w = _check_sample_weight(sample_weight, y, owner)
         offset = _check_offset(offset, X.shape[0], owner)
@@ -222,7 +259,8 @@ class LikelihoodRegressor(RegressorMixin, BaseEstimator):
 
     def _raw_score(self, X, offset):
         check_is_fitted(self)
-        X = validate_data(self, X, reset=False, dtype=np.float64)
+        X = validate_data(self, X, reset=False, dtype=np.float64, ensure_all_finite=False)
+        _check_finite_rows(X, type(self).__name__)
         raw = X @ self.coef_ + self.intercept_
         o = _check_offset(offset, X.shape[0], type(self).__name__)
         return raw if o is None else raw + o
@@ -278,9 +316,10 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
 
     def fit(self, X, y, sample_weight=None, offset=None):
         _check_hyper(self)
-        X, y = validate_data(self, X, y, dtype=np.float64, order="C")
-        check_classification_targets(y)
         owner = type(self).__name__
+        X, y = validate_data(self, X, y, dtype=np.float64, order="C", ensure_all_finite=False)
+        _check_finite_rows(X, owner)
+        check_classification_targets(y)
         kind = type_of_target(y, input_name="y")
         if kind != "binary":
             raise ValueError(
@@ -310,7 +349,8 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
     def decision_function(self, X, offset=None):
         """The raw score (log odds of ``classes_[1]``)."""
         check_is_fitted(self)
-        X = validate_data(self, X, reset=False, dtype=np.float64)
+        X = validate_data(self, X, reset=False, dtype=np.float64, ensure_all_finite=False)
+        _check_finite_rows(X, type(self).__name__)
         raw = X @ self.coef_ + self.intercept_
         o = _check_offset(offset, X.shape[0], type(self).__name__)
         return raw if o is None else raw + o
