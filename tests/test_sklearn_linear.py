@@ -265,6 +265,22 @@ def test_ridge_penalised_quantile_fit_is_certified_optimal_engel(tau, alpha):
         assert objective(ours) <= other.fun + 1e-12 * abs(other.fun)
 
 
+@pytest.mark.parametrize("seed", range(12))
+def test_ridge_penalised_quantile_fit_random_problems(seed):
+    # varied sizes, units, quantiles, penalties, ties (rounded targets) and weights
+    rng = np.random.default_rng(seed)
+    n, p = int(rng.integers(5, 300)), int(rng.integers(1, 7))
+    tau, alpha = float(rng.uniform(0.05, 0.95)), float(10 ** rng.uniform(-5, 2))
+    X = rng.standard_normal((n, p)) * 10 ** rng.uniform(-1, 3)
+    y = X @ rng.normal(size=p) + rng.standard_t(2, n) * 10 ** rng.uniform(-1, 2)
+    if seed % 3 == 0:
+        y = np.round(y)
+    w = rng.uniform(0.0, 2.0, n)
+    est = LikelihoodRegressor(family="asymmetric_laplace", family_params={"quantile": tau}, alpha=alpha)
+    est.fit(X, y, sample_weight=w)
+    assert pinball_certificate(X, y, est.coef_, est.intercept_, tau, w / w.sum(), alpha) <= 1e-9
+
+
 def test_ridge_penalised_quantile_fit_weighted_synthetic():
     rng = np.random.default_rng(17)
     X = rng.standard_normal((400, 4))
