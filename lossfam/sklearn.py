@@ -2,8 +2,9 @@
 
 * :class:`LikelihoodRegressor` -- a linear model fitted by penalised maximum
   likelihood under any registered family (exact solvers: Newton for smooth
-  families, linear programming for laplace / asymmetric_laplace, semismooth
-  Newton with a jointly fitted scale for huber).
+  families; for laplace / asymmetric_laplace linear programming, or with a
+  ridge penalty a certified active-set solve of the optimality conditions;
+  semismooth Newton with a jointly fitted scale for huber).
 * :class:`LikelihoodClassifier` -- the bernoulli family as a binary classifier.
 * :class:`LossfamBoostRegressor`, :class:`LossfamBoostClassifier` -- wrap an
   ``LGBMRegressor`` / ``XGBRegressor`` (or classifier) so that it trains on a
