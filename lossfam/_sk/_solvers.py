@@ -78,6 +78,7 @@ _BLOCK = 8192  # rows per block when accumulating X^T diag(h) X
 _EPS = np.finfo(float).eps
 SUBSAMPLE_MIN_ROWS = 100_000  # subsampled Hessians (far from the optimum) only from this many rows
 SUBSAMPLE_FRACTION = 8  # ... using one row in this many
+SUBSAMPLE_WHILE_STEP = 0.02  # ... while the last step moved some raw score by more than this
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
 
@@ -226,7 +227,7 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
         return H
 
     # Inexact Newton far from the optimum: while the last step moved some raw
-    # score by more than 0.1, the Hessian is estimated from every
+    # score by more than SUBSAMPLE_WHILE_STEP, the Hessian is estimated from every
     # SUBSAMPLE_FRACTION-th row (n >= SUBSAMPLE_MIN_ROWS only; a singular
     # estimate falls back to all rows); near the optimum the full Hessian
     # restores quadratic convergence.  The gradient is always exact, so the
@@ -253,7 +254,7 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
             break
         alt = curvature(fam, y, raw, h) if curvature is not None else None
         d = None
-        if sub is not None and alt is None and last_change > 0.1:
+        if sub is not None and alt is None and last_change > SUBSAMPLE_WHILE_STEP:
             # far from the optimum: curvature from a row subsample is as good as the full one
             hv = h[sub] * v[sub]
             hv *= 1.0 / max(float(v[sub].sum()), 1e-300)
