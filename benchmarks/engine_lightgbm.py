@@ -12,8 +12,9 @@ the median over --repeats runs,
 alternating the contenders so that load from other processes hits all alike:
 
 * built-in: lightgbm.train with the built-in objective,
-* train: lossfam.lightgbm.train (always the custom-objective path; it never
-  switches to a built-in objective),
+* train: lossfam.lightgbm.train with its defaults (poisson: the Python
+  objective with the step guard; gaussian: LightGBM's built-in l2 computes
+  the gradients, which are exactly the family's, see builtin_if_exact),
 * objective: lightgbm.train with params["objective"] = lossfam.lightgbm.objective(...)
   and the baseline as init_score (the bare custom-objective path).
 

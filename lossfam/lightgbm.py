@@ -88,6 +88,21 @@ refuses LightGBM's built-in metrics (they would see the unedited scores).
 Each refit uses all training rows (with bagging, the built-in uses the
 in-bag rows only).
 
+Built-in objective where it is exact
+------------------------------------
+In dispersion units the gaussian gradient and Hessian are exactly LightGBM's
+``regression`` ones (raw - y, 1).  For gaussian ``train``
+(``builtin_if_exact=True``, the default) therefore lets LightGBM compute them
+in C++, and the engine, knowing the Hessian is constant, also skips summing
+it.  The baseline is still the ``init_score`` (which also switches off
+LightGBM's own boost-from-average), so trees, predictions, metrics and saved
+files are those of the Python objective (tested to 1e-6).  Other families
+keep the Python objective: bernoulli's gradients equal ``binary``'s, but
+LightGBM hands a metric the probability instead of the raw score for built-in
+objectives, and logit(expit(raw)) loses the raw score where p rounds to 1;
+poisson and gamma differ through the step guard.  ``builtin_if_exact=False``
+forces the Python objective.
+
 Offsets
 -------
 An offset is a known per-row term on the raw scale (e.g. log exposure of
@@ -111,8 +126,7 @@ import numpy as np
 
 from . import _checks
 from ._modelfile import read_model_file, write_model_file
-from .families.asymmetric_laplace import AsymmetricLaplace
-from .families.laplace import Laplace
+from .families import AsymmetricLaplace, Gaussian, Laplace
 from .links import LOG
 from .registry import family as make_family
 
@@ -157,6 +171,14 @@ def _resolve_step(fam, max_row_step):
     if not (v > 0 and math.isfinite(v)):
         raise ValueError(f"max_row_step must be a positive finite number, 'auto' or None; got {max_row_step!r}")
     return v
+
+
+def _native_params(fam, step):
+    """LightGBM built-in objective settings that compute exactly the family's gradient and Hessian
+    (in dispersion units), or None.  See "Built-in objective where it is exact" in the module doc."""
+    if type(fam) is Gaussian and step is None:  # exact class: a user subclass may change the loss
+        return {"objective": "regression"}
+    return None
 
 
 def _refit_level(fam):
@@ -580,8 +602,8 @@ def _feature_data(data, what):
 
 
 def train(family, params, data, num_boost_round=100, *, offset=None, valid_offsets=None,
-          max_row_step="auto", prefit_params=True, leaf_refit=True, metric_kind="nll",
-          **engine_kwargs) -> TrainedModel:
+          max_row_step="auto", prefit_params=True, leaf_refit=True, builtin_if_exact=True,
+          metric_kind="nll", **engine_kwargs) -> TrainedModel:
     """Train a LightGBM model with the family's nll as the loss.
 
     Parameters
@@ -607,6 +629,11 @@ def train(family, params, data, num_boost_round=100, *, offset=None, valid_offse
     leaf_refit : bool
         For laplace and asymmetric_laplace: refit each leaf to the weighted
         residual median / quantile (module docstring).  Ignored otherwise.
+    builtin_if_exact : bool
+        Let LightGBM's built-in ``regression`` objective compute the
+        gaussian gradients (exactly the family's, in dispersion units): same
+        trees, predictions, metrics, baseline and saved file, only faster.
+        False: always the Python objective.
     metric_kind : "nll" or "deviance"
         The lossfam metric evaluated on ``valid_sets``.
     **engine_kwargs
@@ -705,7 +732,15 @@ def train(family, params, data, num_boost_round=100, *, offset=None, valid_offse
         callbacks.append(before_round)
         params["objective"] = fobj
     else:
-        params["objective"] = _Objective(fam, step)
+        native = _native_params(fam, step) if builtin_if_exact else None
+        if native is not None:
+            clash = sorted(k for k in native if k != "objective" and k in params and params[k] != native[k])
+            if clash:
+                raise ValueError(f"params {clash} would change LightGBM's built-in objective away from the "
+                                 f"{fam.name} loss; drop them or pass builtin_if_exact=False")
+            params.update(native)
+        else:
+            params["objective"] = _Objective(fam, step)
     params.setdefault("metric", "None")
 
     touched = [data] + [valid_sets[k] for k in starts]

@@ -84,8 +84,9 @@ def test_held_out_parity_with_builtin_objective(name, fparams, builtin, kind, sc
     Xtr, ytr, Xte, yte = _simulate(kind)
     ref = lgb.train(dict(PARAMS, **builtin), lgb.Dataset(Xtr, ytr), ROUNDS)
     # huber: the family's threshold delta * scale must equal LightGBM's alpha, so keep scale = 1
+    # builtin_if_exact=False: the Python objective is what is compared, for every family
     model = lfl.train(lossfam.family(name, **fparams), PARAMS, lgb.Dataset(Xtr, ytr), ROUNDS,
-                      prefit_params=(name != "huber"))
+                      prefit_params=(name != "huber"), builtin_if_exact=False)
     ours, theirs = score(yte, model.predict(Xte)), score(yte, ref.predict(Xte))
     print(f"{name} {fparams}: lossfam {ours:.5f}  built-in {theirs:.5f}")
     assert ours <= 1.01 * theirs, (ours, theirs)
@@ -129,11 +130,36 @@ def test_same_start_gives_the_builtin_predictions(name, builtin, kind):
     fam = lossfam.family(name)
     base = fam.baseline(ytr)
     ref = lgb.train(dict(PARAMS, objective=builtin), lgb.Dataset(Xtr, ytr, init_score=np.full(ytr.size, base)), 50)
-    model = lfl.train(name, PARAMS, lgb.Dataset(Xtr, ytr), 50)
+    model = lfl.train(name, PARAMS, lgb.Dataset(Xtr, ytr), 50, builtin_if_exact=False)
     assert model.baseline == pytest.approx(base, abs=0)
     raw_ref = base + ref.predict(Xte, raw_score=True)
     np.testing.assert_allclose(model.predict_raw(Xte), raw_ref, rtol=0, atol=1e-6)
     np.testing.assert_allclose(model.predict(Xte), fam.inverse_link(raw_ref), rtol=0, atol=1e-6)
+
+
+def test_builtin_shortcut_behaves_like_the_python_objective(tmp_path):
+    # train() hands the gaussian gradients to LightGBM's built-in l2 objective (exactly the family's
+    # in dispersion units); everything observable must be the same as with the Python objective
+    name = "gaussian"
+    Xtr, ytr, Xte, yte = _simulate(name)
+    fam = lossfam.family(name, scale=3.0)
+    w = np.random.default_rng(6).uniform(0.5, 2.0, ytr.size)
+    fits, logs = {}, {}
+    for shortcut in (True, False):
+        evals = {}
+        fits[shortcut] = lfl.train(fam, PARAMS, lgb.Dataset(Xtr, ytr, weight=w), 40,
+                                   builtin_if_exact=shortcut, valid_sets=[lgb.Dataset(Xte, yte)],
+                                   callbacks=[lgb.record_evaluation(evals)])
+        logs[shortcut] = evals["valid_0"][f"{name}_nll"]
+    fast, slow = fits[True], fits[False]
+    assert "objective=regression" in fast.booster.model_to_string()
+    assert "objective=regression" not in slow.booster.model_to_string()
+    assert fast.baseline == slow.baseline
+    assert fast.fitted_family.params == pytest.approx(slow.fitted_family.params, rel=1e-9)
+    np.testing.assert_allclose(fast.predict_raw(Xte), slow.predict_raw(Xte), rtol=0, atol=1e-6)
+    np.testing.assert_allclose(logs[True], logs[False], rtol=1e-7)
+    fast.save(tmp_path / "fast.json")
+    assert np.array_equal(lfl.load(tmp_path / "fast.json").predict(Xte), fast.predict(Xte))
 
 
 def test_objective_serves_lgb_train_and_the_sklearn_estimator():
