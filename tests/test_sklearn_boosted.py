@@ -107,7 +107,7 @@ def test_eval_set_reports_the_family_nll(name):
 
 
 def test_params_are_clone_safe_and_nested():
-    est = LossfamBoostRegressor(lgb.LGBMRegressor(n_estimators=7, verbose=-1), family="gamma")
+    est = LossfamBoostRegressor(lgb.LGBMRegressor(n_estimators=7, verbose=-1, n_jobs=1), family="gamma")
     params = est.get_params(deep=True)
     assert params["estimator__n_estimators"] == 7 and params["family"] == "gamma"
     est.set_params(estimator__n_estimators=11, family_params={"shape": 2.0})
