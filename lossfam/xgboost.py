@@ -119,6 +119,9 @@ LOG_LINK_STEP_CAP = 2.0
 #: at the baseline before training (it only sets the surrogate's floor and Hessian units)
 _SCALE_FREE_LOCATION = frozenset({"laplace", "asymmetric_laplace"})
 
+#: rows per block for the step guard's scratch array
+_BLOCK = 1 << 16
+
 
 def _xgb():
     """Import the engine on first use (absolute import: the real xgboost package)."""
@@ -160,10 +163,6 @@ class _TargetCache:
         self._ref = weakref.ref(dmatrix)
         self.y, self.w = y, w
         return y, w
-
-    def clear(self):
-        self._ref = None
-        self.y = self.w = None
 
 
 class _Objective:
@@ -215,10 +214,14 @@ class _Objective:
         if self.hessian_factor != 1.0:
             g *= self.hessian_factor
             h *= self.hessian_factor
-        if self.step_cap is not None:
-            a = np.abs(g, out=self._buffer("_tmp_buf", g.size))
-            a *= 1.0 / self.step_cap
-            np.maximum(h, a, out=h)  # NaN in g or h propagates and is caught below
+        if self.step_cap is not None:  # h = max(h, |g| / step_cap), in blocks to keep the scratch small
+            inv_cap = 1.0 / self.step_cap
+            tmp = self._buffer("_tmp_buf", min(g.size, _BLOCK))
+            for i in range(0, g.size, _BLOCK):
+                gb, hb = g[i : i + _BLOCK], h[i : i + _BLOCK]
+                a = np.abs(gb, out=tmp[: gb.size])
+                a *= inv_cap
+                np.maximum(hb, a, out=hb)  # NaN in g or h propagates and is caught below
         if w is not None:
             g *= w
             h *= w
@@ -540,33 +543,48 @@ def train(
             if o is not None:
                 dm.set_base_margin(o + baseline)
                 shifted.append((dm, original))
+        # both paths also return the training raw scores of the final model when the
+        # family has nuisance parameters to fit (dtrain still carries offset + baseline)
         if leaf_refit:
-            booster, extra = _train_refit(xgb, obj, fam, params, dtrain, y, w, offset, baseline,
-                                          num_boost_round, evals, feval, engine_kwargs)
+            booster, extra, train_raw = _train_refit(xgb, obj, fam, params, dtrain, y, w, offset, baseline,
+                                                     num_boost_round, evals, feval, engine_kwargs)
         else:
-            booster, extra = _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval, engine_kwargs)
-        # the training raw scores of the final model (dtrain still carries offset + baseline)
-        train_raw = np.asarray(booster.predict(dtrain, output_margin=True), dtype=np.float64) if fam.params else None
+            booster, extra, train_raw = _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval,
+                                                      engine_kwargs, bool(fam.params))
     finally:
         for dm, original in shifted:
             dm.set_base_margin(original)
 
     extra.update(step_cap=obj.step_cap, leaf_refit=bool(leaf_refit), training_params=train_fam.params)
-    fitted = fam.fit_params(y, train_raw, w) if fam.params else fam
+    fitted = fam.fit_params(y, np.asarray(train_raw, dtype=np.float64), w) if fam.params else fam
     return BoostedLossModel(booster, fam, baseline, fitted, extra)
 
 
-def _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval, kw):
+def _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval, kw, want_raw):
     if evals:
         kw = dict(kw, custom_metric=feval, maximize=False)
+    keep = None
+    if want_raw:
+        # read the training raw scores before xgb.train drops its prediction cache
+        class _KeepTrainingRaw(xgb.callback.TrainingCallback):
+            raw = None
+
+            def after_training(self, model):
+                self.raw = model.predict(dtrain, output_margin=True)
+                return model
+
+        keep = _KeepTrainingRaw()
+        kw = dict(kw, callbacks=list(kw.get("callbacks") or []) + [keep])
     booster = xgb.train(params, dtrain, num_boost_round, evals=evals, obj=obj, **kw)
     extra = {}
     best = _best_iteration(booster) if kw.get("early_stopping_rounds") else None
+    raw = None if keep is None else keep.raw
     if best is not None and best + 1 < booster.num_boosted_rounds():
         booster = booster[: best + 1]
+        raw = None if keep is None else booster.predict(dtrain, output_margin=True)
     if best is not None:
         extra["best_iteration"] = best
-    return booster, extra
+    return booster, extra, raw
 
 
 def _best_iteration(booster):
@@ -584,9 +602,11 @@ def _train_refit(xgb, obj, fam, params, dtrain, y, w, offset, baseline, num_boos
             f"with leaf_refit lossfam runs the boosting rounds itself and does not accept {unknown}; "
             f"it accepts evals, custom_metric and {sorted(allowed)}"
         )
+    if int(params.get("num_parallel_tree", 1)) != 1 or params.get("booster", "gbtree") != "gbtree":
+        raise ValueError("leaf_refit needs one tree per round (booster='gbtree', num_parallel_tree=1)")
     stop_rounds = kw.get("early_stopping_rounds")
     history = kw.get("evals_result")
-    verbose = kw.get("verbose_eval")
+    verbose = kw.get("verbose_eval", True)  # the engine's default
     eta = float(params.get("learning_rate", params.get("eta", 0.3)))
 
     booster = xgb.Booster(params, [dtrain] + [d for d, _ in evals])
@@ -632,7 +652,9 @@ def _train_refit(xgb, obj, fam, params, dtrain, y, w, offset, baseline, num_boos
         extra["best_iteration"] = best_iter
         if best_iter + 1 < booster.num_boosted_rounds():
             booster = booster[: best_iter + 1]
-    return booster, extra
+    # the engine's float32 sums of the written leaves (the tracked raw differs in the last bits)
+    train_raw = booster.predict(dtrain, output_margin=True) if fam.params else None
+    return booster, extra, train_raw
 
 
 def _refit_table(fam, y, w, raw, leaves, eta):
