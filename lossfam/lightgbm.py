@@ -136,6 +136,7 @@ _INSTALL = 'lossfam.lightgbm needs lightgbm: install it with pip install "lossfa
 _ENGINE = "lightgbm"
 _DEFAULT_LOG_STEP = 0.5
 _LR_NAMES = ("learning_rate", "shrinkage_rate", "eta")
+_THREAD_NAMES = ("num_threads", "num_thread", "nthread", "nthreads", "n_jobs")
 
 
 def _lgb():
@@ -542,6 +543,7 @@ class _LeafRefit:
         self.booster = None
         self.done = 0
         self.scale = float(fam.params.get("scale", 1.0))
+        self.predict_kw = {}  # e.g. num_threads, so leaf lookups use the training's thread count
 
     def track(self, data, X, start):
         self.datasets.append(data)
@@ -562,7 +564,8 @@ class _LeafRefit:
             return
         while self.done < b.num_trees():
             t = self.done
-            leaves = [np.asarray(b.predict(X, pred_leaf=True, start_iteration=t, num_iteration=1)).astype(np.int64).ravel()
+            leaves = [np.asarray(b.predict(X, pred_leaf=True, start_iteration=t, num_iteration=1,
+                                           **self.predict_kw)).astype(np.int64).ravel()
                       for X in self.X]
             n_leaves = int(leaves[0].max()) + 1
             for lv in leaves[1:]:
@@ -706,6 +709,10 @@ def train(family, params, data, num_boost_round=100, *, offset=None, valid_offse
             raise ValueError("leaf refit keeps its own scores; LightGBM's built-in metrics would see the unedited "
                              "ones: drop params['metric'] or pass leaf_refit=False")
         refit = _LeafRefit(fam, q, _learning_rate(params), y, w, _feature_data(data, "data"), start)
+        for k in _THREAD_NAMES:
+            if k in params:
+                refit.predict_kw = {"num_threads": int(params[k])}
+                break
         for k, vs in enumerate(valid_sets):
             if k in starts:
                 refit.track(vs, _feature_data(vs, f"valid_sets[{k}]"), starts[k])

@@ -31,7 +31,7 @@ def test_dask_poisson_matches_single_machine():
     kw = dict(objective=lfl.objective(fam), n_estimators=40, learning_rate=0.1, num_leaves=15,
               min_child_samples=20, metric="None", verbosity=-1, random_state=1)
 
-    single = lgb.LGBMRegressor(n_jobs=2, **kw)
+    single = lgb.LGBMRegressor(n_jobs=1, **kw)
     single.fit(X, y, init_score=np.full(y.size, base))
     raw_single = base + single.predict(Xte, raw_score=True)
 
