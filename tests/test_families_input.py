@@ -7,7 +7,6 @@ import numpy as np
 import pytest
 
 import lossfam
-from lossfam import Family
 
 pytestmark = pytest.mark.filterwarnings("error")
 

@@ -5,7 +5,6 @@ Every nll is checked against minus the log density or mass of scipy.stats' own i
 the law (scipy.stats.norm, laplace, laplace_asymmetric, bernoulli, poisson, gamma), to 1e-10
 relative (relative to max(1, |nll|) so values that cross zero are held to 1e-10 absolute).
 """
-import warnings
 
 import numpy as np
 import pytest

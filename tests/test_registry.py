@@ -4,12 +4,10 @@ from dataclasses import dataclass
 import numpy as np
 import pytest
 from scipy import stats
-from scipy.special import expit, log_expit
 
 import lossfam
-from lossfam._checks import POSITIVE, REAL
-from lossfam.links import IDENTITY
 from lossfam.testing import verify_family
+from user_families import LogisticErrors
 
 
 def test_available_is_sorted_and_complete():
@@ -29,38 +27,11 @@ def test_family_objects(name):
         f.name = "other"
 
 
-@dataclass(frozen=True)
-class Logistic(lossfam.Family):
-    """Logistic errors: p(y) = e^-z / (s (1 + e^-z)^2), z = (y - raw)/s.
-
-    nll = -log_expit(z) - log_expit(-z) + log s;  gradient = -(2 expit(z) - 1)/s;
-    Hessian = 2 expit(z) expit(-z) / s^2.
-    """
-
-    scale: float = 1.0
-
-    name = "logistic_test"
-    link_function = IDENTITY
-    target_domain = REAL
-    param_domains = {"scale": POSITIVE}
-
-    def _nll(self, y, raw):
-        z = (y - raw) / self.scale
-        return -log_expit(z) - log_expit(-z) + np.log(self.scale)
-
-    def _grad_hess(self, y, raw):
-        z = (y - raw) / self.scale
-        return -(2 * expit(z) - 1) / self.scale, 2 * expit(z) * expit(-z) / self.scale**2
-
-    def _distribution(self, raw):
-        return stats.logistic(loc=raw, scale=self.scale)
-
-
 def test_register_a_user_family(rng):
-    lossfam.register(Logistic)
+    lossfam.register(LogisticErrors)
     try:
-        assert "logistic_test" in lossfam.available()
-        f = lossfam.family("logistic_test", scale=2.0)
+        assert "logistic_errors_test" in lossfam.available()
+        f = lossfam.family("logistic_errors_test", scale=2.0)
         y = rng.logistic(1.0, 2.0, size=400)
         raw = np.full_like(y, 0.8)
         # outside reference: scipy.stats.logistic
@@ -72,17 +43,17 @@ def test_register_a_user_family(rng):
         s = f.fit_params(y, np.full_like(y, c)).scale
         assert abs(s - stats.logistic.fit(y, floc=c)[1]) < 1e-3
         with pytest.raises(ValueError, match="already registered"):
-            lossfam.register(type("Other", (Logistic,), {"name": "gaussian"}))
+            lossfam.register(type("Other", (LogisticErrors,), {"name": "gaussian"}))
         with pytest.raises(ValueError, match="unknown parameter"):
-            lossfam.family("logistic_test", shape=1.0)
+            lossfam.family("logistic_errors_test", shape=1.0)
     finally:
-        lossfam.unregister("logistic_test")
-    assert "logistic_test" not in lossfam.available()
+        lossfam.unregister("logistic_errors_test")
+    assert "logistic_errors_test" not in lossfam.available()
 
 
 def test_verify_family_catches_a_wrong_gradient(rng):
     @dataclass(frozen=True)
-    class Broken(Logistic):
+    class Broken(LogisticErrors):
         name = "broken_test"
 
         def _grad_hess(self, y, raw):

@@ -7,7 +7,6 @@ Outside references used below:
 * scikit-learn's d2_* and r2 scores, scipy.stats log densities, scipy.optimize for maximum likelihood;
 * datasets that ship inside statsmodels and scikit-learn (named beside each check).
 """
-import dataclasses
 import subprocess
 import sys
 import warnings
@@ -16,11 +15,9 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 from scipy import optimize, stats
-from scipy.special import expit, log_expit
 
 import lossfam
-from lossfam._checks import POSITIVE, REAL
-from lossfam.links import IDENTITY
+from user_families import LogisticErrors
 from lossfam.sklearn import (
     LikelihoodClassifier,
     LikelihoodRegressor,
@@ -543,30 +540,6 @@ def test_missing_sklearn_names_the_extra():
 
 
 # --------------------------------------------------------------------------- a user family
-@dataclasses.dataclass(frozen=True)
-class LogisticErrors(lossfam.Family):
-    """Logistic errors with scale s: nll = -log_expit(z) - log_expit(-z) + log s, z = (y - raw)/s;
-    gradient -(2 expit(z) - 1)/s, Hessian 2 expit(z) expit(-z)/s^2 (exact)."""
-
-    scale: float = 1.0
-
-    name = "logistic_errors_sk_test"
-    link_function = IDENTITY
-    target_domain = REAL
-    param_domains = {"scale": POSITIVE}
-
-    def _nll(self, y, raw):
-        z = (y - raw) / self.scale
-        return -log_expit(z) - log_expit(-z) + np.log(self.scale)
-
-    def _grad_hess(self, y, raw):
-        z = (y - raw) / self.scale
-        return -(2 * expit(z) - 1) / self.scale, 2 * expit(z) * expit(-z) / self.scale**2
-
-    def _distribution(self, raw):
-        return stats.logistic(loc=raw, scale=self.scale)
-
-
 def test_user_family_with_exact_hessian_is_fitted_by_newton():
     rng = np.random.default_rng(21)
     X = rng.standard_normal((500, 3))

@@ -40,8 +40,7 @@ from sklearn.utils.validation import check_is_fitted, column_or_1d, validate_dat
 
 from ..families import AsymmetricLaplace, Laplace
 from ..registry import family as make_family
-from .linear import _check_offset, _check_sample_weight
-from .metrics import d2_score
+from .linear import _check_offset, _check_sample_weight, _RawScoreRegressorMethods
 
 
 def _engine_of(estimator, owner):
@@ -156,7 +155,7 @@ class _BoostBase(BaseEstimator):
         return self._raw(X, offset)
 
 
-class LossfamBoostRegressor(RegressorMixin, _BoostBase):
+class LossfamBoostRegressor(_RawScoreRegressorMethods, RegressorMixin, _BoostBase):
     """A LightGBM or XGBoost regressor trained on the nll of a lossfam family.
 
     Parameters
@@ -206,23 +205,6 @@ class LossfamBoostRegressor(RegressorMixin, _BoostBase):
         offset = _check_offset(offset, y.shape[0], owner)
         return self._fit_engine(fam, X, y, w, offset, eval_set, fit_params)
 
-    def predict_raw(self, X, offset=None):
-        """Raw score: trees + baseline_ (+ offset), on the link scale."""
-        return self._raw_score(X, offset)
-
-    def predict(self, X, offset=None):
-        """``family_.inverse_link(raw)``: the mean (or median / quantile / location)."""
-        raw = self._raw_score(X, offset)
-        return self.family_.inverse_link(raw)
-
-    def predict_distribution(self, X, offset=None):
-        raw = self._raw_score(X, offset)
-        return self.family_.distribution(raw)
-
-    def score(self, X, y, sample_weight=None):
-        """D^2, the fraction of deviance explained (see lossfam.sklearn.d2_score)."""
-        pred = self.predict(X)
-        return d2_score(y, pred, self.family_, sample_weight=sample_weight)
 
 
 class LossfamBoostClassifier(ClassifierMixin, _BoostBase):

@@ -104,7 +104,6 @@ def _check_sample_weight(sample_weight, y, owner):
 
 def _fit_linear(est, fam, X, y, w, offset):
     """Solve the penalised problem for ``fam``; return the fit."""
-    owner = type(est).__name__
     n, p = X.shape
     v = w / w.sum()
     alpha = float(est.alpha)
@@ -184,7 +183,31 @@ def _warn_if_separated(est, X, y01, w, raw):
         )
 
 
-class LikelihoodRegressor(RegressorMixin, BaseEstimator):
+class _RawScoreRegressorMethods:
+    """predict_raw / predict / predict_distribution / score for a regressor with ``_raw_score``
+    (the raw score of X, offset included) and a fitted ``family_``."""
+
+    def predict_raw(self, X, offset=None):
+        """The raw score (+ offset), on the link scale."""
+        return self._raw_score(X, offset)
+
+    def predict(self, X, offset=None):
+        """The prediction on the response scale: ``family_.inverse_link(raw)`` (mean, median or quantile)."""
+        raw = self._raw_score(X, offset)
+        return self.family_.inverse_link(raw)
+
+    def predict_distribution(self, X, offset=None):
+        """The predictive law of each row: ``family_.distribution(raw)``."""
+        raw = self._raw_score(X, offset)
+        return self.family_.distribution(raw)
+
+    def score(self, X, y, sample_weight=None):
+        """D^2: the fraction of (weighted) deviance explained, relative to the weighted baseline of y."""
+        pred = self.predict(X)
+        return d2_score(y, pred, self.family_, sample_weight=sample_weight)
+
+
+class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimator):
     """Linear model fitted by penalised maximum likelihood under a lossfam family.
 
     Minimises ``(1 / sum w) sum w nll(y, X coef + intercept + offset) + alpha / 2 ||coef||^2``
@@ -265,24 +288,6 @@ class LikelihoodRegressor(RegressorMixin, BaseEstimator):
         o = _check_offset(offset, X.shape[0], type(self).__name__)
         return raw if o is None else raw + o
 
-    def predict_raw(self, X, offset=None):
-        """The raw score X coef + intercept (+ offset), on the link scale."""
-        return self._raw_score(X, offset)
-
-    def predict(self, X, offset=None):
-        """The prediction on the response scale: ``family_.inverse_link(raw)`` (mean, median or quantile)."""
-        raw = self._raw_score(X, offset)
-        return self.family_.inverse_link(raw)
-
-    def predict_distribution(self, X, offset=None):
-        """The predictive law of each row: ``family_.distribution(raw)``."""
-        raw = self._raw_score(X, offset)
-        return self.family_.distribution(raw)
-
-    def score(self, X, y, sample_weight=None):
-        """D^2: the fraction of (weighted) deviance explained, relative to the weighted baseline of y."""
-        pred = self.predict(X)
-        return d2_score(y, pred, self.family_, sample_weight=sample_weight)
 
 
 class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
