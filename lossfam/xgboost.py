@@ -323,10 +323,28 @@ def _resolve_step_cap(fam, step_cap):
 
 
 def _hessian_factor(fam):
-    """scale**2 for surrogate-Hessian families (dimensionless Hessian), else 1."""
-    if not fam.exact_hessian and "scale" in fam.params:
+    """scale**2 for surrogate-Hessian families and gaussian (dimensionless Hessian), else 1.
+
+    For gaussian this makes the gradient and Hessian exactly those of
+    reg:squarederror (raw - y and 1) whatever the scale, so the regulariser
+    ``lambda`` and ``min_child_weight`` mean what they mean for the built-in.
+    """
+    if (not fam.exact_hessian or fam.name == "gaussian") and "scale" in fam.params:
         return float(fam.params["scale"]) ** 2
     return 1.0
+
+
+def _native_twin(fam, step_cap, leaf_refit):
+    """The built-in objective that computes exactly this family's scaled gradients, or None.
+
+    Only gaussian qualifies: with the Hessian factor scale**2 its gradient and
+    Hessian are raw - y and 1, which is what reg:squarederror computes (in C++,
+    without a Python round trip per round).  Its prediction transform is the
+    identity, so a custom metric sees the same margins either way.
+    """
+    if fam.name == "gaussian" and step_cap is None and not leaf_refit:
+        return "reg:squarederror"
+    return None
 
 
 # ---------------------------------------------------------------------------- model
@@ -464,6 +482,7 @@ def train(
     step_cap="auto",
     leaf_refit=None,
     metric_kind="nll",
+    builtin_if_exact=True,
     **engine_kwargs,
 ):
     """Train an XGBoost booster on the family's nll; returns a :class:`BoostedLossModel`.
@@ -485,6 +504,11 @@ def train(
         module docstring).  None: on for families without an exact Hessian.
     metric_kind : "nll" or "deviance"
         The metric reported for ``evals`` (``custom_metric`` overrides it).
+    builtin_if_exact : bool
+        When the engine has a built-in objective whose gradients are exactly
+        the family's (gaussian: reg:squarederror), let the engine compute them:
+        the same trees, predictions, metric, baseline and saved model, without
+        the per-round Python round trip.  False forces the custom objective.
     **engine_kwargs
         Passed to ``xgboost.train`` (``evals``, ``early_stopping_rounds``,
         ``evals_result``, ``verbose_eval``, ``callbacks``, ``custom_metric``...).
@@ -549,8 +573,12 @@ def train(
             booster, extra, train_raw = _train_refit(xgb, obj, fam, params, dtrain, y, w, offset, baseline,
                                                      num_boost_round, evals, feval, engine_kwargs)
         else:
-            booster, extra, train_raw = _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval,
-                                                      engine_kwargs, bool(fam.params))
+            twin = _native_twin(fam, obj.step_cap, leaf_refit) if builtin_if_exact else None
+            if twin is not None:
+                params["objective"] = twin
+            booster, extra, train_raw = _train_engine(xgb, None if twin else obj, params, dtrain, num_boost_round,
+                                                      evals, feval, engine_kwargs, bool(fam.params))
+            extra["engine_objective"] = twin or "custom"
     finally:
         for dm, original in shifted:
             dm.set_base_margin(original)

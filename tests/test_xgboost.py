@@ -103,6 +103,31 @@ def test_parity_with_builtin_objective(features, name, fam_params, builtin, scor
     assert s_ours <= 1.01 * s_ref, f"{name} {fam_params}: held-out {s_ours:.5f} vs built-in {s_ref:.5f}"
 
 
+@pytest.mark.parametrize("scale", [1.0, 2.5])
+def test_gaussian_native_path_behaves_like_the_custom_objective(features, scale):
+    # builtin_if_exact lets reg:squarederror compute the (scale-free) gaussian gradients; the
+    # model must be the same as the pure custom objective's: predictions, metric log, baseline,
+    # fitted scale and distribution.
+    X, f = features
+    y = _scenario("gaussian", X, f)
+    fam = lossfam.family("gaussian", scale=scale)
+    n = 5000
+    runs = {}
+    for native in (True, False):
+        log = {}
+        model = lx.train(fam, dict(PARAMS, nthread=1), xgb.DMatrix(X[:n], label=y[:n]), 30,
+                         evals=[(xgb.DMatrix(X[n:2 * n], label=y[n:2 * n]), "valid")], evals_result=log,
+                         verbose_eval=False, builtin_if_exact=native)
+        runs[native] = (model, log["valid"]["gaussian_nll"])
+    (m1, log1), (m0, log0) = runs[True], runs[False]
+    assert m1.extra["engine_objective"] == "reg:squarederror" and m0.extra["engine_objective"] == "custom"
+    assert m1.baseline == m0.baseline
+    assert np.max(np.abs(m1.predict(X[-1000:]) - m0.predict(X[-1000:]))) < 1e-6
+    assert np.allclose(log1, log0, rtol=1e-7)
+    assert m1.fitted_family.scale == pytest.approx(m0.fitted_family.scale, rel=1e-7)
+    assert np.allclose(m1.distribution(X[:5]).std(), m0.distribution(X[:5]).std(), rtol=1e-7)
+
+
 def test_huber_no_worse_than_pseudohuber(features):
     # No built-in twin: reg:pseudohubererror is a smooth approximation of the Huber loss.  Both
     # are scored by the held-out Huber loss rho_delta((y - m) / s) with the same threshold
