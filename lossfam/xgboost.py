@@ -55,6 +55,12 @@ a zero Hessian makes the engine ignore the row; a NaN spreads silently.
   ``-g_i / h_i`` (shrunk further by ``lambda``), so no leaf moves by more than
   ``step_cap`` (times the learning rate) in one round.  Rows whose own step is
   already shorter keep their exact Hessian.
+* ``step_cap="damped"`` instead uses XGBoost's own Poisson guard: every
+  Hessian is multiplied by e^0.7, a uniform halving of all Newton steps, and
+  ``train`` sets the tree parameter ``max_delta_step=0.7``, which clips every
+  leaf value to +-0.7 before the learning rate (count:poisson does both).  For
+  poisson ``train`` then lets count:poisson compute these very gradients
+  (``builtin_if_exact``).
 * A row with zero Hessian and non-zero gradient (which the engine would
   ignore) gets ``h = |g|`` (a unit step) when ``step_cap`` is off.
 * A NaN or infinite gradient or Hessian raises ValueError naming the rows.
@@ -168,10 +174,11 @@ class _TargetCache:
 class _Objective:
     """Gradient and Hessian of a family's nll for XGBoost (see the module docstring)."""
 
-    def __init__(self, fam, step_cap, hessian_factor):
+    def __init__(self, fam, step_cap, hessian_factor, damping=None):
         self.family = fam
         self.step_cap = step_cap
         self.hessian_factor = hessian_factor
+        self.damping = damping  # log of the factor applied to every Hessian, or None
         self.__name__ = f"{fam.name}_objective"
         self._dmatrix_type = _xgb().DMatrix
         self._cache = _TargetCache()
@@ -185,10 +192,11 @@ class _Objective:
         return buf
 
     def __getstate__(self):  # picklable for xgboost.dask: drop the engine class and the cache
-        return {"family": self.family, "step_cap": self.step_cap, "hessian_factor": self.hessian_factor}
+        return {"family": self.family, "step_cap": self.step_cap, "hessian_factor": self.hessian_factor,
+                "damping": self.damping}
 
     def __setstate__(self, state):
-        self.__init__(state["family"], state["step_cap"], state["hessian_factor"])
+        self.__init__(state["family"], state["step_cap"], state["hessian_factor"], state.get("damping"))
 
     def __call__(self, first, second, sample_weight=None):
         fam = self.family
@@ -214,6 +222,8 @@ class _Objective:
         if self.hessian_factor != 1.0:
             g *= self.hessian_factor
             h *= self.hessian_factor
+        if self.damping is not None:
+            h *= math.exp(self.damping)
         if self.step_cap is not None:  # h = max(h, |g| / step_cap), in blocks to keep the scratch small
             inv_cap = 1.0 / self.step_cap
             tmp = self._buffer("_tmp_buf", min(g.size, _BLOCK))
@@ -295,13 +305,15 @@ def objective(family, *, step_cap="auto"):
     Parameters
     ----------
     family : str or lossfam.Family
-    step_cap : float, None or "auto"
+    step_cap : float, None, "auto" or "damped"
         Largest Newton step a row may ask for, on the raw scale: each row's
         Hessian is raised to at least ``|g| / step_cap``.  ``"auto"`` means
-        ``LOG_LINK_STEP_CAP`` (2.0) for log-link families and None (off) otherwise.
+        ``LOG_LINK_STEP_CAP`` (2.0) for log-link families and None (off) otherwise;
+        ``"damped"`` multiplies every Hessian by e^0.7 instead (count:poisson's guard).
     """
     fam = _as_family(family)
-    return _Objective(fam, _resolve_step_cap(fam, step_cap), _hessian_factor(fam))
+    cap, damping = _resolve_guard(fam, step_cap)
+    return _Objective(fam, cap, _hessian_factor(fam), damping)
 
 
 def metric(family, kind="nll"):
@@ -309,10 +321,21 @@ def metric(family, kind="nll"):
     return _Metric(_as_family(family), kind)
 
 
+#: count:poisson's default max_delta_step: its Hessian is e^(raw + 0.7)
+ENGINE_POISSON_DAMPING = 0.7
+
+
+def _resolve_guard(fam, step_cap):
+    """(step cap or None, Hessian damping or None) from the ``step_cap`` argument."""
+    if isinstance(step_cap, str) and step_cap == "damped":
+        return None, ENGINE_POISSON_DAMPING
+    return _resolve_step_cap(fam, step_cap), None
+
+
 def _resolve_step_cap(fam, step_cap):
     if isinstance(step_cap, str):
         if step_cap != "auto":
-            raise ValueError(f"step_cap must be a positive number, None or 'auto', got {step_cap!r}")
+            raise ValueError(f"step_cap must be a positive number, None, 'auto' or 'damped', got {step_cap!r}")
         return _default_step_cap(fam)
     if step_cap is None:
         return None
@@ -334,17 +357,34 @@ def _hessian_factor(fam):
     return 1.0
 
 
-def _native_twin(fam, step_cap, leaf_refit):
-    """The built-in objective that computes exactly this family's scaled gradients, or None.
+def _native_twin(fam, obj, leaf_refit, params):
+    """The built-in objective that computes exactly this objective's gradients, or None.
 
-    Only gaussian qualifies: with the Hessian factor scale**2 its gradient and
-    Hessian are raw - y and 1, which is what reg:squarederror computes (in C++,
-    without a Python round trip per round).  Its prediction transform is the
-    identity, so a custom metric sees the same margins either way.
+    gaussian: with the Hessian factor scale**2 its gradient and Hessian are
+    raw - y and 1, which is what reg:squarederror computes (in C++, without a
+    Python round trip per round).  poisson with ``step_cap="damped"``: gradient
+    e^raw - y and Hessian e^(raw + 0.7) with leaves clipped by the tree
+    parameter max_delta_step = 0.7, which is what count:poisson does.
     """
-    if fam.name == "gaussian" and step_cap is None and not leaf_refit:
+    if leaf_refit or obj.step_cap is not None:
+        return None
+    if fam.name == "gaussian" and obj.damping is None:
         return "reg:squarederror"
+    if (fam.name == "poisson" and obj.damping == ENGINE_POISSON_DAMPING
+            and float(params.get("max_delta_step", 0.0)) == ENGINE_POISSON_DAMPING):
+        return "count:poisson"
     return None
+
+
+class _MeanScaleMetric:
+    """Adapts a raw-score metric to a built-in log-link objective, whose custom metric sees means."""
+
+    def __init__(self, inner):
+        self.inner = inner
+
+    def __call__(self, preds, dmatrix):
+        with np.errstate(divide="ignore"):
+            return self.inner(np.log(np.asarray(preds, dtype=np.float64)), dmatrix)
 
 
 # ---------------------------------------------------------------------------- model
@@ -497,7 +537,7 @@ def train(
     dtrain : xgboost.DMatrix
         Training data with labels, optional weights and optional offset (as base_margin).
     num_boost_round : int
-    step_cap : float, None or "auto"
+    step_cap : float, None, "auto" or "damped"
         See :func:`objective`.
     leaf_refit : bool or None
         Refit each new tree's leaves to the exact per-leaf minimiser (see the
@@ -550,7 +590,10 @@ def train(
     if fam.name in _SCALE_FREE_LOCATION and "scale" in fam.params:
         start = np.full_like(y, baseline) if offset is None else offset + baseline
         train_fam = fam.fit_params(y, start, w)
-    obj = _Objective(train_fam, _resolve_step_cap(fam, step_cap), _hessian_factor(train_fam))
+    cap, damping = _resolve_guard(fam, step_cap)
+    obj = _Objective(train_fam, cap, _hessian_factor(train_fam), damping)
+    if damping is not None:  # the engine's guard also clips every leaf at the same step
+        params.setdefault("max_delta_step", damping)
     obj._cache.y, obj._cache.w, obj._cache._ref = y, w, weakref.ref(dtrain)
 
     params["base_score"] = baseline
@@ -573,9 +616,12 @@ def train(
             booster, extra, train_raw = _train_refit(xgb, obj, fam, params, dtrain, y, w, offset, baseline,
                                                      num_boost_round, evals, feval, engine_kwargs)
         else:
-            twin = _native_twin(fam, obj.step_cap, leaf_refit) if builtin_if_exact else None
+            twin = _native_twin(fam, obj, leaf_refit, params) if builtin_if_exact else None
             if twin is not None:
                 params["objective"] = twin
+            if twin == "count:poisson":  # its base_score is a mean; its metric inputs are means
+                params["base_score"] = math.exp(baseline)
+                feval = _MeanScaleMetric(feval)
             booster, extra, train_raw = _train_engine(xgb, None if twin else obj, params, dtrain, num_boost_round,
                                                       evals, feval, engine_kwargs, bool(fam.params))
             extra["engine_objective"] = twin or "custom"
@@ -583,7 +629,8 @@ def train(
         for dm, original in shifted:
             dm.set_base_margin(original)
 
-    extra.update(step_cap=obj.step_cap, leaf_refit=bool(leaf_refit), training_params=train_fam.params)
+    extra.update(step_cap=obj.step_cap, hessian_damping=obj.damping, leaf_refit=bool(leaf_refit),
+                 training_params=train_fam.params)
     fitted = fam.fit_params(y, np.asarray(train_raw, dtype=np.float64), w) if fam.params else fam
     return BoostedLossModel(booster, fam, baseline, fitted, extra)
 

@@ -128,6 +128,31 @@ def test_gaussian_native_path_behaves_like_the_custom_objective(features, scale)
     assert np.allclose(m1.distribution(X[:5]).std(), m0.distribution(X[:5]).std(), rtol=1e-7)
 
 
+def test_poisson_damped_guard_native_path_matches_custom_and_builtin(features):
+    # step_cap="damped" is count:poisson's own guard (Hessian x e^0.7, leaves clipped at 0.7):
+    # the native path (count:poisson computes the gradients) must give the custom objective's
+    # model, and both must match the built-in count:poisson started at the same baseline.
+    X, f = features
+    y = _scenario("poisson", X, f)
+    n = 5000
+    runs = {}
+    for native in (True, False):
+        log = {}
+        model = lx.train("poisson", dict(PARAMS, nthread=1), xgb.DMatrix(X[:n], label=y[:n]), 30,
+                         evals=[(xgb.DMatrix(X[n:2 * n], label=y[n:2 * n]), "valid")], evals_result=log,
+                         verbose_eval=False, step_cap="damped", builtin_if_exact=native)
+        runs[native] = (model, log["valid"]["poisson_nll"])
+    (m1, log1), (m0, log0) = runs[True], runs[False]
+    assert m1.extra["engine_objective"] == "count:poisson" and m0.extra["engine_objective"] == "custom"
+    assert m1.baseline == m0.baseline
+    held = X[-1000:]
+    assert np.max(np.abs(m1.predict(held) / m0.predict(held) - 1)) < 1e-6
+    assert np.allclose(log1, log0, rtol=1e-7)
+    ref = xgb.train(dict(PARAMS, nthread=1, objective="count:poisson", base_score=float(np.exp(m0.baseline))),
+                    xgb.DMatrix(X[:n], label=y[:n]), 30)
+    assert np.max(np.abs(ref.predict(xgb.DMatrix(held)) / m0.predict(held) - 1)) < 1e-5
+
+
 def test_huber_no_worse_than_pseudohuber(features):
     # No built-in twin: reg:pseudohubererror is a smooth approximation of the Huber loss.  Both
     # are scored by the held-out Huber loss rho_delta((y - m) / s) with the same threshold
