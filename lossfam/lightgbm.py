@@ -126,6 +126,7 @@ import numpy as np
 
 from . import _checks
 from ._modelfile import read_model_file, write_model_file
+from ._scoring import check_metric_kind, per_row_loss
 from .families import AsymmetricLaplace, Gaussian, Laplace
 from .links import LOG
 from .registry import family as make_family
@@ -322,17 +323,14 @@ class _Metric:
     """Weighted mean nll or unit deviance as a LightGBM metric (see ``metric``)."""
 
     def __init__(self, fam, kind):
-        if kind not in ("nll", "deviance"):
-            raise ValueError(f"metric kind must be 'nll' or 'deviance', got {kind!r}")
         self.family = fam
-        self.kind = kind
+        self.kind = check_metric_kind(kind)
         self.name = f"{fam.name}_{kind}"
         self._cache = _TargetCache()
 
     def value(self, y, raw, w):
         """Weighted mean of the per-row nll (or deviance) for validated ``y``."""
-        with np.errstate(over="ignore"):
-            per_row = self.family._nll(y, raw) if self.kind == "nll" else self.family._deviance(y, raw)
+        per_row = per_row_loss(self.family, self.kind, y, raw)
         if w is None:
             return float(np.mean(per_row))
         return float(np.dot(w, per_row) / np.sum(w))

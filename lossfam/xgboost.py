@@ -110,6 +110,7 @@ import numpy as np
 
 from . import _checks
 from ._modelfile import read_model_file, write_model_file
+from ._scoring import check_metric_kind, per_row_loss
 from .links import LOG
 from .registry import family as _as_family
 
@@ -257,10 +258,8 @@ class _Metric:
     """Weighted mean nll or unit deviance, for both engine call styles."""
 
     def __init__(self, fam, kind):
-        if kind not in ("nll", "deviance"):
-            raise ValueError(f"metric kind must be 'nll' or 'deviance', got {kind!r}")
         self.family = fam
-        self.kind = kind
+        self.kind = check_metric_kind(kind)
         self.__name__ = f"{fam.name}_{kind}"
         self._dmatrix_type = _xgb().DMatrix
         self._cache = _TargetCache()
@@ -285,9 +284,7 @@ class _Metric:
         return self.value(y, raw, w, allreduce=True)
 
     def value(self, y, raw, w, *, allreduce=False):
-        fam = self.family
-        with np.errstate(over="ignore"):
-            per_row = fam._nll(y, raw) if self.kind == "nll" else fam._deviance(y, raw)
+        per_row = per_row_loss(self.family, self.kind, y, raw)
         if w is None:
             sums = np.array([per_row.sum(), float(y.size)])
         else:

@@ -183,6 +183,16 @@ def _warn_if_separated(est, X, y01, w, raw):
         )
 
 
+def _linear_raw_score(est, X, offset):
+    """X coef + intercept (+ offset) of a fitted linear estimator, with X and offset checked."""
+    check_is_fitted(est)
+    X = validate_data(est, X, reset=False, dtype=np.float64, ensure_all_finite=False)
+    _check_finite_rows(X, type(est).__name__)
+    raw = X @ est.coef_ + est.intercept_
+    o = _check_offset(offset, X.shape[0], type(est).__name__)
+    return raw if o is None else raw + o
+
+
 class _RawScoreRegressorMethods:
     """predict_raw / predict / predict_distribution / score for a regressor with ``_raw_score``
     (the raw score of X, offset included) and a fitted ``family_``."""
@@ -281,12 +291,7 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         return self
 
     def _raw_score(self, X, offset):
-        check_is_fitted(self)
-        X = validate_data(self, X, reset=False, dtype=np.float64, ensure_all_finite=False)
-        _check_finite_rows(X, type(self).__name__)
-        raw = X @ self.coef_ + self.intercept_
-        o = _check_offset(offset, X.shape[0], type(self).__name__)
-        return raw if o is None else raw + o
+        return _linear_raw_score(self, X, offset)
 
 
 
@@ -353,12 +358,7 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
 
     def decision_function(self, X, offset=None):
         """The raw score (log odds of ``classes_[1]``)."""
-        check_is_fitted(self)
-        X = validate_data(self, X, reset=False, dtype=np.float64, ensure_all_finite=False)
-        _check_finite_rows(X, type(self).__name__)
-        raw = X @ self.coef_ + self.intercept_
-        o = _check_offset(offset, X.shape[0], type(self).__name__)
-        return raw if o is None else raw + o
+        return _linear_raw_score(self, X, offset)
 
     def predict_proba(self, X, offset=None):
         raw = self.decision_function(X, offset)
