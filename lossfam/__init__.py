@@ -11,8 +11,8 @@ Engine adapters live in ``lossfam.lightgbm``, ``lossfam.xgboost`` and
 """
 from .families import Family
 from .registry import available, family, register, unregister
-from .selection import compare  # numpy/scipy only at import; engines, pandas load on use
+from .selection import rank_families  # numpy/scipy only at import; engines, pandas load on use
 
 __version__ = "0.1.0"
 
-__all__ = ["Family", "available", "compare", "family", "register", "unregister", "__version__"]
+__all__ = ["Family", "available", "rank_families", "family", "register", "unregister", "__version__"]

@@ -1,11 +1,11 @@
-"""Command line: ``lossfam compare DATA.csv --target COL`` ranks noise models for a CSV file.
+"""Command line: ``lossfam rank DATA.csv --target COL`` ranks noise models for a CSV file.
 
 Usage::
 
-    lossfam compare DATA.csv --target COL [--families a,b:param=value,...] [--engine linear|lightgbm|xgboost]
+    lossfam rank DATA.csv --target COL [--families a,b:param=value,...] [--engine linear|lightgbm|xgboost]
                     [--folds 5] [--seed 0] [--rounds 100] [--weight COL] [--plots DIR] [--json] [--quiet]
-    lossfam compare --demo [...]          # built-in demo data (orchard_bruises.csv)
-    python -m lossfam compare ...         # the same
+    lossfam rank --demo [...]          # built-in demo data (orchard_bruises.csv)
+    python -m lossfam rank ...         # the same
 
 The CSV has a header row.  The target column must be numeric with no missing
 values.  Every other numeric column is a feature (empty cells, ``NA`` and
@@ -143,7 +143,7 @@ def _params(p):
 
 
 def format_table(rows) -> str:
-    """A plain-text table of compare()'s rows (no pandas needed)."""
+    """A plain-text table of rank_families()'s rows (no pandas needed)."""
     head = ("rank", "family", "nll/row", "se", "gap", "gap se", "cover90", "KS", "nuisance params", "scored by")
     body = []
     for r in rows:
@@ -220,7 +220,7 @@ def _parser():
     parser = argparse.ArgumentParser(prog="lossfam", description="Noise models as losses: which one fits your target?")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
     cmp_ = sub.add_parser(
-        "compare",
+        "rank",
         help="rank noise models by cross-validated held-out negative log-likelihood",
         description="Rank noise models (families) by cross-validated held-out negative log-likelihood per row.",
     )
@@ -273,7 +273,7 @@ def _fail(msg):
     return EXIT_BAD_INPUT
 
 
-def _compare(args):
+def _rank(args):
     if args.demo and args.data:
         return _fail("give either a CSV file or --demo, not both")
     if args.demo:
@@ -281,9 +281,9 @@ def _compare(args):
         target = args.target or DEMO_TARGET
     else:
         if not args.data:
-            return _fail("compare needs a CSV file (or --demo)")
+            return _fail("rank needs a CSV file (or --demo)")
         if not args.target:
-            return _fail("compare needs --target COL, the name of the target column")
+            return _fail("rank needs --target COL, the name of the target column")
         path, target = args.data, args.target
     if args.plots is not None:
         if os.path.exists(args.plots) and not os.path.isdir(args.plots):
@@ -296,13 +296,13 @@ def _compare(args):
         X, y, w, features, notes = read_csv(path, target, args.weight)
     except DataError as exc:
         return _fail(str(exc))
-    log = (lambda m: None) if args.quiet else (lambda m: print(f"[lossfam compare] {m}", file=sys.stderr, flush=True))
+    log = (lambda m: None) if args.quiet else (lambda m: print(f"[lossfam rank] {m}", file=sys.stderr, flush=True))
     for note in notes:
         print(f"lossfam: note: {note}", file=sys.stderr)
     log(f"{y.size} rows, target {target!r}, features: {', '.join(features)}; engine {args.engine}, {args.folds} folds")
     try:
         families = _parse_families(args.families)
-        rows, details = selection._compare_detailed(
+        rows, details = selection._rank_detailed(
             X, y, families=families, engine=args.engine, folds=args.folds, weight=w, seed=args.seed,
             rounds=args.rounds, progress=log,
         )
@@ -321,6 +321,6 @@ def _compare(args):
 def main(argv=None) -> int:
     """Entry point of the ``lossfam`` command; returns the exit code (2: unusable input)."""
     args = _parser().parse_args(argv)
-    if args.command == "compare":
-        return _compare(args)
+    if args.command == "rank":
+        return _rank(args)
     return _fail(f"unknown command {args.command!r}")  # pragma: no cover - argparse refuses it first

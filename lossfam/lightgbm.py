@@ -678,7 +678,7 @@ def train(family, params, data, num_boost_round=100, *, offset=None, valid_offse
     baseline = fam.baseline(y, w, offset=off)
     start = np.full(y.shape, baseline) if off is None else baseline + off
     if prefit_params and fam.params:
-        fam = fam.fit_params(y, start, w)
+        fam = fam.fit_nuisance(y, start, w)
 
     # starting scores: baseline + offset on every set, restored afterwards
     _check_no_user_init_score(data, "data")
@@ -779,7 +779,7 @@ def train(family, params, data, num_boost_round=100, *, offset=None, valid_offse
     finally:
         for ds in touched:
             _clear_start(ds)
-    fitted = fam.fit_params(y, train_raw, w) if fam.params else fam
+    fitted = fam.fit_nuisance(y, train_raw, w) if fam.params else fam
     return TrainedModel(booster, fam, baseline, fitted)
 
 

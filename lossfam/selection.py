@@ -1,6 +1,6 @@
 r"""Which noise model fits?  Cross-validated held-out likelihood of every candidate family.
 
-``lossfam.compare(X, y)`` fits one model per candidate family on each training
+``lossfam.rank_families(X, y)`` fits one model per candidate family on each training
 fold, scores the held-out fold by its negative log-likelihood per row (nats),
 and ranks the families, best (lowest held-out nll) first.  Beside the score it
 reports the standard error of the fold means, the gap to the best family with
@@ -37,7 +37,7 @@ compare a quantile model.
 Nuisance parameters and the order of fitting
 --------------------------------------------
 Nuisance parameters are fitted on the training fold only, by
-``family.fit_params(y_train, raw_train)`` after the location model, and the
+``family.fit_nuisance(y_train, raw_train)`` after the location model, and the
 held-out fold is scored with them.  Where the location fit depends on the
 scale, the order is: scale, location, scale.
 
@@ -96,7 +96,7 @@ BOOST_DEFAULTS = {
     "xgboost": {"eta": 0.1, "max_depth": 4, "nthread": 2},
 }
 
-__all__ = ["compare", "ENGINES", "NOT_BY_DEFAULT"]
+__all__ = ["rank_families", "ENGINES", "NOT_BY_DEFAULT"]
 
 
 # ---------------------------------------------------------------------- engines
@@ -129,16 +129,16 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
         params = {**BOOST_DEFAULTS["xgboost"], "seed": seed, **options}
         model = train(fam, params, xgb.DMatrix(X, y, weight=w), num_boost_round=rounds)
         return lambda Z: np.asarray(model.predict_raw(Z), dtype=float)
-    raise ValueError(f"compare: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+    raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
 
 
 def _fit_family(fit, engine, fam, X, y, w):
     """Location then nuisance parameters on one training fold (order: module docstring)."""
     predict = fit(fam, X, y, w, False)
-    fam = fam.fit_params(y, predict(X), w)
+    fam = fam.fit_nuisance(y, predict(X), w)
     if engine in _REFIT_ENGINES and fam.name in _REFIT_LOCATION and fam.params:
         predict = fit(fam, X, y, w, True)
-        fam = fam.fit_params(y, predict(X), w)
+        fam = fam.fit_nuisance(y, predict(X), w)
     return fam, predict
 
 
@@ -230,43 +230,43 @@ def _candidates(families, y):
 
 # ---------------------------------------------------------------------- public
 def _as_inputs(X, y, weight, engine):
-    y = _checks.as_float_array(y, "y", "compare")
+    y = _checks.as_float_array(y, "y", "rank_families")
     if y.ndim != 1:
         y = y.ravel() if y.ndim == 2 and 1 in y.shape else y
     if y.ndim != 1:
-        raise ValueError(f"compare: y must be one-dimensional, got shape {y.shape}")
-    _checks.REAL.check(y, "y", "compare")
-    X = _checks.as_float_array(X, "X", "compare")
+        raise ValueError(f"rank_families: y must be one-dimensional, got shape {y.shape}")
+    _checks.REAL.check(y, "y", "rank_families")
+    X = _checks.as_float_array(X, "X", "rank_families")
     if X.ndim == 1:
         X = X[:, None]
     if X.ndim != 2 or X.shape[0] != y.shape[0]:
-        raise ValueError(f"compare: X must be 2-D with one row per target; X has shape {X.shape}, y has {y.shape[0]} rows")
+        raise ValueError(f"rank_families: X must be 2-D with one row per target; X has shape {X.shape}, y has {y.shape[0]} rows")
     if X.shape[1] == 0:
-        raise ValueError("compare: X has no feature columns")
+        raise ValueError("rank_families: X has no feature columns")
     if engine == "linear":
-        _checks.REAL.check(X, "X (the linear engine needs finite features)", "compare")
+        _checks.REAL.check(X, "X (the linear engine needs finite features)", "rank_families")
     elif np.any(np.isinf(X)):
-        _checks.Domain("finite or NaN (missing)", lambda a: ~np.isinf(a)).check(X, "X", "compare")
-    w = _checks.check_weight(weight, y, "compare", need_positive_sum=True)
+        _checks.Domain("finite or NaN (missing)", lambda a: ~np.isinf(a)).check(X, "X", "rank_families")
+    w = _checks.check_weight(weight, y, "rank_families", need_positive_sum=True)
     w = np.ones_like(y) if w is None else np.ascontiguousarray(w, dtype=float)
     return X, y, w
 
 
-def _compare_detailed(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, *,
+def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, *,
                       rounds=100, engine_params=None, progress=None):
-    """The machinery behind :func:`compare`: returns (rows, details by label)."""
+    """The machinery behind :func:`rank_families`: returns (rows, details by label)."""
     if engine not in ENGINES:
-        raise ValueError(f"compare: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+        raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
     X, y, w = _as_inputs(X, y, weight, engine)
     n = y.size
     if isinstance(folds, bool) or not isinstance(folds, (int, np.integer)) or not 2 <= folds <= n:
-        raise ValueError(f"compare: folds must be an integer between 2 and the number of rows ({n}), got {folds!r}")
+        raise ValueError(f"rank_families: folds must be an integer between 2 and the number of rows ({n}), got {folds!r}")
     if int(rounds) < 1:
-        raise ValueError(f"compare: rounds must be >= 1, got {rounds!r}")
+        raise ValueError(f"rank_families: rounds must be >= 1, got {rounds!r}")
     options = dict(engine_params or {})
     integer_footing = bool(np.all(np.floor(y) == y))
     say = progress if callable(progress) else (
-        (lambda msg: print(f"[lossfam compare] {msg}", file=sys.stderr, flush=True)) if progress else (lambda msg: None))
+        (lambda msg: print(f"[lossfam rank] {msg}", file=sys.stderr, flush=True)) if progress else (lambda msg: None))
 
     def fit(fam, Xa, ya, wa, keep_params):
         return _fit_engine(engine, fam, Xa, ya, wa, seed=seed, rounds=int(rounds), options=options,
@@ -362,7 +362,7 @@ def _row(**kw):
     return {c: kw.get(c) for c in _COLUMNS} | {"note": kw.get("note") or ""}
 
 
-def compare(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, *,
+def rank_families(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, *,
             rounds=100, engine_params=None, progress=False, as_frame=None):
     """Rank noise models by cross-validated held-out negative log-likelihood.
 
@@ -408,7 +408,7 @@ def compare(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, 
     unit interval around y), ``status`` ("ok", "not applicable", "failed")
     and ``note`` (the reason, or the footing).
     """
-    rows, _ = _compare_detailed(X, y, families, engine, folds, weight, seed,
+    rows, _ = _rank_detailed(X, y, families, engine, folds, weight, seed,
                                 rounds=rounds, engine_params=engine_params, progress=progress)
     if as_frame is False:
         return rows
@@ -416,7 +416,7 @@ def compare(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, 
         import pandas as pd
     except ImportError:
         if as_frame:
-            raise ImportError('compare(as_frame=True) needs pandas: pip install "lossfam[all]"') from None
+            raise ImportError('rank_families(as_frame=True) needs pandas: pip install "lossfam[all]"') from None
         return rows
     frame = pd.DataFrame(rows, columns=list(_COLUMNS))
     frame["rank"] = frame["rank"].astype("Int64")

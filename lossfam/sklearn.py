@@ -6,7 +6,7 @@
   ridge penalty a certified active-set solve of the optimality conditions;
   semismooth Newton with a jointly fitted scale for huber).
 * :class:`LikelihoodClassifier` -- the bernoulli family as a binary classifier.
-* :class:`LossfamBoostRegressor`, :class:`LossfamBoostClassifier` -- wrap an
+* :class:`BoostedLikelihoodRegressor`, :class:`BoostedLikelihoodClassifier` -- wrap an
   ``LGBMRegressor`` / ``XGBRegressor`` (or classifier) so that it trains on a
   family's nll with the matching starting score, metric and inverse link.
 * :func:`mean_nll`, :func:`mean_deviance`, :func:`d2_score` (predictions on the
@@ -21,15 +21,15 @@ except ImportError as exc:  # pragma: no cover - exercised only without scikit-l
         'lossfam.sklearn needs scikit-learn; install it with: pip install "lossfam[sklearn]"'
     ) from exc
 
-from ._sk.boosted import LossfamBoostClassifier, LossfamBoostRegressor
+from ._sk.boosted import BoostedLikelihoodClassifier, BoostedLikelihoodRegressor
 from ._sk.linear import LikelihoodClassifier, LikelihoodRegressor, UnboundedLikelihoodWarning
 from ._sk.metrics import LikelihoodScorer, d2_score, mean_deviance, mean_nll, scorer
 
 __all__ = [
     "LikelihoodRegressor",
     "LikelihoodClassifier",
-    "LossfamBoostRegressor",
-    "LossfamBoostClassifier",
+    "BoostedLikelihoodRegressor",
+    "BoostedLikelihoodClassifier",
     "UnboundedLikelihoodWarning",
     "LikelihoodScorer",
     "scorer",

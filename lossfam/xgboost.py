@@ -85,7 +85,7 @@ own score caches never see them) and written into the model's JSON once, at
 the end, so the per-round cost is one leaf lookup and one grouped quantile.
 
 For laplace and asymmetric_laplace ``train`` first fits the scale at the
-baseline (``family.fit_params``): their location minimiser does not depend on
+baseline (``family.fit_nuisance``): their location minimiser does not depend on
 the scale, which only sets the surrogate's floor.  Huber's scale is part of
 its loss (the threshold between the quadratic core and the linear tails is
 ``delta * scale`` in units of y), so ``train`` uses it as given.  For all three
@@ -586,7 +586,7 @@ def train(
     train_fam = fam
     if fam.name in _SCALE_FREE_LOCATION and "scale" in fam.params:
         start = np.full_like(y, baseline) if offset is None else offset + baseline
-        train_fam = fam.fit_params(y, start, w)
+        train_fam = fam.fit_nuisance(y, start, w)
     cap, damping = _resolve_guard(fam, step_cap)
     obj = _Objective(train_fam, cap, _hessian_factor(train_fam), damping)
     if damping is not None:  # the engine's guard also clips every leaf at the same step
@@ -628,7 +628,7 @@ def train(
 
     extra.update(step_cap=obj.step_cap, hessian_damping=obj.damping, leaf_refit=bool(leaf_refit),
                  training_params=train_fam.params)
-    fitted = fam.fit_params(y, np.asarray(train_raw, dtype=np.float64), w) if fam.params else fam
+    fitted = fam.fit_nuisance(y, np.asarray(train_raw, dtype=np.float64), w) if fam.params else fam
     return BoostedLossModel(booster, fam, baseline, fitted, extra)
 
 

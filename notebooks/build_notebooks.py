@@ -31,7 +31,7 @@ bike's age, the kilometres ridden since the last service and whether it is an
 e-bike.  Squared error (a gaussian noise model) is the habit; is it the right
 noise model?
 
-`lossfam.compare` fits one model per candidate family on each training fold
+`lossfam.rank_families` fits one model per candidate family on each training fold
 and scores the held-out fold by its negative log-likelihood per row (nats):
 the lower, the better the predictive law describes data it has not seen.
 """),
@@ -52,7 +52,7 @@ X = np.column_stack([age, km / 1000, ebike])
 print(f"median {np.median(amount):.0f} EUR, mean {amount.mean():.0f} EUR, max {amount.max():.0f} EUR")
 """),
     code("""
-table = lossfam.compare(X, amount, engine="linear", folds=5, seed=0)
+table = lossfam.rank_families(X, amount, engine="linear", folds=5, seed=0)
 table[["rank", "family", "nll", "nll_se", "gap", "gap_se", "coverage90", "ks", "params", "status"]]
 """),
     md("""

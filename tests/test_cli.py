@@ -56,7 +56,7 @@ def _bad_file(tmp_path, case):
 def test_bad_csv_in_a_subprocess(tmp_path, case):
     path = _bad_file(tmp_path, case)
     plots = tmp_path / "plots"
-    res = _run("compare", path, "--target", "y", "--plots", str(plots), "--json")
+    res = _run("rank", path, "--target", "y", "--plots", str(plots), "--json")
     assert res.returncode == 2, res.stderr
     assert BAD_CASES[case][2] in res.stderr
     assert res.stderr.startswith("lossfam: error: ")
@@ -68,7 +68,7 @@ def test_bad_csv_in_a_subprocess(tmp_path, case):
 def test_bad_csv_in_process(tmp_path, case, capsys):
     path = _bad_file(tmp_path, case)
     plots = tmp_path / "plots"
-    code = cli.main(["compare", path, "--target", "y", "--plots", str(plots)])
+    code = cli.main(["rank", path, "--target", "y", "--plots", str(plots)])
     out, err = capsys.readouterr()
     assert code == 2
     assert BAD_CASES[case][2] in err
@@ -78,17 +78,17 @@ def test_bad_csv_in_process(tmp_path, case, capsys):
 
 def test_bad_csv_messages_name_the_lines(tmp_path, capsys):
     path = _write_csv(tmp_path / "d.csv", ["a", "y"], [["1", "2"], ["3", "x"], ["5", "6"], ["7", "?"]])
-    assert cli.main(["compare", path, "--target", "y"]) == 2
+    assert cli.main(["rank", path, "--target", "y"]) == 2
     err = capsys.readouterr().err
     assert "2 value(s)" in err and "line(s) 3 ('x'), 5 ('?')" in err
     # a missing file, a header without rows, and no data file at all
-    assert cli.main(["compare", str(tmp_path / "nope.csv"), "--target", "y"]) == 2
+    assert cli.main(["rank", str(tmp_path / "nope.csv"), "--target", "y"]) == 2
     assert "no such file" in capsys.readouterr().err
     header_only = tmp_path / "h.csv"
     header_only.write_text("a,y\n")
-    assert cli.main(["compare", str(header_only), "--target", "y"]) == 2
+    assert cli.main(["rank", str(header_only), "--target", "y"]) == 2
     assert "no data rows" in capsys.readouterr().err
-    assert cli.main(["compare", "--target", "y"]) == 2
+    assert cli.main(["rank", "--target", "y"]) == 2
     assert "CSV file" in capsys.readouterr().err
 
 
@@ -97,7 +97,7 @@ def test_plots_are_written_as_png(tmp_path):
 
     path = _binary_csv(tmp_path / "trays.csv")
     plots = tmp_path / "plots"
-    res = _run("compare", path, "--target", "germinated", "--folds", "2", "--plots", str(plots),
+    res = _run("rank", path, "--target", "germinated", "--folds", "2", "--plots", str(plots),
                "--families", "bernoulli,gaussian")
     assert res.returncode == 0, res.stderr
     assert "left out non-numeric column(s): tray" in res.stderr
@@ -116,16 +116,16 @@ def test_plots_are_written_as_png(tmp_path):
 
 def test_plain_table_and_interval_note(tmp_path, capsys):
     path = _binary_csv(tmp_path / "trays.csv", n=300)
-    assert cli.main(["compare", path, "--target", "germinated", "--folds", "2", "--quiet"]) == 0
+    assert cli.main(["rank", path, "--target", "germinated", "--folds", "2", "--quiet"]) == 0
     out, err = capsys.readouterr()
     assert out.splitlines()[0].split()[:3] == ["rank", "family", "nll/row"]
     assert "unit interval around y" in out
     assert "not applicable: gamma" in out
-    assert err.count("[lossfam compare]") == 0  # --quiet
+    assert err.count("[lossfam rank]") == 0  # --quiet
 
 
 def test_demo_json_runs_and_parses():
-    res = _run("compare", "--demo", "--json", "--folds", "3")
+    res = _run("rank", "--demo", "--json", "--folds", "3")
     assert res.returncode == 0, res.stderr
     rows = json.loads(res.stdout)
     assert isinstance(rows, list) and all("family" in r and "nll" in r for r in rows)
@@ -135,7 +135,7 @@ def test_demo_json_runs_and_parses():
     # the demo counts are Poisson by construction (lossfam/data/make_demo.py)
     assert scored[0]["family"] == "poisson"
     assert {r["family"] for r in rows if r["status"] == "not applicable"} == {"gamma", "bernoulli"}
-    assert "[lossfam compare]" in res.stderr  # progress on stderr, JSON alone on stdout
+    assert "[lossfam rank]" in res.stderr  # progress on stderr, JSON alone on stdout
 
 
 def test_demo_file_matches_its_generator(tmp_path):
@@ -161,11 +161,11 @@ def test_weight_column_and_missing_features(tmp_path, capsys):
     rows[4][0] = ""  # a missing feature value
     path = _write_csv(tmp_path / "m.csv", ["x", "y", "w"], rows)
     # the linear engine needs finite features: clear error, exit 2
-    assert cli.main(["compare", path, "--target", "y", "--weight", "w", "--quiet"]) == 2
+    assert cli.main(["rank", path, "--target", "y", "--weight", "w", "--quiet"]) == 2
     assert "finite features" in capsys.readouterr().err
     rows[4][0] = "0.5"
     path = _write_csv(tmp_path / "m.csv", ["x", "y", "w"], rows)
-    assert cli.main(["compare", path, "--target", "y", "--weight", "w", "--json", "--quiet",
+    assert cli.main(["rank", path, "--target", "y", "--weight", "w", "--json", "--quiet",
                      "--families", "gaussian,laplace", "--folds", "2"]) == 0
     out = json.loads(capsys.readouterr().out)
     assert {r["family"] for r in out} == {"gaussian", "laplace"}
@@ -176,13 +176,13 @@ def test_families_option_with_parameters(tmp_path, capsys):
     x = rng.normal(size=400)
     y = x + rng.laplace(0.0, 1.0, 400) + 0.5
     path = _write_csv(tmp_path / "q.csv", ["x", "y"], [[f"{a:.4f}", f"{b:.4f}"] for a, b in zip(x, y)])
-    assert cli.main(["compare", path, "--target", "y", "--json", "--quiet", "--folds", "2",
+    assert cli.main(["rank", path, "--target", "y", "--json", "--quiet", "--folds", "2",
                      "--families", "laplace,asymmetric_laplace:quantile=0.7"]) == 0
     rows = json.loads(capsys.readouterr().out)
     by = {r["family"]: r for r in rows}
     assert set(by) == {"laplace", "asymmetric_laplace(quantile=0.7)"}
     assert by["asymmetric_laplace(quantile=0.7)"]["params"]["quantile"] == 0.7
-    assert cli.main(["compare", path, "--target", "y", "--families", "laplace:scale"]) == 2
+    assert cli.main(["rank", path, "--target", "y", "--families", "laplace:scale"]) == 2
     assert "name:param=number" in capsys.readouterr().err
-    assert cli.main(["compare", path, "--target", "y", "--families", "cauchy"]) == 2
+    assert cli.main(["rank", path, "--target", "y", "--families", "cauchy"]) == 2
     assert "unknown family" in capsys.readouterr().err

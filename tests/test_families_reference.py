@@ -259,17 +259,17 @@ def test_baseline_without_finite_minimiser_raises():
         lossfam.family("gaussian").baseline(np.array([]))
 
 
-# ---------------------------------------------------------------------------- fit_params
+# ---------------------------------------------------------------------------- fit_nuisance
 def test_fit_params_closed_forms(rng):
     n = 2000
     w = rng.uniform(0.5, 2.0, n)
     raw = rng.normal(size=n)
     y = raw + rng.normal(scale=1.7, size=n)
-    s = lossfam.family("gaussian").fit_params(y, raw, w).scale
+    s = lossfam.family("gaussian").fit_nuisance(y, raw, w).scale
     assert_rel(s, np.sqrt(np.sum(w * (y - raw) ** 2) / np.sum(w)), 1e-13)
-    b = lossfam.family("laplace").fit_params(y, raw, w).scale
+    b = lossfam.family("laplace").fit_nuisance(y, raw, w).scale
     assert_rel(b, np.sum(w * np.abs(y - raw)) / np.sum(w), 1e-13)
-    f = lossfam.family("asymmetric_laplace", quantile=0.2).fit_params(y, raw, w)
+    f = lossfam.family("asymmetric_laplace", quantile=0.2).fit_nuisance(y, raw, w)
     r = y - raw
     assert_rel(f.scale, np.sum(w * np.maximum(0.2 * r, -0.8 * r)) / np.sum(w), 1e-13)
     assert f.quantile == 0.2
@@ -279,14 +279,14 @@ def test_fit_params_match_scipy_fit(rng):
     # scipy.stats.*.fit with the location fixed: maximum-likelihood scale / shape
     y = rng.gamma(3.3, 2.0, size=3000)
     raw = np.full_like(y, np.log(y.mean()))
-    k = lossfam.family("gamma").fit_params(y, raw).shape
+    k = lossfam.family("gamma").fit_nuisance(y, raw).shape
     a, _, _ = stats.gamma.fit(y, floc=0)
     assert abs(k - a) < 1e-6 * a
     yn = rng.normal(2.0, 0.5, 3000)
-    assert_rel(lossfam.family("gaussian").fit_params(yn, np.full_like(yn, 2.0)).scale,
+    assert_rel(lossfam.family("gaussian").fit_nuisance(yn, np.full_like(yn, 2.0)).scale,
                stats.norm.fit(yn, floc=2.0)[1], 1e-10)
     yl = rng.laplace(1.0, 0.4, 3000)
-    assert_rel(lossfam.family("laplace").fit_params(yl, np.full_like(yl, 1.0)).scale,
+    assert_rel(lossfam.family("laplace").fit_nuisance(yl, np.full_like(yl, 1.0)).scale,
                stats.laplace.fit(yl, floc=1.0)[1], 1e-8)
 
 
@@ -294,7 +294,7 @@ def test_huber_scale_is_the_mle(rng):
     y = rng.standard_t(3, size=2000) * 2.0
     raw = np.zeros_like(y)
     w = rng.uniform(0.5, 1.5, y.size)
-    f = lossfam.family("huber", delta=1.2).fit_params(y, raw, w)
+    f = lossfam.family("huber", delta=1.2).fit_nuisance(y, raw, w)
 
     def mean_nll(log_s):
         return np.sum(w * lossfam.family("huber", delta=1.2, scale=np.exp(log_s)).nll(y, raw)) / w.sum()
@@ -307,7 +307,7 @@ def test_huber_scale_is_the_mle(rng):
 
 def test_families_without_parameters_return_themselves(rng):
     f = lossfam.family("poisson")
-    assert f.fit_params(np.array([1.0, 2.0]), np.zeros(2)) is f
+    assert f.fit_nuisance(np.array([1.0, 2.0]), np.zeros(2)) is f
     assert lossfam.family("bernoulli").params == {}
 
 

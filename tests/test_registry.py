@@ -40,7 +40,7 @@ def test_register_a_user_family(rng):
         # generic baseline (Brent) and generic parameter fit (Nelder-Mead on log scale)
         c = f.baseline(y)
         assert abs(c - stats.logistic.fit(y, fscale=2.0)[0]) < 1e-4
-        s = f.fit_params(y, np.full_like(y, c)).scale
+        s = f.fit_nuisance(y, np.full_like(y, c)).scale
         assert abs(s - stats.logistic.fit(y, floc=c)[1]) < 1e-3
         with pytest.raises(ValueError, match="already registered"):
             lossfam.register(type("Other", (LogisticErrors,), {"name": "gaussian"}))

@@ -1,4 +1,4 @@
-"""LossfamBoostRegressor / LossfamBoostClassifier on LightGBM and XGBoost.
+"""BoostedLikelihoodRegressor / BoostedLikelihoodClassifier on LightGBM and XGBoost.
 
 Outside references: the engines' own built-in objectives where the family has
 the same gradients (gaussian = squared error started at the mean; bernoulli =
@@ -15,7 +15,7 @@ from sklearn.metrics import d2_tweedie_score, log_loss
 from sklearn.model_selection import GridSearchCV, KFold
 
 import lossfam
-from lossfam.sklearn import LossfamBoostClassifier, LossfamBoostRegressor, LikelihoodRegressor, scorer
+from lossfam.sklearn import BoostedLikelihoodClassifier, BoostedLikelihoodRegressor, LikelihoodRegressor, scorer
 
 LGB_KW = dict(n_estimators=30, learning_rate=0.1, num_leaves=7, min_child_samples=5, verbose=-1, n_jobs=1)
 XGB_KW = dict(n_estimators=30, learning_rate=0.1, max_depth=3, n_jobs=1)
@@ -38,12 +38,12 @@ def test_gaussian_equals_the_engines_squared_error():
     rng, X, s = data()
     y = s + rng.normal(0.0, 0.5, len(s))
     # LightGBM's built-in "regression" starts from the mean (boost_from_average), as our baseline does
-    ours = LossfamBoostRegressor(engine("lightgbm")).fit(X, y)
+    ours = BoostedLikelihoodRegressor(engine("lightgbm")).fit(X, y)
     ref = lgb.LGBMRegressor(objective="regression", **LGB_KW).fit(X, y)
     np.testing.assert_allclose(ours.predict(X), ref.predict(X), rtol=0, atol=1e-7)
     assert ours.baseline_ == pytest.approx(np.mean(y), rel=1e-12)
     # XGBoost's reg:squarederror started at base_score = mean(y)
-    ours = LossfamBoostRegressor(engine("xgboost")).fit(X, y)
+    ours = BoostedLikelihoodRegressor(engine("xgboost")).fit(X, y)
     ref = xgb.XGBRegressor(objective="reg:squarederror", base_score=float(np.mean(y)), **XGB_KW).fit(X, y)
     np.testing.assert_allclose(ours.predict(X), ref.predict(X), rtol=0, atol=1e-5)
     # the gaussian scale is the maximum-likelihood value on the training residuals
@@ -54,7 +54,7 @@ def test_gaussian_equals_the_engines_squared_error():
 def test_classifier_equals_the_engines_binary_log_loss(name):
     rng, X, s = data(seed=1)
     y = np.where(s + rng.logistic(size=len(s)) > 0.3, "pos", "neg")
-    ours = LossfamBoostClassifier(engine(name)).fit(X, y)
+    ours = BoostedLikelihoodClassifier(engine(name)).fit(X, y)
     assert list(ours.classes_) == ["neg", "pos"]
     y01 = (y == "pos").astype(int)
     if name == "lightgbm":
@@ -64,7 +64,7 @@ def test_classifier_equals_the_engines_binary_log_loss(name):
     np.testing.assert_allclose(ours.predict_proba(X), ref.predict_proba(X), rtol=0, atol=1e-6)
     np.testing.assert_array_equal(ours.predict(X), np.where(ours.predict_proba(X)[:, 1] > 0.5, "pos", "neg"))
     # the classifier wrapper also accepts the engine's classifier class
-    other = LossfamBoostClassifier(engine(name, classifier=True)).fit(X, y)
+    other = BoostedLikelihoodClassifier(engine(name, classifier=True)).fit(X, y)
     np.testing.assert_allclose(other.predict_proba(X), ours.predict_proba(X), atol=1e-6)
     # the scorer's nll is sklearn's log loss
     np.testing.assert_allclose(-scorer("bernoulli")(ours, X, y), log_loss(y, ours.predict_proba(X)[:, 1]), rtol=1e-8)
@@ -76,7 +76,7 @@ def test_poisson_baseline_offset_distribution_and_d2(name):
     exposure = rng.uniform(0.5, 3.0, len(s))
     y = rng.poisson(exposure * np.exp(0.5 * s)).astype(float)
     off = np.log(exposure)
-    est = LossfamBoostRegressor(engine(name), family="poisson").fit(X, y, offset=off)
+    est = BoostedLikelihoodRegressor(engine(name), family="poisson").fit(X, y, offset=off)
     assert est.baseline_ == pytest.approx(lossfam.family("poisson").baseline(y, offset=off), rel=1e-12)
     rate = est.predict(X)
     # XGBoost adds base_margin in float32: agreement to float32 precision there
@@ -96,7 +96,7 @@ def test_eval_set_reports_the_family_nll(name):
     rng, X, s = data(seed=3)
     y = rng.gamma(2.0, np.exp(0.3 * s) / 2.0)
     Xv, yv = X[:100], y[:100]
-    est = LossfamBoostRegressor(engine(name), family="gamma").fit(X[100:], y[100:], eval_set=[(Xv, yv)])
+    est = BoostedLikelihoodRegressor(engine(name), family="gamma").fit(X[100:], y[100:], eval_set=[(Xv, yv)])
     history = est.estimator_.evals_result_ if name == "lightgbm" else est.estimator_.evals_result()
     curve = list(history.values())[0]["gamma_nll"]
     assert len(curve) == XGB_KW["n_estimators"]
@@ -107,7 +107,7 @@ def test_eval_set_reports_the_family_nll(name):
 
 
 def test_params_are_clone_safe_and_nested():
-    est = LossfamBoostRegressor(lgb.LGBMRegressor(n_estimators=7, verbose=-1, n_jobs=1), family="gamma")
+    est = BoostedLikelihoodRegressor(lgb.LGBMRegressor(n_estimators=7, verbose=-1, n_jobs=1), family="gamma")
     params = est.get_params(deep=True)
     assert params["estimator__n_estimators"] == 7 and params["family"] == "gamma"
     est.set_params(estimator__n_estimators=11, family_params={"shape": 2.0})
@@ -126,7 +126,7 @@ def test_grid_search_over_nested_parameters_with_the_nll_scorer():
     rng, X, s = data(n=300, seed=5)
     y = rng.poisson(np.exp(0.5 * s)).astype(float)
     grid = GridSearchCV(
-        LossfamBoostRegressor(engine("lightgbm"), family="poisson"),
+        BoostedLikelihoodRegressor(engine("lightgbm"), family="poisson"),
         {"estimator__n_estimators": [1, 40]},
         cv=KFold(3, shuffle=True, random_state=0),
         scoring=scorer("poisson"),
@@ -141,7 +141,7 @@ def test_dataframe_input_keeps_feature_names():
     rng, X, s = data(seed=6)
     frame = pd.DataFrame(X, columns=["age", "load", "hour"])
     y = rng.poisson(np.exp(0.5 * s)).astype(float)
-    est = LossfamBoostRegressor(engine("lightgbm"), family="poisson").fit(frame, y)
+    est = BoostedLikelihoodRegressor(engine("lightgbm"), family="poisson").fit(frame, y)
     assert list(est.feature_names_in_) == ["age", "load", "hour"]
     np.testing.assert_allclose(est.predict(frame), est.predict(frame.to_numpy()), rtol=1e-12)
 
@@ -149,15 +149,15 @@ def test_dataframe_input_keeps_feature_names():
 def test_bad_input():
     rng, X, s = data(n=50, seed=7)
     y = rng.poisson(np.exp(s)).astype(float)
-    with pytest.raises(ValueError, match="use LossfamBoostClassifier"):
-        LossfamBoostRegressor(lgb.LGBMClassifier(), family="poisson").fit(X, y)
+    with pytest.raises(ValueError, match="use BoostedLikelihoodClassifier"):
+        BoostedLikelihoodRegressor(lgb.LGBMClassifier(), family="poisson").fit(X, y)
     with pytest.raises(ValueError, match="LightGBM or XGBoost"):
-        LossfamBoostRegressor(LikelihoodRegressor(), family="poisson").fit(X, y)
+        BoostedLikelihoodRegressor(LikelihoodRegressor(), family="poisson").fit(X, y)
     bad = y.copy()
     bad[4] = -2.0
     with pytest.raises(ValueError, match=r"poisson: y must be finite and >= 0; 1 row outside, e.g. row \[4\]"):
-        LossfamBoostRegressor(engine("xgboost"), family="poisson").fit(X, bad)
+        BoostedLikelihoodRegressor(engine("xgboost"), family="poisson").fit(X, bad)
     with pytest.raises(ValueError, match="offset has shape"):
-        LossfamBoostRegressor(engine("xgboost"), family="poisson").fit(X, y, offset=np.zeros(3))
+        BoostedLikelihoodRegressor(engine("xgboost"), family="poisson").fit(X, y, offset=np.zeros(3))
     with pytest.raises(ValueError, match="Only binary classification"):
-        LossfamBoostClassifier(engine("lightgbm")).fit(X, np.arange(50) % 3)
+        BoostedLikelihoodClassifier(engine("lightgbm")).fit(X, np.arange(50) % 3)

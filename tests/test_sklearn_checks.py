@@ -10,8 +10,8 @@ from sklearn.utils.estimator_checks import parametrize_with_checks
 from lossfam.sklearn import (
     LikelihoodClassifier,
     LikelihoodRegressor,
-    LossfamBoostClassifier,
-    LossfamBoostRegressor,
+    BoostedLikelihoodClassifier,
+    BoostedLikelihoodRegressor,
 )
 
 
@@ -35,10 +35,10 @@ ESTIMATORS = [
     LikelihoodRegressor(family="huber"),
     LikelihoodClassifier(),
     LikelihoodClassifier(alpha=0.0),
-    LossfamBoostRegressor(lgbm(), family="poisson"),
-    LossfamBoostRegressor(xgbr(), family="gamma"),
-    LossfamBoostClassifier(lgbm()),
-    LossfamBoostClassifier(xgboost.XGBClassifier(n_estimators=15, n_jobs=1)),
+    BoostedLikelihoodRegressor(lgbm(), family="poisson"),
+    BoostedLikelihoodRegressor(xgbr(), family="gamma"),
+    BoostedLikelihoodClassifier(lgbm()),
+    BoostedLikelihoodClassifier(xgboost.XGBClassifier(n_estimators=15, n_jobs=1)),
 ]
 
 _NON_UNIQUE_LP = (
@@ -55,7 +55,7 @@ def expected_failures(est):
     if isinstance(est, LikelihoodRegressor) and est.family in ("laplace", "asymmetric_laplace"):
         if est.alpha == 0:
             return {"check_sample_weight_equivalence_on_dense_data": _NON_UNIQUE_LP}
-    if isinstance(est, LossfamBoostRegressor):
+    if isinstance(est, BoostedLikelihoodRegressor):
         if type(est.estimator).__module__.startswith("lightgbm"):
             return {"check_sample_weight_equivalence_on_dense_data": _LGBM_COUNTS}
     return {}

@@ -414,7 +414,7 @@ def test_distribution_uses_parameters_fitted_on_training_data(features):
     y = _scenario("gamma", X, f)
     model = lx.train("gamma", PARAMS, xgb.DMatrix(X, label=y), 60)
     raw = model.predict_raw(X)
-    expected = lossfam.family("gamma").fit_params(y, raw)
+    expected = lossfam.family("gamma").fit_nuisance(y, raw)
     assert model.fitted_family.shape == pytest.approx(expected.shape, rel=1e-6)
     assert model.fitted_family.shape == pytest.approx(2.0, rel=0.15)  # the simulated shape
     law = model.distribution(X[:10])

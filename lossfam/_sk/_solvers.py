@@ -37,7 +37,7 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     the family's surrogate curvature instead.  The scale s is fitted by
     maximum likelihood jointly with the coefficients by alternating the two
     blocks (coefficients given s to max |dF| <= tol; s given the coefficients
-    by ``Huber.fit_params``) until s changes by less than 1e-10 relatively.
+    by ``Huber.fit_nuisance``) until s changes by less than 1e-10 relatively.
     With theta = coef / s and tau = 1 / s the unpenalised nll is
     rho(tau y - x theta) - log tau + const, jointly convex in (theta, tau), so
     the alternation (block coordinate descent on a smooth convex function)
@@ -340,7 +340,7 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
     raw = _raw(X, coef, intercept, offset)
     scale_fitted = True
     try:
-        fam = fam.fit_params(y, raw, w)
+        fam = fam.fit_nuisance(y, raw, w)
     except ValueError:
         scale_fitted = False  # every residual is zero at the start: keep the given scale
     scale0 = fam.scale
@@ -352,7 +352,7 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
         total += max(fit.n_iter, 1)
         coef, intercept = fit.coef, fit.intercept
         try:
-            new = fam.fit_params(y, fit.raw, w)
+            new = fam.fit_nuisance(y, fit.raw, w)
         except ValueError:
             scale_fitted = False  # zero residuals: the scale has no maximum-likelihood value
             break

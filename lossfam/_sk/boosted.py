@@ -1,6 +1,6 @@
 """Gradient-boosted trees trained on a family's nll: wrappers around LightGBM and XGBoost estimators.
 
-``LossfamBoostRegressor(estimator, family)`` takes an (unfitted) ``LGBMRegressor``
+``BoostedLikelihoodRegressor(estimator, family)`` takes an (unfitted) ``LGBMRegressor``
 or ``XGBRegressor`` and, at fit time, trains a clone of it with
 
 * objective   -- ``lossfam.lightgbm.objective(family)`` / ``lossfam.xgboost.objective(family)``;
@@ -15,7 +15,7 @@ or ``XGBRegressor`` and, at fit time, trains a clone of it with
   ``predict(output_margin=True, base_margin=b + o)``), mean = inverse link.
 
 After fit, ``family_`` holds the nuisance parameters at their maximum-likelihood
-values given the training raw scores (``family.fit_params``).  For laplace and
+values given the training raw scores (``family.fit_nuisance``).  For laplace and
 asymmetric_laplace the scale is first fitted at the baseline (their location
 minimiser does not depend on it; it sets the surrogate Hessian's floor in the
 units of y).  These wrappers use the engines' scikit-learn ``fit``: the leaf
@@ -23,7 +23,7 @@ refit to exact medians / quantiles that ``lossfam.lightgbm.train`` and
 ``lossfam.xgboost.train`` perform for laplace and asymmetric_laplace is not
 done here, so those families train on the surrogate (IRLS) Hessian alone.
 
-``LossfamBoostClassifier(estimator)`` is the bernoulli family as a binary
+``BoostedLikelihoodClassifier(estimator)`` is the bernoulli family as a binary
 classifier (``classes_``, ``predict_proba``, ``decision_function``); it
 accepts a LightGBM or XGBoost regressor or classifier.
 
@@ -99,7 +99,7 @@ class _BoostBase(BaseEstimator):
         if isinstance(fam, (Laplace, AsymmetricLaplace)):
             start = np.full_like(y, baseline) if offset is None else baseline + offset
             try:
-                fam = fam.fit_params(y, start, unit_w)
+                fam = fam.fit_nuisance(y, start, unit_w)
             except ValueError:
                 pass  # every residual is zero at the baseline: keep the given scale
         est = clone(base)
@@ -134,7 +134,7 @@ class _BoostBase(BaseEstimator):
         self.baseline_ = float(baseline)
         raw = self._raw(X, offset)
         try:
-            self.family_ = fam.fit_params(y, raw, unit_w)
+            self.family_ = fam.fit_nuisance(y, raw, unit_w)
         except ValueError:
             self.family_ = fam  # zero residuals: the nuisance parameters keep their values
         return self
@@ -155,7 +155,7 @@ class _BoostBase(BaseEstimator):
         return self._raw(X, offset)
 
 
-class LossfamBoostRegressor(_RawScoreRegressorMethods, RegressorMixin, _BoostBase):
+class BoostedLikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, _BoostBase):
     """A LightGBM or XGBoost regressor trained on the nll of a lossfam family.
 
     Parameters
@@ -195,7 +195,7 @@ class LossfamBoostRegressor(_RawScoreRegressorMethods, RegressorMixin, _BoostBas
         ``(X, y)`` or ``(X, y, offset)``; other keyword arguments go to the engine's ``fit``."""
         owner = type(self).__name__
         if self.estimator is not None and is_classifier(self.estimator):
-            raise ValueError(f"{owner}: got a classifier; use LossfamBoostClassifier for class labels")
+            raise ValueError(f"{owner}: got a classifier; use BoostedLikelihoodClassifier for class labels")
         fam = make_family(self.family, **(self.family_params or {}))
         X, y = self._validate_Xy(X, y)
         y = fam.check_target(y, for_nll=False)
@@ -207,7 +207,7 @@ class LossfamBoostRegressor(_RawScoreRegressorMethods, RegressorMixin, _BoostBas
 
 
 
-class LossfamBoostClassifier(ClassifierMixin, _BoostBase):
+class BoostedLikelihoodClassifier(ClassifierMixin, _BoostBase):
     """A LightGBM or XGBoost model trained on the Bernoulli nll (log loss) as a binary classifier.
 
     ``estimator`` may be a regressor or a classifier of either engine (None:

@@ -154,7 +154,7 @@ def _finish(est, fam, fit, y, w):
             )
         return
     try:
-        est.family_ = fam.fit_params(y, fit.raw, w)
+        est.family_ = fam.fit_nuisance(y, fit.raw, w)
     except ValueError as exc:
         warnings.warn(
             f"{type(est).__name__}: the nuisance parameters of {fam.name} keep their given values "

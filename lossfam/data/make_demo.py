@@ -10,7 +10,7 @@ found in the crate at the packing table.  Features:
 * ``air_temp_c``      air temperature in the packing hall (cold fruit is firmer).
 
 The counts are drawn from a Poisson law whose log mean is a smooth, slightly
-non-linear function of the features, so ``lossfam compare --demo`` should put
+non-linear function of the features, so ``lossfam rank --demo`` should put
 poisson first, with the continuous families scored on the unit-interval
 footing and gamma and bernoulli listed as not applicable (zeros, counts > 1).
 

@@ -9,7 +9,7 @@ linear model or a boosted ensemble adds up).  It is the composition of
   constant kept, together with its first two derivatives in ``raw``.
 
 The public methods (``nll``, ``grad_hess``, ``deviance``, ``baseline``,
-``fit_params``, ``distribution``) validate their input once and then call the
+``fit_nuisance``, ``distribution``) validate their input once and then call the
 kernel hooks below, which assume valid float64 arrays:
 
 =====================  ======================================================
@@ -19,7 +19,7 @@ hook                   returns
 ``_grad_hess(y, raw)`` (d nll / d raw, d^2 nll / d raw^2 or its surrogate)
 ``_deviance(y, raw)``  per-row unit deviance (default: 2 (nll - nll at mu = y))
 ``_baseline(y, w, o)`` the constant raw score minimising sum w nll(y, c + o)
-``_fit_params(y,r,w)`` dict of maximum-likelihood nuisance parameters
+``_fit_nuisance(y,r,w)`` dict of maximum-likelihood nuisance parameters
 ``_distribution(raw)`` the predictive law per row (frozen scipy.stats law)
 =====================  ======================================================
 
@@ -151,7 +151,7 @@ class Family:
             raise ValueError(f"{self.name}: no finite constant raw score minimises the nll for these targets")
         return c
 
-    def fit_params(self, y, raw, weight=None) -> "Family":
+    def fit_nuisance(self, y, raw, weight=None) -> "Family":
         """A copy with the nuisance parameters at their maximum-likelihood values given raw."""
         if not self.params:
             return self
@@ -161,7 +161,7 @@ class Family:
         if w is None:
             w = np.ones_like(y)
         with np.errstate(over="ignore"):
-            new = self._fit_params(y, raw, w)
+            new = self._fit_nuisance(y, raw, w)
         return dataclasses.replace(self, **new)
 
     def distribution(self, raw):
@@ -192,7 +192,7 @@ class Family:
         res = optimize.minimize_scalar(mean_nll)
         return res.x
 
-    def _fit_params(self, y, raw, w):
+    def _fit_nuisance(self, y, raw, w):
         """Generic: maximise the weighted log-likelihood over the log of each parameter."""
         names = list(self.params)
         start = np.log([self.params[n] for n in names])

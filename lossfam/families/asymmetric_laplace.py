@@ -81,7 +81,7 @@ class AsymmetricLaplace(Family):
         target = y if offset is None else y - offset
         return weighted_quantile(target, w, self.quantile)
 
-    def _fit_params(self, y, raw, w):
+    def _fit_nuisance(self, y, raw, w):
         b = np.dot(w, pinball(y - raw, self.quantile)) / w.sum()
         if not b > 0:
             raise ValueError(

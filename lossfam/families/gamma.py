@@ -63,7 +63,7 @@ class Gamma(Family):
             return np.log(np.dot(w, y)) - np.log(w.sum())
         return np.log(np.dot(w, y * np.exp(-offset))) - np.log(w.sum())
 
-    def _fit_params(self, y, raw, w):
+    def _fit_nuisance(self, y, raw, w):
         lr = np.log(y) - raw
         target = float(np.dot(w, np.expm1(lr) - lr) / w.sum())  # mean_w of y/mu - 1 - log(y/mu)
         if not target > 0:

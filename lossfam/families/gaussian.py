@@ -55,7 +55,7 @@ class Gaussian(Family):
         target = y if offset is None else y - offset
         return np.average(target, weights=w)
 
-    def _fit_params(self, y, raw, w):
+    def _fit_nuisance(self, y, raw, w):
         r = y - raw
         var = np.dot(w, r * r) / w.sum()
         if not var > 0:

@@ -180,7 +180,7 @@ class Huber(Family):
             return lo
         return optimize.brentq(score, lo, hi, xtol=1e-14 * max(1.0, abs(lo), abs(hi)), rtol=4 * np.finfo(float).eps)
 
-    def _fit_params(self, y, raw, w):
+    def _fit_nuisance(self, y, raw, w):
         r = y - raw
         d = self.delta
         sw = w.sum()

@@ -22,7 +22,7 @@ weighted average of the residuals themselves, so the step has the scale of
 the target (the iteratively reweighted least-squares step for the median),
 unlike a unit Hessian whose step is bounded by 1 whatever the units of y.
 The floor keeps rows that already fit exactly from getting infinite weight;
-it is relative to b, so fit b first (``fit_params``) for best behaviour.
+it is relative to b, so fit b first (``fit_nuisance``) for best behaviour.
 """
 from __future__ import annotations
 
@@ -78,7 +78,7 @@ class Laplace(Family):
         target = y if offset is None else y - offset
         return weighted_quantile(target, w, 0.5)
 
-    def _fit_params(self, y, raw, w):
+    def _fit_nuisance(self, y, raw, w):
         b = np.dot(w, np.abs(y - raw)) / w.sum()
         if not b > 0:
             raise ValueError("laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")

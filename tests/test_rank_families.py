@@ -1,4 +1,4 @@
-"""lossfam.compare: cross-validated held-out nll ranks the family the data came from first.
+"""lossfam.rank_families: cross-validated held-out nll ranks the family the data came from first.
 
 Simulated data (invented, for these checks only): X has three standard normal
 features, the raw score is 0.6 x0 - 0.4 x1 (x2 is noise) plus a per-family
@@ -62,7 +62,7 @@ def test_true_family_ranks_first(truth, engine):
         # the default list leaves it out (at quantile 0.5 it is laplace); ask for the 0.8 quantile model
         families = ["gaussian", "laplace", "huber", AL_08]
         expected = "asymmetric_laplace(quantile=0.8)"
-    rows = lossfam.compare(X, y, families=families, engine=engine, folds=2, seed=0, rounds=ROUNDS,
+    rows = lossfam.rank_families(X, y, families=families, engine=engine, folds=2, seed=0, rounds=ROUNDS,
                            engine_params=ENGINE_PARAMS[engine], as_frame=False)
     ok = [r for r in rows if r["status"] == "ok"]
     assert len(ok) >= 3
@@ -78,7 +78,7 @@ def test_nuisance_parameters_are_the_training_fold_fits():
     rng = np.random.default_rng(7)
     X = rng.normal(size=(3000, 2))
     y = rng.normal(1.0 + X[:, 0], 3.0)
-    rows = lossfam.compare(X, y, families=["gaussian", "laplace"], folds=3, as_frame=False)
+    rows = lossfam.rank_families(X, y, families=["gaussian", "laplace"], folds=3, as_frame=False)
     by = {r["family"]: r for r in rows}
     # gaussian scale: the ML sd of the residuals (true 3); laplace scale: mean |residual| = 3 sqrt(2/pi)
     assert by["gaussian"]["params"]["scale"] == pytest.approx(3.0, rel=0.04)
@@ -88,13 +88,13 @@ def test_nuisance_parameters_are_the_training_fold_fits():
     # the same with a fold's parameters computed by hand
     gam_X = rng.normal(size=(4000, 1))
     gam_y = rng.gamma(4.0, np.exp(gam_X[:, 0] * 0.3) / 4.0)
-    g = {r["family"]: r for r in lossfam.compare(gam_X, gam_y, families=["gamma"], folds=2, as_frame=False)}
+    g = {r["family"]: r for r in lossfam.rank_families(gam_X, gam_y, families=["gamma"], folds=2, as_frame=False)}
     assert g["gamma"]["params"]["shape"] == pytest.approx(4.0, rel=0.1)
 
 
 def test_integer_targets_put_continuous_families_on_the_interval_footing():
     X, y = simulate("poisson", n=1500)
-    frame = lossfam.compare(X, y, families=["poisson", "gaussian"], folds=2)
+    frame = lossfam.rank_families(X, y, families=["poisson", "gaussian"], folds=2)
     by = frame.set_index("family")
     assert by.loc["poisson", "scored_by"] == selection.SCORED_MASS
     assert by.loc["gaussian", "scored_by"] == selection.SCORED_INTERVAL
@@ -107,7 +107,7 @@ def test_integer_targets_put_continuous_families_on_the_interval_footing():
     ref = -np.log(stats.norm.cdf(y + 0.5, raw, 1.3) - stats.norm.cdf(y - 0.5, raw, 1.3))
     np.testing.assert_allclose(nll, ref, rtol=1e-9)
     # on non-integer targets the same family is scored by its log density
-    rows = lossfam.compare(X, y + 0.25, families=["gaussian"], folds=2, as_frame=False)
+    rows = lossfam.rank_families(X, y + 0.25, families=["gaussian"], folds=2, as_frame=False)
     assert rows[0]["scored_by"] == selection.SCORED_DENSITY
 
 
@@ -115,7 +115,7 @@ def test_families_outside_their_support_are_listed_not_applicable():
     rng = np.random.default_rng(8)
     X = rng.normal(size=(600, 2))
     y = rng.normal(X[:, 0], 1.0)  # real-valued, some negative
-    rows = lossfam.compare(X, y, folds=2, as_frame=False)
+    rows = lossfam.rank_families(X, y, folds=2, as_frame=False)
     by = {r["family"]: r for r in rows}
     for name, why in [("poisson", "integer"), ("gamma", "> 0"), ("bernoulli", "0 or 1")]:
         assert by[name]["status"] == "not applicable" and why in by[name]["note"], by[name]
@@ -123,16 +123,16 @@ def test_families_outside_their_support_are_listed_not_applicable():
     assert [r["status"] for r in rows[-3:]] == ["not applicable"] * 3
     # gamma on counts with zeros, asked for explicitly: listed, not raised
     yc = rng.poisson(2.0, 600).astype(float)
-    rows = lossfam.compare(X, yc, families=["gamma", "poisson"], folds=2, as_frame=False)
+    rows = lossfam.rank_families(X, yc, families=["gamma", "poisson"], folds=2, as_frame=False)
     assert rows[0]["family"] == "poisson" and rows[1]["status"] == "not applicable"
-    assert "asymmetric_laplace" not in {r["family"] for r in lossfam.compare(X, y, folds=2, as_frame=False)}
+    assert "asymmetric_laplace" not in {r["family"] for r in lossfam.rank_families(X, y, folds=2, as_frame=False)}
 
 
 def test_a_family_whose_fit_fails_is_listed_as_failed():
     X = np.random.default_rng(9).normal(size=(200, 2))
     y = np.full(200, 3.0)  # constant: no finite gaussian scale, but a fine poisson mean
     with pytest.warns(UserWarning):
-        rows = lossfam.compare(X, y, families=["gaussian", "poisson"], folds=2, as_frame=False)
+        rows = lossfam.rank_families(X, y, families=["gaussian", "poisson"], folds=2, as_frame=False)
     by = {r["family"]: r for r in rows}
     assert by["poisson"]["status"] == "ok" and by["poisson"]["rank"] == 1
     assert by["gaussian"]["status"] == "failed" and "scale" in by["gaussian"]["note"]
@@ -140,46 +140,46 @@ def test_a_family_whose_fit_fails_is_listed_as_failed():
 
 def test_weights_output_forms_and_progress():
     X, y = simulate("gamma", n=800)
-    plain = lossfam.compare(X, y, families=["gamma", "laplace"], folds=2, as_frame=False)
-    ones = lossfam.compare(X, y, families=["gamma", "laplace"], folds=2, weight=np.full(800, 2.0), as_frame=False)
+    plain = lossfam.rank_families(X, y, families=["gamma", "laplace"], folds=2, as_frame=False)
+    ones = lossfam.rank_families(X, y, families=["gamma", "laplace"], folds=2, weight=np.full(800, 2.0), as_frame=False)
     for a, b in zip(plain, ones):
         assert a["family"] == b["family"] and a["nll"] == pytest.approx(b["nll"], rel=1e-6)
     w = np.where(np.arange(800) % 2 == 0, 1.0, 3.0)
-    weighted = lossfam.compare(X, y, families=["gamma"], folds=2, weight=w, as_frame=False)
+    weighted = lossfam.rank_families(X, y, families=["gamma"], folds=2, weight=w, as_frame=False)
     assert weighted[0]["nll"] != pytest.approx(plain[0]["nll"], rel=1e-6)
     pd = pytest.importorskip("pandas")
-    frame = lossfam.compare(X, y, families=["gamma"], folds=2)
+    frame = lossfam.rank_families(X, y, families=["gamma"], folds=2)
     assert isinstance(frame, pd.DataFrame)
     assert list(frame.columns[:4]) == ["rank", "family", "nll", "nll_se"]
     seen = []
-    lossfam.compare(X, y, families=["gamma"], folds=2, progress=seen.append)
+    lossfam.rank_families(X, y, families=["gamma"], folds=2, progress=seen.append)
     assert len(seen) == 2 and "fold 2/2" in seen[-1]
 
 
-def test_compare_refuses_bad_arguments():
+def test_rank_families_refuses_bad_arguments():
     X, y = simulate("gaussian", n=100)
     with pytest.raises(ValueError, match="engine must be one of"):
-        lossfam.compare(X, y, engine="forest")
+        lossfam.rank_families(X, y, engine="forest")
     with pytest.raises(ValueError, match="folds"):
-        lossfam.compare(X, y, folds=1)
+        lossfam.rank_families(X, y, folds=1)
     bad = y.copy()
     bad[[3, 7]] = np.nan
     with pytest.raises(ValueError, match=r"rows \[3, 7\]"):
-        lossfam.compare(X, bad)
+        lossfam.rank_families(X, bad)
     with pytest.raises(ValueError, match="one row per target"):
-        lossfam.compare(X[:50], y)
+        lossfam.rank_families(X[:50], y)
     Xn = X.copy()
     Xn[5, 1] = np.nan
     with pytest.raises(ValueError, match="linear engine needs finite features"):
-        lossfam.compare(Xn, y)
+        lossfam.rank_families(Xn, y)
     with pytest.raises(ValueError, match="unknown family"):
-        lossfam.compare(X, y, families=["cauchy"])
+        lossfam.rank_families(X, y, families=["cauchy"])
 
 
 def test_ks_column_separates_right_from_wrong_law():
     X, y = simulate("gamma", n=3000)
-    rows = {r["family"]: r for r in lossfam.compare(X, y, families=["gamma", "gaussian"], folds=2, as_frame=False)}
-    _, details = selection._compare_detailed(X, y, families=["gamma", "gaussian"], folds=2)
+    rows = {r["family"]: r for r in lossfam.rank_families(X, y, families=["gamma", "gaussian"], folds=2, as_frame=False)}
+    _, details = selection._rank_detailed(X, y, families=["gamma", "gaussian"], folds=2)
     assert rows["gamma"]["ks"] == pytest.approx(diagnostics.ks_statistic(details["gamma"]["residuals"]))
     # held-out residuals of the right law pass the KS test, those of the wrong one fail it (scipy.stats.kstest)
     assert stats.kstest(details["gamma"]["residuals"], "norm").pvalue > 0.01
