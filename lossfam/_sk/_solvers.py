@@ -14,15 +14,29 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
         dF/dcoef = X^T (v g) + alpha coef,          dF/dintercept = sum v g
         d2F      = [X 1]^T diag(v h) [X 1] + alpha diag(1, ..., 1, 0)
 
-    The Newton direction solves d2F d = -dF by Cholesky (scipy.linalg.cho_factor);
-    a backtracking (Armijo) line search on F makes each step a descent step, so
+    The Newton direction solves d2F d = -dF by Cholesky (scipy.linalg.cho_factor)
+    of the equilibrated matrix D^-1 d2F D^-1, D = sqrt(diag d2F) (symmetric
+    Jacobi scaling: by van der Sluis' theorem it is within a factor
+    sqrt(p + 1) of the best diagonal scaling, so a design whose columns differ
+    in units -- years, money amounts, timestamps -- is factorised as well as
+    its standardised twin; the direction is unchanged by it).  Each Newton
+    step computes the gradient exactly from the data, so it is also a step of
+    iterative refinement: the answer is accurate to the problem's own
+    conditioning, not the square of it.
+    A backtracking (Armijo) line search on F makes each step a descent step, so
     the iteration converges from any start for a convex nll and quadratically
     near the optimum.  If the Cholesky factorisation fails (a singular design
     with alpha = 0, or a non-convex user family) the matrix is damped by
     lambda I with lambda growing tenfold until it factorises (a
     Levenberg-Marquardt step).  X^T diag(v h) X is accumulated in row blocks
     with one BLAS symmetric rank-k update (dsyrk) per block on the pre-scaled
-    rows sqrt(v h) x_i.  Stops when max |dF| <= tol.
+    rows sqrt(v h) x_i (sparse X: one sparse product per block of rows, X is
+    never densified; the (p + 1) x (p + 1) matrix is dense).  Stops when
+    max_j |dF/dcoef_j| / c_j <= tol with c_j = sqrt(sum_i v_i x_ij^2) (c = 1 for
+    the intercept and for all-zero columns): the gradient with respect to the
+    coefficients of the standardised columns x_j / c_j, so the rule does not
+    depend on a column's units; or when a step no longer changes any raw score
+    beyond rounding (64 eps max |raw|).
 
     Families whose Hessian is a surrogate (``exact_hessian`` False, e.g. a user
     family) use the same iteration with the surrogate in place of d2F: each
@@ -75,6 +89,8 @@ from scipy import linalg, optimize, sparse
 from scipy.linalg.blas import dsyrk
 
 _BLOCK = 8192  # rows per block when accumulating X^T diag(h) X
+_SPARSE_BLOCK = 131072  # rows per block for sparse X (bounds the one scaled copy of a block)
+_ROUNDING = 64.0 * np.finfo(float).eps  # a raw-score change below this times max |raw| is rounding
 _EPS = np.finfo(float).eps
 SUBSAMPLE_MIN_ROWS = 100_000  # subsampled Hessians (far from the optimum) only from this many rows
 SUBSAMPLE_FRACTION = 8  # ... using one row in this many
@@ -98,16 +114,28 @@ class LinearFit:
 
 
 def weighted_gram(X, hv, buf=None):
-    """(X^T diag(hv) X, X^T hv) for a C-contiguous float64 X, in one pass over X.
+    """(X^T diag(hv) X, X^T hv) in one pass over X (dense C-contiguous float64, or scipy.sparse).
 
-    For hv >= 0 the rows are scaled by sqrt(hv) block by block; each block is
-    added to the Gram matrix with dsyrk (half the flops of a general product,
-    no n x p temporary) and to X^T hv as (scaled block)^T sqrt(hv) while it is
-    still in cache.  Otherwise plain products are used.
+    Dense X with hv >= 0: the rows are scaled by sqrt(hv) block by block; each
+    block is added to the Gram matrix with dsyrk (half the flops of a general
+    product, no n x p temporary) and to X^T hv as (scaled block)^T sqrt(hv)
+    while it is still in cache.  Sparse X: one sparse product per block of
+    rows (the scaled block is the only copy made), accumulated in a dense p x p
+    array.  Otherwise plain products are used.
     """
     n, p = X.shape
     if p == 0:
         return np.zeros((0, 0)), np.zeros(0)
+    if sparse.issparse(X):
+        X = X.tocsr() if X.format != "csr" else X
+        c = np.zeros((p, p))
+        m = max(1, min(n, _SPARSE_BLOCK))
+        for s in range(0, n, m):
+            e = min(n, s + m)
+            blk = X[s:e]
+            scaled = sparse.diags(hv[s:e]) @ blk
+            c += (blk.T @ scaled).toarray()
+        return c, np.asarray(X.T @ hv).ravel()
     if n and np.min(hv) >= 0:
         sq = np.sqrt(hv)
         m = min(_BLOCK, n)
@@ -124,12 +152,40 @@ def weighted_gram(X, hv, buf=None):
     return X.T @ (hv[:, None] * X), X.T @ hv
 
 
+def column_scales(X, v):
+    """c_j = sqrt(sum_i v_i x_ij^2) (1 for an all-zero column), in blocks of rows for sparse X."""
+    n, p = X.shape
+    if sparse.issparse(X):
+        X = X.tocsr() if X.format != "csr" else X
+        ss = np.zeros(p)
+        for s in range(0, n, _SPARSE_BLOCK):
+            blk = X[s:s + _SPARSE_BLOCK]
+            ss += np.asarray(blk.multiply(blk).T @ v[s:s + _SPARSE_BLOCK]).ravel()
+    else:
+        ss = np.zeros(p)
+        for s in range(0, n, _BLOCK):
+            blk = X[s:s + _BLOCK]
+            ss += v[s:s + _BLOCK] @ (blk * blk)
+    c = np.sqrt(ss)
+    c[~(c > 0) | ~np.isfinite(c)] = 1.0
+    return c
+
+
+def _equilibrate(H):
+    """D = sqrt(diag H) (1 where the diagonal is not positive) and D^-1 H D^-1."""
+    d = np.sqrt(np.abs(np.diag(H)))
+    d[~(d > 0) | ~np.isfinite(d)] = 1.0
+    return d, H / d[:, None] / d[None, :]
+
+
 def _cholesky(H):
-    """Cholesky factor of H, or None when H is not numerically positive definite.
+    """Cholesky factor of an equilibrated H, or None when H is not numerically positive definite.
 
     A factorisation whose smallest pivot is below 1e-12 of the largest is
     refused: H is then singular to working precision (e.g. more coefficients
-    than informative rows with alpha = 0) and its solve would be noise.
+    than informative rows with alpha = 0) and its solve would be noise.  The
+    test is applied after equilibration (unit diagonal), so it measures
+    collinearity, not the columns' units.
     """
     try:
         fac = linalg.cho_factor(H, check_finite=False)
@@ -141,29 +197,37 @@ def _cholesky(H):
     return fac
 
 
-def _solve_spd(H, rhs):
-    """Solve H d = rhs for the Newton step.
+def _newton_step(H, rhs, exact=True):
+    """Solve H d = rhs through the equilibrated matrix D^-1 H D^-1; return (d, solve).
 
-    Cholesky when H is numerically positive definite; otherwise the symmetric
-    eigendecomposition H = V diag(lam) V^T with d = V diag(1 / |lam|) V^T rhs
-    over the eigenvalues with |lam| > 1e-12 max |lam| (a pseudo-inverse step:
-    it stays in the span of the data rows, so a rank-deficient problem gets the
-    solution in that span; |lam| keeps the step a descent direction when a user
-    family's Hessian is indefinite).
+    Cholesky when it is numerically positive definite; otherwise (``exact``)
+    its symmetric eigendecomposition V diag(lam) V^T with the pseudo-inverse
+    over |lam| > 1e-12 max |lam| (the step stays in the span of the data rows,
+    so a rank-deficient problem gets the solution in that span; |lam| keeps the
+    step a descent direction when a user family's Hessian is indefinite).
+    ``solve(r)`` applies the same factorisation to another right-hand side.
+    Returns (None, None) when ``exact`` is False and the Cholesky factorisation fails.
     """
-    fac = _cholesky(H)
+    dg, Hs = _equilibrate(H)
+    fac = _cholesky(Hs)
     if fac is not None:
-        return linalg.cho_solve(fac, rhs, check_finite=False)
-    lam, V = linalg.eigh(H, check_finite=False)
+        def solve(r):
+            return linalg.cho_solve(fac, r / dg, check_finite=False) / dg
+        return solve(rhs), solve
+    if not exact:
+        return None, None
+    lam, V = linalg.eigh(Hs, check_finite=False)
     mag = np.abs(lam)
     keep = mag > 1e-12 * max(float(mag.max(initial=0.0)), 1e-300)
-    coef = np.zeros_like(lam)
-    coef[keep] = (V[:, keep].T @ rhs) / mag[keep]
-    return V @ coef
+    Vk, mk = V[:, keep], mag[keep]
+
+    def solve(r):
+        return (Vk @ ((Vk.T @ (r / dg)) / mk)) / dg
+    return solve(rhs), solve
 
 
 def _raw(X, coef, intercept, offset):
-    raw = X @ coef if X.shape[1] else np.zeros(X.shape[0])
+    raw = np.asarray(X @ coef, dtype=float).ravel() if X.shape[1] else np.zeros(X.shape[0])
     raw += intercept
     if offset is not None:
         raw += offset
@@ -171,20 +235,21 @@ def _raw(X, coef, intercept, offset):
 
 
 def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-           curvature=None, buf=None, merit="objective") -> LinearFit:
+           curvature=None, buf=None, merit="objective", cscale=None) -> LinearFit:
     """Damped Newton iteration for F (see the module docstring).
 
     ``curvature(fam, y, raw, h)`` may replace the family's Hessian per row
-    (used for Huber's generalised Hessian).
+    (used for Huber's generalised Hessian).  ``cscale``: the column scales c_j
+    of the stopping rule (computed from X and v when None).
 
     ``merit`` chooses what the backtracking line search must decrease:
     ``"objective"`` -- F itself (Armijo: F(t) <= F(0) + 1e-4 t dF.d), safe for
-    any family; ``"gradient"`` -- ||dF||^2 (Armijo with slope -2 ||dF||^2,
-    since dF^T d2F d = -||dF||^2 for the Newton direction).  The gradient merit
-    needs no nll evaluation (the trial gradient is reused by the next step) and
-    is used for the built-in families whose nll is convex in raw, where a
-    stationary point is the minimum.  If it cannot make progress, the step
-    falls back to the objective merit.
+    any family; ``"gradient"`` -- ||C^-1 dF||^2 with C = diag(c) (Armijo with
+    slope -2 ||C^-1 dF||^2, since dF^T C^-2 d2F d = -||C^-1 dF||^2 for the
+    Newton direction).  The gradient merit needs no nll evaluation (the trial
+    gradient is reused by the next step) and is used for the built-in families
+    whose nll is convex in raw, where a stationary point is the minimum.  If it
+    cannot make progress, the step falls back to the objective merit.
     """
     n, p = X.shape
     coef = np.array(coef, dtype=float)
@@ -194,6 +259,10 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     else:
         raw = np.full(n, intercept) if offset is None else offset + intercept
     nfree = p + int(fit_intercept)
+    if cscale is None:
+        cscale = column_scales(X, v) if p else np.zeros(0)
+    inv_c = np.ones(nfree)
+    inv_c[:p] = 1.0 / cscale
 
     def objective(raw_, coef_):
         with np.errstate(over="ignore", invalid="ignore"):
@@ -235,20 +304,25 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     sub = None
     if merit == "gradient" and n >= SUBSAMPLE_MIN_ROWS and p:
         sub = slice(0, None, SUBSAMPLE_FRACTION)
-        Xsub = np.ascontiguousarray(X[sub])
+        Xsub = X[sub] if sparse.issparse(X) else np.ascontiguousarray(X[sub])
     last_change = np.inf
 
     grad, h = derivatives(raw, coef)
     F = None
+    solve = None
     converged = False
     gnorm = np.inf
     it = 0
     for it in range(max_iter + 1):
-        gnorm = float(np.max(np.abs(grad))) if nfree else 0.0
+        sgrad = grad * inv_c
+        gnorm = float(np.max(np.abs(sgrad))) if nfree else 0.0
         if not np.isfinite(gnorm):
             raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
         if gnorm <= tol:
             converged = True
+            if solve is not None:
+                coef, intercept, raw, grad, h, gnorm = _refine(
+                    solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept)
             break
         if it == max_iter:
             break
@@ -258,34 +332,35 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
             # far from the optimum: curvature from a row subsample is as good as the full one
             hv = h[sub] * v[sub]
             hv *= 1.0 / max(float(v[sub].sum()), 1e-300)
-            fac = _cholesky(hessian(Xsub, hv))
-            if fac is not None:
-                d = -linalg.cho_solve(fac, grad, check_finite=False)
+            d, solve = _newton_step(hessian(Xsub, hv), grad, exact=False)
+            if d is not None:
+                d = -d
         for hh in ([alt, h] if alt is not None else [h]):
             if d is not None:
                 break
             H = hessian(X, hh * v)
             if hh is alt:
                 # the generalised Hessian may be singular: use it only if it is well conditioned
-                fac = _cholesky(H)
-                if fac is None:
+                d, solve = _newton_step(H, grad, exact=False)
+                if d is None:
                     continue
-                d = -linalg.cho_solve(fac, grad, check_finite=False)
+                d = -d
                 break
-            d = -_solve_spd(H, grad)
+            d, solve = _newton_step(H, grad)
+            d = -d
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
-        draw = X @ dc if p else np.zeros(n)
-        draw += db
+        draw = _raw(X, dc, db, None) if p else np.full(n, db)
         accepted = False
         if merit == "gradient":
-            m0 = float(grad @ grad)
+            m0 = float(sgrad @ sgrad)
             t = 1.0
             for _ in range(30):
                 raw_new = raw + t * draw
                 coef_new = coef + t * dc
                 grad_new, h_new = derivatives(raw_new, coef_new)
-                m1 = float(grad_new @ grad_new)
+                sg = grad_new * inv_c
+                m1 = float(sg @ sg)
                 if np.isfinite(m1) and m1 <= (1.0 - 2e-4 * t) * m0:
                     accepted = True
                     break
@@ -309,23 +384,57 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
                     break
                 t *= 0.5
             if not accepted:
-                break  # no descent possible: a broken family or a singular problem at rounding level
+                # no descent possible: at the optimum to rounding when the full step is itself
+                # below the rounding of the raw scores, else a broken family or a singular problem
+                converged = float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(
+                    np.max(np.abs(raw), initial=0.0))
+                break
             F, noise = F_new, noise_of(per_row)
             grad_new, h_new = derivatives(raw_new, coef_new)
         else:
             F = None
-        step = t * np.max(np.abs(d)) if nfree else 0.0
-        last_change = t * float(np.max(np.abs(draw)))
+        last_change = t * float(np.max(np.abs(draw), initial=0.0))
         coef, intercept, raw, grad, h = coef_new, intercept + t * db, raw_new, grad_new, h_new
-        if step <= 4.0 * _EPS * (1.0 + max(np.max(np.abs(coef), initial=0.0), abs(intercept))):
-            # the step no longer changes the parameters: nothing more can be gained
-            gnorm = float(np.max(np.abs(grad))) if nfree else 0.0
-            converged = gnorm <= tol
+        if last_change <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)) and t == 1.0:
+            # a full Newton step no longer changes any raw score beyond rounding: the optimum
+            # is reached to working precision (the gradient is then at its rounding level)
+            gnorm = float(np.max(np.abs(grad * inv_c))) if nfree else 0.0
+            converged = True
             it += 1
             break
     if F is None:
         F = np.nan  # not evaluated (the gradient merit needs no nll values)
     return LinearFit(coef, intercept, raw, it, F, gnorm, converged, fam)
+
+
+def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, rounds=4):
+    """Iterative refinement at the stopping point: Newton steps with the last factorisation.
+
+    The gradient test alone stops an ill-conditioned problem early (a gradient
+    below tol can leave the coefficients wrong by tol times the condition
+    number).  Each round solves with the factorisation already at hand (no new
+    pass to form a Hessian) and is kept only while it lowers ||C^-1 dF|| and
+    still moves some raw score beyond rounding.
+    """
+    p = coef.shape[0]
+    sg = grad * inv_c
+    m0 = float(sg @ sg)
+    for _ in range(rounds):
+        d = -solve(grad)
+        dc = d[:p]
+        db = d[p] if fit_intercept else 0.0
+        draw = _raw(X, dc, db, None) if p else np.full(raw.shape[0], db)
+        if float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)):
+            break
+        raw_new = raw + draw
+        coef_new = coef + dc
+        grad_new, h_new = derivatives(raw_new, coef_new)
+        sg = grad_new * inv_c
+        m1 = float(sg @ sg)
+        if not (m1 < m0):
+            break
+        coef, intercept, raw, grad, h, m0 = coef_new, intercept + db, raw_new, grad_new, h_new, m1
+    return coef, intercept, raw, grad, h, float(np.sqrt(np.max(grad * grad * inv_c * inv_c, initial=0.0)))
 
 
 def huber_curvature(fam, y, raw, h):
@@ -372,14 +481,63 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
     return fit
 
 
-def quantile_lp(X, y, v, offset, tau, fit_intercept) -> LinearFit:
-    """Exact minimiser of sum v rho_tau(y - raw) by linear programming (HiGHS)."""
+def _pow2(a):
+    """The power of two nearest to a > 0 (dividing by it is exact in binary floating point)."""
+    return float(np.ldexp(1.0, int(np.round(np.log2(a)))))
+
+
+def _lp_columns(Xk, w, fit_intercept, names=None):
+    """Centred (dense, with an intercept) and power-of-two scaled columns for HiGHS.
+
+    HiGHS treats matrix entries above 1e15 as errors and drops those below 1e-9,
+    so raw columns such as nanosecond timestamps (~1.6e18) cannot be passed as
+    they are.  Centring a column at its weighted mean is absorbed by the
+    intercept and scaling it by a power of two is exact, so neither changes the
+    fitted values.  Returns (columns, centre, scale); a column whose scaled
+    values are still not finite numbers of order one raises a ValueError naming it.
+    """
+    m, p = Xk.shape
+    center = np.zeros(p)
+    if fit_intercept and not sparse.issparse(Xk) and m:
+        center = (w @ Xk) / w.sum()
+        Xc = Xk - center
+    else:
+        Xc = Xk
+    amax = (abs(Xc).max(axis=0).toarray().ravel() if sparse.issparse(Xc) else np.max(np.abs(Xc), axis=0, initial=0.0))
+    with np.errstate(divide="ignore", over="ignore", invalid="ignore"):
+        scale = np.array([_pow2(a) if a > 0 and np.isfinite(a) else 1.0 for a in amax])
+        bad = ~np.isfinite(amax) | ~np.isfinite(center) | ~((amax / scale <= 2.0) & ((amax == 0) | (amax / scale >= 0.5)))
+    if np.any(bad):
+        j = int(np.flatnonzero(bad)[0])
+        label = repr(str(names[j])) if names is not None else str(j)
+        raise ValueError(
+            f"column {label} cannot be represented in the linear programme of the quantile fit: "
+            f"its largest centred magnitude {amax[j]!r} has no finite power-of-two scale (values "
+            "between about 1e-300 and 1e300 are needed); rescale this column")
+    Xs = Xc @ sparse.diags(1.0 / scale) if sparse.issparse(Xc) else Xc / scale
+    return Xs, center, scale
+
+
+def quantile_lp(X, y, v, offset, tau, fit_intercept, names=None) -> LinearFit:
+    """Exact minimiser of sum v rho_tau(y - raw) by linear programming (HiGHS).
+
+    The columns are centred and scaled (``_lp_columns``), the target scaled by a
+    power of two.  HiGHS stops at its feasibility tolerance (~1e-7 of the scaled
+    data), so the vertex it returns is then polished: the rows it fits to that
+    tolerance are fitted exactly by least squares (a vertex of this programme
+    interpolates nfree rows), and the polished point is kept if its objective is
+    not larger.
+    """
     n, p = X.shape
     keep = v > 0
     Xk, vk = X[keep], v[keep]
     target = y[keep] - (offset[keep] if offset is not None else 0.0)
     m = Xk.shape[0]
-    blocks = [sparse.csr_matrix(Xk)]
+    Xs, center, scale = _lp_columns(Xk, vk, fit_intercept, names)
+    tmax = float(np.max(np.abs(target), initial=0.0))
+    ts = _pow2(tmax) if tmax > 0 and np.isfinite(tmax) else 1.0
+    tgt = target / ts
+    blocks = [sparse.csr_matrix(Xs)]
     if fit_intercept:
         blocks.append(sparse.csr_matrix(np.ones((m, 1))))
     eye = sparse.identity(m, format="csr")
@@ -388,11 +546,27 @@ def quantile_lp(X, y, v, offset, tau, fit_intercept) -> LinearFit:
     nfree = p + int(fit_intercept)
     c = np.concatenate([np.zeros(nfree), tau * vk, (1.0 - tau) * vk])
     bounds = [(None, None)] * nfree + [(0, None)] * (2 * m)
-    res = optimize.linprog(c, A_eq=A, b_eq=target, bounds=bounds, method="highs")
+    res = optimize.linprog(c, A_eq=A, b_eq=tgt, bounds=bounds, method="highs")
     if res.status != 0:
         raise RuntimeError(f"the linear programme for the quantile fit failed: {res.message}")
-    coef = np.asarray(res.x[:p], dtype=float)
-    intercept = float(res.x[p]) if fit_intercept else 0.0
+    sol = np.asarray(res.x[:nfree], dtype=float)
+
+    def pinball(s):
+        r = tgt - (np.asarray(Xs @ s[:p]).ravel() + (s[p] if fit_intercept else 0.0))
+        return float(np.dot(vk, np.maximum(tau * r, (tau - 1.0) * r))), r
+
+    obj, r = pinball(sol)
+    Z = np.abs(r) <= 1e-6
+    if Z.sum() >= nfree:
+        Az = Xs[Z].toarray() if sparse.issparse(Xs) else Xs[Z]
+        if fit_intercept:
+            Az = np.column_stack([Az, np.ones(Az.shape[0])])
+        polished = np.linalg.lstsq(Az, tgt[Z], rcond=None)[0]
+        obj_p, _ = pinball(polished)
+        if obj_p <= obj:
+            sol = polished
+    coef = sol[:p] / scale * ts
+    intercept = (float(sol[p]) * ts - float(center @ coef)) if fit_intercept else 0.0
     raw = _raw(X, coef, intercept, offset)
     r = y - raw
     obj = float(np.dot(v, np.maximum(tau * r, (tau - 1.0) * r)))
