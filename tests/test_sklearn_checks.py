@@ -54,7 +54,8 @@ _LGBM_COUNTS = (
 def expected_failures(est):
     if isinstance(est, LikelihoodRegressor) and est.family in ("laplace", "asymmetric_laplace"):
         if est.alpha == 0:
-            return {"check_sample_weight_equivalence_on_dense_data": _NON_UNIQUE_LP}
+            return {"check_sample_weight_equivalence_on_dense_data": _NON_UNIQUE_LP,
+                    "check_sample_weight_equivalence_on_sparse_data": _NON_UNIQUE_LP}
     if isinstance(est, BoostedLikelihoodRegressor):
         if type(est.estimator).__module__.startswith("lightgbm"):
             return {"check_sample_weight_equivalence_on_dense_data": _LGBM_COUNTS}

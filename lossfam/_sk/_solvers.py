@@ -573,35 +573,52 @@ def quantile_lp(X, y, v, offset, tau, fit_intercept, names=None) -> LinearFit:
     return LinearFit(coef, intercept, raw, int(res.nit), obj, np.nan, True, None)
 
 
-def separation_margin(X, y01, v, fit_intercept) -> float:
-    """Detect (quasi-)complete separation of binary labels by linear programming.
+def unbounded_margin(X, sign, v, fit_intercept) -> float:
+    """Detect a direction along which the likelihood rises without bound, by linear programming.
 
-    With s_i = 2 y_i - 1 and z_i = s_i [x_i, 1], the data are separated exactly
-    when some direction beta has z_i . beta >= 0 for every row and > 0 for at
-    least one.  The linear programme
+    ``sign[i]`` says in which direction row i's nll keeps falling towards a
+    finite limit as its raw score moves: +1 (raw -> +inf: bernoulli y = 1),
+    -1 (raw -> -inf: bernoulli y = 0, poisson y = 0) or 0 (neither: the nll
+    grows both ways).  With z_i = [x_i, 1] . beta, the maximum-likelihood
+    estimate is infinite exactly when some beta has sign_i z_i >= 0 on the
+    signed rows, z_i = 0 on the others, and sign_i z_i > 0 somewhere: moving
+    along beta then lowers the nll of some rows and changes no other.  The
+    linear programme
 
-        maximise sum_i z_i . beta   subject to  z_i . beta >= 0,  -1 <= beta_j <= 1
+        maximise sum_i sign_i z_i   subject to  sign_i z_i >= 0,  z_i = 0 (sign_i = 0),  -1 <= beta_j <= 1
 
-    has optimum 0 when the logistic maximum-likelihood estimate is finite and a
-    positive optimum when it does not exist (a standard detection programme;
-    Konis, 2007, Linear programming algorithms for detecting separated data in
-    binary logistic regression models, DPhil thesis, Oxford -- recalled from
-    memory).  Returns that optimum divided by sum |z_i| (0 means not separated).
+    has optimum 0 when the estimate is finite and a positive optimum when it
+    is not.  For bernoulli this is the detection programme of (quasi-)complete
+    separation (Konis, 2007, Linear programming algorithms for detecting
+    separated data in binary logistic regression models, DPhil thesis, Oxford
+    -- recalled from memory); for poisson it finds e.g. a category whose counts
+    are all zero.  The columns are scaled by powers of two first.  Returns that
+    optimum divided by sum |sign_i z_i| (0 means a finite estimate).
     """
     keep = v > 0
-    Xk = X[keep]
-    s = 2.0 * y01[keep] - 1.0
-    Z = Xk * s[:, None]
+    Xk, sg = X[keep], np.asarray(sign, dtype=float)[keep]
+    if Xk.shape[1]:
+        Xk, _, _ = _lp_columns(Xk, v[keep], False)
+    cols = [Xk] if Xk.shape[1] else []
     if fit_intercept:
-        Z = np.hstack([Z, s[:, None]])
-    if Z.shape[1] == 0:
+        cols.append(np.ones((Xk.shape[0], 1)))
+    if not cols or not np.any(sg):
         return 0.0
-    total = Z.sum(axis=0)
-    res = optimize.linprog(-total, A_ub=-Z, b_ub=np.zeros(Z.shape[0]),
+    Z = sparse.hstack([sparse.csr_matrix(c) for c in cols], format="csr")
+    signed, zero = np.flatnonzero(sg != 0), np.flatnonzero(sg == 0)
+    S = sparse.diags(sg[signed]) @ Z[signed]
+    total = np.asarray(S.sum(axis=0)).ravel()
+    res = optimize.linprog(-total, A_ub=-S, b_ub=np.zeros(S.shape[0]),
+                           A_eq=Z[zero] if zero.size else None, b_eq=np.zeros(zero.size) if zero.size else None,
                            bounds=[(-1.0, 1.0)] * Z.shape[1], method="highs")
     if res.status != 0:
         return 0.0
-    return max(0.0, -float(res.fun)) / max(float(np.abs(Z).sum()), 1e-300)
+    return max(0.0, -float(res.fun)) / max(float(abs(S).sum()), 1e-300)
+
+
+def separation_margin(X, y01, v, fit_intercept) -> float:
+    """``unbounded_margin`` for binary labels: positive when the classes are (quasi-)separated."""
+    return unbounded_margin(X, 2.0 * np.asarray(y01, dtype=float) - 1.0, v, fit_intercept)
 
 
 class _SmoothedPinball:
@@ -665,7 +682,7 @@ def ridge_pinball(X, y, v, offset, tau, weight_factor, alpha, fit_intercept, max
     rounds a RuntimeError is raised rather than an approximate answer returned.
     """
     keep = v > 0
-    Xk = np.ascontiguousarray(X[keep])
+    Xk = X[keep] if sparse.issparse(X) else np.ascontiguousarray(X[keep])
     t = y[keep] - (offset[keep] if offset is not None else 0.0)
     c = weight_factor * v[keep]
     n, p = Xk.shape
@@ -681,16 +698,16 @@ def ridge_pinball(X, y, v, offset, tau, weight_factor, alpha, fit_intercept, max
                      merit="objective")
         coef, b = fit.coef, fit.intercept
         total += fit.n_iter
-    r = t - Xk @ coef - b
+    r = t - np.asarray(Xk @ coef).ravel() - b
     scale_t = 1.0 + float(np.max(np.abs(t)))
     Z = np.abs(r) <= mu
     P = ~Z & (r > 0)
     N = ~Z & (r < 0)
     tol = 1e-9
     for rounds in range(1, max_iter + 1):
-        g = Xk[P].T @ c[P] * tau + Xk[N].T @ c[N] * (tau - 1.0)
+        g = np.asarray(Xk[P].T @ c[P]).ravel() * tau + np.asarray(Xk[N].T @ c[N]).ravel() * (tau - 1.0)
         g0 = tau * c[P].sum() + (tau - 1.0) * c[N].sum()
-        XZ = Xk[Z]
+        XZ = Xk[Z].toarray() if sparse.issparse(Xk) else Xk[Z]
         m = XZ.shape[0]
         # unknowns (coef, intercept, u): alpha coef - X_Z^T u = g, 1^T u = -g0, X_Z coef + intercept = t_Z
         q = p + 1 + m
@@ -710,7 +727,7 @@ def ridge_pinball(X, y, v, offset, tau, weight_factor, alpha, fit_intercept, max
         sol = np.linalg.lstsq(M, rhs, rcond=None)[0]
         coef, b, u = sol[:p], float(sol[p]), sol[p + 1:]
         s = u / c[Z]
-        r = t - Xk @ coef - b
+        r = t - np.asarray(Xk @ coef).ravel() - b
         # violations of the certificate, each on a relative scale
         viol = np.zeros(n)
         viol[Z] = np.maximum(np.maximum(s - tau, (tau - 1.0) - s), np.abs(r[Z]) / scale_t)

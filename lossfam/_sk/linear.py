@@ -8,8 +8,10 @@ import numbers
 import warnings
 
 import numpy as np
+from scipy import sparse
 from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin
 from sklearn.exceptions import ConvergenceWarning
+from sklearn.metrics import accuracy_score
 from sklearn.utils.multiclass import check_classification_targets, type_of_target
 from sklearn.utils.validation import check_is_fitted, validate_data
 
@@ -23,10 +25,17 @@ from .metrics import d2_score
 class UnboundedLikelihoodWarning(UserWarning):
     """The likelihood has no finite maximiser: the fitted coefficients diverge.
 
-    Raised for an unpenalised (alpha = 0) binary fit on (quasi-)separated
-    classes: some linear score orders the two labels perfectly, so the log
-    likelihood keeps rising as the coefficients grow and fitted probabilities
-    reach 0 or 1.  Use alpha > 0 for a finite, penalised estimate.
+    Issued for an unpenalised (alpha = 0) fit when a direction of the
+    coefficients raises the likelihood without bound (found by the linear
+    programme of ``_solvers.unbounded_margin``): a binary fit on
+    (quasi-)separated classes, where some linear score orders the two labels
+    perfectly and fitted probabilities reach 0 or 1; a poisson fit where a
+    linear score is negative on some zero counts and zero on all other rows
+    (a category whose counts are all zero), whose fitted means reach 0.
+    Gamma (log link, y > 0) has no such direction: each row's nll grows both
+    ways, so with full-rank X its coefficients always have a finite estimate;
+    what can be infinite there is the shape, when the fit is exact (a
+    UserWarning says so).  Use alpha > 0 for a finite, penalised estimate.
     """
 
 
@@ -46,6 +55,20 @@ def _check_hyper(est):
 
 def _check_finite_rows(X, owner):
     """ValueError naming the rows of X that hold NaN or inf (the message contains 'NaN or inf')."""
+    if sparse.issparse(X):
+        if np.all(np.isfinite(X.data)):
+            return
+        csr = X.tocsr()
+        bad = ~np.isfinite(csr.data)
+        row_of = np.repeat(np.arange(csr.shape[0]), np.diff(csr.indptr))
+        rows = np.unique(row_of[bad])
+        shown = rows[:5]
+        first = [int(np.flatnonzero(bad & (row_of == i))[0]) for i in shown]
+        noun = "row" if rows.size == 1 else "rows"
+        raise ValueError(
+            f"{owner}: X contains NaN or inf in {rows.size} {noun}, e.g. {noun} "
+            f"[{', '.join(str(int(i)) for i in shown)}] (columns [{', '.join(str(int(csr.indices[k])) for k in first)}]) "
+            f"= [{', '.join(repr(float(csr.data[k])) for k in first)}]")
     total = float(np.sum(X)) if X.size else 0.0
     if np.isfinite(total):
         return
@@ -61,6 +84,34 @@ def _check_finite_rows(X, owner):
         f"{owner}: X contains NaN or inf in {rows.size} {noun}, e.g. {noun} "
         f"[{', '.join(str(int(i)) for i in shown)}] (columns [{', '.join(map(str, cols))}]) = [{vals}]"
     )
+
+
+def _check_numeric_columns(X, owner):
+    """ValueError naming the non-numeric columns of a DataFrame (before scikit-learn's float conversion)."""
+    dtypes = getattr(X, "dtypes", None)
+    if dtypes is None or not hasattr(X, "columns"):
+        return
+    bad = [(str(c), str(t)) for c, t in zip(X.columns, dtypes)
+           if getattr(t, "kind", "O") not in "biuf"]
+    if bad:
+        listed = ", ".join(f"{c!r} ({t})" for c, t in bad[:10])
+        raise ValueError(
+            f"{owner}: X must hold numbers only; {len(bad)} column{'s' if len(bad) > 1 else ''} "
+            f"{'are' if len(bad) > 1 else 'is'} not numeric: {listed}. Encode categories first "
+            "(e.g. sklearn.preprocessing.OneHotEncoder, whose sparse output is accepted) and "
+            "convert booleans or strings to numbers.")
+
+
+def _validate_X_y(est, X, y, owner, **kw):
+    """validate_data for fit: numeric pandas columns, dense C-ordered or sparse CSR float64 X."""
+    _check_numeric_columns(X, owner)
+    X, y = validate_data(est, X, y, dtype=np.float64, order="C", accept_sparse=("csr", "csc"),
+                         ensure_all_finite=False, **kw)
+    if sparse.issparse(X):
+        X = X.tocsr()
+        X.sort_indices()
+    _check_finite_rows(X, owner)
+    return X, y
 
 
 def _prevalidate_y(fam, y):
@@ -115,7 +166,8 @@ def _fit_linear(est, fam, X, y, w, offset):
         if alpha > 0:
             return _solvers.ridge_pinball(X, y, v, offset, tau, factor, alpha, est.fit_intercept,
                                           max_iter=max(est.max_iter, 100))
-        return _solvers.quantile_lp(X, y, v, offset, tau, est.fit_intercept)
+        return _solvers.quantile_lp(X, y, v, offset, tau, est.fit_intercept,
+                                    names=getattr(est, "feature_names_in_", None))
     if est.fit_intercept:
         intercept = fam.baseline(y, w, offset=offset)
     else:
@@ -165,19 +217,30 @@ def _finish(est, fam, fit, y, w):
         est.family_ = fam
 
 
-def _warn_if_separated(est, X, y01, w, raw):
-    """With alpha = 0, warn when the binary MLE does not exist (see UnboundedLikelihoodWarning)."""
+def _warn_if_unbounded(est, fam, X, y, w, raw):
+    """With alpha = 0, warn when the maximum-likelihood estimate is infinite (UnboundedLikelihoodWarning)."""
     if est.alpha > 0:
         return
-    margin = (2.0 * y01 - 1.0) * raw
-    if not np.any((margin > 13.8) & (w > 0)):  # no fitted probability within 1e-6 of its label
+    if isinstance(fam, Bernoulli):
+        sign = 2.0 * y - 1.0
+        near = sign * raw > 13.8  # a fitted probability within 1e-6 of its label
+        what = ("the two classes are (quasi-)separated by a linear score, so the unpenalised "
+                "maximum-likelihood estimate does not exist: coefficients diverge and fitted "
+                "probabilities reach 0 or 1")
+    elif isinstance(fam, Poisson):
+        sign = np.where(y == 0, -1.0, 0.0)
+        near = (y == 0) & (raw < -13.8)  # a fitted mean below 1e-6 on a zero count
+        what = ("some zero counts can be fitted by a mean of exactly 0 (e.g. a category whose "
+                "counts are all zero), so the unpenalised maximum-likelihood estimate does not "
+                "exist: coefficients diverge and those fitted means go to 0")
+    else:
         return
-    if _solvers.separation_margin(X, y01, w, est.fit_intercept) > 1e-9:
+    if not np.any(near & (w > 0)):
+        return
+    if _solvers.unbounded_margin(X, sign, w, est.fit_intercept) > 1e-9:
         warnings.warn(
-            f"{type(est).__name__}: the two classes are (quasi-)separated by a linear score, so the "
-            "unpenalised maximum-likelihood estimate does not exist: coefficients diverge and fitted "
-            "probabilities reach 0 or 1. The returned coefficients are where Newton's method stopped; "
-            "use alpha > 0 for a finite estimate.",
+            f"{type(est).__name__} ({fam.name}): {what}. The returned coefficients are where "
+            "Newton's method stopped; use alpha > 0 for a finite estimate.",
             UnboundedLikelihoodWarning,
             stacklevel=3,
         )
@@ -186,11 +249,24 @@ def _warn_if_separated(est, X, y01, w, raw):
 def _linear_raw_score(est, X, offset):
     """X coef + intercept (+ offset) of a fitted linear estimator, with X and offset checked."""
     check_is_fitted(est)
-    X = validate_data(est, X, reset=False, dtype=np.float64, ensure_all_finite=False)
+    _check_numeric_columns(X, type(est).__name__)
+    X = validate_data(est, X, reset=False, dtype=np.float64, accept_sparse=("csr", "csc"),
+                      ensure_all_finite=False)
     _check_finite_rows(X, type(est).__name__)
-    raw = X @ est.coef_ + est.intercept_
+    raw = np.asarray(X @ est.coef_, dtype=float).ravel() + est.intercept_
     o = _check_offset(offset, X.shape[0], type(est).__name__)
     return raw if o is None else raw + o
+
+
+def _warn_missing_offset(est, offset):
+    if offset is None and getattr(est, "fitted_with_offset_", False):
+        warnings.warn(
+            f"{type(est).__name__}.score: the model was fitted with an offset but is scored without "
+            "one (raw scores then lack it). Pass offset=...; through a Pipeline, GridSearchCV or "
+            "cross_val_score enable metadata routing and call set_score_request(offset=True).",
+            UserWarning,
+            stacklevel=3,
+        )
 
 
 class _RawScoreRegressorMethods:
@@ -211,9 +287,17 @@ class _RawScoreRegressorMethods:
         raw = self._raw_score(X, offset)
         return self.family_.distribution(raw)
 
-    def score(self, X, y, sample_weight=None):
-        """D^2: the fraction of (weighted) deviance explained, relative to the weighted baseline of y."""
-        pred = self.predict(X)
+    def score(self, X, y, sample_weight=None, offset=None):
+        """D^2: the fraction of (weighted) deviance explained, relative to the weighted baseline of y.
+
+        ``offset`` is added to the raw scores as in ``predict``.  Inside a
+        Pipeline, GridSearchCV or cross_val_score it arrives only through
+        scikit-learn's metadata routing (``sklearn.set_config(enable_metadata_routing=True)``
+        and ``est.set_score_request(offset=True)``, as for sample_weight); a
+        model fitted with an offset and scored without one warns.
+        """
+        _warn_missing_offset(self, offset)
+        pred = self.predict(X, offset=offset)
         return d2_score(y, pred, self.family_, sample_weight=sample_weight)
 
 
@@ -243,12 +327,21 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
     max_iter : int, default=100
         Maximum Newton iterations.
     tol : float, default=1e-8
-        Stop when the largest absolute gradient component of the objective is <= tol.
+        Stop when max_j |dF/dcoef_j| / c_j <= tol, c_j = sqrt(mean_w x_j^2) (the
+        gradient for standardised columns, so the rule does not depend on a
+        column's units), then refine with the last factorisation while that
+        still improves the fit; or when a full step changes no raw score beyond
+        rounding.
 
     Attributes
     ----------
     coef_, intercept_, family_, n_iter_ (Newton iterations, or simplex/IPM iterations
-    of the linear programme), n_features_in_, feature_names_in_.
+    of the linear programme), n_features_in_, feature_names_in_ (pandas input),
+    fitted_with_offset_.
+
+    X may be a numeric array, a DataFrame of numeric columns (others are
+    refused by name) or a scipy.sparse CSR/CSC matrix (never densified: the
+    solvers work with sparse products and a dense (p + 1) x (p + 1) Hessian).
     """
 
     def __init__(self, family="gaussian", family_params=None, alpha=0.0, fit_intercept=True,
@@ -269,6 +362,7 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
             fam = self._make_family()
         except Exception:  # invalid parameters are reported by fit, not here
             return tags
+        tags.input_tags.sparse = True
         tags.target_tags.positive_only = not bool(fam.target_domain.inside(np.array([-1.0]))[0])
         return tags
 
@@ -279,15 +373,14 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         owner = type(self).__name__
         if y is not None:
             _prevalidate_y(fam, y)
-        X, y = validate_data(self, X, y, dtype=np.float64, order="C", y_numeric=True, ensure_all_finite=False)
-        _check_finite_rows(X, owner)
+        X, y = _validate_X_y(self, X, y, owner, y_numeric=True)
         y = fam.check_target(y, for_nll=False)
         w = _check_sample_weight(sample_weight, y, owner)
         offset = _check_offset(offset, X.shape[0], owner)
+        self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
         fit = _fit_linear(self, fam, X, y, w, offset)
         _finish(self, fam, fit, y, w)
-        if isinstance(fam, Bernoulli):
-            _warn_if_separated(self, X, y, w, fit.raw)
+        _warn_if_unbounded(self, fam, X, y, w, fit.raw)
         return self
 
     def _raw_score(self, X, offset):
@@ -322,13 +415,13 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
     def __sklearn_tags__(self):
         tags = super().__sklearn_tags__()
         tags.classifier_tags.multi_class = False
+        tags.input_tags.sparse = True
         return tags
 
     def fit(self, X, y, sample_weight=None, offset=None):
         _check_hyper(self)
         owner = type(self).__name__
-        X, y = validate_data(self, X, y, dtype=np.float64, order="C", ensure_all_finite=False)
-        _check_finite_rows(X, owner)
+        X, y = _validate_X_y(self, X, y, owner)
         check_classification_targets(y)
         kind = type_of_target(y, input_name="y")
         if kind != "binary":
@@ -350,11 +443,17 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
                 f"{self.classes_[int(present[0])]!r} has positive weight"
             )
         offset = _check_offset(offset, X.shape[0], owner)
+        self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
         fam = make_family("bernoulli")
         fit = _fit_linear(self, fam, X, y01, w, offset)
         _finish(self, fam, fit, y01, w)
-        _warn_if_separated(self, X, y01, w, fit.raw)
+        _warn_if_unbounded(self, fam, X, y01, w, fit.raw)
         return self
+
+    def score(self, X, y, sample_weight=None, offset=None):
+        """Accuracy of ``predict(X, offset)`` (offset routed as in the regressor's ``score``)."""
+        _warn_missing_offset(self, offset)
+        return accuracy_score(y, self.predict(X, offset=offset), sample_weight=sample_weight)
 
     def decision_function(self, X, offset=None):
         """The raw score (log odds of ``classes_[1]``)."""
