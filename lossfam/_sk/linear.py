@@ -386,6 +386,17 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
     def _raw_score(self, X, offset):
         return _linear_raw_score(self, X, offset)
 
+    def inference(self, X, y, sample_weight=None, offset=None, *, method=None, level=0.95):
+        """Standard errors, z values, p-values, confidence intervals and fit statistics.
+
+        Pass the training data (X, y, sample_weight, offset) again.  Returns
+        an ``InferenceTable`` (print it, or ``.as_dict()`` / ``.as_frame()``);
+        see ``lossfam._sk.inference`` for the formulas and their sources.
+        """
+        from .inference import inference_table
+
+        return inference_table(self, X, y, sample_weight, offset, method=method, level=level)
+
 
 
 class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
@@ -458,6 +469,17 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
     def decision_function(self, X, offset=None):
         """The raw score (log odds of ``classes_[1]``)."""
         return _linear_raw_score(self, X, offset)
+
+    def inference(self, X, y, sample_weight=None, offset=None, *, method=None, level=0.95):
+        """Standard errors, z values, p-values, confidence intervals and fit statistics.
+
+        Pass the training data (X, y, sample_weight, offset) again.  Returns
+        an ``InferenceTable`` (print it, or ``.as_dict()`` / ``.as_frame()``);
+        see ``lossfam._sk.inference`` for the formulas and their sources.
+        """
+        from .inference import inference_table
+
+        return inference_table(self, X, y, sample_weight, offset, method=method, level=level)
 
     def predict_proba(self, X, offset=None):
         raw = self.decision_function(X, offset)

@@ -16,8 +16,12 @@ is nan when the targets are all equal under the family (null deviance 0).
 ``scorer(family, kind)`` turns one of them into a scikit-learn scorer
 (greater is better: it returns -mean_nll, -mean_deviance or D^2).  For lossfam
 estimators it reads the raw score directly (``predict_raw`` or
-``decision_function``) and, when the estimator's fitted ``family_`` is the
-same family, uses its fitted nuisance parameters (``use_fitted=True``).
+``decision_function``, with the rows' offset when one is given) and, when the
+estimator's fitted ``family_`` is the same family, uses its fitted nuisance
+parameters (``use_fitted=True``).  Like scikit-learn's own scorers it takes
+part in metadata routing: ``scorer(...).set_score_request(offset=True,
+sample_weight=True)`` lets GridSearchCV / cross_validate pass each test fold's
+offset and weights to it (with ``sklearn.set_config(enable_metadata_routing=True)``).
 """
 from __future__ import annotations
 
@@ -96,7 +100,10 @@ _KINDS = {"nll": (_nll_raw, -1.0), "deviance": (_dev_raw, -1.0), "d2": (_d2_raw,
 
 
 class LikelihoodScorer:
-    """A scikit-learn scorer ``scorer(estimator, X, y, sample_weight=None)``; build it with :func:`scorer`."""
+    """A scikit-learn scorer ``scorer(estimator, X, y, sample_weight=None, offset=None)``;
+    build it with :func:`scorer`."""
+
+    _ROUTED = ("sample_weight", "offset")
 
     def __init__(self, family, kind="nll", use_fitted=True):
         if kind not in _KINDS:
@@ -104,11 +111,33 @@ class LikelihoodScorer:
         self.family = make_family(family)
         self.kind = kind
         self.use_fitted = use_fitted
+        self._requests = {}
 
     def __repr__(self):
         return f"scorer({self.family.name!r}, kind={self.kind!r})"
 
-    def __call__(self, estimator, X, y, sample_weight=None):
+    def set_score_request(self, **requests):
+        """Ask metadata routing for ``sample_weight`` and/or ``offset`` (True, False, None or an alias)."""
+        from sklearn.utils.metadata_routing import UNCHANGED
+
+        for key, value in requests.items():
+            if key not in self._ROUTED:
+                raise TypeError(f"scorer.set_score_request: unexpected argument {key!r}; "
+                                f"the scorer takes {', '.join(self._ROUTED)}")
+            if value is not UNCHANGED:
+                self._requests[key] = value
+        return self
+
+    def get_metadata_routing(self):
+        """The scorer's metadata request (scikit-learn's routing protocol)."""
+        from sklearn.utils.metadata_routing import MetadataRequest
+
+        req = MetadataRequest(owner=type(self).__name__)
+        for key in self._ROUTED:
+            req.score.add_request(param=key, alias=self._requests.get(key))
+        return req
+
+    def __call__(self, estimator, X, y, sample_weight=None, offset=None):
         fam = self.family
         fitted = getattr(estimator, "family_", None)
         if self.use_fitted and fitted is not None and getattr(fitted, "name", None) == fam.name:
@@ -120,17 +149,29 @@ class LikelihoodScorer:
                 raise ValueError("scorer: a classifier must have exactly two classes for a likelihood score")
             y = (y == classes[1]).astype(np.float64)
             if hasattr(estimator, "decision_function") and getattr(estimator, "family_", None) is not None:
-                raw = np.asarray(estimator.decision_function(X), dtype=float)
+                raw = np.asarray(estimator.decision_function(X, **_offset_kw(offset)), dtype=float)
             else:
+                _refuse_offset(estimator, offset)
                 raw = fam.link(np.asarray(estimator.predict_proba(X))[:, 1])
         elif hasattr(estimator, "predict_raw"):
-            raw = np.asarray(estimator.predict_raw(X), dtype=float)
+            raw = np.asarray(estimator.predict_raw(X, **_offset_kw(offset)), dtype=float)
         else:
+            _refuse_offset(estimator, offset)
             raw = fam.link(estimator.predict(X))
         y = fam.check_target(y, for_nll=self.kind == "nll")
         raw = _checks.check_raw(raw, y, fam.name)
         func, sign = _KINDS[self.kind]
         return sign * func(fam, y, raw, _weights(sample_weight, y, fam.name))
+
+
+def _offset_kw(offset):
+    return {} if offset is None else {"offset": offset}
+
+
+def _refuse_offset(estimator, offset):
+    if offset is not None:
+        raise ValueError(f"scorer: an offset was given but {type(estimator).__name__} has no raw score "
+                         "that takes one (predict_raw or decision_function with offset=)")
 
 
 def scorer(family, kind="nll", *, use_fitted=True):
