@@ -53,7 +53,7 @@ from __future__ import annotations
 import dataclasses
 
 import numpy as np
-from scipy import linalg, stats
+from scipy import linalg, sparse, stats
 
 from ..families import AsymmetricLaplace, Huber, Laplace
 from . import _solvers
@@ -177,6 +177,30 @@ def _inverse(H, what):
     return inv / d[:, None] / d[None, :]
 
 
+def _inverse_gram(X, weights, fit_intercept, what):
+    """([X 1]^T diag(weights) [X 1])^-1.
+
+    Dense X with weights >= 0: from the QR factorisation of the equilibrated
+    diag(sqrt(weights)) [X 1] (R^-1 R^-T), whose error grows with the
+    condition number of the design rather than its square (Golub and Van
+    Loan, Matrix Computations, 4th ed., section 5.3); otherwise from the Gram matrix.
+    """
+    if sparse.issparse(X) or np.min(weights, initial=0.0) < 0:
+        return _inverse(_design_gram(X, weights, fit_intercept), what)
+    A = X * np.sqrt(weights)[:, None]
+    if fit_intercept:
+        A = np.column_stack([A, np.sqrt(weights)])
+    d = np.sqrt(np.einsum("ij,ij->j", A, A))
+    d[~(d > 0)] = 1.0
+    R = linalg.qr(A / d, mode="r", check_finite=False)[0][: A.shape[1]]
+    piv = np.abs(np.diag(R))
+    if piv.size and not np.min(piv) > 1e-12 * np.max(piv):
+        raise ValueError(f"inference: the {what} is singular (collinear columns, or a family "
+                         "whose curvature vanishes on too many rows); standard errors do not exist")
+    Rinv = linalg.solve_triangular(R, np.eye(R.shape[0]), check_finite=False)
+    return (Rinv @ Rinv.T) / d[:, None] / d[None, :]
+
+
 def _hall_sheather(n, tau, alpha=0.05):
     z = stats.norm.ppf(tau)
     return n ** (-1.0 / 3.0) * stats.norm.ppf(1.0 - alpha / 2.0) ** (2.0 / 3.0) * (
@@ -198,7 +222,7 @@ def _kernel_sandwich(X, r, w, tau, fit_intercept):
                          "cannot be estimated; standard errors do not exist")
     h = (hi - lo) * spread
     f = stats.norm.pdf(r / h) / h
-    Hinv = _inverse(_design_gram(X, w * f, fit_intercept), "kernel density-weighted Gram matrix")
+    Hinv = _inverse_gram(X, w * f, fit_intercept, "kernel density-weighted Gram matrix")
     J = _design_gram(X, w, fit_intercept)
     return tau * (1.0 - tau) * Hinv @ J @ Hinv
 
@@ -249,7 +273,7 @@ def inference_table(est, X, y, sample_weight=None, offset=None, *, method=None, 
         g, h = fam._grad_hess(yv, raw)
         if isinstance(fam, Huber):
             h = _solvers.huber_curvature(fam, yv, raw, h)
-        Hinv = _inverse(_design_gram(Xv, w * h, fi), "observed information")
+        Hinv = _inverse_gram(Xv, w * h, fi, "observed information")
         if method == "information":
             cov = Hinv
         else:
@@ -287,7 +311,6 @@ def inference_table(est, X, y, sample_weight=None, offset=None, *, method=None, 
 
 
 def _validate_X_y_for_inference(est, X, y, owner):
-    from scipy import sparse
     from sklearn.utils.validation import validate_data
 
     from .linear import _check_finite_rows, _check_numeric_columns

@@ -34,8 +34,8 @@ class UnboundedLikelihoodWarning(UserWarning):
     (a category whose counts are all zero), whose fitted means reach 0.
     Gamma (log link, y > 0) has no such direction: each row's nll grows both
     ways, so with full-rank X its coefficients always have a finite estimate;
-    what can be infinite there is the shape, when the fit is exact (a
-    UserWarning says so).  Use alpha > 0 for a finite, penalised estimate.
+    what can be infinite there is the shape, when every residual is zero (a
+    UserWarning then says the shape keeps its given value).  Use alpha > 0 for a finite, penalised estimate.
     """
 
 
@@ -99,7 +99,7 @@ def _check_numeric_columns(X, owner):
             f"{owner}: X must hold numbers only; {len(bad)} column{'s' if len(bad) > 1 else ''} "
             f"{'are' if len(bad) > 1 else 'is'} not numeric: {listed}. Encode categories first "
             "(e.g. sklearn.preprocessing.OneHotEncoder, whose sparse output is accepted) and "
-            "convert booleans or strings to numbers.")
+            "convert strings to numbers.")
 
 
 def _validate_X_y(est, X, y, owner, **kw):
