@@ -13,24 +13,49 @@ relative difference of each fit's coefficients (intercept included) from a
 tightly converged reference: scikit-learn's newton-cholesky solver with
 tol=1e-12 (an implementation independent of lossfam).
 
-Run:  /work/venv/bin/python benchmarks/linear_fit.py [--n 500000] [--p 30] [--repeats 3]
+Two more sections:
+
+* equilibration cost on the same well-scaled data: the time of the column-scale
+  pass (``_solvers.column_scales``) and of the refinement rounds, as a share
+  of the whole fit;
+* sparse: a claim-count scenario with ten categorical rating factors of 200
+  levels each, one-hot encoded (first level dropped) into a CSR matrix of
+  --sparse-n rows x 1990 columns (~10 non-zeros a row), poisson, alpha=0,
+  LikelihoodRegressor against ``PoissonRegressor(solver="lbfgs", alpha=0)`` on
+  the same matrix.  Each fit runs in its own child process (the matrix is
+  written once to a .npz file and loaded by each child), which reports its
+  wall time and its peak resident memory (``resource.getrusage``), in total
+  and above the loaded data; medians over --repeats children.
+
+Run:  python benchmarks/linear_fit.py [--n 500000] [--p 30] [--repeats 3] [--sparse-n 1000000]
+      (--section dense|equilibration|sparse to run one section)
 Synthetic data only (a demo scenario: standard-normal features, coefficients
-drawn once from N(0, 0.15^2)).
+drawn once from N(0, 0.15^2); for the sparse section level effects from N(0, 0.3^2)).
 """
 from __future__ import annotations
 
 import argparse
+import json
 import os
+import resource
+import subprocess
+import sys
+import tempfile
 import time
 import warnings
 
-os.environ.setdefault("OMP_NUM_THREADS", "2")
-os.environ.setdefault("OPENBLAS_NUM_THREADS", "2")
+# one BLAS thread for every estimator: on a shared, loaded machine OpenBLAS threads that spin
+# while preempted make level-3 calls (the Newton solver's factorisations) up to 20x slower
+os.environ.setdefault("OMP_NUM_THREADS", "1")
+os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
 
 import numpy as np  # noqa: E402
 from sklearn.exceptions import ConvergenceWarning  # noqa: E402
 from sklearn.linear_model import GammaRegressor, PoissonRegressor  # noqa: E402
 
+from scipy import sparse  # noqa: E402
+
+from lossfam._sk import _solvers  # noqa: E402
 from lossfam.sklearn import LikelihoodRegressor  # noqa: E402
 
 
@@ -63,13 +88,7 @@ def timed(make, X, y, repeats):
     return float(np.median(times)), est
 
 
-def main():
-    ap = argparse.ArgumentParser()
-    ap.add_argument("--n", type=int, default=500_000)
-    ap.add_argument("--p", type=int, default=30)
-    ap.add_argument("--repeats", type=int, default=3)
-    args = ap.parse_args()
-
+def dense_section(args):
     print(f"n = {args.n}, p = {args.p}, median of {args.repeats} fits each; "
           "coef diff = max relative difference from the reference (newton-cholesky, tol=1e-12)")
     print()
@@ -93,6 +112,124 @@ def main():
             print(f"{fam:8s} {label:42s} {t:9.3f} {t / t_lbfgs:7.2f} {int(np.max(est.n_iter_)):7d} {diff:10.2e}")
     print()
     print("ratio = time / time of the default lbfgs fit of the same family (target for LikelihoodRegressor: <= 1.0)")
+
+
+def equilibration_section(args):
+    """Share of a fit spent on what the scale-free solver adds: the column-scale pass and refinement."""
+    X, y = make_data(args.n, args.p, "poisson")
+    v = np.full(args.n, 1.0 / args.n)
+    t_scale, t_fit, t_refine = [], [], []
+    original = _solvers._refine
+
+    def timed_refine(*a, **k):
+        t0 = time.perf_counter()
+        out = original(*a, **k)
+        t_refine.append(time.perf_counter() - t0)
+        return out
+
+    _solvers._refine = timed_refine
+    try:
+        for _ in range(args.repeats):
+            t0 = time.perf_counter()
+            _solvers.column_scales(X, v)
+            t_scale.append(time.perf_counter() - t0)
+            t0 = time.perf_counter()
+            LikelihoodRegressor(family="poisson").fit(X, y)
+            t_fit.append(time.perf_counter() - t0)
+    finally:
+        _solvers._refine = original
+    fit, sc, rf = np.median(t_fit), np.median(t_scale), np.median(t_refine)
+    print(f"poisson, n = {args.n}, p = {args.p} (standard-normal columns), medians of {args.repeats}")
+    print(f"  whole fit                     {fit:8.3f} s")
+    print(f"  column-scale pass             {sc:8.3f} s  ({100 * sc / fit:5.1f}% of the fit)")
+    print(f"  refinement rounds at the end  {rf:8.3f} s  ({100 * rf / fit:5.1f}% of the fit)")
+    print("  (the p x p equilibration of each Newton matrix is O(p^2) and not measurable here)")
+
+
+def make_sparse(n, factors=10, levels=200, seed=0):
+    rng = np.random.default_rng(seed)
+    codes = rng.integers(0, levels, size=(n, factors))
+    rows, cols = [], []
+    for f in range(factors):
+        keep = codes[:, f] > 0  # first level of each factor dropped: full column rank with an intercept
+        rows.append(np.flatnonzero(keep))
+        cols.append(f * (levels - 1) + codes[keep, f] - 1)
+    rows, cols = np.concatenate(rows), np.concatenate(cols)
+    X = sparse.csr_matrix((np.ones(rows.size), (rows, cols)), shape=(n, factors * (levels - 1)))
+    effects = rng.normal(0.0, 0.3, X.shape[1])
+    y = rng.poisson(np.exp(-0.5 + X @ effects)).astype(float)
+    return X, y
+
+
+def child(path, which):
+    """Load the matrix, record the peak memory so far, fit, print time and peak memory as JSON."""
+    X = sparse.load_npz(path + ".npz").tocsr()
+    y = np.load(path + ".y.npy")
+    base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    est = (LikelihoodRegressor(family="poisson") if which == "lossfam"
+           else PoissonRegressor(alpha=0.0, solver="lbfgs"))
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        est.fit(X, y)
+    t = time.perf_counter() - t0
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    np.save(path + f".{which}.coef.npy", params(est))
+    print(json.dumps({"time": t, "peak_kb": peak, "data_kb": base, "n_iter": int(np.max(est.n_iter_))}))
+
+
+def sparse_section(args):
+    X, y = make_sparse(args.sparse_n)
+    print(f"sparse poisson: {X.shape[0]} rows x {X.shape[1]} one-hot columns, {X.nnz / X.shape[0]:.2f} "
+          f"non-zeros a row; each fit in its own child process, median of {args.repeats}")
+    with tempfile.TemporaryDirectory() as tmp:
+        path = os.path.join(tmp, "onehot")
+        sparse.save_npz(path + ".npz", X, compressed=False)
+        np.save(path + ".y.npy", y)
+        ref = PoissonRegressor(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=100).fit(X, y)
+        ref_params = params(ref)
+        res = {}
+        for which in ("lossfam", "sklearn"):
+            runs = []
+            for _ in range(args.repeats):
+                out = subprocess.run([sys.executable, __file__, "--child", path, which],
+                                     check=True, capture_output=True, text=True).stdout
+                runs.append(json.loads(out.strip().splitlines()[-1]))
+            coef = np.load(path + f".{which}.coef.npy")
+            res[which] = {k: float(np.median([r[k] for r in runs])) for k in runs[0]}
+            res[which]["diff"] = float(np.max(np.abs(coef - ref_params) / np.maximum(np.abs(ref_params), 1e-12)))
+    print()
+    print(f"{'estimator':44s} {'time [s]':>9s} {'ratio':>6s} {'peak MB':>8s} {'ratio':>6s} "
+          f"{'above data MB':>14s} {'n_iter':>7s} {'coef diff':>10s}")
+    labels = {"lossfam": "LikelihoodRegressor (Newton, tol=1e-8)", "sklearn": "PoissonRegressor lbfgs (default tol)"}
+    sk = res["sklearn"]
+    for which in ("lossfam", "sklearn"):
+        r = res[which]
+        print(f"{labels[which]:44s} {r['time']:9.2f} {r['time'] / sk['time']:6.2f} {r['peak_kb'] / 1024:8.0f} "
+              f"{r['peak_kb'] / sk['peak_kb']:6.2f} {(r['peak_kb'] - r['data_kb']) / 1024:14.0f} "
+              f"{int(r['n_iter']):7d} {r['diff']:10.2e}")
+    print("coef diff: max relative difference from PoissonRegressor(solver='newton-cholesky', tol=1e-12)")
+
+
+def main():
+    if len(sys.argv) == 4 and sys.argv[1] == "--child":
+        child(sys.argv[2], sys.argv[3])
+        return
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--n", type=int, default=500_000)
+    ap.add_argument("--p", type=int, default=30)
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--sparse-n", type=int, default=1_000_000)
+    ap.add_argument("--section", choices=("all", "dense", "equilibration", "sparse"), default="all")
+    args = ap.parse_args()
+    if args.section in ("all", "dense"):
+        dense_section(args)
+        print()
+    if args.section in ("all", "equilibration"):
+        equilibration_section(args)
+        print()
+    if args.section in ("all", "sparse"):
+        sparse_section(args)
 
 
 if __name__ == "__main__":

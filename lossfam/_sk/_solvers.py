@@ -97,6 +97,7 @@ _EPS = np.finfo(float).eps
 SUBSAMPLE_MIN_ROWS = 100_000  # subsampled Hessians (far from the optimum) only from this many rows
 SUBSAMPLE_FRACTION = 8  # ... using one row in this many
 SUBSAMPLE_WHILE_STEP = 0.02  # ... while the last step moved some raw score by more than this
+CHORD_SHRINK = 0.25  # a chord (or subsampled) step is kept only if it shrinks ||C^-1 dF||^2 by this factor
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
 
@@ -311,7 +312,7 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
 
     grad, h = derivatives(raw, coef)
     F = None
-    solve = None
+    solve = reuse = None
     converged = False
     gnorm = np.inf
     it = 0
@@ -330,13 +331,29 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
             break
         alt = curvature(fam, y, raw, h) if curvature is not None else None
         d = None
-        if sub is not None and alt is None and last_change > SUBSAMPLE_WHILE_STEP:
+        accepted = False
+        m0 = float(sgrad @ sgrad)
+        if reuse is not None and alt is None:
+            # chord step: the last full factorisation, kept while it shrinks the gradient fast
+            d = -reuse(grad)
+            draw = _raw(X, d[:p], d[p] if fit_intercept else 0.0, None) if p else np.full(n, d[p])
+            t = 1.0
+            raw_new, coef_new = raw + draw, coef + d[:p]
+            grad_new, h_new = derivatives(raw_new, coef_new)
+            sg = grad_new * inv_c
+            m1 = float(sg @ sg)
+            accepted = bool(np.isfinite(m1) and m1 <= CHORD_SHRINK * m0)
+            if not accepted:
+                reuse, d = None, None
+        from_sub = False
+        if d is None and sub is not None and alt is None and last_change > SUBSAMPLE_WHILE_STEP:
             # far from the optimum: curvature from a row subsample is as good as the full one
             hv = h[sub] * v[sub]
             hv *= 1.0 / max(float(v[sub].sum()), 1e-300)
-            d, solve = _newton_step(hessian(Xsub, hv), grad, exact=False)
+            d, _ = _newton_step(hessian(Xsub, hv), grad, exact=False)
             if d is not None:
                 d = -d
+                from_sub = True
         for hh in ([alt, h] if alt is not None else [h]):
             if d is not None:
                 break
@@ -350,12 +367,12 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
                 break
             d, solve = _newton_step(H, grad)
             d = -d
+            reuse = solve if merit == "gradient" else None
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
-        draw = _raw(X, dc, db, None) if p else np.full(n, db)
-        accepted = False
-        if merit == "gradient":
-            m0 = float(sgrad @ sgrad)
+        if not accepted:
+            draw = _raw(X, dc, db, None) if p else np.full(n, db)
+        if merit == "gradient" and not accepted:
             t = 1.0
             for _ in range(30):
                 raw_new = raw + t * draw
@@ -367,6 +384,10 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
                     accepted = True
                     break
                 t *= 0.5
+            if from_sub and not (accepted and m1 <= CHORD_SHRINK * m0):
+                sub = None  # the subsample's curvature is too rough for this design: full Hessians from now on
+            if not (accepted and t == 1.0):
+                reuse = None
         if not accepted:
             if F is None:
                 F, per_row = objective(raw, coef)
