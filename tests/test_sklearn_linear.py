@@ -111,7 +111,7 @@ def test_poisson_randhie_matches_statsmodels():
     ours = LikelihoodRegressor(family="poisson").fit(X, y)
     ref = sm_fit(y, X, sm.families.Poisson())
     np.testing.assert_allclose(params(ours), ref.params, rtol=RTOL)
-    assert ours.n_iter_ <= 10
+    assert ours.n_iter_ <= 20  # steps, counting the cheap chord steps that reuse a factorisation
 
 
 def test_gamma_scotland_matches_statsmodels_and_shape_is_the_mle():

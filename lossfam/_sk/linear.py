@@ -335,7 +335,8 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
 
     Attributes
     ----------
-    coef_, intercept_, family_, n_iter_ (Newton iterations, or simplex/IPM iterations
+    coef_, intercept_, family_, n_iter_ (Newton steps, chord steps that reuse the last
+    factorisation included; or the iterations of the linear programme
     of the linear programme), n_features_in_, feature_names_in_ (pandas input),
     fitted_with_offset_.
 
