@@ -97,7 +97,9 @@ _EPS = np.finfo(float).eps
 SUBSAMPLE_MIN_ROWS = 100_000  # subsampled Hessians (far from the optimum) only from this many rows
 SUBSAMPLE_FRACTION = 8  # ... using one row in this many
 SUBSAMPLE_WHILE_STEP = 0.02  # ... while the last step moved some raw score by more than this
-CHORD_SHRINK = 0.25  # a chord (or subsampled) step is kept only if it shrinks ||C^-1 dF||^2 by this factor
+CHORD_SHRINK = 0.01  # a chord (or subsampled) step is kept only if it shrinks ||C^-1 dF||^2 by this factor
+SUBSAMPLE_SHRINK = 0.25  # ... and subsampled steps must shrink ||C^-1 dF||^2 by this factor (two misses in a row: full Hessians)
+CHORD_MIN_COLUMNS = 200  # ... used for sparse X or more coefficients than this
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
 
@@ -310,9 +312,13 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
         Xsub = X[sub] if sparse.issparse(X) else np.ascontiguousarray(X[sub])
     last_change = np.inf
 
+    # chord steps pay where forming and factorising the Hessian costs many passes over X:
+    # sparse X (a sparse product per block) or many columns (O(p^3) factorisation)
+    chord = sparse.issparse(X) or nfree > CHORD_MIN_COLUMNS
     grad, h = derivatives(raw, coef)
     F = None
     solve = reuse = None
+    poor_sub = 0
     converged = False
     gnorm = np.inf
     it = 0
@@ -325,7 +331,8 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
             converged = True
             if solve is not None:
                 coef, intercept, raw, grad, h, gnorm = _refine(
-                    solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept)
+                    solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept,
+                    float(np.dot(v, h)))
             break
         if it == max_iter:
             break
@@ -367,7 +374,7 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
                 break
             d, solve = _newton_step(H, grad)
             d = -d
-            reuse = solve if merit == "gradient" else None
+            reuse = solve if merit == "gradient" and chord else None
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
         if not accepted:
@@ -384,8 +391,10 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
                     accepted = True
                     break
                 t *= 0.5
-            if from_sub and not (accepted and m1 <= CHORD_SHRINK * m0):
-                sub = None  # the subsample's curvature is too rough for this design: full Hessians from now on
+            if from_sub:
+                poor_sub = poor_sub + 1 if not (accepted and m1 <= SUBSAMPLE_SHRINK * m0) else 0
+                if poor_sub >= 2:
+                    sub = None  # the subsample's curvature is too rough for this design: full Hessians from now on
             if not (accepted and t == 1.0):
                 reuse = None
         if not accepted:
@@ -430,22 +439,31 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     return LinearFit(coef, intercept, raw, it, F, gnorm, converged, fam)
 
 
-def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, rounds=4):
+def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, hbar, rounds=3):
     """Iterative refinement at the stopping point: Newton steps with the last factorisation.
 
     The gradient test alone stops an ill-conditioned problem early (a gradient
     below tol can leave the coefficients wrong by tol times the condition
     number).  Each round solves with the factorisation already at hand (no new
     pass to form a Hessian) and is kept only while it lowers ||C^-1 dF|| and
-    still moves some raw score beyond rounding.
+    still moves some raw score beyond rounding; the rounds stop once one
+    shrinks ||C^-1 dF||^2 less than a hundredfold (rounding level reached).
+    On a well-conditioned problem the next step is about ||C^-1 dF|| / hbar
+    (hbar = sum v h, the mean curvature) in raw units, and the fit is as good as
+    tol says: no round is made unless the step's bound sum_j c_j |d_j| + |d_0|
+    (a bound on the weighted RMS of its raw-score change) exceeds 100 times that.
     """
     p = coef.shape[0]
     sg = grad * inv_c
     m0 = float(sg @ sg)
-    for _ in range(rounds):
+    for k in range(rounds):
         d = -solve(grad)
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
+        if k == 0:
+            bound = float(np.sum(np.abs(dc) / inv_c[:p])) + abs(db)
+            if not bound > 100.0 * np.sqrt(m0) / max(hbar, 1e-300):
+                break
         draw = _raw(X, dc, db, None) if p else np.full(raw.shape[0], db)
         if float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)):
             break
@@ -456,7 +474,9 @@ def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_int
         m1 = float(sg @ sg)
         if not (m1 < m0):
             break
-        coef, intercept, raw, grad, h, m0 = coef_new, intercept + db, raw_new, grad_new, h_new, m1
+        coef, intercept, raw, grad, h, m_prev, m0 = coef_new, intercept + db, raw_new, grad_new, h_new, m0, m1
+        if m1 > CHORD_SHRINK * m_prev:
+            break
     return coef, intercept, raw, grad, h, float(np.sqrt(np.max(grad * grad * inv_c * inv_c, initial=0.0)))
 
 
