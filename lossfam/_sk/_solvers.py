@@ -331,8 +331,7 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
             converged = True
             if solve is not None:
                 coef, intercept, raw, grad, h, gnorm = _refine(
-                    solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept,
-                    float(np.dot(v, h)))
+                    solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept)
             break
         if it == max_iter:
             break
@@ -439,7 +438,7 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     return LinearFit(coef, intercept, raw, it, F, gnorm, converged, fam)
 
 
-def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, hbar, rounds=3):
+def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, rounds=3):
     """Iterative refinement at the stopping point: Newton steps with the last factorisation.
 
     The gradient test alone stops an ill-conditioned problem early (a gradient
@@ -448,22 +447,20 @@ def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_int
     pass to form a Hessian) and is kept only while it lowers ||C^-1 dF|| and
     still moves some raw score beyond rounding; the rounds stop once one
     shrinks ||C^-1 dF||^2 less than a hundredfold (rounding level reached).
-    On a well-conditioned problem the next step is about ||C^-1 dF|| / hbar
-    (hbar = sum v h, the mean curvature) in raw units, and the fit is as good as
-    tol says: no round is made unless the step's bound sum_j c_j |d_j| + |d_0|
-    (a bound on the weighted RMS of its raw-score change) exceeds 100 times that.
+    A round is made only while the step's bound sum_j c_j |d_j| + |d_0| (a
+    bound on the weighted RMS of its raw-score change, computed without a pass
+    over X) exceeds 1e-11 max |raw|.
     """
     p = coef.shape[0]
     sg = grad * inv_c
     m0 = float(sg @ sg)
-    for k in range(rounds):
+    scale = 1e-11 * float(np.max(np.abs(raw), initial=0.0))
+    for _ in range(rounds):
         d = -solve(grad)
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
-        if k == 0:
-            bound = float(np.sum(np.abs(dc) / inv_c[:p])) + abs(db)
-            if not bound > 100.0 * np.sqrt(m0) / max(hbar, 1e-300):
-                break
+        if not float(np.sum(np.abs(dc) / inv_c[:p])) + abs(db) > scale:
+            break
         draw = _raw(X, dc, db, None) if p else np.full(raw.shape[0], db)
         if float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)):
             break
