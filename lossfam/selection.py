@@ -107,11 +107,7 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
     train with the family's nuisance parameters as given (no pilot fit).
     """
     if engine == "linear":
-        from .sklearn import LikelihoodRegressor
-
-        est = LikelihoodRegressor(family=fam, **options)
-        est.fit(X, y, sample_weight=w)
-        return lambda Z: np.asarray(est.predict_raw(Z), dtype=float)
+        return _fit_linear_bounded(fam, X, y, w, seed=seed, options=options)
     if engine == "lightgbm":
         import lightgbm as lgb
 
@@ -130,6 +126,57 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
         model = train(fam, params, xgb.DMatrix(X, y, weight=w), num_boost_round=rounds)
         return lambda Z: np.asarray(model.predict_raw(Z), dtype=float)
     raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+
+
+#: ridge penalties (on standardised columns) tried when a family's unpenalised MLE is unbounded
+RIDGE_FALLBACK = (1e-4, 1e-3, 1e-2, 1e-1)
+
+
+def _fit_linear_bounded(fam, X, y, w, *, seed, options):
+    """Linear engine: the unpenalised MLE, or a small ridge penalty where that MLE is unbounded.
+
+    When the fit warns that the likelihood has no finite maximiser (separated
+    0/1 classes for bernoulli, zero counts a linear score can push to a mean of
+    0 for poisson), the fold is refitted with a ridge penalty alpha on the
+    standardised columns x_j / sd(x_j), alpha chosen from RIDGE_FALLBACK by
+    3-fold cross-validation within this training fold (held-out nll of the
+    family).  The returned predictor carries ``note`` saying so (shown in the
+    table).  A penalty given in ``options`` (alpha) is used as it is.
+    """
+    import warnings
+
+    from .sklearn import LikelihoodRegressor, UnboundedLikelihoodWarning
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", UnboundedLikelihoodWarning)
+        est = LikelihoodRegressor(family=fam, **options).fit(X, y, sample_weight=w)
+    unbounded = [c for c in caught if issubclass(c.category, UnboundedLikelihoodWarning)]
+    for c in caught:
+        if c not in unbounded:
+            warnings.warn_explicit(c.message, c.category, c.filename, c.lineno)
+    if not unbounded or "alpha" in options:
+        predict = lambda Z: np.asarray(est.predict_raw(Z), dtype=float)  # noqa: E731
+        predict.note = ""
+        return predict
+    sd = np.std(X, axis=0)
+    sd[~(sd > 0)] = 1.0
+    Xs = X / sd
+    inner = _folds(y.size, 3, seed)
+    best, best_alpha = np.inf, RIDGE_FALLBACK[-1]
+    for alpha in RIDGE_FALLBACK:
+        total = 0.0
+        for test in inner:
+            train = np.ones(y.size, dtype=bool)
+            train[test] = False
+            m = LikelihoodRegressor(family=fam, alpha=alpha, **options).fit(Xs[train], y[train], sample_weight=w[train])
+            total += float(np.dot(w[test], m.family_.nll(y[test], m.predict_raw(Xs[test]))))
+        if total < best:
+            best, best_alpha = total, alpha
+    est = LikelihoodRegressor(family=fam, alpha=best_alpha, **options).fit(Xs, y, sample_weight=w)
+    predict = lambda Z: np.asarray(est.predict_raw(np.asarray(Z, dtype=float) / sd), dtype=float)  # noqa: E731
+    predict.note = (f"unpenalised MLE unbounded; ridge alpha={best_alpha:g} on standardised columns, "
+                    "chosen by 3-fold CV within the training fold")
+    return predict
 
 
 def _fit_family(fit, engine, fam, X, y, w):
@@ -283,7 +330,7 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
         z_all, u_all = np.empty(n), np.empty(n)
         inside = {lv: np.zeros(n, dtype=bool) for lv in PLOT_LEVELS}
         p1 = np.empty(n) if np.all((y == 0) | (y == 1)) else None
-        fold_means, params = [], []
+        fold_means, params, penalty_notes = [], [], []
         label = fam0.name
         try:
             for k, test in enumerate(parts):
@@ -291,6 +338,7 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
                 train = np.ones(n, dtype=bool)
                 train[test] = False
                 fam, predict = _fit_family(fit, engine, fam0, X[train], y[train], w[train])
+                penalty_notes.append(getattr(predict, "note", ""))
                 raw = predict(X[test])
                 rng = np.random.default_rng([seed, k])
                 s_nll, s_z, s_u, s_in, s_p1 = _score_fold(fam, y[test], raw, integer_footing, rng)
@@ -315,6 +363,9 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
         note = ""
         if scored == SCORED_INTERVAL:
             note = "continuous law scored on integer targets by the probability of the unit interval around y"
+        penalised = [t for t in penalty_notes if t]
+        if penalised:
+            note = "; ".join(filter(None, [f"{len(penalised)} of {len(penalty_notes)} folds: {penalised[0]}", note]))
         rows.append({
             "family": label,
             "status": STATUS_OK,
