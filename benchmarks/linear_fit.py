@@ -24,8 +24,9 @@ Two more sections:
   LikelihoodRegressor against ``PoissonRegressor(solver="lbfgs", alpha=0)`` on
   the same matrix.  Each fit runs in its own child process (the matrix is
   written once to a .npz file and loaded by each child), which reports its
-  wall time and its peak resident memory (``resource.getrusage``), in total
-  and above the loaded data; medians over --repeats children.
+  wall time and its peak resident memory during the fit (VmHWM, reset after
+  loading through /proc/self/clear_refs), in total and above the loaded data;
+  medians over --repeats children.
 
 Run:  python benchmarks/linear_fit.py [--n 500000] [--p 30] [--repeats 3] [--sparse-n 1000000]
       (--section dense|equilibration|sparse to run one section)
@@ -161,11 +162,29 @@ def make_sparse(n, factors=10, levels=200, seed=0):
     return X, y
 
 
+def _rss_kb(field):
+    with open("/proc/self/status") as fh:
+        for line in fh:
+            if line.startswith(field + ":"):
+                return int(line.split()[1])
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+
+
+def _reset_peak():
+    """Linux: writing 5 to clear_refs resets the peak resident set size (VmHWM) to the current one."""
+    try:
+        with open("/proc/self/clear_refs", "w") as fh:
+            fh.write("5")
+    except OSError:
+        pass
+
+
 def child(path, which):
     """Load the matrix, record the peak memory so far, fit, print time and peak memory as JSON."""
     X = sparse.load_npz(path + ".npz").tocsr()
     y = np.load(path + ".y.npy")
-    base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    base = _rss_kb("VmRSS")
+    _reset_peak()
     est = (LikelihoodRegressor(family="poisson") if which == "lossfam"
            else PoissonRegressor(alpha=0.0, solver="lbfgs"))
     t0 = time.perf_counter()
@@ -173,7 +192,7 @@ def child(path, which):
         warnings.simplefilter("ignore", ConvergenceWarning)
         est.fit(X, y)
     t = time.perf_counter() - t0
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    peak = _rss_kb("VmHWM")
     np.save(path + f".{which}.coef.npy", params(est))
     print(json.dumps({"time": t, "peak_kb": peak, "data_kb": base, "n_iter": int(np.max(est.n_iter_))}))
 
