@@ -254,7 +254,7 @@ def inference_table(est, X, y, sample_weight=None, offset=None, *, method=None, 
     if quantile_family != (method == "kernel-sandwich"):
         raise ValueError(f"{owner}: {method!r} standard errors are not available for {fam.name}; use "
                          + ("'kernel-sandwich'" if quantile_family else "'information' or 'sandwich'"))
-    if not quantile_family and not fam.exact_hessian:
+    if not quantile_family and not isinstance(fam, Huber) and not fam.exact_hessian:
         raise ValueError(f"{owner}: {fam.name} declares a surrogate Hessian (exact_hessian=False), "
                          "so its observed information is not available")
     raw = _linear_raw_score(est, X, offset)
