@@ -46,8 +46,8 @@ def test_gaussian_equals_the_engines_squared_error():
     ours = BoostedLikelihoodRegressor(engine("xgboost")).fit(X, y)
     ref = xgb.XGBRegressor(objective="reg:squarederror", base_score=float(np.mean(y)), **XGB_KW).fit(X, y)
     np.testing.assert_allclose(ours.predict(X), ref.predict(X), rtol=0, atol=1e-5)
-    # the gaussian scale is the maximum-likelihood value on the training residuals
-    np.testing.assert_allclose(ours.family_.scale, np.sqrt(np.mean((y - ours.predict(X)) ** 2)), rtol=1e-10)
+    # the gaussian scale is the maximum-likelihood value on the training residuals (XGBoost predicts in float32)
+    np.testing.assert_allclose(ours.family_.scale, np.sqrt(np.mean((y - ours.predict(X)) ** 2)), rtol=1e-7)
 
 
 @pytest.mark.parametrize("name", ["lightgbm", "xgboost"])
@@ -77,7 +77,9 @@ def test_poisson_baseline_offset_distribution_and_d2(name):
     y = rng.poisson(exposure * np.exp(0.5 * s)).astype(float)
     off = np.log(exposure)
     est = BoostedLikelihoodRegressor(engine(name), family="poisson").fit(X, y, offset=off)
-    assert est.baseline_ == pytest.approx(lossfam.family("poisson").baseline(y, offset=off), rel=1e-12)
+    # XGBoost keeps the baseline in float32 (its base_score precision)
+    assert est.baseline_ == pytest.approx(lossfam.family("poisson").baseline(y, offset=off),
+                                          rel=1e-12 if name == "lightgbm" else 1e-7)
     rate = est.predict(X)
     # XGBoost adds base_margin in float32: agreement to float32 precision there
     tol = 1e-10 if name == "lightgbm" else 2e-6
@@ -97,8 +99,7 @@ def test_eval_set_reports_the_family_nll(name):
     y = rng.gamma(2.0, np.exp(0.3 * s) / 2.0)
     Xv, yv = X[:100], y[:100]
     est = BoostedLikelihoodRegressor(engine(name), family="gamma").fit(X[100:], y[100:], eval_set=[(Xv, yv)])
-    history = est.estimator_.evals_result_ if name == "lightgbm" else est.estimator_.evals_result()
-    curve = list(history.values())[0]["gamma_nll"]
+    curve = est.evals_result_["validation_0"]["gamma_nll"]
     assert len(curve) == XGB_KW["n_estimators"]
     # the last reported value is the held-out mean nll of the final model, with the *training* shape
     # (the metric uses the family given to training, shape 1)
@@ -118,8 +119,8 @@ def test_params_are_clone_safe_and_nested():
     y = rng.gamma(2.0, np.exp(0.3 * s) / 2.0)
     est.fit(X, y)
     assert est.estimator.objective is None  # the given estimator is never modified
-    assert callable(est.estimator_.objective)
-    assert not hasattr(twin, "estimator_")
+    assert est.model_.engine == "lightgbm" and est.model_.booster.current_iteration() == 11
+    assert not hasattr(twin, "model_")
 
 
 def test_grid_search_over_nested_parameters_with_the_nll_scorer():

@@ -57,7 +57,8 @@ def expected_failures(est):
             return {"check_sample_weight_equivalence_on_dense_data": _NON_UNIQUE_LP}
     if isinstance(est, BoostedLikelihoodRegressor):
         if type(est.estimator).__module__.startswith("lightgbm"):
-            return {"check_sample_weight_equivalence_on_dense_data": _LGBM_COUNTS}
+            return {"check_sample_weight_equivalence_on_dense_data": _LGBM_COUNTS,
+                    "check_sample_weight_equivalence_on_sparse_data": _LGBM_COUNTS}
     return {}
 
 
