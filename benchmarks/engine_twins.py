@@ -20,7 +20,9 @@ each run trains one contender once in a fresh child process:
 Only the training call is timed: data are simulated, and the ``lightgbm.Dataset`` (binned)
 or ``xgboost.DMatrix`` built, before the clock starts.  The time of a cell is the minimum
 over ``--repeats`` runs; within each repeat the contenders run one after the other, in
-alternating order, so that load from other processes hits all of them alike.  The child also
+alternating order, so that load from other processes hits all of them alike.  With ``--inline``
+the timed runs share this process (no start-up per run, for a heavily loaded machine) and each
+contender's peak memory comes from one extra child process.  The child also
 reports its peak resident memory (``ru_maxrss``: data, engine and training) and the part of it
 reached before training; the table gives the peak's ratio to the built-in's (median over
 repeats).  Held-out score (the same scikit-learn metric for all contenders: MSE, MAE, pinball
@@ -122,8 +124,20 @@ def held_out_score(name, tau, trained, y, mean):
     return float(np.mean(special.huber(huber_threshold(trained), y - mean)))
 
 
+def sample(spec):
+    """(X, y, X_test, y_test) of one benchmark case."""
+    n = spec["rows"]
+    X, y = simulate(spec["family"], n + min(max(n // 10, 10_000), 100_000), spec["features"], seed=2026)
+    return X[:n], y[:n], X[n:], y[n:]
+
+
 def child(spec):
-    """Train one contender once; print a JSON line with seconds, peak memory and held-out score."""
+    """Subprocess entry: train one contender once, print the JSON line of :func:`measure`."""
+    print(json.dumps(measure(spec)))
+
+
+def measure(spec, data_sets=None):
+    """Train one contender once: seconds, peak memory (MiB, before and after) and held-out score."""
     import resource
 
     import numpy as np
@@ -132,11 +146,9 @@ def child(spec):
     import lossfam
 
     engine, side, name, tau = spec["engine"], spec["side"], spec["family"], spec["tau"]
-    n, rounds, p, threads = spec["rows"], spec["rounds"], spec["features"], spec["threads"]
-    n_test = min(max(n // 10, 10_000), 100_000)
+    n, rounds, threads = spec["rows"], spec["rounds"], spec["threads"]
     fam = lossfam.family(name) if tau is None else lossfam.family(name, quantile=tau)
-    X, y = simulate(name, n + n_test, p, seed=2026)
-    X, y, Xt, yt = X[:n], y[:n], X[n:], y[n:]
+    X, y, Xt, yt = data_sets or sample(spec)
     inverse = {"log": np.exp, "logit": special.expit}.get(fam.link_function.name, lambda r: r)
 
     if engine == "lightgbm":
@@ -194,7 +206,7 @@ def child(spec):
         mean = inverse(np.asarray(raw, dtype=np.float64))
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     score = held_out_score(name, tau, trained, yt, np.asarray(mean, dtype=np.float64))
-    print(json.dumps({"seconds": seconds, "peak_mib": peak, "before_mib": before, "score": float(score)}))
+    return {"seconds": seconds, "peak_mib": peak, "before_mib": before, "score": float(score)}
 
 
 # ------------------------------------------------------------------------------------------
@@ -232,9 +244,9 @@ def summarise(runs):
     ok = [r for r in runs if "error" not in r]
     if not ok:
         return None
+    mem = [r for r in ok if r.get("peak_mib") is not None]
     return {"seconds": min(r["seconds"] for r in ok),
-            "peak_mib": statistics.median(r["peak_mib"] for r in ok),
-            "added_mib": statistics.median(r["peak_mib"] - r["before_mib"] for r in ok),
+            "peak_mib": statistics.median(r["peak_mib"] for r in mem) if mem else None,
             "score": statistics.median(r["score"] for r in ok)}
 
 
@@ -248,6 +260,9 @@ def main(argv=None):
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--features", type=int, default=20)
     ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--inline", action="store_true",
+                    help="time in this process (no per-run start-up: for a loaded machine); peak memory "
+                         "then comes from one extra child process per contender")
     ap.add_argument("--child", help=argparse.SUPPRESS)
     args = ap.parse_args(argv)
     if args.child:
@@ -271,11 +286,18 @@ def main(argv=None):
                 if not has_twin(engine, name):
                     continue
                 runs = {c: [] for c in contenders}
+                case = {"engine": engine, "family": name, "tau": tau, "rows": n, "rounds": rounds,
+                        "features": args.features, "threads": args.threads}
+                data_sets = sample(case) if args.inline else None
                 for r in range(args.repeats):
                     for c in (contenders if r % 2 == 0 else contenders[::-1]):
-                        spec = {"engine": engine, "side": c, "family": name, "tau": tau, "rows": n,
-                                "rounds": rounds, "features": args.features, "threads": args.threads}
-                        runs[c].append(run_child(spec))
+                        if args.inline:
+                            runs[c].append({**measure({**case, "side": c}, data_sets), "peak_mib": None})
+                        else:
+                            runs[c].append(run_child({**case, "side": c}))
+                if args.inline:
+                    for c in contenders:
+                        runs[c].append({**run_child({**case, "side": c}), "seconds": float("inf")})
                 cell = {c: summarise(v) for c, v in runs.items()}
                 results.append((engine, name, tau, n, rounds, limit, cell, runs))
                 b, t = cell["builtin"], cell.get("train")
@@ -285,7 +307,8 @@ def main(argv=None):
 
     print(f"lightgbm {lightgbm.__version__}, xgboost {xgboost.__version__}, numpy {numpy.__version__}; "
           f"{args.features} features, {args.threads} threads; time = min of {args.repeats} alternated runs "
-          f"(fresh process each); peak memory = median peak RSS of those processes\n")
+          + ("in this process; peak memory = peak RSS of one more child process per contender\n" if args.inline else
+             "(fresh process each); peak memory = median peak RSS of those processes\n"))
     others = [c for c in contenders if c != "builtin"]
     head = ["engine", "family", "rows × rounds", "built-in s"]
     head += [f"{c} s (ratio{', limit' if c == 'train' else ''})" for c in others]
@@ -311,7 +334,8 @@ def main(argv=None):
     print("\nAll runs (seconds, in run order):")
     for engine, name, tau, n, rounds, _, _, runs in results:
         print(f"- {engine} {label(name, tau)} {n:.0e} × {rounds}: " + "; ".join(
-            f"{c} " + ", ".join("error" if "error" in r else f"{r['seconds']:.2f}" for r in v)
+            f"{c} " + ", ".join("error" if "error" in r else f"{r['seconds']:.2f}" for r in v
+                               if r.get("seconds") != float("inf"))
             for c, v in runs.items()))
 
 
