@@ -153,6 +153,7 @@ def objective(family, *, step_limit=STEP_LIMIT_DEFAULT):
         score 0 unless the Dataset has an ``init_score``: pass
         ``family.baseline(y, w)`` there (``train`` does).
     """
+    _lgb()
     fam = make_family(family)
     return _Objective(fam, resolve_guard(fam, step_limit))
 
@@ -193,6 +194,7 @@ def metric(family, kind="nll"):
     including the starting score, as LightGBM supplies under a custom
     objective.  The nll uses the family's nuisance parameters as given.
     """
+    _lgb()
     return _Metric(make_family(family), kind)
 
 
@@ -361,6 +363,15 @@ class _Refit:
             self.done += 1
 
 
+def _constant_booster(lgb, params, data):
+    """A booster whose raw output is 0 everywhere (so the model is its baseline), on data's features."""
+    plain = {k: v for k, v in params.items() if k not in _OBJECTIVE_NAMES and not callable(v)}
+    plain.update(objective="regression", metric="None", verbosity=-1, boost_from_average=False)
+    zeros = np.zeros((data.num_data(), data.num_feature()))
+    return lgb.train(plain, lgb.Dataset(zeros, np.zeros(data.num_data()), feature_name=data.get_feature_name()),
+                     num_boost_round=1)
+
+
 def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_names=None, offset=None,
           valid_offsets=None, step_limit=STEP_LIMIT_DEFAULT, native=True, nuisance_set=None, metric_kind="nll",
           callbacks=None, prefit=True, **engine_kwargs) -> BoostedFit:
@@ -502,13 +513,23 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
     params.setdefault("metric", "None")
 
     touched = [data] + [valid_sets[k] for k in starts]
+    constant = False
     try:
         data.set_init_score(plan.start)
         for k, s in starts.items():
             valid_sets[k].set_init_score(s)
-        booster = lgb.train(params, data, num_boost_round=num_boost_round, valid_sets=valid_sets or None,
-                            valid_names=valid_names, feval=fevals if valid_sets else None, callbacks=callbacks,
-                            keep_training_booster=True, **engine_kwargs)
+        try:
+            booster = lgb.train(params, data, num_boost_round=num_boost_round, valid_sets=valid_sets or None,
+                                valid_names=valid_names, feval=fevals if valid_sets else None, callbacks=callbacks,
+                                keep_training_booster=True, **engine_kwargs)
+        except lgb.basic.LightGBMError as exc:
+            if "num_features()) > (0)" not in str(exc):
+                raise
+            # no feature can split (too few rows for min_data_in_leaf): a custom objective makes
+            # LightGBM fail where its built-ins return a constant model; return that constant
+            booster = _constant_booster(lgb, params, data)
+            refit, twin = None, None
+            constant = True
         if refit is not None:
             refit.catch_up(booster)
         best = booster.best_iteration
@@ -516,7 +537,9 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
         while 0 < best < booster.current_iteration():
             booster.rollback_one_iter()
         pred = None
-        if refit is not None and not cut:
+        if constant:
+            train_raw = plan.start.copy()
+        elif refit is not None and not cut:
             train_raw = refit.raw[0]
         elif refit is not None:
             train_raw = np.asarray(booster.predict(refit.X[0], raw_score=True), dtype=np.float64) + plan.start
