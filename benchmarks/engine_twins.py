@@ -105,6 +105,8 @@ def simulate(name, n, p, seed):
 
 
 def held_out_score(name, tau, trained, y, mean):
+    """Held-out score of a mean / median / quantile / probability prediction, lower is better
+    (scikit-learn's metrics; Huber loss by scipy.special.huber at the trained threshold)."""
     import numpy as np
     from scipy import special
     from sklearn import metrics

@@ -19,7 +19,8 @@ asymmetric_laplace(t)  quantile (alpha = t)         reg:quantileerror (t)
 The held-out scores come from scikit-learn's metrics (mean squared / absolute error, pinball
 loss, log loss, mean Poisson / gamma deviance) and scipy.special.huber, computed from each
 model's predicted mean, median, quantile or probability; the lossfam side's prediction is the
-inverse link of its raw score, written out here.
+inverse link of its raw score, written out here.  The table of twins and the scores are
+``twin`` and ``held_out_score`` in benchmarks/engine_twins.py, shared with the speed benchmark.
 
 Data sources (each check's test id names its source):
 
@@ -50,6 +51,8 @@ learning rate 0.05, 100 rounds, default path); the full grid is marked slow.
 from __future__ import annotations
 
 import functools
+import importlib.util
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -58,6 +61,18 @@ from scipy import special
 pytest.importorskip("sklearn")
 
 import lossfam  # noqa: E402
+
+
+def _load_benchmark():
+    """benchmarks/engine_twins.py holds the one table of built-in twins and held-out scores."""
+    path = Path(__file__).resolve().parents[1] / "benchmarks" / "engine_twins.py"
+    spec = importlib.util.spec_from_file_location("engine_twins", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+_BENCH = _load_benchmark()
 
 TAUS = (0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95)
 LIMIT = 1.01  # held-out score of lossfam <= LIMIT x the built-in's
@@ -160,22 +175,6 @@ def _engine_params(engine, learning_rate):
     return {"learning_rate": learning_rate, "nthread": 1, "tree_method": "hist", "seed": 0}
 
 
-def _twin(engine, name, tau, trained):
-    """The engine's built-in objective for the family, written out from the engines' docs."""
-    if engine == "lightgbm":
-        if name == "huber":  # LightGBM's huber alpha is the threshold on the target's scale
-            p = trained.params
-            return {"objective": "huber", "alpha": p["delta"] * p["scale"]}
-        if name == "asymmetric_laplace":
-            return {"objective": "quantile", "alpha": tau}
-        return {"objective": {"gaussian": "regression", "laplace": "regression_l1", "bernoulli": "binary",
-                              "poisson": "poisson", "gamma": "gamma"}[name]}
-    if name == "asymmetric_laplace":
-        return {"objective": "reg:quantileerror", "quantile_alpha": tau}
-    return {"objective": {"gaussian": "reg:squarederror", "laplace": "reg:absoluteerror",
-                          "bernoulli": "binary:logistic", "poisson": "count:poisson", "gamma": "reg:gamma"}[name]}
-
-
 def _fit_lossfam(engine, fam, params, X, y, rounds, native):
     """Train with lossfam; return (the trained family, held-out predictor on the mean scale)."""
     if engine == "lightgbm":
@@ -207,25 +206,6 @@ def _fit_builtin(engine, twin, params, X, y, rounds):
     return lambda Z: booster.predict(xgb.DMatrix(Z))
 
 
-def _score(name, tau, trained, y, mean):
-    """Held-out score, lower is better (scikit-learn's metrics; scipy.special.huber)."""
-    from sklearn import metrics
-
-    if name == "gaussian":
-        return metrics.mean_squared_error(y, mean)
-    if name == "laplace":
-        return metrics.mean_absolute_error(y, mean)
-    if name == "asymmetric_laplace":
-        return metrics.mean_pinball_loss(y, mean, alpha=tau)
-    if name == "bernoulli":
-        return metrics.log_loss(y, mean, labels=[0.0, 1.0])
-    if name == "poisson":
-        return metrics.mean_poisson_deviance(y, mean)
-    if name == "gamma":
-        return metrics.mean_gamma_deviance(y, mean)
-    return float(np.mean(special.huber(trained.params["delta"] * trained.params["scale"], y - mean)))
-
-
 def _ratios(engine, case, source, learning_rate, rounds, paths):
     """Held-out score of each lossfam path divided by the built-in's (pooled over folds).
 
@@ -238,11 +218,11 @@ def _ratios(engine, case, source, learning_rate, rounds, paths):
         for path in paths:
             trained, predict = _fit_lossfam(engine, _family(name, tau), params, X, y, rounds, path == "native")
             preds[path].append(predict(Xt))
-        preds["builtin"].append(_fit_builtin(engine, _twin(engine, name, tau, trained), params, X, y, rounds)(Xt))
+        preds["builtin"].append(_fit_builtin(engine, _BENCH.twin(engine, name, tau, trained), params, X, y, rounds)(Xt))
         ys.append(yt)
     y_all = np.concatenate(ys)
-    scores = {p: _score(name, tau, trained, y_all, np.concatenate(v)) for p, v in preds.items()}
-    per_split = [_score(name, tau, trained, yt, a) / _score(name, tau, trained, yt, b)
+    scores = {p: _BENCH.held_out_score(name, tau, trained, y_all, np.concatenate(v)) for p, v in preds.items()}
+    per_split = [_BENCH.held_out_score(name, tau, trained, yt, a) / _BENCH.held_out_score(name, tau, trained, yt, b)
                  for yt, a, b in zip(ys, preds[paths[0]], preds["builtin"])]
     return {p: scores[p] / scores["builtin"] for p in paths}, scores, per_split
 
