@@ -252,6 +252,25 @@ def summarise(runs):
             "score": statistics.median(r["score"] for r in ok)}
 
 
+def table_row(engine, name, tau, n, rounds, limit, runs, others):
+    """One markdown row: seconds and ratios to the built-in, held-out scores, peak memory ratios."""
+    cell = {c: summarise(v) for c, v in runs.items()}
+    b = cell["builtin"]
+    row = [engine, label(name, tau), f"{n:.0e} × {rounds}", fmt(b and b["seconds"])]
+    for c in others:
+        x = cell[c]
+        if x is None or b is None:
+            row.append("failed: " + next((r["error"] for r in runs[c] if "error" in r), "?")[:60])
+            continue
+        lim = f", ≤ {limit}" if c == "train" and limit else ""
+        row.append(f"{x['seconds']:.2f} ({x['seconds'] / b['seconds']:.3f}{lim})")
+    row.append(" / ".join(fmt(cell[c] and cell[c]["score"], ".4g") for c in ["builtin", *others] if c != "floor"))
+    row.append(fmt(b and b["peak_mib"], ".0f"))
+    row += [fmt(cell[c] and b and b["peak_mib"] and cell[c]["peak_mib"] and cell[c]["peak_mib"] / b["peak_mib"], ".3f")
+            for c in others]
+    return "| " + " | ".join(row) + " |"
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--engines", default="lightgbm,xgboost")
@@ -281,6 +300,17 @@ def main(argv=None):
     if "builtin" not in contenders:
         ap.error("--contenders must include builtin (every ratio is against it)")
 
+    print(f"lightgbm {lightgbm.__version__}, xgboost {xgboost.__version__}, numpy {numpy.__version__}; "
+          f"{args.features} features, {args.threads} threads; time = min of {args.repeats} alternated runs "
+          + ("in this process; peak memory = peak RSS of one more child process per contender\n" if args.inline else
+             "(fresh process each); peak memory = median peak RSS of those processes\n"))
+    others = [c for c in contenders if c != "builtin"]
+    head = ["engine", "family", "rows × rounds", "built-in s"]
+    head += [f"{c} s (ratio{', limit' if c == 'train' else ''})" for c in others]
+    head += ["held-out: " + " / ".join(["built-in"] + [c for c in others if c != "floor"])]
+    head += ["peak MiB built-in", *[f"{c} peak ratio" for c in others]]
+    print("| " + " | ".join(head) + " |")
+    print("|" + "---|" * len(head), flush=True)
     results = []
     for n, rounds, limit in sizes:
         for engine in engines:
@@ -300,41 +330,11 @@ def main(argv=None):
                 if args.inline:
                     for c in contenders:
                         runs[c].append({**run_child({**case, "side": c}), "seconds": float("inf")})
-                cell = {c: summarise(v) for c, v in runs.items()}
-                results.append((engine, name, tau, n, rounds, limit, cell, runs))
-                b, t = cell["builtin"], cell.get("train")
-                print(f"done {engine} {label(name, tau)} {n:.0e}x{rounds}: "
-                      f"builtin {fmt(b and b['seconds'])} s, train {fmt(t and t['seconds'])} s", file=sys.stderr,
-                      flush=True)
+                results.append((engine, name, tau, n, rounds, runs))
+                print(table_row(engine, name, tau, n, rounds, limit, runs, others), flush=True)
 
-    print(f"lightgbm {lightgbm.__version__}, xgboost {xgboost.__version__}, numpy {numpy.__version__}; "
-          f"{args.features} features, {args.threads} threads; time = min of {args.repeats} alternated runs "
-          + ("in this process; peak memory = peak RSS of one more child process per contender\n" if args.inline else
-             "(fresh process each); peak memory = median peak RSS of those processes\n"))
-    others = [c for c in contenders if c != "builtin"]
-    head = ["engine", "family", "rows × rounds", "built-in s"]
-    head += [f"{c} s (ratio{', limit' if c == 'train' else ''})" for c in others]
-    head += ["held-out: " + " / ".join(["built-in"] + [c for c in others if c != "floor"])]
-    head += ["peak MiB built-in", *[f"{c} peak ratio" for c in others]]
-    print("| " + " | ".join(head) + " |")
-    print("|" + "---|" * len(head))
-    for engine, name, tau, n, rounds, limit, cell, runs in results:
-        b = cell["builtin"]
-        row = [engine, label(name, tau), f"{n:.0e} × {rounds}", fmt(b and b["seconds"])]
-        for c in others:
-            x = cell[c]
-            if x is None or b is None:
-                row.append("failed: " + next((r["error"] for r in runs[c] if "error" in r), "?")[:60])
-                continue
-            ratio = x["seconds"] / b["seconds"]
-            lim = f", ≤ {limit}" if c == "train" and limit else ""
-            row.append(f"{x['seconds']:.2f} ({ratio:.3f}{lim})")
-        row.append(" / ".join(fmt(cell[c] and cell[c]["score"], ".4g") for c in ["builtin", *others] if c != "floor"))
-        row.append(fmt(b and b["peak_mib"], ".0f"))
-        row += [fmt(cell[c] and b and cell[c]["peak_mib"] / b["peak_mib"], ".3f") for c in others]
-        print("| " + " | ".join(row) + " |")
     print("\nAll runs (seconds, in run order):")
-    for engine, name, tau, n, rounds, _, _, runs in results:
+    for engine, name, tau, n, rounds, runs in results:
         print(f"- {engine} {label(name, tau)} {n:.0e} × {rounds}: " + "; ".join(
             f"{c} " + ", ".join("error" if "error" in r else f"{r['seconds']:.2f}" for r in v
                                if r.get("seconds") != float("inf"))
