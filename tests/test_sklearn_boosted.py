@@ -162,3 +162,54 @@ def test_bad_input():
         BoostedLikelihoodRegressor(engine("xgboost"), family="poisson").fit(X, y, offset=np.zeros(3))
     with pytest.raises(ValueError, match="Only binary classification"):
         BoostedLikelihoodClassifier(engine("lightgbm")).fit(X, np.arange(50) % 3)
+
+
+@pytest.mark.parametrize("name", ["lightgbm", "xgboost"])
+def test_wrapper_trains_what_train_trains_and_its_model_saves_and_loads(name, tmp_path):
+    rng, X, s = data(seed=8)
+    y = np.median(s) + s + rng.laplace(size=len(s))
+    est = BoostedLikelihoodRegressor(engine(name), family="laplace").fit(X, y)
+    assert isinstance(est.model_, lossfam.BoostedFit) and est.model_.engine == name
+    # the same model as the engine's train with the estimator's settings
+    if name == "lightgbm":
+        direct = lossfam.lightgbm.train("laplace", {k: v for k, v in LGB_KW.items() if k != "n_estimators"},
+                                        lgb.Dataset(X, y), LGB_KW["n_estimators"])
+    else:
+        direct = lossfam.xgboost.train("laplace", {k: v for k, v in XGB_KW.items() if k != "n_estimators"},
+                                       xgb.DMatrix(X, label=y), XGB_KW["n_estimators"])
+    np.testing.assert_allclose(est.predict(X), direct.predict(X), rtol=0, atol=1e-12)
+    est.model_.save(tmp_path / "m.json")
+    again = lossfam.load(tmp_path / "m.json")
+    assert again.predict(X).tobytes() == est.predict(X).tobytes()
+
+
+@pytest.mark.parametrize("name", ["lightgbm", "xgboost"])
+def test_sparse_X_is_accepted(name):
+    sparse = pytest.importorskip("scipy.sparse")
+    rng, X, s = data(seed=9)
+    X[np.abs(X) < 0.5] = 0.0
+    y = rng.poisson(np.exp(0.5 * s)).astype(float)
+    # XGBoost reads the entries a sparse matrix leaves out as missing, LightGBM as zeros
+    Xd = np.where(X == 0.0, np.nan, X) if name == "xgboost" else X
+    dense = BoostedLikelihoodRegressor(engine(name), family="poisson").fit(Xd, y)
+    est = BoostedLikelihoodRegressor(engine(name), family="poisson").fit(sparse.csr_matrix(X), y)
+    np.testing.assert_allclose(est.predict(sparse.csr_matrix(X)), dense.predict(Xd), rtol=1e-6)
+
+
+def test_nan_targets_are_refused_with_row_numbers():
+    rng, X, s = data(n=60, seed=10)
+    y = s.copy()
+    y[[5, 17]] = np.nan
+    with pytest.raises(ValueError, match=r"2 rows outside, e.g. rows \[5, 17\]"):
+        BoostedLikelihoodRegressor(engine("lightgbm")).fit(X, y)
+    with pytest.raises(ValueError, match=r"rows \[5, 17\]"):
+        BoostedLikelihoodClassifier(engine("xgboost")).fit(X, np.where(np.isnan(y), np.nan, (s > 0) * 1.0))
+
+
+@pytest.mark.parametrize("name", ["lightgbm", "xgboost"])
+def test_eval_set_without_offset_is_refused_when_fit_has_one(name):
+    rng, X, s = data(seed=11)
+    y = rng.poisson(np.exp(0.5 * s)).astype(float)
+    off = np.zeros(len(y))
+    with pytest.raises(ValueError, match="eval_set\\[0\\] has none"):
+        BoostedLikelihoodRegressor(engine(name), family="poisson").fit(X, y, offset=off, eval_set=[(X, y)])
