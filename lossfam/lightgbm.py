@@ -118,7 +118,6 @@ score LightGBM hands it.
 """
 from __future__ import annotations
 
-import hashlib
 import math
 import weakref
 
@@ -403,33 +402,34 @@ class TrainedModel:
         """The predictive law per row, nuisance parameters fitted on the training data."""
         return self.fitted_family.distribution(self.predict_raw(X, offset))
 
-    def save(self, path):
-        """Write the model (LightGBM model text + family + baseline) to ``path`` (JSON, no pickle)."""
+    def save(self, path, key=None):
+        """Write the model (LightGBM model text + family + baseline) to ``path`` (JSON, no pickle).
+
+        The file is sealed with a checksum, or signed with HMAC-SHA-256 when ``key`` is given
+        (see ``lossfam._modelfile``); the save is atomic.
+        """
         text = self.booster.model_to_string()
         extra = {
             "fitted_params": self.fitted_family.params,
             "num_trees": int(self.booster.num_trees()),
-            "model_sha256": _digest(text),
         }
-        write_model_file(path, engine=_ENGINE, family=self.family, baseline=self.baseline, model=text, extra=extra)
+        write_model_file(path, engine=_ENGINE, family=self.family, baseline=self.baseline, model=text, extra=extra,
+                         key=key)
 
     def __repr__(self):
         return (f"TrainedModel(family={self.family!r}, baseline={self.baseline!r}, "
                 f"trees={self.booster.num_trees()})")
 
 
-def _digest(text: str) -> str:
-    return hashlib.sha256(text.encode("utf-8")).hexdigest()
+def load(path, key=None) -> TrainedModel:
+    """Restore a model written by :meth:`TrainedModel.save` (``key``: the key it was signed with).
 
-
-def load(path) -> TrainedModel:
-    """Restore a model written by :meth:`TrainedModel.save`.
-
-    Raises ValueError for files that are truncated, corrupted, written by
-    another engine's adapter, or not lossfam model files at all.
+    Raises ValueError for files that are truncated, corrupted, edited, signed
+    with another key, written by another engine's adapter, or not lossfam
+    model files at all.  Load only files from sources you trust.
     """
     lgb = _lgb()
-    doc = read_model_file(path, engine=_ENGINE)
+    doc = read_model_file(path, engine=_ENGINE, key=key)
     fam = doc["family"]
     baseline = doc["baseline"]
     if not isinstance(baseline, (int, float)) or not math.isfinite(baseline):
@@ -439,9 +439,6 @@ def load(path) -> TrainedModel:
         fitted = fam.with_params(**extra.get("fitted_params", {}))
     except (TypeError, ValueError) as exc:
         raise ValueError(f"{path}: the fitted parameters are malformed ({exc})") from None
-    # LightGBM's text parser can abort the whole process on damaged text, so check the digest first
-    if extra.get("model_sha256") != _digest(doc["model"]):
-        raise ValueError(f"{path}: the LightGBM model text does not match its checksum; the file is corrupted or was edited")
     try:
         booster = lgb.Booster(model_str=doc["model"])
     except lgb.basic.LightGBMError as exc:

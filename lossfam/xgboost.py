@@ -438,8 +438,12 @@ class BoostedLossModel:
         """The predictive law per row, with nuisance parameters fitted on the training data."""
         return self.fitted_family.distribution(self.predict_raw(X, offset))
 
-    def save(self, path):
-        """Write the model to ``path`` (JSON: the engine's model, the family and the baseline)."""
+    def save(self, path, key=None):
+        """Write the model to ``path`` (JSON: the engine's model, the family and the baseline).
+
+        The file is sealed with a checksum, or signed with HMAC-SHA-256 when ``key`` is given
+        (see ``lossfam._modelfile``); the save is atomic.
+        """
         extra = dict(self.extra)
         extra["fitted_params"] = self.fitted_family.params
         write_model_file(
@@ -449,13 +453,17 @@ class BoostedLossModel:
             baseline=self.baseline,
             model=bytes(self.booster.save_raw("json")).decode("utf-8"),
             extra=extra,
+            key=key,
         )
 
 
-def load(path):
-    """Restore a model written by :meth:`BoostedLossModel.save`."""
+def load(path, key=None):
+    """Restore a model written by :meth:`BoostedLossModel.save` (``key``: the key it was signed with).
+
+    Load only files from sources you trust.
+    """
     xgb = _xgb()
-    doc = read_model_file(path, engine=_ENGINE)
+    doc = read_model_file(path, engine=_ENGINE, key=key)
     fam = doc["family"]
     extra = doc["extra"] if isinstance(doc["extra"], dict) else {}
     try:

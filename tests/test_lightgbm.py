@@ -18,6 +18,7 @@ from sklearn import metrics as skm  # noqa: E402
 
 import lossfam  # noqa: E402
 from lossfam import lightgbm as lfl  # noqa: E402
+from lossfam._filecheck import reseal  # noqa: E402
 
 N_TRAIN, N_TEST, N_FEAT = 20_000, 10_000, 6
 PARAMS = dict(learning_rate=0.1, num_leaves=15, min_data_in_leaf=20, verbosity=-1,
@@ -310,7 +311,7 @@ def test_damaged_or_foreign_files_give_a_clear_error(tmp_path):
     doc = json.loads(text)
     doc["engine"] = "xgboost"
     other = tmp_path / "other.json"
-    other.write_text(json.dumps(doc))
+    other.write_text(json.dumps(reseal(doc)))  # an intact file, only from the other engine
     with pytest.raises(ValueError, match="lossfam.xgboost"):
         lfl.load(other)
 
