@@ -120,11 +120,17 @@ class Family:
         """
         y, raw = self._inputs(y, raw, for_nll=False)
         w = _checks.check_weight(weight, y, self.name)
-        with np.errstate(over="ignore"):
+        scalar = y.ndim == 0
+        if scalar:  # the kernels work in place on arrays: give them one row
+            y, raw = y.reshape(1), raw.reshape(1)
+            w = None if w is None else w.reshape(1)
+        with np.errstate(over="ignore", divide="ignore"):
             g, h = self._grad_hess(y, raw)
             if w is not None:
                 g = np.multiply(g, w, out=g if g.shape == w.shape else None)
                 h = np.multiply(h, w, out=h if h.shape == w.shape else None)
+        if scalar:
+            return g[0], h[0]
         return g, h
 
     def deviance(self, y, raw) -> np.ndarray:
@@ -138,13 +144,14 @@ class Family:
 
         ``offset`` is an optional per-row raw-scale offset (e.g. log exposure).
         Raises ValueError when no finite minimiser exists (e.g. all labels equal).
+        Only relative weights matter, so they are divided by the largest one
+        first (weights near 1e308 then do not overflow their sum, nor subnormal
+        ones underflow products).
         """
         y = self.check_target(y, for_nll=False)
         _checks.check_nonempty(y, self.name)
-        w = _checks.check_weight(weight, y, self.name, need_positive_sum=True)
+        w = _checks.unit_weight(weight, y, self.name)
         o = None if offset is None else _checks.check_raw(offset, y, self.name + " offset")
-        if w is None:
-            w = np.ones_like(y)
         with np.errstate(over="ignore"):
             c = float(self._baseline(y, w, o))
         if not np.isfinite(c):
@@ -157,9 +164,7 @@ class Family:
             return self
         y, raw = self._inputs(y, raw, for_nll=False)
         _checks.check_nonempty(y, self.name)
-        w = _checks.check_weight(weight, y, self.name, need_positive_sum=True)
-        if w is None:
-            w = np.ones_like(y)
+        w = _checks.unit_weight(weight, y, self.name)
         with np.errstate(over="ignore"):
             new = self._fit_nuisance(y, raw, w)
         return dataclasses.replace(self, **new)

@@ -41,7 +41,7 @@ class Gaussian(Family):
         return 0.5 * z * z + (np.log(self.scale) + _HALF_LOG_2PI)
 
     def _grad_hess(self, y, raw):
-        inv_var = 1.0 / (self.scale * self.scale)
+        inv_var = np.float64(1.0) / self.scale / self.scale  # inf (not ZeroDivisionError) when it overflows
         g = raw - y
         if inv_var != 1.0:
             g *= inv_var

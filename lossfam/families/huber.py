@@ -165,8 +165,13 @@ class Huber(Family):
         return g, h
 
     def _deviance(self, y, raw):
-        u = (y - raw) / self.scale
-        return 2.0 * self.scale**2 * huber_rho(u, self.delta)
+        # 2 s^2 rho(r / s) written in r = y - raw: r^2 in the core, d s (2|r| - d s) in the tails
+        # (no s^2 alone, which overflows for s > 1e154 although the deviance does not)
+        r = y - raw
+        a = np.abs(r)
+        ds = self.delta * self.scale
+        with np.errstate(over="ignore", invalid="ignore"):
+            return np.where(a <= ds, r * r, ds * (2.0 * a - ds))
 
     def _baseline(self, y, w, offset):
         t = y if offset is None else y - offset

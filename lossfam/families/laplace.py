@@ -37,6 +37,56 @@ from ._base import Family
 
 #: residuals below FLOOR * scale get the curvature of a residual of that size
 FLOOR = 1e-3
+_LOG2 = float(np.log(2.0))
+
+
+class _LaplaceLaw(stats.rv_continuous):
+    r"""The standard Laplace law with its log-density and log tails in closed form.
+
+    scipy.stats.laplace takes the log of a density and of tail probabilities
+    that underflow (log(0.5 e^-800) = -inf).  In closed form, with a = -|x|,
+
+        log p(x) = a - log 2,
+        log F(x) = a - log 2 for x < 0,   log1p(-e^a / 2) for x >= 0,
+        log S(x) = log F(-x),
+
+    finite for every finite x.  Same law, parametrised like scipy's (loc, scale).
+    """
+
+    def _pdf(self, x):
+        return 0.5 * np.exp(-np.abs(x))
+
+    def _logpdf(self, x):
+        return -np.abs(x) - _LOG2
+
+    def _cdf(self, x):
+        half_tail = 0.5 * np.exp(-np.abs(x))
+        return np.where(x < 0, half_tail, 1.0 - half_tail)
+
+    def _sf(self, x):
+        return self._cdf(-x)
+
+    def _logcdf(self, x):
+        a = -np.abs(x)
+        return np.where(x < 0, a - _LOG2, np.log1p(-0.5 * np.exp(a)))
+
+    def _logsf(self, x):
+        return self._logcdf(-x)
+
+    def _ppf(self, q):
+        return np.where(q <= 0.5, np.log(2.0 * q), -np.log(2.0 * (1.0 - q)))
+
+    def _isf(self, q):
+        return -self._ppf(q)
+
+    def _stats(self):
+        return 0.0, 2.0, 0.0, 3.0
+
+    def _entropy(self):
+        return _LOG2 + 1.0
+
+
+laplace_law = _LaplaceLaw(name="laplace")
 
 
 def weighted_quantile(values, weights, q):
@@ -85,4 +135,4 @@ class Laplace(Family):
         return {"scale": float(b)}
 
     def _distribution(self, raw):
-        return stats.laplace(loc=raw, scale=self.scale)
+        return laplace_law(loc=raw, scale=self.scale)
