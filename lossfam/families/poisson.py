@@ -15,8 +15,9 @@ nll needs integer counts (it is a log-probability).  The gradient, Hessian,
 deviance and baseline accept any y >= 0: a rate y per unit of exposure with
 the exposure as weight gives the same gradients as the count model.
 e^raw overflows beyond raw ~ 709.78: nll, gradient and Hessian are then +inf.
-Where the direct nll would meet inf - inf (raw or y near the float64 limit) it
-is evaluated as the sum of two non-negative parts instead,
+For counts y >= 1e4 (where lgamma(y + 1) and y raw cancel) and wherever the
+direct nll would meet inf - inf (raw or y near the float64 limit) it is
+evaluated as the sum of two non-negative parts instead,
 
     nll = y (expm1(d) - d) + [lgamma(y + 1) - y log y + y],   d = raw - log y,
 
@@ -49,7 +50,7 @@ class Poisson(Family):
     def _nll(self, y, raw):
         with np.errstate(invalid="ignore"):
             out = np.exp(raw) - y * raw + gammaln(y + 1.0)
-        bad = np.isnan(out)
+        bad = np.isnan(out) | (y >= 1e4)  # large counts: the direct form cancels (1e300 - 6.9e302 + 6.9e302)
         if np.any(bad):
             out[bad] = _nll_split(y[bad], raw[bad])
         return out
