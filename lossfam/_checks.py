@@ -164,6 +164,14 @@ def unit_weight(weight, y: np.ndarray, owner: str) -> np.ndarray:
     return w / np.max(w)
 
 
+def finite_residuals(r: np.ndarray, owner: str) -> np.ndarray:
+    """Residuals y - raw, refused (rows named) where the subtraction overflowed."""
+    bad = ~np.isfinite(r)
+    if np.any(bad):
+        raise ValueError(f"{owner}: y - raw overflows float64 in {rows_text(bad, r)}; the nuisance parameters cannot be fitted")
+    return r
+
+
 def check_nonempty(y: np.ndarray, owner: str) -> None:
     if y.size == 0:
         raise ValueError(f"{owner}: y is empty; at least one row is needed")

@@ -85,7 +85,8 @@ class Bernoulli(Family):
         lo, hi = logit(mean) - top - pad, logit(mean) - bottom + pad
         if score(lo) > 0 or score(hi) < 0:  # pragma: no cover - float64 cannot resolve c + o here
             raise ValueError("bernoulli: the offsets are too large for a constant raw score to be resolved in float64")
-        return optimize.brentq(score, lo, hi, xtol=1e-13, rtol=4 * np.finfo(float).eps)
+        # bisection from a bracket as wide as 1e308 to 4 ulps takes up to ~2100 halvings
+        return optimize.brentq(score, lo, hi, xtol=1e-13, rtol=4 * np.finfo(float).eps, maxiter=4000)
 
     def _distribution(self, raw):
         return stats.bernoulli(expit(raw))

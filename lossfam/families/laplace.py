@@ -31,6 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family
@@ -97,6 +98,14 @@ def weighted_quantile(values, weights, q):
     return float(np.quantile(values, q, method="inverted_cdf", weights=weights))
 
 
+def _scaled_mean(a, w):
+    """sum w a / sum w for a >= 0 without overflowing the sum (a is divided by its largest value first)."""
+    m = float(np.max(a))
+    if not m > 0 or not np.isfinite(m):
+        return m
+    return m * (np.dot(w, a / m) / w.sum())
+
+
 @dataclass(frozen=True)
 class Laplace(Family):
     scale: float = 1.0
@@ -129,7 +138,7 @@ class Laplace(Family):
         return weighted_quantile(target, w, 0.5)
 
     def _fit_nuisance(self, y, raw, w):
-        b = np.dot(w, np.abs(y - raw)) / w.sum()
+        b = _scaled_mean(np.abs(_checks.finite_residuals(y - raw, self.name)), w)
         if not b > 0:
             raise ValueError("laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
         return {"scale": float(b)}

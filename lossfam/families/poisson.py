@@ -63,7 +63,8 @@ class Poisson(Family):
         mu = np.exp(raw)
         pos = y > 0
         d = raw - np.log(np.where(pos, y, 1.0))
-        dev = np.where(pos, y * (np.expm1(d) - d), mu)
+        with np.errstate(invalid="ignore"):  # 0 * inf in the branch not taken where y = 0
+            dev = np.where(pos, y * (np.expm1(d) - d), mu)
         return np.maximum(2.0 * dev, 0.0)
 
     def _baseline(self, y, w, offset):
