@@ -29,6 +29,8 @@ import math
 import os
 import tempfile
 
+import numpy as np
+
 from . import _filecheck
 from .registry import family as make_family
 
@@ -59,9 +61,20 @@ def write_model_file(path, *, engine: str, family, baseline: float, model: str, 
         "extra": dict(extra or {}),
         "model": model,
     }
+    try:  # plain JSON types only (numpy scalars and arrays converted), exactly as they will be read back
+        body = json.loads(json.dumps(body, allow_nan=False, default=_plain))
+    except ValueError as exc:
+        raise ValueError(f"cannot save the model: a value is not finite ({exc})") from None
     body[_filecheck.SEAL_FIELD] = _filecheck.seal(body, key)
-    text = json.dumps(body, allow_nan=False)
-    _write_atomic(path, text)
+    _write_atomic(path, json.dumps(body, allow_nan=False))
+
+
+def _plain(value):
+    if isinstance(value, (np.integer, np.floating, np.bool_)):
+        return value.item()
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    raise TypeError(f"cannot save a value of type {type(value).__name__} in a model file")
 
 
 def _write_atomic(path, text: str) -> None:

@@ -451,3 +451,13 @@ def test_signed_model_round_trip_through_the_engines(engine, tmp_path):
     assert np.array_equal(adapter.load(p, key="k1").predict(X), model.predict(X))
     with pytest.raises(ValueError, match="signed"):
         adapter.load(p)
+
+
+def test_numpy_values_in_extra_are_saved_as_plain_json(tmp_path):
+    p = tmp_path / "m.json"
+    _write(p, extra={"fitted_params": {"scale": np.float64(1.5)}, "best_iteration": np.int64(3),
+                     "flags": np.array([True, False])})
+    assert _modelfile.read_model_file(p)["extra"] == {"fitted_params": {"scale": 1.5}, "best_iteration": 3,
+                                                      "flags": [True, False]}
+    with pytest.raises(ValueError, match="not finite"):
+        _write(p, extra={"best_score": float("nan")})
