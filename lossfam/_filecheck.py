@@ -167,10 +167,16 @@ def _float_array(v, n, what) -> np.ndarray:
     return a
 
 
-def _check_tree_shape(left, right, n, what):
-    """Children form one tree rooted at node 0 over nodes [0, n); returns (internal mask, reached mask)."""
+def _check_tree_shape(left, right, n, what, *, leaf_right_is_index=False):
+    """Children form one tree rooted at node 0 over nodes [0, n); returns (internal mask, reached mask).
+
+    A leaf has left child -1 and right child -1, except in multi-output trees
+    where a leaf's right entry is its index into the leaf-vector table
+    (``leaf_right_is_index``; checked by the caller).
+    """
     internal = left >= 0
-    if np.any(internal != (right >= 0)) or np.any((left < -1) | (right < -1)):
+    leaf_right_ok = right >= 0 if leaf_right_is_index else right == -1
+    if np.any(internal & (right < 0)) or np.any(~internal & ~leaf_right_ok) or np.any(left < -1):
         raise ValueError(f"{what}: a node has one child only, or a child index below -1")
     kids = np.concatenate([left[internal], right[internal]])
     if kids.size and (kids.min() < 1 or kids.max() >= n):
@@ -216,7 +222,12 @@ def _xgb_tree(tree, idx, num_feature, what):
         _float_array(tree.get(name), n, f"{where}: {name}")
     _float_array(tree.get("base_weights"), n * slv, f"{where}: base_weights")
     left, right = arrays["left_children"], arrays["right_children"]
-    internal, reached = _check_tree_shape(left, right, n, where)
+    internal, reached = _check_tree_shape(left, right, n, where, leaf_right_is_index=slv > 1)
+    if slv > 1:  # multi-output tree: leaves index a table of leaf vectors
+        n_leaves = int((~internal).sum())
+        _float_array(tree.get("leaf_weights"), n_leaves * slv, f"{where}: leaf_weights")
+        if not np.array_equal(np.sort(right[~internal]), np.arange(n_leaves)):
+            raise ValueError(f"{where}: the leaves' indices into leaf_weights are not 0 .. {n_leaves - 1}")
     if n - int(reached.sum()) != deleted:
         raise ValueError(f"{where}: {n - int(reached.sum())} nodes are unreachable but num_deleted is {deleted}")
     par = arrays["parents"]
@@ -362,8 +373,10 @@ def _lgb_tree(fields, idx, n_feature, what):
         if np.any(nf < 0):
             raise ValueError(f"{where}: num_features must be >= 0")
         total = int(nf.sum())
-        feats = _lgb_numbers(fields.get("leaf_features", ""), total, f"{where}: leaf_features", ints=True)
-        _lgb_numbers(fields.get("leaf_coeff", ""), total, f"{where}: leaf_coeff")
+        # one space-terminated group per leaf (groups may be empty): compare the token counts
+        feats = _lgb_numbers(" ".join((fields.get("leaf_features") or "").split()), total,
+                             f"{where}: leaf_features", ints=True)
+        _lgb_numbers(" ".join((fields.get("leaf_coeff") or "").split()), total, f"{where}: leaf_coeff")
         if feats.size and (feats.min() < 0 or feats.max() >= n_feature):
             raise ValueError(f"{where}: a linear leaf uses a feature outside the model's {n_feature} features")
     if n_int == 0:

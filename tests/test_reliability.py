@@ -461,3 +461,62 @@ def test_numpy_values_in_extra_are_saved_as_plain_json(tmp_path):
                                                       "flags": [True, False]}
     with pytest.raises(ValueError, match="not finite"):
         _write(p, extra={"best_score": float("nan")})
+
+
+@pytest.mark.parametrize("params", [
+    {"linear_tree": True, "num_leaves": 3},
+    {"objective": "quantile", "alpha": 0.3},
+    {"objective": "binary"},
+    {"objective": "tweedie"},
+    {"objective": "multiclass", "num_class": 3},
+    {"categorical": True},
+])
+def test_lightgbm_text_checks_accept_models_of_every_kind(params):
+    lgb = pytest.importorskip("lightgbm")
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(400, 3))
+    y = 3.0 * X[:, 0] + X[:, 1] + rng.normal(size=400)
+    params = dict(params, verbose=-1, num_threads=1, min_data_in_leaf=5)
+    cat = params.pop("categorical", False)
+    if cat:
+        X[:, 2] = rng.integers(0, 6, 400)
+        y = y + 3.0 * (X[:, 2] % 2)
+        params.update(min_data_per_group=5, cat_smooth=1.0)
+    if params.get("objective") == "binary":
+        y = (y > 0).astype(float)
+    elif params.get("objective") == "tweedie":
+        y = np.abs(y)
+    elif params.get("objective") == "multiclass":
+        y = rng.integers(0, 3, 400)
+    data = lgb.Dataset(X, y, categorical_feature=[2] if cat else "auto")
+    text = lgb.train(params, data, 3).model_to_string()
+    assert ("cat_boundaries=" in text) == cat
+    _filecheck.check_lightgbm_text(text, "m")
+
+
+@pytest.mark.parametrize("params", [
+    {"booster": "dart"},
+    {"booster": "gblinear"},
+    {"num_parallel_tree": 3, "subsample": 0.5},
+    {"objective": "multi:softprob", "num_class": 3},
+    {"multi_strategy": "multi_output_tree"},
+    {"categorical": True},
+])
+def test_xgboost_json_checks_accept_models_of_every_kind(params):
+    xgb = pytest.importorskip("xgboost")
+    pd = pytest.importorskip("pandas")
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(400, 3))
+    y = 3.0 * X[:, 0] + rng.normal(size=400)
+    params = dict(params, nthread=1)
+    if params.pop("categorical", False):
+        frame = pd.DataFrame({"a": X[:, 0], "c": pd.Categorical(rng.integers(0, 5, 400))})
+        data = xgb.DMatrix(frame, y + frame["c"].cat.codes, enable_categorical=True)
+    elif "num_class" in params:
+        data = xgb.DMatrix(X, rng.integers(0, 3, 400))
+    elif "multi_strategy" in params:
+        data = xgb.DMatrix(X, np.c_[y, -y])
+    else:
+        data = xgb.DMatrix(X, y)
+    booster = xgb.train(params, data, 3)
+    _filecheck.check_xgboost_json(bytes(booster.save_raw("json")).decode(), "m")
