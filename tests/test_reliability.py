@@ -520,3 +520,32 @@ def test_xgboost_json_checks_accept_models_of_every_kind(params):
         data = xgb.DMatrix(X, y)
     booster = xgb.train(params, data, 3)
     _filecheck.check_xgboost_json(bytes(booster.save_raw("json")).decode(), "m")
+
+
+# --------------------------------------------------------------------------- cases found by the property fuzz
+def test_gamma_shape_for_enormous_variation_is_tiny_not_an_error(strict_warnings):
+    # y / mu near 1e308: s = mean(y/mu - 1 - log(y/mu)) ~ 6e307, and 1/k = s - euler_gamma - log k
+    y = np.array([2.0e307, 7.3e307, 8.6e307])
+    k = lossfam.family("gamma").fit_nuisance(y, np.zeros(3)).shape
+    s = np.mean(y / 1e307) * 1e307  # every log term is negligible at this size
+    assert k == pytest.approx(1.0 / (s - np.euler_gamma - math.log(1.0 / s)), rel=1e-12)
+
+
+def test_huber_deviance_keeps_tiny_tail_values(strict_warnings):
+    # 2 d s |r| - (d s)^2 with d s = 1.7e-475 (below float64) and |r| = 9e307: 3.0e-167
+    d, s, r = 7.923501896920403e-181, 2.109817920161356e-295, 8.98846567e307
+    out = lossfam.family("huber", delta=d, scale=s).deviance([r], [0.0])[0]
+    assert out == pytest.approx(2.0 * d * (s * r), rel=1e-12)
+
+
+def test_huber_baseline_is_located_to_the_scale_not_to_the_widest_target(strict_warnings):
+    # four zeros, one huge target and one huge negative: the Huber M-estimate is 0
+    c = lossfam.family("huber").baseline([0.0, 0, 0, 0, 1.79769313e308, 0], offset=[0, 0, 0, 0, 0, 9.97920155e291])
+    assert abs(c) < 1e-12
+
+
+def test_bernoulli_baseline_with_offsets_spanning_the_float_range_returns_a_root(strict_warnings):
+    y = np.array([0.0, 0, 0, 0, 1])
+    o = np.array([0.0, 0, 0, 0, 1.79769313e308])
+    c = lossfam.family("bernoulli").baseline(y, offset=o)
+    assert special.expit(c + o).sum() == 1.0

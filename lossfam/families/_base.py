@@ -41,6 +41,14 @@ from .._checks import Domain
 from ..links import Link
 
 
+def scaled_mean(a: np.ndarray, w: np.ndarray) -> float:
+    """sum w a / sum w for a >= 0, without overflowing the sum (a is divided by its largest value first)."""
+    m = float(np.max(a))
+    if not m > 0 or not np.isfinite(m):
+        return m
+    return m * float(np.dot(w, a / m) / w.sum())
+
+
 @dataclasses.dataclass(frozen=True)
 class Family:
     """Base class of all noise models.  Subclasses are frozen dataclasses whose

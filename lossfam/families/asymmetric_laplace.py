@@ -33,8 +33,8 @@ from scipy import stats
 from .. import _checks
 from .._checks import OPEN_UNIT, POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family
-from .laplace import FLOOR, _scaled_mean, weighted_quantile
+from ._base import Family, scaled_mean
+from .laplace import FLOOR, weighted_quantile
 
 
 def pinball(r, tau):
@@ -83,7 +83,7 @@ class AsymmetricLaplace(Family):
         return weighted_quantile(target, w, self.quantile)
 
     def _fit_nuisance(self, y, raw, w):
-        b = _scaled_mean(pinball(_checks.finite_residuals(y - raw, self.name), self.quantile), w)
+        b = scaled_mean(pinball(_checks.finite_residuals(y - raw, self.name), self.quantile), w)
         if not b > 0:
             raise ValueError(
                 "asymmetric_laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)"

@@ -86,7 +86,11 @@ class Bernoulli(Family):
         if score(lo) > 0 or score(hi) < 0:  # pragma: no cover - float64 cannot resolve c + o here
             raise ValueError("bernoulli: the offsets are too large for a constant raw score to be resolved in float64")
         # bisection from a bracket as wide as 1e308 to 4 ulps takes up to ~2100 halvings
-        return optimize.brentq(score, lo, hi, xtol=1e-13, rtol=4 * np.finfo(float).eps, maxiter=4000)
+        try:
+            return optimize.brentq(score, lo, hi, xtol=1e-13, rtol=4 * np.finfo(float).eps, maxiter=4000)
+        except RuntimeError:
+            raise ValueError("bernoulli: the offsets span too wide a range for a constant raw score "
+                             "to be resolved in float64") from None
 
     def _distribution(self, raw):
         return stats.bernoulli(expit(raw))

@@ -39,7 +39,7 @@ from scipy.special import digamma, gammaln, logsumexp
 from .. import _checks
 from .._checks import POSITIVE
 from ..links import LOG
-from ._base import Family
+from ._base import Family, scaled_mean
 
 
 @dataclass(frozen=True)
@@ -88,11 +88,20 @@ class Gamma(Family):
                 f"gamma: the shape cannot be fitted because y / mu = y e^-raw overflows in "
                 f"{_checks.rows_text(over, raw)} (raw scores)"
             )
-        target = float(np.dot(w, excess_per_row) / w.sum())
+        target = scaled_mean(excess_per_row, w)
         if not target > 0:
             raise ValueError(
                 "gamma: every target equals its predicted mean, so the maximum-likelihood shape is infinite"
             )
+
+        if target > 1e8:
+            # k < 1e-8: f(k) = log k + 1/k + euler_gamma + O(k) (A&S 6.3.5, 6.3.14), so 1/k = s - gamma - log k
+            k = 1.0 / target
+            for _ in range(8):
+                k = 1.0 / (target - np.euler_gamma - np.log(k))
+            if not k > 0:
+                raise ValueError("gamma: the maximum-likelihood shape is below the float64 range (y / mu varies too much)")
+            return {"shape": float(k)}
 
         def excess(log_k):
             return _log_minus_digamma(np.exp(log_k)) / target - 1.0

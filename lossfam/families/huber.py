@@ -173,9 +173,11 @@ class Huber(Family):
         # (no s^2 alone, which overflows for s > 1e154 although the deviance does not)
         r = y - raw
         a = np.abs(r)
-        ds = self.delta * self.scale
-        with np.errstate(over="ignore", invalid="ignore"):
-            return np.where(a <= ds, r * r, ds * (2.0 * a - ds))
+        d, s = self.delta, self.scale
+        ds = d * s
+        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+            # tails 2 d (s (|r| - d s / 2)): products of positives, none that underflows to 0 early
+            return np.where(a <= ds, r * r, 2.0 * d * (s * (a - 0.5 * ds)))
 
     def _baseline(self, y, w, offset):
         t = y if offset is None else y - offset
@@ -187,7 +189,12 @@ class Huber(Family):
         lo, hi = float(t.min()), float(t.max())
         if lo == hi:
             return lo
-        return optimize.brentq(score, lo, hi, xtol=1e-14 * max(1.0, abs(lo), abs(hi)), rtol=4 * np.finfo(float).eps)
+        try:  # a bracket as wide as 1e308 needs up to ~2100 halvings
+            # tolerance in units of the scale (the score's resolution), not of the widest target
+            return optimize.brentq(score, lo, hi, xtol=max(1e-14 * s, 1e-300),
+                                   rtol=4 * np.finfo(float).eps, maxiter=4000)
+        except RuntimeError:  # pragma: no cover - the score is too coarse in float64 to locate its root
+            raise ValueError("huber: the targets span too wide a range to locate the baseline in float64") from None
 
     def _fit_nuisance(self, y, raw, w):
         keep = w > 0

@@ -34,7 +34,7 @@ from scipy import stats
 from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family
+from ._base import Family, scaled_mean
 
 #: residuals below FLOOR * scale get the curvature of a residual of that size
 FLOOR = 1e-3
@@ -98,14 +98,6 @@ def weighted_quantile(values, weights, q):
     return float(np.quantile(values, q, method="inverted_cdf", weights=weights))
 
 
-def _scaled_mean(a, w):
-    """sum w a / sum w for a >= 0 without overflowing the sum (a is divided by its largest value first)."""
-    m = float(np.max(a))
-    if not m > 0 or not np.isfinite(m):
-        return m
-    return m * (np.dot(w, a / m) / w.sum())
-
-
 @dataclass(frozen=True)
 class Laplace(Family):
     scale: float = 1.0
@@ -138,7 +130,7 @@ class Laplace(Family):
         return weighted_quantile(target, w, 0.5)
 
     def _fit_nuisance(self, y, raw, w):
-        b = _scaled_mean(np.abs(_checks.finite_residuals(y - raw, self.name)), w)
+        b = scaled_mean(np.abs(_checks.finite_residuals(y - raw, self.name)), w)
         if not b > 0:
             raise ValueError("laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
         return {"scale": float(b)}
