@@ -157,11 +157,18 @@ def check_weight(weight, y: np.ndarray, owner: str, *, need_positive_sum: bool =
 
 
 def unit_weight(weight, y: np.ndarray, owner: str) -> np.ndarray:
-    """Checked weights divided by the largest (ones when None): for fits where only relative weights matter."""
+    """Checked weights rescaled so the largest lies in [1/2, 1) (ones when None).
+
+    For fits where only relative weights matter: sums of weights near 1e308
+    no longer overflow, nor products with subnormal weights underflow.  The
+    factor is a power of two, so the rescaling is exact (integer weights keep
+    their exact ties, e.g. in a weighted median).
+    """
     w = check_weight(weight, y, owner, need_positive_sum=True)
     if w is None:
         return np.ones_like(y)
-    return w / np.max(w)
+    _, exponent = np.frexp(np.max(w))
+    return np.ldexp(w, -int(exponent))
 
 
 def finite_residuals(r: np.ndarray, owner: str) -> np.ndarray:

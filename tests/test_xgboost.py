@@ -483,7 +483,10 @@ def test_corrupted_engine_model_is_refused(tmp_path):
     doc = json.loads(path.read_text())
     doc["model"] = doc["model"][: len(doc["model"]) // 2]
     path.write_text(json.dumps(doc))
-    with pytest.raises(ValueError, match="corrupted or not an XGBoost model"):
+    with pytest.raises(ValueError, match="does not match its checksum"):
+        lx.load(path)
+    path.write_text(json.dumps(reseal(doc)))  # a valid checksum: the structural check refuses it
+    with pytest.raises(ValueError, match="the XGBoost model: not valid JSON"):
         lx.load(path)
 
 
@@ -492,6 +495,9 @@ def test_edited_baseline_is_refused(tmp_path):
     doc = json.loads(path.read_text())
     doc["baseline"] += 1.0
     path.write_text(json.dumps(doc))
+    with pytest.raises(ValueError, match="does not match its checksum"):
+        lx.load(path)
+    path.write_text(json.dumps(reseal(doc)))  # a valid checksum: the base_score cross-check refuses it
     with pytest.raises(ValueError, match="disagrees with the booster's base_score"):
         lx.load(path)
 

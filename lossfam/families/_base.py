@@ -152,9 +152,9 @@ class Family:
 
         ``offset`` is an optional per-row raw-scale offset (e.g. log exposure).
         Raises ValueError when no finite minimiser exists (e.g. all labels equal).
-        Only relative weights matter, so they are divided by the largest one
-        first (weights near 1e308 then do not overflow their sum, nor subnormal
-        ones underflow products).
+        Only relative weights matter, so they are rescaled first by a power of
+        two that brings the largest into [1/2, 1) (weights near 1e308 then do
+        not overflow their sum, nor subnormal ones underflow products).
         """
         y = self.check_target(y, for_nll=False)
         _checks.check_nonempty(y, self.name)
