@@ -183,7 +183,12 @@ def _check_tree_shape(left, right, n, what, *, leaf_right_is_index=False):
         raise ValueError(f"{what}: a child index is outside the tree's {n} nodes")
     if np.unique(kids).size != kids.size:
         raise ValueError(f"{what}: a node is the child of two nodes")
-    # each node but the root has one parent: walking from the root must reach them all (no cycles)
+    seen = _reach(n, lambda i: (int(left[i]), int(right[i])) if internal[i] else (), what)
+    return internal, seen
+
+
+def _reach(n, children, what) -> np.ndarray:
+    """Nodes reached walking from node 0 (each at most once: a second visit means a cycle)."""
     seen = np.zeros(n, dtype=bool)
     stack = [0]
     while stack:
@@ -191,9 +196,8 @@ def _check_tree_shape(left, right, n, what, *, leaf_right_is_index=False):
         if seen[i]:
             raise ValueError(f"{what}: the nodes form a cycle")
         seen[i] = True
-        if internal[i]:
-            stack.extend((int(left[i]), int(right[i])))
-    return internal, seen
+        stack.extend(children(i))
+    return seen
 
 
 # --------------------------------------------------------------------------- XGBoost
@@ -399,15 +403,8 @@ def _lgb_tree(fields, idx, n_feature, what):
         raise ValueError(f"{where}: a child index is outside the tree's {n_int} nodes and {leaves} leaves")
     if np.unique(nodes).size != n_int - 1 or np.unique(leaf_ids).size != leaves:
         raise ValueError(f"{where}: the child indices do not form a tree")
-    # walk from the root: every internal node reached once
-    seen = np.zeros(n_int, dtype=bool)
-    stack = [0]
-    while stack:
-        i = stack.pop()
-        if seen[i]:
-            raise ValueError(f"{where}: the nodes form a cycle")
-        seen[i] = True
-        stack.extend(int(c) for c in (left[i], right[i]) if c >= 0)
+    # walk from the root (negative children are leaves): every internal node reached once
+    seen = _reach(n_int, lambda i: [int(c) for c in (left[i], right[i]) if c >= 0], where)
     if not seen.all():
         raise ValueError(f"{where}: some nodes are unreachable from the root")
     cat = (dtype & 1) == 1
