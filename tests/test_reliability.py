@@ -549,3 +549,14 @@ def test_bernoulli_baseline_with_offsets_spanning_the_float_range_returns_a_root
     o = np.array([0.0, 0, 0, 0, 1.79769313e308])
     c = lossfam.family("bernoulli").baseline(y, offset=o)
     assert special.expit(c + o).sum() == 1.0
+
+
+@pytest.mark.parametrize("field", ["extra", "baseline", "family", "model", "engine"])
+def test_a_missing_field_is_refused_even_with_a_valid_checksum(tmp_path, field):
+    # deleting 'extra' must not silently reset the fitted parameters to their defaults
+    p = tmp_path / "m.json"
+    _write(p)
+    doc = _filecheck.reseal(_edit(p, lambda d: d.pop(field)))
+    p.write_text(json.dumps(doc))
+    with pytest.raises(ValueError, match=f"lacks \\['{field}'\\]"):
+        _modelfile.read_model_file(p)
