@@ -2,7 +2,8 @@
 
     python fuzz_saved_models.py ENGINE START STOP SEED MODE FOLDER
 
-trains one small model per registered family (deterministic: one thread, fixed
+trains one small model per registered family, the test suite's user family
+included (deterministic: one thread, fixed
 data), then for mutation i in [START, STOP) damages the saved file of family
 i mod (number of families) with a generator seeded by (SEED, i), loads it and
 predicts.  One line per mutation on stdout, flushed before the next starts:
@@ -113,6 +114,10 @@ def mutate_model_text(text: str, rng) -> str:
 
 
 def main(engine, start, stop, seed, mode, folder):
+    sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+    from user_families import LogisticErrors
+
+    lossfam.register(LogisticErrors, replace=True)  # a user-registered family is saved and loaded too
     fams = lossfam.available()
     models, originals, preds = {}, {}, {}
     for name in fams:
