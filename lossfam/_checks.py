@@ -17,7 +17,19 @@ _SHOW = 5  # how many offending rows an error message lists
 
 
 def as_float_array(x, what: str, owner: str) -> np.ndarray:
-    """Return ``x`` as a float64 ndarray (no copy when it already is one)."""
+    """Return ``x`` as a float64 ndarray (no copy when it already is one).
+
+    Complex numbers (whose imaginary part would be dropped), dates and time
+    spans (which would become counts of days or nanoseconds) are refused.
+    """
+    try:
+        dtype = getattr(x, "dtype", None)
+        kind = dtype.kind if isinstance(dtype, np.dtype) else np.asarray(x).dtype.kind
+    except (TypeError, ValueError):  # ragged input: the conversion below words the error
+        kind = "O"
+    if kind in "cmM":
+        name = {"c": "complex numbers", "m": "time spans", "M": "dates"}[kind]
+        raise ValueError(f"{owner}: {what} must be real numbers, got {name}; convert them to numbers first")
     try:
         arr = np.asarray(x, dtype=np.float64)
     except (TypeError, ValueError) as exc:
@@ -25,11 +37,19 @@ def as_float_array(x, what: str, owner: str) -> np.ndarray:
     return arr
 
 
+def rows_text(bad: np.ndarray, values: np.ndarray) -> str:
+    """'3 rows, e.g. rows [4, 17, 90] = [-1.0, 2.5, nan]' for the True entries of ``bad``."""
+    return _describe_rows(bad, values).replace(" outside,", ",", 1)
+
+
 def _describe_rows(bad: np.ndarray, values: np.ndarray) -> str:
     idx = np.flatnonzero(bad)
     shown = idx[:_SHOW]
     vals = ", ".join(repr(float(v)) for v in values.ravel()[shown])
-    rows = ", ".join(str(int(i)) for i in shown)
+    if bad.ndim > 1:  # (row, column) pairs rather than flat positions
+        rows = ", ".join(str(tuple(int(j) for j in np.unravel_index(i, bad.shape))) for i in shown)
+    else:
+        rows = ", ".join(str(int(i)) for i in shown)
     noun = "row" if idx.size == 1 else "rows"
     return f"{idx.size} {noun} outside, e.g. {noun} [{rows}] = [{vals}]"
 
@@ -96,6 +116,9 @@ OPEN_UNIT = Domain("strictly between 0 and 1", lambda a: (a > 0) & (a < 1))
 def check_target(y, domain: Domain, owner: str) -> np.ndarray:
     """Validate targets ``y`` against ``domain``; return them as float64."""
     y = as_float_array(y, "y", owner)
+    if y.ndim > 1:
+        hint = "; for one column use y.ravel()" if y.ndim == 2 and y.shape[1] == 1 else ""
+        raise ValueError(f"{owner}: y must be one-dimensional (one target per row), got shape {y.shape}{hint}")
     domain.check(y, "y", owner)
     return y
 
@@ -128,9 +151,32 @@ def check_weight(weight, y: np.ndarray, owner: str, *, need_positive_sum: bool =
             f"{owner}: weight has shape {w.shape}, which does not broadcast to y's shape {y.shape}"
         ) from None
     NONNEGATIVE.check(w, "weight", owner)
-    if need_positive_sum and not (np.sum(w) > 0):
+    if need_positive_sum and not np.any(w > 0):
         raise ValueError(f"{owner}: weights sum to zero; at least one row needs a positive weight")
     return w
+
+
+def unit_weight(weight, y: np.ndarray, owner: str) -> np.ndarray:
+    """Checked weights rescaled so the largest lies in [1/2, 1) (ones when None).
+
+    For fits where only relative weights matter: sums of weights near 1e308
+    no longer overflow, nor products with subnormal weights underflow.  The
+    factor is a power of two, so the rescaling is exact (integer weights keep
+    their exact ties, e.g. in a weighted median).
+    """
+    w = check_weight(weight, y, owner, need_positive_sum=True)
+    if w is None:
+        return np.ones_like(y)
+    _, exponent = np.frexp(np.max(w))
+    return np.ldexp(w, -int(exponent))
+
+
+def finite_residuals(r: np.ndarray, owner: str) -> np.ndarray:
+    """Residuals y - raw, refused (rows named) where the subtraction overflowed."""
+    bad = ~np.isfinite(r)
+    if np.any(bad):
+        raise ValueError(f"{owner}: y - raw overflows float64 in {rows_text(bad, r)}; the nuisance parameters cannot be fitted")
+    return r
 
 
 def check_nonempty(y: np.ndarray, owner: str) -> None:

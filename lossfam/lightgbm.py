@@ -59,7 +59,6 @@ for rows that truly have none.  Datasets that already carry an
 """
 from __future__ import annotations
 
-import hashlib
 
 import numpy as np
 
@@ -214,20 +213,14 @@ def _margin(fit, X, offset):
     return raw
 
 
-def _digest(text: str) -> str:
-    return hashlib.sha256(text.encode("utf-8")).hexdigest()
-
-
 def _model_text(booster):
     text = booster.model_to_string()
-    return text, {"num_trees": int(booster.num_trees()), "model_sha256": _digest(text)}
+    return text, {"num_trees": int(booster.num_trees())}
 
 
 def _booster_from_text(text, extra, path, fam, baseline, info):
     lgb = _lgb()
-    # LightGBM's text parser can abort the whole process on damaged text, so check the digest first
-    if extra.get("model_sha256") != _digest(text):
-        raise ValueError(f"{path}: the LightGBM model text does not match its checksum; the file is corrupted or was edited")
+    # the file's checksum and the text's structure were checked by lossfam._modelfile before this point
     try:
         booster = lgb.Booster(model_str=text)
     except lgb.basic.LightGBMError as exc:

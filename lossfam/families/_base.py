@@ -80,6 +80,14 @@ from .._checks import Domain
 from ..links import Link
 
 
+def scaled_mean(a: np.ndarray, w: np.ndarray) -> float:
+    """sum w a / sum w for a >= 0, without overflowing the sum (a is divided by its largest value first)."""
+    m = float(np.max(a))
+    if not m > 0 or not np.isfinite(m):
+        return m
+    return m * float(np.dot(w, a / m) / w.sum())
+
+
 @dataclasses.dataclass(frozen=True)
 class FromParam:
     """In ``Family.native_twins``: the value of the family's parameter ``name``."""
@@ -181,11 +189,17 @@ class Family:
         """
         y, raw = self._inputs(y, raw, for_nll=False)
         w = _checks.check_weight(weight, y, self.name)
-        with np.errstate(over="ignore"):
+        scalar = y.ndim == 0
+        if scalar:  # the kernels work in place on arrays: give them one row
+            y, raw = y.reshape(1), raw.reshape(1)
+            w = None if w is None else w.reshape(1)
+        with np.errstate(over="ignore", divide="ignore"):
             g, h = self._grad_hess(y, raw)
             if w is not None:
                 g = np.multiply(g, w, out=g if g.shape == w.shape else None)
                 h = np.multiply(h, w, out=h if h.shape == w.shape else None)
+        if scalar:
+            return g[0], h[0]
         return g, h
 
     def deviance(self, y, raw) -> np.ndarray:
@@ -199,13 +213,14 @@ class Family:
 
         ``offset`` is an optional per-row raw-scale offset (e.g. log exposure).
         Raises ValueError when no finite minimiser exists (e.g. all labels equal).
+        Only relative weights matter, so they are rescaled first by a power of
+        two that brings the largest into [1/2, 1) (weights near 1e308 then do
+        not overflow their sum, nor subnormal ones underflow products).
         """
         y = self.check_target(y, for_nll=False)
         _checks.check_nonempty(y, self.name)
-        w = _checks.check_weight(weight, y, self.name, need_positive_sum=True)
+        w = _checks.unit_weight(weight, y, self.name)
         o = None if offset is None else _checks.check_raw(offset, y, self.name + " offset")
-        if w is None:
-            w = np.ones_like(y)
         with np.errstate(over="ignore"):
             c = float(self._baseline(y, w, o))
         if not np.isfinite(c):
@@ -218,9 +233,7 @@ class Family:
             return self
         y, raw = self._inputs(y, raw, for_nll=False)
         _checks.check_nonempty(y, self.name)
-        w = _checks.check_weight(weight, y, self.name, need_positive_sum=True)
-        if w is None:
-            w = np.ones_like(y)
+        w = _checks.unit_weight(weight, y, self.name)
         with np.errstate(over="ignore"):
             new = self._fit_nuisance(y, raw, w)
         return dataclasses.replace(self, **new)

@@ -30,9 +30,10 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from .. import _checks
 from .._checks import OPEN_UNIT, POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family, FromParam
+from ._base import Family, FromParam, scaled_mean
 from .laplace import FLOOR, weighted_quantile
 
 
@@ -89,7 +90,7 @@ class AsymmetricLaplace(Family):
         return weighted_quantile(target, w, self.quantile)
 
     def _fit_nuisance(self, y, raw, w):
-        b = np.dot(w, pinball(y - raw, self.quantile)) / w.sum()
+        b = scaled_mean(pinball(_checks.finite_residuals(y - raw, self.name), self.quantile), w)
         if not b > 0:
             raise ValueError(
                 "asymmetric_laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)"

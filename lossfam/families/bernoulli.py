@@ -17,7 +17,8 @@ With p = expit(raw) (logit link) and y in {0, 1}:
     which is what a sum of gradients over rows can resolve.
     deviance = 2 nll                              (the saturated model has nll 0)
     baseline = logit(sum w y / sum w); with an offset o, the root of
-               sum w (expit(c + o) - y) = 0 (monotone in c; scipy.optimize.brentq)
+               sum w (expit(c + o) - y) = 0 (monotone in c; scipy.optimize.brentq
+               on [logit(mean) - max o, logit(mean) - min o], which brackets it)
 
 log_expit and expit from scipy.special keep nll, gradient and Hessian finite
 and accurate for raw scores of any size (tested to +-1e4).
@@ -74,13 +75,23 @@ class Bernoulli(Family):
         def score(c):
             return float(np.dot(w, expit(c + offset) - y))
 
-        c0 = logit(mean) - np.average(offset, weights=w)
-        lo, hi = c0 - 1.0, c0 + 1.0
-        while score(lo) > 0:
-            lo -= 2.0 * (hi - lo)
-        while score(hi) < 0:
-            hi += 2.0 * (hi - lo)
-        return optimize.brentq(score, lo, hi, xtol=1e-13)
+        # expit is increasing: at c = logit(mean) - max(o) every expit(c + o) <= mean (score <= 0),
+        # at c = logit(mean) - min(o) every one is >= mean (score >= 0); so the root lies between,
+        # whatever the size of the offsets (no bracket growth that could stall)
+        top, bottom = float(np.max(offset)), float(np.min(offset))
+        if top == bottom:
+            return logit(mean) - top
+        # widen by 1 plus a few units in the last place, so rounding in c + o cannot cross the root
+        pad = 1.0 + 8.0 * float(np.spacing(max(abs(top), abs(bottom))))
+        lo, hi = logit(mean) - top - pad, logit(mean) - bottom + pad
+        if score(lo) > 0 or score(hi) < 0:  # pragma: no cover - float64 cannot resolve c + o here
+            raise ValueError("bernoulli: the offsets are too large for a constant raw score to be resolved in float64")
+        # bisection from a bracket as wide as 1e308 to 4 ulps takes up to ~2100 halvings
+        try:
+            return optimize.brentq(score, lo, hi, xtol=1e-13, rtol=4 * np.finfo(float).eps, maxiter=4000)
+        except RuntimeError:
+            raise ValueError("bernoulli: the offsets span too wide a range for a constant raw score "
+                             "to be resolved in float64") from None
 
     def _distribution(self, raw):
         return stats.bernoulli(expit(raw))

@@ -14,8 +14,19 @@ coefficient of variation is 1 / sqrt(k)) and y > 0:
                (d/dk of the weighted nll; the left side falls from +inf to 0,
                so the root is unique; scipy.optimize.brentq on log k)
 
+The nll is evaluated as k (e^l - l) + log y + lgamma(k) - k log k with
+l = log y - raw (the same expression regrouped), so a tiny y times a huge
+e^-raw, or k raw near the float64 limit, cannot form 0 * inf or inf - inf.
 e^-raw overflows for raw below ~ -709.78: nll and Hessian are then +inf and the
 gradient -inf (never NaN).
+
+The shape equation needs f(k) = log k - digamma(k) to full relative accuracy
+even where f(k) ~ 1/(2k) is far below the rounding of log k (coefficients of
+variation below ~1e-4): for k >= 16, f is evaluated from its asymptotic series
+1/(2k) + 1/(12k^2) - 1/(120k^4) + 1/(252k^6) - 1/(240k^8) + 1/(132k^10)
+(Abramowitz and Stegun, Handbook of Mathematical Functions, eq. 6.3.18;
+truncation error below 3e-15 relative at k = 16), and
+s = mean_w(e^l - 1 - l) from its Taylor series for |l| < 1e-2.
 """
 from __future__ import annotations
 
@@ -23,11 +34,12 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, stats
-from scipy.special import digamma, gammaln
+from scipy.special import digamma, gammaln, logsumexp
 
+from .. import _checks
 from .._checks import POSITIVE
 from ..links import LOG
-from ._base import Family
+from ._base import Family, scaled_mean
 
 
 @dataclass(frozen=True)
@@ -45,7 +57,11 @@ class Gamma(Family):
 
     def _nll(self, y, raw):
         k = self.shape
-        return k * y * np.exp(-raw) + k * raw - (k - 1.0) * np.log(y) + (gammaln(k) - k * np.log(k))
+        log_y = np.log(y)
+        lr = log_y - raw
+        with np.errstate(over="ignore", invalid="ignore"):
+            t = np.where(lr > 709.0, np.inf, np.exp(np.minimum(lr, 709.0)) - lr)  # e^l - l >= 1
+        return k * t + log_y + (gammaln(k) - k * np.log(k))
 
     def _grad_hess(self, y, raw):
         k = self.shape
@@ -63,32 +79,67 @@ class Gamma(Family):
         return np.maximum(2.0 * (np.expm1(lr) - lr), 0.0)
 
     def _baseline(self, y, w, offset):
-        if offset is None:
-            return np.log(np.dot(w, y)) - np.log(w.sum())
-        return np.log(np.dot(w, y * np.exp(-offset))) - np.log(w.sum())
+        # log(sum w y e^-o / sum w) in log space: no overflow of y e^-o, no underflow of tiny y
+        t = np.log(y) if offset is None else np.log(y) - offset
+        return logsumexp(t, b=w) - np.log(w.sum())
 
     def _fit_nuisance(self, y, raw, w):
         lr = np.log(y) - raw
-        target = float(np.dot(w, np.expm1(lr) - lr) / w.sum())  # mean_w of y/mu - 1 - log(y/mu)
+        excess_per_row = _expm1_minus(lr)  # y/mu - 1 - log(y/mu) >= 0
+        over = (w > 0) & ~np.isfinite(excess_per_row)
+        if np.any(over):
+            raise ValueError(
+                f"gamma: the shape cannot be fitted because y / mu = y e^-raw overflows in "
+                f"{_checks.rows_text(over, raw)} (raw scores)"
+            )
+        target = scaled_mean(excess_per_row, w)
         if not target > 0:
             raise ValueError(
                 "gamma: every target equals its predicted mean, so the maximum-likelihood shape is infinite"
             )
 
-        def excess(log_k):
-            k = np.exp(log_k)
-            return np.log(k) - digamma(k) - target
+        if target > 1e8:
+            # k < 1e-8: f(k) = log k + 1/k + euler_gamma + O(k) (A&S 6.3.5, 6.3.14), so 1/k = s - gamma - log k
+            k = 1.0 / target
+            for _ in range(8):
+                k = 1.0 / (target - np.euler_gamma - np.log(k))
+            if not k > 0:
+                raise ValueError("gamma: the maximum-likelihood shape is below the float64 range (y / mu varies too much)")
+            return {"shape": float(k)}
 
-        # log k - digamma(k) ~ 1/(2k) for large k and ~ 1/k for small k: bracket around 1/(2 target)
-        guess = np.log(0.5 / target)
+        def excess(log_k):
+            return _log_minus_digamma(np.exp(log_k)) / target - 1.0
+
+        # f(k) = log k - digamma(k) ~ 1/(2k) for large k and ~ 1/k for small k: bracket around 1/(2 target)
+        guess = np.log(0.5 / target) if target < 1.0 else -np.log(target)
         lo, hi = guess - 2.0, guess + 2.0
         while excess(lo) < 0:
             lo -= 2.0
         while excess(hi) > 0:
             hi += 2.0
-        return {"shape": float(np.exp(optimize.brentq(excess, lo, hi, xtol=1e-14)))}
+        return {"shape": float(np.exp(optimize.brentq(excess, lo, hi, xtol=1e-14, rtol=1e-15)))}
 
     def _distribution(self, raw):
         with np.errstate(over="ignore"):
             mu = np.exp(raw)
         return stats.gamma(a=self.shape, scale=mu / self.shape)
+
+
+def _log_minus_digamma(k):
+    """log k - digamma(k) > 0, to full relative accuracy for every k > 0 (series for k >= 16)."""
+    k = float(k)
+    if k < 16.0:
+        return float(np.log(k) - digamma(k))
+    r = 1.0 / (k * k)
+    return (0.5 + (1.0 / 12.0 + r * (-1.0 / 120.0 + r * (1.0 / 252.0 + r * (-1.0 / 240.0 + r / 132.0)))) / k) / k
+
+
+def _expm1_minus(x):
+    """e^x - 1 - x >= 0 without cancellation near 0 (Taylor series for |x| < 1e-2, to x^7/5040)."""
+    with np.errstate(over="ignore"):
+        out = np.expm1(x) - x
+    small = np.abs(x) < 1e-2
+    if np.any(small):
+        s = x[small]
+        out[small] = s * s * (0.5 + s * (1 / 6 + s * (1 / 24 + s * (1 / 120 + s * (1 / 720 + s / 5040)))))
+    return out

@@ -20,6 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family
@@ -44,10 +45,12 @@ class Gaussian(Family):
         return 0.5 * z * z + (np.log(self.scale) + _HALF_LOG_2PI)
 
     def _grad_hess(self, y, raw):
-        inv_var = 1.0 / (self.scale * self.scale)
+        s = np.float64(self.scale)
+        inv_var = 1.0 / s / s  # inf (not ZeroDivisionError) when it overflows
         g = raw - y
         if inv_var != 1.0:
-            g *= inv_var
+            g /= s  # divide twice rather than multiply by inv_var: 0 / s^2 stays 0 when s^2 underflows
+            g /= s
         return g, np.full_like(g, inv_var)
 
     def _deviance(self, y, raw):
@@ -59,11 +62,12 @@ class Gaussian(Family):
         return np.average(target, weights=w)
 
     def _fit_nuisance(self, y, raw, w):
-        r = y - raw
-        var = np.dot(w, r * r) / w.sum()
-        if not var > 0:
+        r = _checks.finite_residuals(y - raw, self.name)
+        m = float(np.max(np.abs(r)))
+        if not m > 0 or not np.any(r[w > 0] != 0):
             raise ValueError("gaussian: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
-        return {"scale": float(np.sqrt(var))}
+        u = r / m  # residuals relative to the largest: their squares neither overflow nor all underflow
+        return {"scale": float(m * np.sqrt(np.dot(w, u * u) / w.sum()))}
 
     def _distribution(self, raw):
         return stats.norm(loc=raw, scale=self.scale)

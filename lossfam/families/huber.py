@@ -32,6 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize, special
 
+from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family
@@ -39,7 +40,8 @@ from ._base import Family
 
 def huber_rho(u, delta):
     a = np.abs(u)
-    return np.where(a <= delta, 0.5 * u * u, delta * a - 0.5 * delta * delta)
+    with np.errstate(over="ignore"):  # delta (a - delta / 2): no delta^2 that overflows alone
+        return np.where(a <= delta, 0.5 * u * u, delta * (a - 0.5 * delta))
 
 
 def huber_log_norm(delta):
@@ -162,18 +164,27 @@ class Huber(Family):
         return huber_rho(u, self.delta) + (np.log(self.scale) + huber_log_norm(self.delta))
 
     def _grad_hess(self, y, raw):
-        s, d = self.scale, self.delta
-        u = (raw - y) / s
-        g = np.clip(u, -d, d)
+        s, d = np.float64(self.scale), self.delta
+        r = raw - y
+        g = np.clip(r / s, -d, d)
         g /= s
-        a = np.abs(u)
-        np.maximum(a, d, out=a)
-        h = np.divide(d / (s * s), a, out=a)
+        # min(1, d / |u|) / s^2 = d / (s max(|r|, d s)): finite even where |u| = |r| / s overflows
+        a = np.abs(r, out=r)
+        np.maximum(a, d * s, out=a)
+        a *= s
+        h = np.divide(d, a, out=a)
         return g, h
 
     def _deviance(self, y, raw):
-        u = (y - raw) / self.scale
-        return 2.0 * self.scale**2 * huber_rho(u, self.delta)
+        # 2 s^2 rho(r / s) written in r = y - raw: r^2 in the core, d s (2|r| - d s) in the tails
+        # (no s^2 alone, which overflows for s > 1e154 although the deviance does not)
+        r = y - raw
+        a = np.abs(r)
+        d, s = self.delta, self.scale
+        ds = d * s
+        with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+            # tails 2 d (s (|r| - d s / 2)): products of positives, none that underflows to 0 early
+            return np.where(a <= ds, r * r, 2.0 * d * (s * (a - 0.5 * ds)))
 
     def _baseline(self, y, w, offset):
         t = y if offset is None else y - offset
@@ -185,25 +196,35 @@ class Huber(Family):
         lo, hi = float(t.min()), float(t.max())
         if lo == hi:
             return lo
-        return optimize.brentq(score, lo, hi, xtol=1e-14 * max(1.0, abs(lo), abs(hi)), rtol=4 * np.finfo(float).eps)
+        try:  # a bracket as wide as 1e308 needs up to ~2100 halvings
+            # tolerance in units of the scale (the score's resolution), not of the widest target
+            return optimize.brentq(score, lo, hi, xtol=max(1e-14 * s, 1e-300),
+                                   rtol=4 * np.finfo(float).eps, maxiter=4000)
+        except RuntimeError:  # pragma: no cover - the score is too coarse in float64 to locate its root
+            raise ValueError("huber: the targets span too wide a range to locate the baseline in float64") from None
 
     def _fit_nuisance(self, y, raw, w):
-        r = y - raw
+        keep = w > 0
+        r, w = (y - raw)[keep], w[keep]
         d = self.delta
         sw = w.sum()
-        if not np.any(r[w > 0] != 0):
+        if not np.any(r != 0):
             raise ValueError("huber: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
+        amax = float(np.max(np.abs(_checks.finite_residuals(r, self.name))))
+        r = r / amax  # solve for t = s / max|r|: residuals in [-1, 1], so u = r / t stays finite below
 
-        def excess(log_s):
-            u = r / np.exp(log_s)
+        def excess(log_t):
+            u = r / np.exp(log_t)
             return float(np.dot(w, np.clip(u, -d, d) * u) / sw) - 1.0
 
-        amax = float(np.max(np.abs(r)))
-        lo, hi = np.log(amax) - 50.0, np.log(amax) + 5.0
+        # psi(u) u <= u^2, so excess(0) <= mean r^2 - 1 <= 0; below, the tails grow like delta |r| / t
+        lo, hi = -50.0, 1.0
         while excess(lo) < 0:
             lo -= 50.0
-        log_s = optimize.brentq(excess, lo, hi, xtol=1e-13)
-        return {"scale": float(np.exp(log_s))}
+            if lo < -700.0:
+                raise ValueError("huber: the residuals span too many orders of magnitude to fit the scale in float64")
+        log_t = optimize.brentq(excess, lo, hi, xtol=1e-13)
+        return {"scale": float(amax * np.exp(log_t))}
 
     def _distribution(self, raw):
         return HuberLaw(raw, self.scale, self.delta)

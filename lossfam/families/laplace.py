@@ -31,12 +31,63 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family
+from ._base import Family, scaled_mean
 
 #: residuals below FLOOR * scale get the curvature of a residual of that size
 FLOOR = 1e-3
+_LOG2 = float(np.log(2.0))
+
+
+class _LaplaceLaw(stats.rv_continuous):
+    r"""The standard Laplace law with its log-density and log tails in closed form.
+
+    scipy.stats.laplace takes the log of a density and of tail probabilities
+    that underflow (log(0.5 e^-800) = -inf).  In closed form, with a = -|x|,
+
+        log p(x) = a - log 2,
+        log F(x) = a - log 2 for x < 0,   log1p(-e^a / 2) for x >= 0,
+        log S(x) = log F(-x),
+
+    finite for every finite x.  Same law, parametrised like scipy's (loc, scale).
+    """
+
+    def _pdf(self, x):
+        return 0.5 * np.exp(-np.abs(x))
+
+    def _logpdf(self, x):
+        return -np.abs(x) - _LOG2
+
+    def _cdf(self, x):
+        half_tail = 0.5 * np.exp(-np.abs(x))
+        return np.where(x < 0, half_tail, 1.0 - half_tail)
+
+    def _sf(self, x):
+        return self._cdf(-x)
+
+    def _logcdf(self, x):
+        a = -np.abs(x)
+        return np.where(x < 0, a - _LOG2, np.log1p(-0.5 * np.exp(a)))
+
+    def _logsf(self, x):
+        return self._logcdf(-x)
+
+    def _ppf(self, q):
+        return np.where(q <= 0.5, np.log(2.0 * q), -np.log(2.0 * (1.0 - q)))
+
+    def _isf(self, q):
+        return -self._ppf(q)
+
+    def _stats(self):
+        return 0.0, 2.0, 0.0, 3.0
+
+    def _entropy(self):
+        return _LOG2 + 1.0
+
+
+laplace_law = _LaplaceLaw(name="laplace")
 
 
 def weighted_quantile(values, weights, q):
@@ -84,10 +135,10 @@ class Laplace(Family):
         return weighted_quantile(target, w, 0.5)
 
     def _fit_nuisance(self, y, raw, w):
-        b = np.dot(w, np.abs(y - raw)) / w.sum()
+        b = scaled_mean(np.abs(_checks.finite_residuals(y - raw, self.name)), w)
         if not b > 0:
             raise ValueError("laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
         return {"scale": float(b)}
 
     def _distribution(self, raw):
-        return stats.laplace(loc=raw, scale=self.scale)
+        return laplace_law(loc=raw, scale=self.scale)

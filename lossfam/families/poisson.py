@@ -15,6 +15,16 @@ nll needs integer counts (it is a log-probability).  The gradient, Hessian,
 deviance and baseline accept any y >= 0: a rate y per unit of exposure with
 the exposure as weight gives the same gradients as the count model.
 e^raw overflows beyond raw ~ 709.78: nll, gradient and Hessian are then +inf.
+For counts y >= 1e4 (where lgamma(y + 1) and y raw cancel) and wherever the
+direct nll would meet inf - inf (raw or y near the float64 limit) it is
+evaluated as the sum of two non-negative parts instead,
+
+    nll = y (expm1(d) - d) + [lgamma(y + 1) - y log y + y],   d = raw - log y,
+
+(e^raw where y = 0), so it is +inf on overflow and never NaN.  The bracket is
+Stirling's remainder 0.5 log(2 pi y) + 1/(12 y) - 1/(360 y^3) + 1/(1260 y^5)
+for y >= 1e4 (Abramowitz and Stegun, Handbook of Mathematical Functions,
+eq. 6.1.41; truncation below 1e-30 there).
 """
 from __future__ import annotations
 
@@ -22,7 +32,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
-from scipy.special import gammaln
+from scipy.special import gammaln, logsumexp, xlogy
 
 from .._checks import NONNEGATIVE, NONNEGATIVE_INTEGER
 from ..links import LOG
@@ -44,7 +54,12 @@ class Poisson(Family):
                     "xgboost": {"objective": "count:poisson", "max_delta_step": 0.7}}
 
     def _nll(self, y, raw):
-        return np.exp(raw) - y * raw + gammaln(y + 1.0)
+        with np.errstate(invalid="ignore"):
+            out = np.exp(raw) - y * raw + gammaln(y + 1.0)
+        bad = np.isnan(out) | (y >= 1e4)  # large counts: the direct form cancels (1e300 - 6.9e302 + 6.9e302)
+        if np.any(bad):
+            out[bad] = _nll_split(y[bad], raw[bad])
+        return out
 
     def _grad_hess(self, y, raw):
         h = np.exp(raw)
@@ -54,16 +69,36 @@ class Poisson(Family):
         mu = np.exp(raw)
         pos = y > 0
         d = raw - np.log(np.where(pos, y, 1.0))
-        dev = np.where(pos, y * (np.expm1(d) - d), mu)
+        with np.errstate(invalid="ignore"):  # 0 * inf in the branch not taken where y = 0
+            dev = np.where(pos, y * (np.expm1(d) - d), mu)
         return np.maximum(2.0 * dev, 0.0)
 
     def _baseline(self, y, w, offset):
-        total = np.dot(w, y)
-        if not total > 0:
+        if not np.dot(w, y) > 0:
             raise ValueError("poisson: every row with positive weight has count 0, so the best constant raw score is -inf")
-        exposure = w.sum() if offset is None else np.dot(w, np.exp(offset))
-        return np.log(total) - np.log(exposure)
+        # log sum w y - log sum w e^o, in log space so that large offsets neither overflow nor underflow
+        with np.errstate(divide="ignore"):
+            log_total = logsumexp(np.log(y), b=w)
+        log_exposure = np.log(w.sum()) if offset is None else logsumexp(offset, b=w)
+        return log_total - log_exposure
 
     def _distribution(self, raw):
         with np.errstate(over="ignore"):
             return stats.poisson(np.exp(raw))
+
+
+def _stirling_remainder(y):
+    """lgamma(y + 1) - (y log y - y), >= 0; Stirling's series for large y (no cancellation)."""
+    big = y >= 1e4
+    safe = np.where(big, y, 1.0)
+    series = 0.5 * np.log(2.0 * np.pi * safe) + 1.0 / (12.0 * safe) - 1.0 / (360.0 * safe**3) + 1.0 / (1260.0 * safe**5)
+    direct = gammaln(np.where(big, 1.0, y) + 1.0) - xlogy(y, y) + y
+    return np.where(big, series, direct)
+
+
+def _nll_split(y, raw):
+    """The nll as a sum of non-negative parts (for rows where the direct form meets inf - inf)."""
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+        d = raw - np.log(np.where(y > 0, y, 1.0))
+        part = np.where(y > 0, y * (np.expm1(d) - d), np.exp(raw))
+        return part + _stirling_remainder(y)
