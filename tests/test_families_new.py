@@ -487,3 +487,45 @@ def test_negative_binomial_rates_are_accepted_by_the_derivatives():
     y = np.array([0.5, 2.25])
     g, h = f.grad_hess(y, np.zeros(2))
     assert np.allclose(g, (1.0 - y) / 1.5) and np.allclose(h, (1 + 0.5 * y) / 1.5**2)
+
+
+# ---------------------------------------------------------------------------- diagnostics
+def test_randomized_quantile_residuals_for_tweedie_zeros(rng):
+    from lossfam import diagnostics
+
+    # Dunn and Smyth (1996), randomized quantile residuals: at an atom u = F(y-) + V P(Y = y), so
+    # under the true model u is Uniform(0, 1) and z = Phi^-1(u) is standard normal
+    n = 6000
+    raw = rng.normal(scale=0.6, size=n)
+    f = lossfam.family("tweedie", power=1.6, dispersion=1.5)
+    y = f.distribution(raw).rvs(random_state=rng)
+    assert 0.1 < np.mean(y == 0) < 0.6
+    u = diagnostics.pit(f, y, raw, seed=1)
+    z = diagnostics.quantile_residuals(f, y, raw, seed=1)
+    assert stats.kstest(u, "uniform").pvalue > 1e-3
+    assert stats.kstest(z, "norm").pvalue > 1e-3
+    # the zeros are spread over (0, P(Y = 0)) instead of piling up at P(Y = 0)
+    p0 = f.distribution(raw).zero_mass()
+    zero = y == 0
+    assert np.all(u[zero] <= p0[zero]) and np.all(u[zero] > 0)
+    assert stats.kstest(u[zero] / p0[zero], "uniform").pvalue > 1e-3
+    # positive amounts: u = F(y), no randomisation
+    assert_rel(u[~zero], f.distribution(raw[~zero]).cdf(y[~zero]), 1e-12)
+    # a wrong model is detected: the same data scored as Poisson-like low dispersion
+    z_wrong = diagnostics.quantile_residuals(f.with_params(dispersion=0.3), y, raw, seed=1)
+    assert stats.kstest(z_wrong, "norm").pvalue < 1e-6
+
+
+def test_randomized_quantile_residuals_for_negative_binomial(rng):
+    from lossfam import diagnostics
+
+    n = 6000
+    raw = 1.0 + rng.normal(scale=0.5, size=n)
+    f = lossfam.family("negative_binomial", dispersion=0.8)
+    y = f.distribution(raw).rvs(random_state=rng).astype(float)
+    z = diagnostics.quantile_residuals(f, y, raw, seed=2)
+    assert np.all(np.isfinite(z))
+    assert stats.kstest(z, "norm").pvalue > 1e-3
+    # overdispersed counts scored as Poisson give residuals far from N(0, 1)
+    z_pois = diagnostics.quantile_residuals("poisson", y, raw, seed=2)
+    assert stats.kstest(z_pois, "norm").pvalue < 1e-6 and np.std(z_pois) > 1.3

@@ -56,7 +56,18 @@ def _scenario(name, X, f, seed=7):
         return rng.gamma(2.0, np.exp(1.0 + f) / 2.0)
     if name == "bernoulli":
         return (rng.uniform(size=n) < 1.0 / (1.0 + np.exp(-2.0 * f))).astype(float)
-    raise KeyError(name)
+    # any other family: draws from its own predictive law at raw score f, redrawing the rows that
+    # leave the support once rounded to float32 (a DMatrix stores labels in float32)
+    fam = lossfam.family(name)
+    law = fam.distribution(f)
+    y = np.asarray(law.rvs(random_state=rng), dtype=float)
+    inside = fam.target_domain.inside
+    for _ in range(100):
+        bad = ~inside(y.astype(np.float32).astype(float))
+        if not bad.any():
+            break
+        y[bad] = np.asarray(law.rvs(random_state=rng), dtype=float)[bad]
+    return y
 
 
 def _mean_poisson_deviance(y, mu):
