@@ -73,7 +73,8 @@ ENGINES = ("linear", "lightgbm", "xgboost")
 
 #: families left out of the default candidates (see the module docstring)
 NOT_BY_DEFAULT = ("asymmetric_laplace",)
-#: families whose location fit depends on the scale: one more location/scale round ...
+#: families whose location fit depends on the scale: one more location/scale round (also every
+#: family that declares ``location_depends_on_nuisance``, e.g. student_t, beta, negative_binomial) ...
 _REFIT_LOCATION = ("huber",)
 #: ... with the engines that train at a given scale (the linear engine fits huber jointly)
 _REFIT_ENGINES = ("lightgbm",)
@@ -136,7 +137,8 @@ def _fit_family(fit, engine, fam, X, y, w):
     """Location then nuisance parameters on one training fold (order: module docstring)."""
     predict = fit(fam, X, y, w, False)
     fam = fam.fit_nuisance(y, predict(X), w)
-    if engine in _REFIT_ENGINES and fam.name in _REFIT_LOCATION and fam.params:
+    refit = fam.name in _REFIT_LOCATION or getattr(type(fam), "location_depends_on_nuisance", False)
+    if engine in _REFIT_ENGINES and refit and fam.params:
         predict = fit(fam, X, y, w, True)
         fam = fam.fit_nuisance(y, predict(X), w)
     return fam, predict

@@ -56,7 +56,7 @@ The predictive law is :class:`TweedieLaw` (a law object of lossfam's own; scipy
 has no Tweedie law): mass exp(-lam) at 0, density above; cdf and sf by the
 Poisson mixture of regularised incomplete gamma functions (scipy.special.gammainc
 and gammaincc, so neither tail is formed by a subtraction); ppf by root
-finding on the cdf (scipy.optimize.elementwise.find_root); rvs by simulating N
+finding on the cdf (safeguarded Newton in log y); rvs by simulating N
 and the gamma sum.  :func:`tweedie_power_profile` picks p by profile likelihood.
 """
 from __future__ import annotations
@@ -66,7 +66,6 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 from scipy import optimize, special
-from scipy.optimize import elementwise
 
 from .._checks import POSITIVE, Domain, NONNEGATIVE
 from ..links import LOG
@@ -385,20 +384,50 @@ class TweedieLaw:
         out[np.isnan(q)] = np.nan
         inner = (q > np.broadcast_to(self.zero_mass(), shape)) & (q < 1.0)
         if np.any(inner):
-            qi, mi = q[inner], mu[inner]
-            def gap(log_y, qq, mm):
-                sub = TweedieLaw(mm, self.power, self.dispersion)
-                return sub.cdf(np.exp(log_y)) - qq
-
-            sd = np.sqrt(self.dispersion * mi ** self.power)
-            start = np.log(mi)
-            # cdf(tiny) <= P(Y = 0) + tiny < q and cdf is 1 to rounding 60 sd above the mean
-            lo = np.full_like(start, np.log(np.finfo(float).tiny))
-            hi = np.log(mi + 60.0 * sd + 1.0) + 10.0
-            res = elementwise.find_root(gap, (lo, hi), args=(qi, mi),
-                                        tolerances={"xatol": 1e-13, "xrtol": 1e-13})
-            out[inner] = np.exp(res.x)
+            out[inner] = self._invert(q[inner], mu[inner])
         return out
+
+    def _invert(self, q, mu):
+        """Root of cdf(e^x) = q in x = log y: safeguarded Newton (slope pdf(y) y) inside a bracket.
+
+        The bracket starts at [log tiny, log(mu + 60 sd + 1) + 10] (cdf(tiny) < q since q exceeds
+        the zero mass; cdf is 1 to rounding 60 sd above the mean) and shrinks with the sign of
+        each residual; a Newton step that leaves it is replaced by bisection.  The start is the
+        quantile of the gamma law with the same mean and variance as the positive part.
+        """
+        p, phi = self.power, self.dispersion
+        p0 = np.exp(-mu ** (2.0 - p) / (phi * (2.0 - p)))
+        sd = np.sqrt(phi * mu**p)
+        lo = np.full_like(mu, np.log(np.finfo(float).tiny))
+        hi = np.log(mu + 60.0 * sd + 1.0) + 10.0
+        m_pos = mu / (1.0 - p0)  # mean and variance of Y given Y > 0
+        v_pos = np.maximum((phi * mu**p + mu * mu) / (1.0 - p0) - m_pos**2, 1e-300)
+        qc = np.clip((q - p0) / (1.0 - p0), 1e-12, 1.0 - 1e-12)
+        x = np.log(np.maximum(special.gammaincinv(m_pos**2 / v_pos, qc) * v_pos / m_pos, 1e-300))
+        x = np.clip(x, lo, hi)
+        active = np.arange(q.size)
+        fam = Tweedie(power=p, dispersion=phi)
+        for _ in range(200):
+            xa, qa, ma = x[active], q[active], mu[active]
+            law = TweedieLaw(ma, p, phi)
+            ya = np.exp(xa)
+            with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+                resid = law.cdf(ya) - qa
+                slope = np.exp(-fam._nll(ya, np.log(ma)) + xa)
+            lo[active] = np.where(resid < 0, xa, lo[active])
+            hi[active] = np.where(resid > 0, xa, hi[active])
+            with np.errstate(divide="ignore", invalid="ignore"):
+                step = np.where(slope > 0, -resid / slope, np.nan)
+            new = xa + step
+            outside = ~((new > lo[active]) & (new < hi[active]))
+            new = np.where(outside, 0.5 * (lo[active] + hi[active]), new)
+            done = (np.abs(new - xa) <= 1e-13 * np.maximum(1.0, np.abs(xa))) | (resid == 0) | (
+                hi[active] - lo[active] <= 1e-13 * np.maximum(1.0, np.abs(xa)))
+            x[active] = np.where(resid == 0, xa, new)
+            active = active[~done]
+            if active.size == 0:
+                break
+        return np.exp(x)
 
     def isf(self, q):
         return self.ppf(1.0 - np.asarray(q, dtype=float))
