@@ -39,8 +39,9 @@ few sigma_j = sqrt(j*/(1+a)) of j*.  Everything is done in log space:
 
 * sigma_j <= 8 (most rows): sum j over an integer window around j*, with the
   constants c_j = -lgamma(j+1) - lgamma(a j) tabulated once per call (they do
-  not depend on y); the window grows until both end terms are below the
-  largest by ``_DROP`` = 37 nats (relative 1e-16), then log-sum-exp.
+  not depend on y); the window (6 sigma_j + 4 on each side to start) grows
+  until both end terms are below the central one by ``_DROP`` = 37 nats
+  (relative 1e-16), then log-sum-exp shifted by the central term.
 * sigma_j > 8 (large y / phi): the terms vary smoothly on the integer grid, so
   by the Poisson summation formula the sum equals the integral of
   exp(log W_x) over real x up to a relative error below exp(-2 pi^2 sigma_j^2);
@@ -73,7 +74,7 @@ from ._base import Family
 
 POWER_DOMAIN = Domain("strictly between 1 and 2", lambda a: np.isfinite(a) & (a > 1) & (a < 2))
 
-#: series terms smaller than the largest by this many nats are left out (e^-37 ~ 1e-16)
+#: series terms smaller than the central one by this many nats are left out (e^-37 ~ 1e-16)
 _DROP = 37.0
 #: rows whose terms spread over more than this many sigma_j use the integral form
 _WIDE_SIGMA = 8.0
@@ -136,30 +137,34 @@ def _narrow_sum(z, a, jstar):
     todo = np.arange(z.size)
     table = np.empty(0)
     while todo.size:
-        lo = np.maximum(jc[todo] - half[todo], 1)
-        width = int(2 * half[todo].max() + 1)
-        need = int((lo + width).max()) + 1
+        lo_all = np.maximum(jc[todo] - half[todo], 1)
+        need = int((lo_all + 2 * half[todo] + 1).max()) + 1
         if need > table.size:
             j = np.arange(1, need + 1, dtype=float)
             table = -special.gammaln(j + 1.0) - special.gammaln(a * j)  # table[k] = c_(k+1)
-        windows = sliding_window_view(table, width)
-        steps = np.arange(width, dtype=float)
         redo = []
-        rows_per_block = max(1, _BLOCK // width)
-        for s in range(0, todo.size, rows_per_block):
-            idx = todo[s:s + rows_per_block]
-            lo_b = lo[s:s + rows_per_block]
-            zb = z[idx]
-            terms = windows[lo_b - 1]  # c_j for j = lo .. lo + width - 1 (a copy)
-            terms += (lo_b * zb)[:, None]
-            terms += np.multiply.outer(zb, steps)
-            top = terms.max(axis=1)
-            first_ok = (lo_b == 1) | (terms[:, 0] < top - _DROP)
-            last_ok = terms[:, -1] < top - _DROP
-            terms -= top[:, None]
-            np.exp(terms, out=terms)
-            out[idx] = top + np.log(terms.sum(axis=1))
-            redo.append(idx[~(first_ok & last_ok)])
+        order = np.argsort(half[todo], kind="stable")
+        groups = np.split(order, np.flatnonzero(np.diff(half[todo][order])) + 1)
+        for group in groups:  # rows with the same window width together
+            width = int(2 * half[todo[group[0]]] + 1)
+            windows = sliding_window_view(table, width)
+            steps = np.arange(width, dtype=float)
+            rows_per_block = max(1, _BLOCK // width)
+            for s in range(0, group.size, rows_per_block):
+                idx = todo[group[s:s + rows_per_block]]
+                lo_b = lo_all[group[s:s + rows_per_block]]
+                zb = z[idx]
+                terms = windows[lo_b - 1]  # c_j for j = lo .. lo + width - 1 (a copy)
+                terms += (lo_b * zb)[:, None]
+                terms += np.multiply.outer(zb, steps)
+                # shift by the term at the window's centre (at or next to the peak): no max pass
+                top = terms[np.arange(idx.size), np.minimum(jc[idx] - lo_b, width - 1)]
+                first_ok = (lo_b == 1) | (terms[:, 0] < top - _DROP)
+                last_ok = terms[:, -1] < top - _DROP
+                terms -= top[:, None]
+                np.exp(terms, out=terms)
+                out[idx] = top + np.log(terms.sum(axis=1))
+                redo.append(idx[~(first_ok & last_ok)])
         todo = np.concatenate(redo)
         half[todo] *= 2
     return out
