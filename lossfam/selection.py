@@ -42,18 +42,16 @@ held-out fold is scored with them.  Where the location fit depends on the
 scale, the order is: scale, location, scale.
 
 * laplace, asymmetric_laplace: their location (a median or quantile) does
-  not depend on the scale, but the boosting engines' surrogate Hessian has a
-  floor relative to it.  Both adapters first fit a pilot scale at the
-  baseline (the constant model), then grow the trees; the scale is then
-  refitted on the training residuals.  The linear engine solves the
-  quantile problem exactly (a linear programme), with no scale involved.
-* huber: residuals beyond delta * scale are down-weighted, so the location
-  estimate itself depends on the scale.  The linear engine fits scale and
-  coefficients jointly.  With LightGBM: pilot scale at the baseline, trees,
-  scale from their residuals, then the trees once more at that scale
-  (``prefit_params=False``) and the scale once more (one step of the
-  alternating location/scale fit).  ``lossfam.xgboost.train`` always fits its
-  own pilot scale at the baseline, so with XGBoost huber gets the first round only.
+  not depend on the scale; the boosting engines grow their trees on the
+  pinball subgradient and set leaves to exact residual quantiles, and the
+  scale is fitted on the training residuals afterwards.  The linear engine
+  solves the quantile problem exactly (a linear programme).
+* huber (``location_needs_nuisance``): residuals beyond delta * scale are
+  down-weighted, so the location estimate itself depends on the scale.  The
+  linear engine fits scale and coefficients jointly.  With either boosting
+  engine: pilot scale at the baseline, trees, scale from their residuals,
+  then the trees once more at that scale (``prefit=False``) and the scale
+  once more (one step of the alternating location/scale fit).
 * gaussian, gamma (exact Hessians): the Newton step does not depend on the
   nuisance parameter, so the location is fitted with the defaults, then the parameter.
 
@@ -73,11 +71,10 @@ ENGINES = ("linear", "lightgbm", "xgboost")
 
 #: families left out of the default candidates (see the module docstring)
 NOT_BY_DEFAULT = ("asymmetric_laplace",)
-#: families whose location fit depends on the scale: one more location/scale round (also every
-#: family that declares ``location_depends_on_nuisance``, e.g. student_t, beta, negative_binomial) ...
-_REFIT_LOCATION = ("huber",)
-#: ... with the engines that train at a given scale (the linear engine fits huber jointly)
-_REFIT_ENGINES = ("lightgbm",)
+#: engines that train at a given scale: families whose location depends on it
+#: (``Family.location_needs_nuisance``) get one more location/scale round (the linear
+#: engine fits huber jointly)
+_REFIT_ENGINES = ("lightgbm", "xgboost")
 #: central interval whose coverage is reported
 COVERAGE_LEVEL = 0.9
 #: levels of the coverage table kept for plots
@@ -119,8 +116,7 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
         from .lightgbm import train
 
         params = {**BOOST_DEFAULTS["lightgbm"], "seed": seed, **options}
-        model = train(fam, params, lgb.Dataset(X, y, weight=w), num_boost_round=rounds,
-                      prefit_params=not keep_params)
+        model = train(fam, params, lgb.Dataset(X, y, weight=w), num_boost_round=rounds, prefit=not keep_params)
         return lambda Z: np.asarray(model.predict_raw(Z), dtype=float)
     if engine == "xgboost":
         import xgboost as xgb
@@ -128,7 +124,7 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
         from .xgboost import train
 
         params = {**BOOST_DEFAULTS["xgboost"], "seed": seed, **options}
-        model = train(fam, params, xgb.DMatrix(X, y, weight=w), num_boost_round=rounds)
+        model = train(fam, params, xgb.DMatrix(X, y, weight=w), num_boost_round=rounds, prefit=not keep_params)
         return lambda Z: np.asarray(model.predict_raw(Z), dtype=float)
     raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
 
@@ -137,8 +133,7 @@ def _fit_family(fit, engine, fam, X, y, w):
     """Location then nuisance parameters on one training fold (order: module docstring)."""
     predict = fit(fam, X, y, w, False)
     fam = fam.fit_nuisance(y, predict(X), w)
-    refit = fam.name in _REFIT_LOCATION or getattr(type(fam), "location_depends_on_nuisance", False)
-    if engine in _REFIT_ENGINES and refit and fam.params:
+    if engine in _REFIT_ENGINES and fam.location_needs_nuisance and fam.params:
         predict = fit(fam, X, y, w, True)
         fam = fam.fit_nuisance(y, predict(X), w)
     return fam, predict

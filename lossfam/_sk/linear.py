@@ -133,7 +133,7 @@ def _fit_linear(est, fam, X, y, w, offset):
 
 def _joint_nuisance(fam):
     """The family declares that its location fit depends on its nuisance parameters."""
-    return bool(getattr(type(fam), "location_depends_on_nuisance", False))
+    return bool(fam.location_needs_nuisance)
 
 
 def _finish(est, fam, fit, y, w):
@@ -246,7 +246,7 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
     alpha > 0, a smoothing continuation followed by an active-set solve of the
     optimality conditions that certifies the exact minimiser; semismooth Newton
     with the scale fitted jointly by maximum likelihood for huber.  Families that
-    declare ``location_depends_on_nuisance`` (negative_binomial, beta, student_t)
+    declare ``location_needs_nuisance`` (negative_binomial, beta, student_t)
     get their nuisance parameters fitted jointly with the coefficients (alternating
     maximisation).  For the other families the nuisance parameters keep their
     given values during the coefficient fit (they matter only when alpha > 0);

@@ -1,5 +1,5 @@
 """The built-in noise models, one per module."""
-from ._base import Family
+from ._base import Family, FromParam
 from .asymmetric_laplace import AsymmetricLaplace
 from .bernoulli import Bernoulli
 from .beta import Beta
@@ -16,4 +16,4 @@ from .tweedie import Tweedie, TweedieLaw, tweedie_power_profile
 BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma,
             Tweedie, NegativeBinomial, StudentT, Lognormal, Beta)
 
-__all__ = ["Family", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN]
+__all__ = ["Family", "FromParam", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN]

@@ -61,8 +61,7 @@ class Beta(Family):
     target_domain = OPEN_UNIT
     param_domains = {"precision": POSITIVE}
     exact_hessian = False
-    #: the maximum-likelihood location depends on the nuisance parameters (joint linear fits)
-    location_depends_on_nuisance = True
+    location_needs_nuisance = True
 
     def _shapes(self, raw):
         phi = self.precision

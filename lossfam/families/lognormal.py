@@ -41,6 +41,7 @@ class Lognormal(Family):
     target_domain = POSITIVE
     param_domains = {"scale": POSITIVE}
     prediction_kind = "median"
+    dispersion_unit = ("scale", 2.0)
 
     def _nll(self, y, raw):
         ly = np.log(y)

@@ -67,8 +67,7 @@ class NegativeBinomial(Family):
     nll_domain = NONNEGATIVE_INTEGER
     param_domains = {"dispersion": POSITIVE}
     discrete = True
-    #: the maximum-likelihood location depends on the nuisance parameters (joint linear fits)
-    location_depends_on_nuisance = True
+    location_needs_nuisance = True
 
     def _nll(self, y, raw):
         alpha = self.dispersion

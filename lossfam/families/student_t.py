@@ -73,8 +73,8 @@ class StudentT(Family):
     param_domains = {"df": POSITIVE, "scale": POSITIVE}
     exact_hessian = False
     prediction_kind = "median"
-    #: the maximum-likelihood location depends on the nuisance parameters (joint linear fits)
-    location_depends_on_nuisance = True
+    dispersion_unit = ("scale", 2.0)
+    location_needs_nuisance = True
 
     def __post_init__(self):
         super().__post_init__()

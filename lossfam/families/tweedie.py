@@ -70,7 +70,7 @@ from scipy import optimize, special
 
 from .._checks import POSITIVE, Domain, NONNEGATIVE
 from ..links import LOG
-from ._base import Family
+from ._base import Family, FromParam
 
 POWER_DOMAIN = Domain("strictly between 1 and 2", lambda a: np.isfinite(a) & (a > 1) & (a < 2))
 
@@ -201,6 +201,9 @@ class Tweedie(Family):
     link_function = LOG
     target_domain = NONNEGATIVE
     param_domains = {"power": POWER_DOMAIN, "dispersion": POSITIVE}
+    dispersion_unit = ("dispersion", 1.0)
+    native_twins = {"lightgbm": {"objective": "tweedie", "tweedie_variance_power": FromParam("power")},
+                    "xgboost": {"objective": "reg:tweedie", "tweedie_variance_power": FromParam("power")}}
 
     def _nll(self, y, raw):
         p, phi = self.power, self.dispersion
