@@ -29,8 +29,12 @@ def make_data(name, n, rng):
         y = rng.poisson(np.exp(raw)).astype(float)
     elif name == "gamma":
         y = rng.gamma(2.0, np.exp(raw) / 2.0)
-    else:
+    elif lossfam.family(name).link_function.name == "identity":
         y = raw + rng.normal(size=n)
+    else:  # any other family: targets drawn from its own predictive law
+        y = np.asarray(lossfam.family(name).distribution(raw).rvs(random_state=rng), dtype=float)
+        if name == "beta":  # draws may round to 0 or 1, outside the support
+            y = np.clip(y, 1e-12, 1 - 1e-12)
     return y, raw
 
 

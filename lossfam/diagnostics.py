@@ -18,7 +18,9 @@ the two sides of the jump,
 
     u = F(y - 1) + V P(Y = y),      V ~ Uniform(0, 1)   (seeded),
 
-which is exactly Uniform(0, 1) under the model.  ``unit_interval=True`` applies
+which is exactly Uniform(0, 1) under the model.  A continuous law with point
+masses (tweedie's exact zeros; its law exposes ``log_atom``) gets the same
+randomisation at the atoms, u = F(y-) + V P(Y = y), and u = F(y) elsewhere.  ``unit_interval=True`` applies
 the same idea to a continuous law scored on integer targets (a continuous
 law for a value that was rounded): u = F(y - 1/2) + V (F(y + 1/2) - F(y - 1/2)).
 
@@ -148,7 +150,30 @@ def _log_pit(fam, y, raw, seed, unit_interval):
             log_u = np.logaddexp(lc_below, np.log(v) + log_mass)
             log_1mu = np.logaddexp(ls_above, np.log1p(-v) + log_mass)
         return log_u, log_1mu
+    if hasattr(law, "log_atom"):
+        return _log_pit_with_atoms(law, y, seed)
     return _log_tails(law, y)
+
+
+def _log_pit_with_atoms(law, y, seed):
+    """(log u, log(1 - u)) for a law with point masses (``law.log_atom(y)`` = log P(Y = y)),
+    e.g. tweedie's mass at 0: u = F(y-) + V P(Y = y) at an atom, F(y) elsewhere.
+
+    log F(y-) = log(F(y) - P(Y = y)) = log F(y) + log(1 - P(Y = y) / F(y)), and
+    1 - u = S(y) + (1 - V) P(Y = y), both formed in log space without cancellation.
+    """
+    lc, ls = _log_tails(law, y)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_mass = np.asarray(law.log_atom(y), dtype=float)
+    atom = np.isfinite(log_mass)
+    if not np.any(atom):
+        return lc, ls
+    v = _rng(seed).random(y.shape)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        below = lc + _log1mexp(np.minimum(log_mass - lc, 0.0))
+        log_u = np.logaddexp(below, np.log(v) + log_mass)
+        log_1mu = np.logaddexp(ls, np.log1p(-v) + log_mass)
+    return np.where(atom, log_u, lc), np.where(atom, log_1mu, ls)
 
 
 # ---------------------------------------------------------------------- public

@@ -222,8 +222,89 @@ def write(name, cells):
     nbformat.write(nb, HERE / name)
 
 
+def build_flat_tyres():
+    """Overdispersed counts: negative_binomial against poisson (held-out nll and calibration)."""
+    cells = [
+        md("""
+# Overdispersed counts: flat tyres at bike-share stations
+
+*Invented scenario.* A city bike-share logs, for every docking station and day, how many
+returned bikes had a flat tyre.  Busier stations see more flats, and so do days with rain
+(grit washed onto the cycle lanes) and stations next to a building site.  But stations also
+differ in ways the log does not record (a kerb that eats tyres, a bar that spills glass), so
+the counts vary far more than a Poisson law around the modelled mean allows.
+
+The negative binomial family has the same mean model and log link as poisson, plus a
+dispersion alpha: Var = mu + alpha mu^2.  Which noise model fits, and does it matter for
+the intervals the operations team plans with?
+"""),
+        code("""
+%matplotlib inline
+import numpy as np
+import lossfam
+from lossfam import diagnostics, plot
+from lossfam.sklearn import LikelihoodRegressor
+
+rng = np.random.default_rng(7)
+n = 2400
+log_returns = rng.normal(3.5, 0.6, n)        # log of bikes returned that day
+rain = rng.binomial(1, 0.35, n)
+works = rng.binomial(1, 0.15, n)             # building site within 200 m
+station_effect = rng.gamma(1 / 0.6, 0.6, n)  # unrecorded: mean 1, variance 0.6
+mu = np.exp(-2.6 + 0.8 * log_returns + 0.5 * rain + 0.7 * works)
+flats = rng.poisson(mu * station_effect).astype(float)
+X = np.column_stack([log_returns, rain, works])
+print(f"mean {flats.mean():.2f} flats per station-day, variance {flats.var():.2f}, zeros {np.mean(flats == 0):.0%}")
+"""),
+        code("""
+table = lossfam.rank_families(X, flats, families=["poisson", "negative_binomial", "gaussian", "laplace"],
+                              engine="linear", folds=5, seed=0)
+table[["rank", "family", "nll", "nll_se", "gap", "gap_se", "coverage90", "ks", "params", "scored_by"]]
+"""),
+        md("""
+negative_binomial ranks first, ahead of poisson by many standard errors of the gap, and its
+fitted dispersion is near the station-to-station variance that generated the data.  The
+continuous families are scored on the same footing (the probability of the unit interval
+around each count).  Now a plain train/test split, with the two count models side by side.
+"""),
+        code("""
+from scipy import stats
+
+train = np.arange(n) < 1600
+test = ~train
+pit = {}
+for name in ["poisson", "negative_binomial"]:
+    model = LikelihoodRegressor(family=name).fit(X[train], flats[train])
+    raw = model.predict_raw(X[test])
+    nll = model.family_.nll(flats[test], raw).mean()
+    pit[name] = diagnostics.pit(model.family_, flats[test], raw, seed=1)
+    upper = np.mean(pit[name] > 0.95)  # should be 5% under a calibrated law
+    print(f"{name} held-out nll {nll:.4f} above-95%-quantile {upper:.3f} "
+          f"KS p-value {stats.kstest(pit[name], 'uniform').pvalue:.4f}")
+"""),
+        md("""
+Calibration.  For counts the probability integral transform is randomized within each
+count's probability mass (Dunn and Smyth's randomized quantile residuals), so that under a
+calibrated law it is uniform on (0, 1).  Poisson puts far more held-out days above its 95%
+quantile than 5%, and its PIT is far from uniform: the law is too narrow.  The negative
+binomial PIT is flat.  (Central interval coverage is a blunter check on small counts: a
+discrete interval holds at least its level by construction.)
+"""),
+        code("""
+from matplotlib.figure import Figure
+
+fig = Figure(figsize=(9, 3.5), layout="constrained")
+for ax, name in zip(fig.subplots(1, 2), pit):
+    plot.pit_histogram(pit[name], bins=10, ax=ax, title=f"{name}: held-out PIT")
+fig
+"""),
+    ]
+    write("flat_tyres_overdispersed_counts.ipynb", cells)
+
+
 if __name__ == "__main__":
     write("repair_amounts_gamma.ipynb", REPAIRS)
     write("kiln_quantile_intervals.ipynb", INTERVALS)
     write("moth_counts_exposure.ipynb", EXPOSURE)
+    build_flat_tyres()
     print("wrote", ", ".join(sorted(p.name for p in HERE.glob("*.ipynb"))))

@@ -60,6 +60,15 @@ def test_notebook_runs(path):
         p_with = float(lines["with log(hours) offset"].rsplit(" ", 1)[1])
         p_without = float(lines["hours ignored"].rsplit(" ", 1)[1])
         assert p_with > 0.01 and p_without < 0.01
+    if path.stem == "flat_tyres_overdispersed_counts":
+        held = {ln.split(" held-out")[0]: ln.split() for ln in text.splitlines() if " held-out nll " in ln}
+        nb_line, pois_line = held["negative_binomial"], held["poisson"]
+        assert float(nb_line[3]) < float(pois_line[3])  # held-out nll
+        # calibration: share of held-out days above the 95% quantile, and uniformity of the PIT
+        assert abs(float(nb_line[5]) - 0.05) < abs(float(pois_line[5]) - 0.05)
+        assert float(nb_line[-1]) > 0.01 > float(pois_line[-1])
+        first = [line for line in text.splitlines() if line.strip().startswith("0 ")][0]
+        assert "negative_binomial" in first
     if path.stem == "kiln_quantile_intervals":
         line = [ln for ln in text.splitlines() if ln.startswith("two quantile models")][0]
         assert abs(float(line.split("covers ")[1].split(" ")[0]) - 0.8) < 0.08

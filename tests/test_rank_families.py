@@ -50,6 +50,20 @@ def simulate(name, n=N):
     return X, y
 
 
+#: families that contain another as a limit of their nuisance parameter (negative_binomial is
+#: poisson as dispersion -> 0): on data from the inner family the two tie up to sampling noise
+NESTING = {"poisson": "negative_binomial"}
+
+
+def _first_or_nested_tie(ok, expected):
+    """The expected family is first, or the family nesting it is first with the expected one
+    second and behind by less than two paired standard errors (a tie)."""
+    if ok[0]["family"] == expected:
+        return True
+    return (ok[0]["family"] == NESTING.get(expected) and ok[1]["family"] == expected
+            and ok[1]["gap"] < 2.0 * ok[1]["gap_se"])
+
+
 @pytest.mark.parametrize("engine", selection.ENGINES)
 @pytest.mark.parametrize("truth", SIMULATIONS)
 def test_true_family_ranks_first(truth, engine):
@@ -67,7 +81,7 @@ def test_true_family_ranks_first(truth, engine):
     ok = [r for r in rows if r["status"] == "ok"]
     assert len(ok) >= 3
     table = ", ".join(f"{r['family']} {r['nll']:.4f}" for r in ok)
-    assert ok[0]["family"] == expected, f"{engine} on {truth} data: {table}"
+    assert _first_or_nested_tie(ok, expected), f"{engine} on {truth} data: {table}"
     assert ok[0]["rank"] == 1 and [r["rank"] for r in ok] == list(range(1, len(ok) + 1))
     assert all(np.isfinite(r["nll"]) and r["nll_se"] >= 0 for r in ok)
     assert all(ok[i]["nll"] <= ok[i + 1]["nll"] for i in range(len(ok) - 1))

@@ -176,9 +176,16 @@ def _fit_linear(est, fam, X, y, w, offset):
     args = (X, y, v, offset, alpha, est.fit_intercept, est.max_iter, est.tol, coef, intercept)
     if isinstance(fam, Huber):
         return _solvers.huber_joint(fam, X, y, w, *args[2:])
+    if _joint_nuisance(fam):
+        return _solvers.nuisance_joint(fam, X, y, w, *args[2:])
     # built-in families with an nll convex in raw: the cheaper gradient-norm line search
     merit = "gradient" if type(fam) in (Gaussian, Poisson, Gamma, Bernoulli) else "objective"
     return _solvers.newton(fam, *args, merit=merit)
+
+
+def _joint_nuisance(fam):
+    """The family declares that its location fit depends on its nuisance parameters."""
+    return bool(fam.location_needs_nuisance)
 
 
 def _finish(est, fam, fit, y, w):
@@ -201,6 +208,16 @@ def _finish(est, fam, fit, y, w):
                 f"{type(est).__name__}: the residuals vanish as the huber scale shrinks (the model "
                 "fits the data exactly), so the scale has no maximum-likelihood value; it keeps the "
                 f"value {fit.family.scale:.6g}",
+                UserWarning,
+                stacklevel=3,
+            )
+        return
+    if _joint_nuisance(fam):
+        est.family_ = fit.family  # fitted jointly with the coefficients
+        if not fit.nuisance_fitted:
+            warnings.warn(
+                f"{type(est).__name__}: the nuisance parameters of {fam.name} have no maximum-likelihood "
+                f"value here, so they keep the values {fit.family.params}",
                 UserWarning,
                 stacklevel=3,
             )
@@ -312,8 +329,11 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
     and asymmetric_laplace linear programming (HiGHS) when alpha = 0 and, when
     alpha > 0, a smoothing continuation followed by an active-set solve of the
     optimality conditions that certifies the exact minimiser; semismooth Newton
-    with the scale fitted jointly by maximum likelihood for huber.  During the coefficient fit, nuisance parameters other than the
-    Huber scale keep their given values (they matter only when alpha > 0);
+    with the scale fitted jointly by maximum likelihood for huber.  Families that
+    declare ``location_needs_nuisance`` (negative_binomial, beta, student_t)
+    get their nuisance parameters fitted jointly with the coefficients (alternating
+    maximisation).  For the other families the nuisance parameters keep their
+    given values during the coefficient fit (they matter only when alpha > 0);
     afterwards ``family_`` holds them at their maximum-likelihood values.
 
     Parameters

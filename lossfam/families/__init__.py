@@ -2,12 +2,18 @@
 from ._base import Family, FromParam
 from .asymmetric_laplace import AsymmetricLaplace
 from .bernoulli import Bernoulli
+from .beta import Beta
 from .gamma import Gamma
 from .gaussian import Gaussian
 from .huber import Huber, HuberLaw
 from .laplace import Laplace
+from .lognormal import Lognormal
+from .negative_binomial import NegativeBinomial
 from .poisson import Poisson
+from .student_t import StudentT
+from .tweedie import Tweedie, TweedieLaw, tweedie_power_profile
 
-BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma)
+BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma,
+            Tweedie, NegativeBinomial, StudentT, Lognormal, Beta)
 
-__all__ = ["Family", "FromParam", "HuberLaw", "BUILT_IN"] + [c.__name__ for c in BUILT_IN]
+__all__ = ["Family", "FromParam", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN]
