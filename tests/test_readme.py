@@ -33,3 +33,22 @@ def test_readme_section_examples_run(title, tmp_path):
     out = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, capture_output=True, text=True,
                          timeout=600, env={**os.environ, "MPLBACKEND": "Agg"})
     assert out.returncode == 0, f"README section {title!r} failed:\n--- stderr ---\n{out.stderr[-3000:]}"
+
+
+ROOT = README.parent
+LINKED_DOCS = [README, ROOT / "benchmarks" / "README.md"]
+_PATHLIKE = re.compile(r"`((?:[\w.-]+/)*[\w-]+\.(?:py|md|ipynb|csv))`")
+
+
+@pytest.mark.parametrize("doc", LINKED_DOCS, ids=lambda p: p.relative_to(ROOT).as_posix())
+def test_readme_links_point_to_files_that_exist(doc):
+    """Every relative link, and every repository path quoted in backticks, names a file that exists."""
+    text = doc.read_text(encoding="utf-8")
+    targets = [t.split("#")[0] for t in re.findall(r"\]\(([^)\s]+)\)", text)
+               if not re.match(r"[a-z]+:", t) and not t.startswith("#")]
+    missing = [t for t in targets if t and not (doc.parent / t).exists()]
+    for path in _PATHLIKE.findall(text):
+        bare_name_found = "/" not in path and any(ROOT.glob(f"[!.]*/**/{path}"))
+        if not ((ROOT / path).exists() or (doc.parent / path).exists() or bare_name_found):
+            missing.append(path)
+    assert not missing, f"{doc.name} refers to files that do not exist: {missing}"
