@@ -319,3 +319,33 @@ def test_ks_column_separates_right_from_wrong_law():
     # held-out residuals of the right law pass the KS test, those of the wrong one fail it (scipy.stats.kstest)
     assert stats.kstest(details["gamma"]["residuals"], "norm").pvalue > 0.01
     assert stats.kstest(details["gaussian"]["residuals"], "norm").pvalue < 0.01
+
+
+def test_rows_render_as_an_html_table_in_notebooks():
+    from html.parser import HTMLParser
+
+    X, y = simulate("poisson", n=600)
+    rows = lossfam.rank_families(X, y, families=["poisson", "gaussian", "gamma"], folds=2, as_frame=False)
+    assert isinstance(rows, selection.Ranking) and isinstance(rows, list)
+    page = rows._repr_html_()
+
+    class Cells(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.rows, self.text = [], []
+
+        def handle_starttag(self, tag, attrs):
+            if tag == "tr":
+                self.rows.append([])
+
+        def handle_data(self, data):
+            if self.rows and data.strip():
+                self.rows[-1].append(data.strip())
+
+    doc = Cells()
+    doc.feed(page)
+    header, first, second = doc.rows[:3]
+    assert header[:5] == ["place", "family", "nll per row", "+/- over folds", "behind the best"]
+    assert first[:2] == ["1", "poisson"] and second[:2] == ["2", "gaussian"]
+    assert first[header.index("+/- paired")] == "-"  # the best row has no distance to be uncertain about
+    assert "not applicable: gamma" in page and "unit interval around y" in page
