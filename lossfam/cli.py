@@ -360,7 +360,7 @@ def _check_outputs(args):
             raise DataError(f"--report {args.report}: exists; choose another name or remove it (nothing is replaced)")
         parent = os.path.dirname(os.path.abspath(args.report))
         if not os.path.isdir(parent):
-            raise DataError(f"--report {args.report}: the folder {parent} does not exist")
+            raise DataError(f"--report {args.report}: {parent} is not an existing folder")
         _probe_directory(parent, "--report")
     return created
 
@@ -474,15 +474,17 @@ def _rank(args):
         created = _check_outputs(args)
     except DataError as exc:
         return _fail(str(exc))
+    code = EXIT_BAD_INPUT
     try:
-        return _run(args, data, target, families)
-    except BaseException:
-        for d in created:  # leave nothing behind on failure
-            try:
-                os.rmdir(d)
-            except OSError:
-                pass
-        raise
+        code = _run(args, data, target, families)
+    finally:
+        if code != 0:
+            for d in created:  # leave nothing behind on failure (only a directory this run made, if still empty)
+                try:
+                    os.rmdir(d)
+                except OSError:
+                    pass
+    return code
 
 
 def _run(args, data, target, families):
