@@ -195,12 +195,18 @@ def _fit_linear(fam, X, y, w, offset, options):
     """The linear engine: LikelihoodRegressor on the (one-hot encoded) features."""
     from .sklearn import LikelihoodRegressor
 
-    encode = _OneHot(X) if _has_categories(X) else None
+    onehot = _OneHot(X) if _has_categories(X) else None
+    Xe = X if onehot is None else onehot(X)
+    # centre the columns at the training fold's means: the same model (the intercept absorbs the
+    # shift, and a penalty never applies to it), but a column far from 0 with little spread (a date
+    # as days since 1970) is no longer nearly collinear with the intercept
+    centre = Xe.mean(axis=0)
     est = LikelihoodRegressor(family=fam, **options)
-    est.fit(X if encode is None else encode(X), y, sample_weight=w, offset=offset)
+    est.fit(Xe - centre, y, sample_weight=w, offset=offset)
 
     def predict(Z, off=None):
-        return np.asarray(est.predict_raw(Z if encode is None else encode(Z), offset=off), dtype=float)
+        Ze = Z if onehot is None else onehot(Z)
+        return np.asarray(est.predict_raw(Ze - centre, offset=off), dtype=float)
     return predict
 
 
