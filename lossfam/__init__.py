@@ -7,12 +7,15 @@ nll, its gradient and Hessian in the raw score, the link, the baseline score,
 maximum-likelihood nuisance parameters and the predictive law.
 
 Engine adapters live in ``lossfam.lightgbm``, ``lossfam.xgboost`` and
-``lossfam.sklearn``; they import their engine only when used.
+``lossfam.sklearn``; they import their engine only when used.  Both engines'
+``train`` return a :class:`BoostedFit`; ``lossfam.load(path)`` reads either
+engine's saved model.
 """
+from ._boost.model import BoostedFit, load
 from .families import Family
 from .registry import available, family, register, unregister
 from .selection import rank_families  # numpy/scipy only at import; engines, pandas load on use
 
 __version__ = "0.1.0"
 
-__all__ = ["Family", "available", "rank_families", "family", "register", "unregister", "__version__"]
+__all__ = ["BoostedFit", "Family", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]

@@ -20,7 +20,9 @@ FORMAT_VERSION = 1
 _KEY = "lossfam_model"
 
 
-def write_model_file(path, *, engine: str, family, baseline: float, model: str, extra: dict | None = None) -> None:
+def write_model_file(path, *, engine: str, family, baseline: float, model: str, extra: dict | None = None,
+                     key=None) -> None:
+    _no_key(key)
     doc = {
         _KEY: FORMAT_VERSION,
         "engine": engine,
@@ -35,8 +37,17 @@ def write_model_file(path, *, engine: str, family, baseline: float, model: str, 
     os.replace(tmp, path)
 
 
-def read_model_file(path, *, engine: str) -> dict:
-    """Read and check a saved model; returns the document with ``family`` rebuilt as an object."""
+def _no_key(key):
+    if key is not None:
+        raise NotImplementedError("keyed (signed) model files are not supported by this version of lossfam")
+
+
+def read_model_file(path, *, engine: str | None = None, key=None) -> dict:
+    """Read and check a saved model; returns the document with ``family`` rebuilt as an object.
+
+    ``engine``: refuse files of another engine (None: either).
+    """
+    _no_key(key)
     try:
         with open(path, "r", encoding="utf-8") as fh:
             doc = json.load(fh)
@@ -51,8 +62,9 @@ def read_model_file(path, *, engine: str) -> dict:
     missing = [k for k in ("engine", "family", "baseline", "model") if k not in doc]
     if missing:
         raise ValueError(f"{path}: lossfam model file lacks {missing}; was it truncated or edited?")
-    if doc["engine"] != engine:
-        raise ValueError(f"{path}: this model was saved by lossfam.{doc['engine']}, load it with lossfam.{doc['engine']}.load")
+    if engine is not None and doc["engine"] != engine:
+        raise ValueError(f"{path}: this model was saved by lossfam.{doc['engine']}, load it with lossfam.load "
+                         f"or lossfam.{doc['engine']}.load")
     fam = doc["family"]
     try:
         doc["family"] = make_family(fam["name"], **fam.get("params", {}))

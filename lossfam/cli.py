@@ -487,6 +487,21 @@ def _rank(args):
     return code
 
 
+class _Discard:
+    """A logger for LightGBM that drops its native messages: a failure reaches the user as one line."""
+
+    def info(self, msg):
+        pass
+
+    warning = info
+
+
+def _quiet_lightgbm():
+    import lightgbm
+
+    lightgbm.register_logger(_Discard())
+
+
 def _run(args, data, target, families):
     log = (lambda m: None) if args.quiet else (lambda m: print(f"[lossfam rank] {m}", file=sys.stderr, flush=True))
     for note in data["notes"]:
@@ -494,6 +509,8 @@ def _run(args, data, target, families):
     y = data["y"]
     log(f"{y.size} rows, target {target!r}, features: {', '.join(data['features'])}; "
         f"engine {args.engine}, {args.folds} folds")
+    if args.engine == "lightgbm":
+        _quiet_lightgbm()
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)  # a failed family is reported in its row

@@ -1,143 +1,86 @@
 r"""LightGBM adapter: a lossfam family as LightGBM objective, metric and trained model.
 
-Three entry points, from thin to complete:
-
-``objective(family)``
+``objective(family, step_limit="auto")``
     One callable usable as ``params["objective"]`` in ``lightgbm.train``
     (called as ``f(preds, train_data)``) and as ``objective=`` of
-    ``LGBMRegressor`` / ``DaskLGBMRegressor`` (called as
-    ``f(y_true, y_pred, weight, group)``).  It returns the family's gradient
-    and Hessian in the raw score, times the row weights, expressed in the
-    family's dispersion units (below), with the log-link step guard.
+    ``LGBMRegressor`` / ``DaskLGBMRegressor`` (``f(y_true, y_pred, weight,
+    group)``): the family's gradient and Hessian in the raw score, in its
+    dispersion units, guarded, weighted and checked (``lossfam._boost.gradients``).
+    On its first call it warns when every raw score is one constant far from
+    the family's baseline (no ``init_score``): pass the baseline there.
 ``metric(family, kind="nll")``
-    The weighted mean nll (or unit deviance) as a LightGBM metric for both
-    call styles, reported as ``"<family>_nll"`` / ``"<family>_deviance"``;
-    lower is better, so it drives early stopping.
-``train(family, params, data, ...)``
-    Fits the baseline, sets the starting scores (baseline + offset) on the
-    training and validation sets, trains, fits the nuisance parameters on the
-    training data and returns a :class:`TrainedModel` (``predict``,
-    ``predict_raw``, ``distribution``, ``save``); :func:`load` restores it.
+    The weighted mean nll (or unit deviance) for ``feval=`` in
+    ``lightgbm.train`` and ``eval_metric=`` in the scikit-learn estimators,
+    named ``"<family>_nll"`` / ``"<family>_deviance"``; lower is better.
+``train(family, params, data, num_boost_round=100, ...)``
+    Plans the start (baseline given offset and weights, starting scores,
+    nuisance pre-fit), trains (on the family's native twin where LightGBM's
+    built-in objective is exactly the family's loss, else on the Python
+    objective, refitting leaves where the family's leaf rule asks), fits the
+    nuisance parameters at the final raw scores and returns a
+    :class:`lossfam.BoostedFit`; ``load`` (= ``lossfam.load``) restores it.
 
 lightgbm is imported on first use; ``import lossfam`` never imports it.
 
-Dispersion units
-----------------
-The objective multiplies gradient and Hessian by one constant per family: the
-squared ``scale`` when the family has one (gaussian, laplace,
-asymmetric_laplace, huber), ``1 / shape`` when it has a ``shape`` (gamma), 1
-otherwise.  A Newton step ``-sum g / sum h`` does not change, but LightGBM's
-absolute thresholds (``min_sum_hessian_in_leaf``, ``lambda_l2``,
-``min_gain_to_split``) then mean what they mean for the built-in objectives:
-gaussian gives exactly the built-in ``regression`` gradients ``raw - y`` and
-Hessian 1 whatever the scale, gamma exactly the built-in ``gamma`` ones.
+Native twins (``native=True``, the default).  Families declare the built-in
+objective whose gradients, Hessian and leaf rule equal theirs (gaussian
+``regression``, laplace ``regression_l1``, asymmetric_laplace ``quantile`` at
+``alpha`` = tau, bernoulli ``binary``, poisson ``poisson`` with its Hessian
+damping e^0.7 = lossfam's default guard, gamma ``gamma``).  LightGBM then
+computes them in C++ (and renews median/quantile leaves there); lossfam's
+``init_score`` (baseline + offset) replaces LightGBM's boost-from-average, so
+the baseline, metric, nuisance fit and file are lossfam's.  Under a built-in
+objective LightGBM hands a Python metric the transformed prediction (a
+probability, a mean): the metric maps it back through the link
+(``lossfam._boost.scoring.raw_from_output``).  ``native=False`` forces the
+Python objective.  huber has no twin: LightGBM's ``huber`` has the same loss
+at ``alpha = delta * scale`` but a unit Hessian, so its trees differ.
 
-Step guard for log links (``max_row_step``)
--------------------------------------------
-Under a log link the Newton step of one row, ``-g / h``, is ``y / mu - 1``
-(poisson) or ``1 - mu / y`` (gamma): unbounded where the Hessian ``mu`` (or
-``y / mu``) is tiny, e.g. a count far above a near-zero mean.  A leaf of such
-rows jumps by hundreds of log units and the next rounds crawl back.  The
-guard raises each row's Hessian to ``|g| / max_row_step`` where it is
-smaller::
+Refit path (families with a ``leaf_value`` rule other than ``"newton"``, on
+the Python objective).  Each tree is grown on the rule's gradient (the pinball
+subgradient with a unit Hessian for median/quantile; the family's own for a
+line search), then its leaves are set from ``lossfam._boost.leaves`` via
+``Booster.set_leaf_output``.  LightGBM's score caches never see edited leaves,
+so ``train`` keeps the raw scores of the training and validation sets itself
+(each new tree's leaf indices, ``predict(pred_leaf=True)`` on the in-memory
+features); the objective and metrics read those.  This path needs the feature
+data in memory and refuses LightGBM's built-in metrics.  With
+``bagging_fraction`` < 1 and ``bagging_freq`` > 0 lossfam draws the bag itself
+(out-of-bag rows get zero gradient and Hessian) and refits leaves on in-bag
+rows only.
 
-    h_guarded = max(h, |g| / max_row_step)
-
-so no row asks for a raw-scale step larger than ``max_row_step`` and, since
-``|sum g| <= sum |g|``, no leaf moves by more than ``max_row_step`` (before
-the learning rate).  Where the step is already small the Hessian is exact.
-The gradient is untouched, so the fixed point of boosting (sum of gradients
-zero in each leaf) is unchanged; only the path is damped.  Default
-``max_row_step="auto"``: 0.5 for log-link families (one round moves a mean by
-at most a factor e^(0.5 * learning_rate)), off otherwise; pass a number to set
-it for any family, ``None`` to switch it off.  (LightGBM's built-in poisson
-instead multiplies every Hessian by e^0.7, which halves every step and still
-allows unbounded ones.)
-
-Families without a positive Hessian (laplace, asymmetric_laplace, huber)
--------------------------------------------------------------------------
-The core returns an MM/IRLS surrogate Hessian for them (see
-``lossfam.families.laplace``).  ``objective()`` uses that surrogate, in
-dispersion units, and ``train()`` by default fits the nuisance parameters at
-the baseline first (``prefit_params=True``) so the surrogate's floor is in the
-data's units.  For huber this is enough: the surrogate is exact inside the
-quadratic core and gives outlying rows the IRLS weight, and it reaches the
-built-in ``huber`` accuracy.  For the median and quantiles it is not: one
-IRLS step moves a leaf only a fraction of the way to the leaf's
-median/quantile, so at equal rounds the fit lags the built-in by a few
-percent.  ``train()`` therefore re-fits leaves (``leaf_refit=True``, laplace
-and asymmetric_laplace):
-
-1. the tree is grown on the (sub)gradient in scale units with a unit Hessian
-   (times the row weight), the recipe of the built-in ``regression_l1`` /
-   ``quantile``;
-2. each leaf value is replaced by ``learning_rate`` times the weighted
-   tau-quantile (tau = 0.5 for laplace) of the residuals ``y - raw`` of the
-   training rows in that leaf, via ``Booster.set_leaf_output``.  The weighted
-   quantile minimises the family's nll over the leaf's constant, so each
-   leaf takes the exact minimising step rather than one IRLS iteration.
-
-LightGBM's own training and validation score caches do not see edited leaves,
-so ``train()`` keeps its own raw scores for the training set and every
-validation set (updated from each new tree's leaf indices,
-``predict(pred_leaf=True)`` on the in-memory feature data).  Its objective
-and metrics read those scores; the refit of tree t happens at the start of
-round t + 1 (a before-iteration callback) or when the metric first asks.
-Leaf refit therefore needs the feature data in memory (not a file path) and
-refuses LightGBM's built-in metrics (they would see the unedited scores).
-Each refit uses all training rows (with bagging, the built-in uses the
-in-bag rows only).
-
-Built-in objective where it is exact
-------------------------------------
-In dispersion units the gaussian gradient and Hessian are exactly LightGBM's
-``regression`` ones (raw - y, 1).  For gaussian ``train``
-(``builtin_if_exact=True``, the default) therefore lets LightGBM compute them
-in C++, and the engine, knowing the Hessian is constant, also skips summing
-it.  The baseline is still the ``init_score`` (which also switches off
-LightGBM's own boost-from-average), so trees, predictions, metrics and saved
-files are those of the Python objective (tested to 1e-6).  Other families
-keep the Python objective: bernoulli's gradients equal ``binary``'s, but
-LightGBM hands a metric the probability instead of the raw score for built-in
-objectives, and logit(expit(raw)) loses the raw score where p rounds to 1;
-poisson and gamma differ through the step guard.  ``builtin_if_exact=False``
-forces the Python objective.
-
-Offsets
--------
-An offset is a known per-row term on the raw scale (e.g. log exposure of
-claim counts).  Pass ``offset=`` for the training Dataset and
-``valid_offsets=[...]`` (one entry per validation set, ``None`` for none) to
-``train``; the baseline is fitted given the training offset, each Dataset's
-``init_score`` is set to ``baseline + offset`` for the duration of training,
-and ``predict(X, offset=...)`` adds it back.  Datasets that already carry an
-``init_score`` are refused (pass it as an offset instead), so nothing is
-silently added twice.  With the bare ``objective()``, put ``baseline +
-offset`` in ``init_score`` yourself: the objective works on whatever raw
-score LightGBM hands it.
+Offsets.  ``offset=`` (training) and ``valid_offsets=[...]`` (one per
+validation set) are per-row raw-scale terms (log exposure); the baseline is
+fitted given the offset and each Dataset's ``init_score`` is baseline +
+offset during training.  When training has an offset, every validation set
+must have one too (``None`` is refused: its metric would be wrong); pass zeros
+for rows that truly have none.  Datasets that already carry an
+``init_score`` are refused.
 """
 from __future__ import annotations
 
 import hashlib
-import math
-import weakref
 
 import numpy as np
 
 from . import _checks
-from ._modelfile import read_model_file, write_model_file
-from ._scoring import check_metric_kind, per_row_loss
-from .families import AsymmetricLaplace, Gaussian, Laplace
-from .links import LOG
+from ._boost import facts
+from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
+from ._boost.gradients import warn_if_far_from_baseline
+from ._boost.leaves import RowBag, leaf_table
+from ._boost.model import BoostedFit
+from ._boost.model import load as _load
+from ._boost.plan import check_trained, fit_nuisance_or_keep, start_plan
+from ._boost.scoring import Scorer, raw_from_output
 from .registry import family as make_family
 
-__all__ = ["objective", "metric", "train", "load", "TrainedModel"]
+__all__ = ["objective", "metric", "train", "load", "BoostedFit"]
 
 _INSTALL = 'lossfam.lightgbm needs lightgbm: install it with pip install "lossfam[lightgbm]"'
 _ENGINE = "lightgbm"
-_DEFAULT_LOG_STEP = 0.5
 _LR_NAMES = ("learning_rate", "shrinkage_rate", "eta")
 _THREAD_NAMES = ("num_threads", "num_thread", "nthread", "nthreads", "n_jobs")
+_OBJECTIVE_NAMES = ("objective", "objective_type", "app", "application", "loss")
 
 
 def _lgb():
@@ -150,307 +93,156 @@ def _lgb():
 
 
 def _is_dataset(obj) -> bool:
-    lgb = _lgb()
-    return isinstance(obj, lgb.Dataset)
+    return isinstance(obj, _lgb().Dataset)
 
 
-def _dispersion_unit(fam) -> float:
-    """The constant that brings gradient and Hessian to dispersion units (see module doc)."""
-    p = fam.params
-    if "scale" in p:
-        return float(p["scale"]) ** 2
-    if "shape" in p:
-        return 1.0 / float(p["shape"])
-    return 1.0
-
-
-def _resolve_step(fam, max_row_step):
-    if max_row_step == "auto":
-        return _DEFAULT_LOG_STEP if fam.link_function is LOG else None
-    if max_row_step is None:
-        return None
-    v = float(max_row_step)
-    if not (v > 0 and math.isfinite(v)):
-        raise ValueError(f"max_row_step must be a positive finite number, 'auto' or None; got {max_row_step!r}")
-    return v
-
-
-def _native_params(fam, step):
-    """LightGBM built-in objective settings that compute exactly the family's gradient and Hessian
-    (in dispersion units), or None.  See "Built-in objective where it is exact" in the module doc."""
-    if type(fam) is Gaussian and step is None:  # exact class: a user subclass may change the loss
-        return {"objective": "regression"}
-    return None
-
-
-def _refit_level(fam):
-    """The quantile a leaf refit targets, or None when the family takes no refit."""
-    if isinstance(fam, AsymmetricLaplace):
-        return fam.quantile
-    if isinstance(fam, Laplace):
-        return 0.5
-    return None
-
-
-class _TargetCache:
-    """Validated float64 copies of a label (and weight) array, checked once.
-
-    The engine hands the objective the same label array every round; this
-    keeps a weak reference to it and re-validates only when it changes.
-    Nothing here is needed for correctness: a deep or pickled copy starts empty.
-    """
-
-    def __init__(self):
-        self._ref = None
-        self._wref = None
-        self._y = None
-        self._w = None
-        self._buf = None
-
-    def get(self, fam, y, w, *, for_nll):
-        same = self._ref is not None and self._ref() is y
-        if same and w is not None and (self._wref is None or self._wref() is not w):
-            same = False
-        if same and w is None and self._w is not None:
-            same = False
-        if not same:
-            y64 = fam.check_target(y, for_nll=for_nll)
-            w64 = None if w is None else _checks.check_weight(w, y64, fam.name)
-            try:
-                self._ref = weakref.ref(y)
-                self._wref = None if w is None else weakref.ref(w)
-            except TypeError:  # lists and the like cannot be weakly referenced: no caching
-                return y64, w64
-            self._y, self._w = y64, w64
-        return self._y, self._w
-
-    def scratch(self, n):
-        """A float64 work buffer of length n, reused across rounds."""
-        buf = getattr(self, "_buf", None)
-        if buf is None or buf.size != n:
-            buf = self._buf = np.empty(n)
-        return buf
-
-    def __deepcopy__(self, memo):
-        return _TargetCache()
-
-    def __getstate__(self):
-        return {}
-
-    def __setstate__(self, state):
-        self.__init__()
-
-
-def _as_array_or_none(x):
-    if x is None:
-        return None
-    return np.asarray(x, dtype=np.float64)
+def _call_style(a, b, c):
+    """(raw, y, w, keys) for both call styles: lgb.train's (preds, Dataset), sklearn's (y, preds, w)."""
+    if _is_dataset(b):
+        return a, None, None, b
+    return b, a, c, None
 
 
 class _Objective:
     """The family's gradient and Hessian as a LightGBM custom objective (see ``objective``)."""
 
-    def __init__(self, fam, max_row_step):
+    def __init__(self, fam, guard, check_start=True):
         self.family = fam
-        self.max_row_step = max_row_step
-        self.unit = _dispersion_unit(fam)
-        self._cache = _TargetCache()
-
-    def gradients(self, y, raw, w):
-        """(g, h) for validated float64 ``y`` and raw scores, weighted, in dispersion units, guarded."""
-        with np.errstate(over="ignore"):
-            g, h = self.family._grad_hess(y, raw)
-        if self.unit != 1.0:
-            g *= self.unit
-            h *= self.unit
-        if self.max_row_step is not None:
-            lim = self._cache.scratch(g.size)
-            np.abs(g, out=lim)
-            lim *= 1.0 / self.max_row_step
-            np.maximum(h, lim, out=h)
-        if w is not None:
-            g *= w
-            h *= w
-        return g, h
+        self.grads = Gradients(fam, guard)
+        self.check_start = check_start
+        self._cache = TargetCache()
 
     def __call__(self, a, b, c=None, d=None):
-        if _is_dataset(b):  # lightgbm.train: f(preds, train_data)
-            raw, data = a, b
-            y, w = data.get_label(), data.get_weight()
-        else:  # scikit-learn API: f(y_true, y_pred, weight, group)
-            y, raw, w = a, b, c
-        y64, w64 = self._cache.get(self.family, y, w, for_nll=False)
+        raw, y, w, data = _call_style(a, b, c)
+        if data is not None:
+            y64, w64 = self._cache.get(self.family, (data,), lambda: (data.get_label(), data.get_weight()),
+                                       for_nll=False)
+        else:
+            y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=False)
         raw = np.asarray(raw, dtype=np.float64)
         if raw.shape != y64.shape:
             raise ValueError(
                 f"{self.family.name} objective: got {raw.size} raw scores for {y64.size} targets "
                 "(multiclass or multi-output models are not supported)"
             )
-        return self.gradients(y64, raw, w64)
+        if self.check_start:
+            self.check_start = False
+            warn_if_far_from_baseline(self.family, y64, w64, raw, _ENGINE)
+        return self.grads(y64, raw, w64)
 
     def __repr__(self):
-        return f"lossfam.lightgbm.objective({self.family!r}, max_row_step={self.max_row_step!r})"
+        return f"lossfam.lightgbm.objective({self.family!r}, guard={self.grads.guard!r})"
 
 
-def objective(family, *, max_row_step="auto"):
+def objective(family, *, step_limit=STEP_LIMIT_DEFAULT):
     """The family's negative log-likelihood as a LightGBM custom objective.
 
     Parameters
     ----------
     family : str or Family
-        A family name (``lossfam.available()``) or object.
-    max_row_step : "auto", float or None
-        The log-link step guard (module docstring): each row's Hessian is
-        raised to ``|g| / max_row_step``.  "auto": 0.5 for log-link families,
-        off otherwise.
+    step_limit : "auto", None or a positive number
+        The step guard (``lossfam._boost.gradients``): "auto" is the family's
+        declared Hessian damping (poisson: e^0.7, as the built-in), else off;
+        a number caps each row's Newton step on the raw scale.
 
     Returns
     -------
     callable
-        ``f(preds, train_data)`` for ``lightgbm.train`` and
-        ``f(y_true, y_pred, weight, group)`` for the scikit-learn and Dask
-        estimators; returns ``(grad, hess)`` (weighted).  It holds no state
-        that matters across calls, so LightGBM's deep copy of ``params`` and
-        Dask's pickling are harmless.  LightGBM starts from raw score 0 unless
-        the Dataset has an ``init_score``: pass ``family.baseline(y, w)`` there
-        (``train`` does this for you).
+        ``f(preds, train_data)`` and ``f(y_true, y_pred, weight, group)``
+        returning the weighted ``(grad, hess)``.  LightGBM starts from raw
+        score 0 unless the Dataset has an ``init_score``: pass
+        ``family.baseline(y, w)`` there (``train`` does).
     """
+    _lgb()
     fam = make_family(family)
-    return _Objective(fam, _resolve_step(fam, max_row_step))
+    return _Objective(fam, resolve_guard(fam, step_limit))
 
 
 class _Metric:
     """Weighted mean nll or unit deviance as a LightGBM metric (see ``metric``)."""
 
-    def __init__(self, fam, kind):
+    def __init__(self, fam, kind, from_output=False):
         self.family = fam
-        self.kind = check_metric_kind(kind)
-        self.name = f"{fam.name}_{kind}"
-        self._cache = _TargetCache()
-
-    def value(self, y, raw, w):
-        """Weighted mean of the per-row nll (or deviance) for validated ``y``."""
-        per_row = per_row_loss(self.family, self.kind, y, raw)
-        if w is None:
-            return float(np.mean(per_row))
-        return float(np.dot(w, per_row) / np.sum(w))
+        self.scorer = Scorer(fam, kind)
+        self.name = self.scorer.name
+        self.from_output = from_output  # preds are the built-in objective's transformed output
+        self._cache = TargetCache()
 
     def __call__(self, a, b, c=None):
-        if _is_dataset(b):  # lightgbm.train: feval(preds, eval_data)
-            raw, data = a, b
-            y, w = data.get_label(), data.get_weight()
-        else:  # scikit-learn API: eval_metric(y_true, y_pred, weight)
-            y, raw, w = a, b, c
-        y64, w64 = self._cache.get(self.family, y, w, for_nll=self.kind == "nll")
-        raw = np.asarray(raw, dtype=np.float64)
+        raw, y, w, data = _call_style(a, b, c)
+        nll = self.scorer.kind == "nll"
+        if data is not None:
+            y64, w64 = self._cache.get(self.family, (data,), lambda: (data.get_label(), data.get_weight()),
+                                       for_nll=nll)
+        else:
+            y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=nll)
+        raw = raw_from_output(self.family, raw) if self.from_output else np.asarray(raw, dtype=np.float64)
         if raw.shape != y64.shape:
             raise ValueError(f"{self.name}: got {raw.size} raw scores for {y64.size} targets")
-        return self.name, self.value(y64, raw, w64), False
+        return self.name, self.scorer.value(y64, raw, w64), False
 
     def __repr__(self):
-        return f"lossfam.lightgbm.metric({self.family!r}, kind={self.kind!r})"
+        return f"lossfam.lightgbm.metric({self.family!r}, kind={self.scorer.kind!r})"
 
 
 def metric(family, kind="nll"):
     """The family's weighted mean nll (``kind="nll"``) or unit deviance as a LightGBM metric.
 
-    Works as ``feval=`` in ``lightgbm.train`` (``f(preds, eval_data)``) and as
+    ``feval=`` in ``lightgbm.train`` (``f(preds, eval_data)``) and
     ``eval_metric=`` in the scikit-learn estimators (``f(y_true, y_pred,
-    weight)``); returns ``(name, value, False)`` with name
-    ``"<family>_nll"`` or ``"<family>_deviance"``.  ``preds`` must be raw
-    scores including the starting score, as LightGBM supplies under a custom
+    weight)``); returns ``(name, value, False)``.  ``preds`` must be raw scores
+    including the starting score, as LightGBM supplies under a custom
     objective.  The nll uses the family's nuisance parameters as given.
     """
+    _lgb()
     return _Metric(make_family(family), kind)
 
 
-# --------------------------------------------------------------------------- model
-class TrainedModel:
-    """A LightGBM booster together with its family, baseline and fitted nuisance parameters.
+# --------------------------------------------------------------------------- BoostedFit plumbing
+def _rounds(booster):
+    return booster.current_iteration()
 
-    Attributes
-    ----------
-    family : Family
-        The family the booster was trained with.
-    fitted_family : Family
-        ``family`` with its nuisance parameters fitted on the training data
-        (used by :meth:`distribution`).
-    baseline : float
-        The starting raw score, added to the booster's raw output.
-    booster : lightgbm.Booster
-    """
 
-    def __init__(self, booster, family, baseline, fitted_family=None):
-        self.booster = booster
-        self.family = family
-        self.baseline = float(baseline)
-        self.fitted_family = family if fitted_family is None else fitted_family
-
-    def predict_raw(self, X, offset=None):
-        """Raw scores: booster output + baseline (+ offset, one per row)."""
-        raw = np.asarray(self.booster.predict(X, raw_score=True), dtype=np.float64)
-        raw += self.baseline
-        if offset is not None:
-            off = _checks.check_raw(offset, raw, f"{self.family.name} offset")
-            raw += off
-        return raw
-
-    def predict(self, X, offset=None):
-        """Predictions on the response scale: the inverse link of :meth:`predict_raw`."""
-        return self.family.link_function.inverse(self.predict_raw(X, offset))
-
-    def distribution(self, X, offset=None):
-        """The predictive law per row, nuisance parameters fitted on the training data."""
-        return self.fitted_family.distribution(self.predict_raw(X, offset))
-
-    def save(self, path):
-        """Write the model (LightGBM model text + family + baseline) to ``path`` (JSON, no pickle)."""
-        text = self.booster.model_to_string()
-        extra = {
-            "fitted_params": self.fitted_family.params,
-            "num_trees": int(self.booster.num_trees()),
-            "model_sha256": _digest(text),
-        }
-        write_model_file(path, engine=_ENGINE, family=self.family, baseline=self.baseline, model=text, extra=extra)
-
-    def __repr__(self):
-        return (f"TrainedModel(family={self.family!r}, baseline={self.baseline!r}, "
-                f"trees={self.booster.num_trees()})")
+def _margin(fit, X, offset):
+    if _is_dataset(X):
+        raise TypeError("LightGBM predicts from arrays, DataFrames or sparse matrices, not from a Dataset "
+                        "(pass the Dataset's data)")
+    raw = np.asarray(fit.booster.predict(X, raw_score=True), dtype=np.float64).reshape(-1)
+    raw += fit.baseline
+    if offset is not None:
+        raw += _checks.check_raw(np.asarray(offset, dtype=np.float64).reshape(-1), raw, f"{fit.family.name} offset")
+    return raw
 
 
 def _digest(text: str) -> str:
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
 
-def load(path) -> TrainedModel:
-    """Restore a model written by :meth:`TrainedModel.save`.
+def _model_text(booster):
+    text = booster.model_to_string()
+    return text, {"num_trees": int(booster.num_trees()), "model_sha256": _digest(text)}
 
-    Raises ValueError for files that are truncated, corrupted, written by
-    another engine's adapter, or not lossfam model files at all.
-    """
+
+def _booster_from_text(text, extra, path, fam, baseline, info):
     lgb = _lgb()
-    doc = read_model_file(path, engine=_ENGINE)
-    fam = doc["family"]
-    baseline = doc["baseline"]
-    if not isinstance(baseline, (int, float)) or not math.isfinite(baseline):
-        raise ValueError(f"{path}: the baseline {baseline!r} is not a finite number")
-    extra = doc["extra"]
-    try:
-        fitted = fam.with_params(**extra.get("fitted_params", {}))
-    except (TypeError, ValueError) as exc:
-        raise ValueError(f"{path}: the fitted parameters are malformed ({exc})") from None
     # LightGBM's text parser can abort the whole process on damaged text, so check the digest first
-    if extra.get("model_sha256") != _digest(doc["model"]):
+    if extra.get("model_sha256") != _digest(text):
         raise ValueError(f"{path}: the LightGBM model text does not match its checksum; the file is corrupted or was edited")
     try:
-        booster = lgb.Booster(model_str=doc["model"])
+        booster = lgb.Booster(model_str=text)
     except lgb.basic.LightGBMError as exc:
         raise ValueError(f"{path}: the LightGBM model text is corrupted ({exc})") from None
     want = extra.get("num_trees")
     if want is not None and booster.num_trees() != want:
         raise ValueError(f"{path}: the LightGBM model has {booster.num_trees()} trees, the file says {want}; "
                          "was it truncated or edited?")
-    return TrainedModel(booster, fam, baseline, fitted)
+    return booster
+
+
+def load(path, key=None) -> BoostedFit:
+    """Restore a LightGBM model written by :meth:`BoostedFit.save` (``lossfam.load`` reads both engines)."""
+    _lgb()
+    return _load(path, key, engine=_ENGINE)
 
 
 # --------------------------------------------------------------------------- train
@@ -470,8 +262,9 @@ def _label_weight(data, fam, what):
         raise ValueError(f"{what}: the Dataset has no label; build it with lightgbm.Dataset(X, label=y)")
     y = fam.check_target(np.asarray(y, dtype=np.float64).ravel(), for_nll=False)
     _checks.check_nonempty(y, fam.name)
-    w = _as_array_or_none(_field(data, "weight"))
-    w = None if w is None else _checks.check_weight(w.ravel(), y, fam.name, need_positive_sum=True)
+    w = _field(data, "weight")
+    w = None if w is None else _checks.check_weight(np.asarray(w, dtype=np.float64).ravel(), y, fam.name,
+                                                   need_positive_sum=True)
     return y, w
 
 
@@ -490,58 +283,44 @@ def _clear_start(data):
     data.init_score = None
 
 
-def _learning_rate(params) -> float:
-    for k in _LR_NAMES:
+def _param(params, names, default):
+    for k in names:
         if k in params:
-            return float(params[k])
-    return 0.1
+            return params[k]
+    return default
 
 
-def _grouped_quantile(leaf, r, w, q, n_leaves):
-    """Per leaf, the smallest residual whose cumulative weight reaches q * leaf total.
-
-    Returns (values, has_rows); the rule is numpy's "inverted_cdf", the one
-    lossfam.families.laplace.weighted_quantile uses.
-    """
-    order = np.lexsort((r, leaf))
-    ls = leaf[order]
-    rs = r[order]
-    cw = np.cumsum(w[order]) if w is not None else np.arange(1, r.size + 1, dtype=np.float64)
-    ids = np.arange(n_leaves)
-    starts = np.searchsorted(ls, ids, side="left")
-    ends = np.searchsorted(ls, ids, side="right")
-    has = ends > starts
-    before = np.where(starts > 0, cw[np.maximum(starts - 1, 0)], 0.0)
-    total = np.where(has, cw[np.maximum(ends - 1, 0)] - before, 0.0)
-    has &= total > 0
-    target = before + q * total
-    idx = np.searchsorted(cw, target, side="left")
-    idx = np.clip(idx, starts, np.maximum(ends - 1, starts))
-    idx = np.minimum(idx, r.size - 1)
-    return rs[idx], has
+def _feature_data(data, what):
+    X = data.data
+    if X is None or isinstance(X, (str, bytes)) or hasattr(X, "__fspath__"):
+        raise ValueError(
+            f"{what}: this needs the feature data in memory (a Dataset built from an array or DataFrame, not a "
+            "file, and not yet freed)"
+        )
+    return X
 
 
-class _LeafRefit:
-    """Leaf refit to the weighted residual quantile, with lossfam's own score tracking.
+class _Refit:
+    """The refit path's bookkeeping: its own raw scores per tracked set, leaf tables per tree.
 
-    ``raw[k]`` are the current raw scores of tracked set k (0 = training set);
+    ``raw[k]`` are the current raw scores of tracked set k (0 = training set),
     ``X[k]`` its in-memory features.  ``catch_up(booster)`` refits every tree
     not refitted yet and adds its (edited) output to every tracked score.
     """
 
-    def __init__(self, fam, q, lr, y, w, X_train, start_train):
+    def __init__(self, fam, guard, lr, y, w, X_train, start, bag, predict_kw):
         self.family = fam
-        self.q = q
+        self.rule = facts.leaf_rule(fam)
+        self.level = facts.leaf_level(fam)
+        self.grads = Gradients(fam, guard)
         self.lr = lr
-        self.y = y
-        self.w = w
-        self.X = [X_train]
-        self.raw = [start_train.copy()]
-        self.datasets = []
+        self.y, self.w = y, w
+        self.X, self.raw, self.datasets = [X_train], [start.copy()], []
+        self.bag = bag
+        self.tree_w = []
         self.booster = None
         self.done = 0
-        self.scale = float(fam.params.get("scale", 1.0))
-        self.predict_kw = {}  # e.g. num_threads, so leaf lookups use the training's thread count
+        self.predict_kw = predict_kw
 
     def track(self, data, X, start):
         self.datasets.append(data)
@@ -554,6 +333,14 @@ class _LeafRefit:
                 return self.raw[k + 1]
         return None
 
+    def grow(self, preds, train_data):
+        """The objective LightGBM calls: the rule's gradients at lossfam's own training scores."""
+        w = self.w if self.bag is None else self.bag.weights(len(self.tree_w), self.w)
+        self.tree_w.append(w)
+        if self.level is not None:
+            return growth_gradients(self.level, self.y, self.raw[0], w)
+        return self.grads(self.y, self.raw[0], w)
+
     def catch_up(self, booster=None):
         if booster is not None:
             self.booster = booster
@@ -563,126 +350,100 @@ class _LeafRefit:
         while self.done < b.num_trees():
             t = self.done
             leaves = [np.asarray(b.predict(X, pred_leaf=True, start_iteration=t, num_iteration=1,
-                                           **self.predict_kw)).astype(np.int64).ravel()
-                      for X in self.X]
-            n_leaves = int(leaves[0].max()) + 1
-            for lv in leaves[1:]:
-                if lv.size:
-                    n_leaves = max(n_leaves, int(lv.max()) + 1)
-            resid = self.y - self.raw[0]
-            q, has = _grouped_quantile(leaves[0], resid, self.w, self.q, n_leaves)
-            values = np.array([b.get_leaf_output(t, j) for j in range(n_leaves)])
-            values[has] = self.lr * q[has]
+                                           **self.predict_kw)).astype(np.intp).reshape(-1) for X in self.X]
+            n_leaves = 1 + max(int(lv.max()) for lv in leaves if lv.size)
+            values, has = leaf_table(self.rule, self.level, self.family, leaves[0], self.y, self.raw[0],
+                                     self.tree_w[t], n_leaves, self.lr)
+            table = np.array([b.get_leaf_output(t, j) for j in range(n_leaves)])
+            table[has] = values[has]
             for j in np.flatnonzero(has):
-                b.set_leaf_output(t, int(j), float(values[j]))
+                b.set_leaf_output(t, int(j), float(table[j]))
             for k, lv in enumerate(leaves):
-                self.raw[k] += values[lv]
+                self.raw[k] += table[lv]
             self.done += 1
 
-    def grow_gradients(self):
-        """Subgradient in scale units, unit Hessian (times weights): the built-in growth recipe."""
-        with np.errstate(over="ignore"):
-            g, _ = self.family._grad_hess(self.y, self.raw[0])
-        g *= self.scale
-        if self.w is not None:
-            g *= self.w
-            h = self.w.copy()
-        else:
-            h = np.ones_like(g)
-        return g, h
+
+def _constant_booster(lgb, params, data):
+    """A booster whose raw output is 0 everywhere (so the model is its baseline), on data's features."""
+    plain = {k: v for k, v in params.items() if k not in _OBJECTIVE_NAMES and not callable(v)}
+    plain.update(objective="regression", metric="None", verbosity=-1, boost_from_average=False)
+    zeros = np.zeros((data.num_data(), data.num_feature()))
+    return lgb.train(plain, lgb.Dataset(zeros, np.zeros(data.num_data()), feature_name=data.get_feature_name()),
+                     num_boost_round=1)
 
 
-def _feature_data(data, what):
-    X = data.data
-    if X is None or isinstance(X, (str, bytes)) or hasattr(X, "__fspath__"):
-        raise ValueError(
-            f"{what}: leaf refit needs the feature data in memory (Dataset built from an array or "
-            "DataFrame, not a file, and not yet freed); pass leaf_refit=False to use the surrogate Hessian"
-        )
-    return X
-
-
-def train(family, params, data, num_boost_round=100, *, offset=None, valid_offsets=None,
-          max_row_step="auto", prefit_params=True, leaf_refit=True, builtin_if_exact=True,
-          metric_kind="nll", **engine_kwargs) -> TrainedModel:
-    """Train a LightGBM model with the family's nll as the loss.
+def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_names=None, offset=None,
+          valid_offsets=None, step_limit=STEP_LIMIT_DEFAULT, native=True, nuisance_set=None, metric_kind="nll",
+          callbacks=None, prefit=True, **engine_kwargs) -> BoostedFit:
+    """Train a LightGBM model with the family's nll as the loss; returns a :class:`lossfam.BoostedFit`.
 
     Parameters
     ----------
     family : str or Family
     params : dict
-        LightGBM parameters; must not contain "objective" (the family is the
-        objective).  "metric" defaults to "None" (lossfam's metric is added).
+        LightGBM parameters; must not set the objective.  "metric" defaults
+        to "None" (lossfam's metric is evaluated on ``valid_sets``).
     data : lightgbm.Dataset
         Training data with its label (and weights); no init_score.
     num_boost_round : int
+    valid_sets, valid_names : as in ``lightgbm.train``
     offset : array of shape (n,), optional
         Per-row raw-scale offset of the training rows (e.g. log exposure).
     valid_offsets : list, optional
-        One offset array (or None) per entry of ``valid_sets``.
-    max_row_step : "auto", float or None
-        The log-link step guard (module docstring).
-    prefit_params : bool
-        Fit the nuisance parameters at the baseline before training, so the
-        objective works in the data's units (matters for huber's threshold
-        and the surrogate's floor).  With False the family's parameters are
-        used as given.
-    leaf_refit : bool
-        For laplace and asymmetric_laplace: refit each leaf to the weighted
-        residual median / quantile (module docstring).  Ignored otherwise.
-    builtin_if_exact : bool
-        Let LightGBM's built-in ``regression`` objective compute the
-        gaussian gradients (exactly the family's, in dispersion units): same
-        trees, predictions, metrics, baseline and saved file, only faster.
-        False: always the Python objective.
+        One offset array per entry of ``valid_sets`` (required when ``offset`` is given).
+    step_limit : "auto", None or a positive number
+        The step guard (see :func:`objective`).
+    native : bool
+        Train on the family's native twin when LightGBM's built-in objective
+        is exactly its loss under this guard (module docstring); False forces
+        the Python objective.  Same trees, baseline, metric and file.
+    nuisance_set : int, optional
+        Index into ``valid_sets`` whose rows fit the final nuisance parameters
+        instead of the training rows.
     metric_kind : "nll" or "deviance"
-        The lossfam metric evaluated on ``valid_sets``.
+    callbacks : list, optional
+        LightGBM callbacks (``lightgbm.early_stopping(k)`` rolls the model
+        back to its best round).
+    prefit : bool
+        Fit the nuisance parameters at the baseline first when the family's
+        location depends on them (``Family.location_needs_nuisance``); False
+        trains with the parameters as given.
     **engine_kwargs
-        Passed to ``lightgbm.train``: ``valid_sets``, ``valid_names``,
-        ``feval`` (evaluated after lossfam's metric), ``callbacks``,
-        ``keep_training_booster``.
-
-    Returns
-    -------
-    TrainedModel
-        With early stopping, the booster is cut back to its best iteration.
+        Passed to ``lightgbm.train`` (``feval``, evaluated after lossfam's
+        metric; ``keep_training_booster``).
     """
     lgb = _lgb()
     fam = make_family(family)
     if not isinstance(data, lgb.Dataset):
         raise ValueError(f"data must be a lightgbm.Dataset, got {type(data).__name__}")
     params = dict(params or {})
-    if "objective" in params or "objective_type" in params or "app" in params or "application" in params:
+    if any(k in params for k in _OBJECTIVE_NAMES):
         raise ValueError("params must not set the objective: the family is the objective")
     if "init_model" in engine_kwargs:
         raise ValueError("init_model is not supported by lossfam.lightgbm.train (the baseline would be added twice)")
-    step = _resolve_step(fam, max_row_step)
-    valid_sets = engine_kwargs.pop("valid_sets", None)
     if isinstance(valid_sets, lgb.Dataset):
         valid_sets = [valid_sets]
     valid_sets = list(valid_sets or [])
     user_feval = engine_kwargs.pop("feval", None)
     user_feval = [] if user_feval is None else (list(user_feval) if isinstance(user_feval, (list, tuple)) else [user_feval])
-    callbacks = list(engine_kwargs.pop("callbacks", None) or [])
+    callbacks = list(callbacks or [])
     keep_training = bool(engine_kwargs.pop("keep_training_booster", False))
-
-    y, w = _label_weight(data, fam, "data")
-    off = None if offset is None else _checks.check_raw(offset, y, f"{fam.name} offset")
     if valid_offsets is not None:
         valid_offsets = list(valid_offsets)
         if len(valid_offsets) != len(valid_sets):
             raise ValueError(f"valid_offsets has {len(valid_offsets)} entries for {len(valid_sets)} valid_sets")
     else:
         valid_offsets = [None] * len(valid_sets)
+    if nuisance_set is not None and not (0 <= int(nuisance_set) < len(valid_sets)):
+        raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(valid_sets)} valid_sets")
 
-    baseline = fam.baseline(y, w, offset=off)
-    start = np.full(y.shape, baseline) if off is None else baseline + off
-    if prefit_params and fam.params:
-        fam = fam.fit_nuisance(y, start, w)
+    y, w = _label_weight(data, fam, "data")
+    plan = start_plan(fam, y, w, offset, prefit=prefit)
+    fam = plan.family
+    guard = resolve_guard(fam, step_limit)
 
-    # starting scores: baseline + offset on every set, restored afterwards
     _check_no_user_init_score(data, "data")
-    starts = {}
+    starts, vdata = {}, {}
     for k, (vs, vo) in enumerate(zip(valid_sets, valid_offsets)):
         if vs is data:
             if vo is not None:
@@ -691,32 +452,42 @@ def train(family, params, data, num_boost_round=100, *, offset=None, valid_offse
         if not isinstance(vs, lgb.Dataset):
             raise ValueError(f"valid_sets[{k}] must be a lightgbm.Dataset, got {type(vs).__name__}")
         _check_no_user_init_score(vs, f"valid_sets[{k}]")
-        vy = _field(vs, "label")
-        if vy is None:
-            raise ValueError(f"valid_sets[{k}]: the Dataset has no label")
-        nv = len(vy)
-        vstart = np.full(nv, baseline)
-        if vo is not None:
-            vstart = vstart + _checks.check_raw(np.asarray(vo, dtype=np.float64).ravel(), vstart, f"valid_offsets[{k}]")
-        starts[k] = vstart
+        if plan.offset is not None and vo is None:
+            raise ValueError(
+                f"training used an offset but valid_sets[{k}] has none: its metric would score the rows without "
+                "their offset (and mislead early stopping); pass valid_offsets (zeros where there truly is none)"
+            )
+        vy, vw = _label_weight(vs, fam, f"valid_sets[{k}]")
+        vdata[k] = (vy, vw)
+        starts[k] = plan.start_for(vy.size, vo, f"valid_offsets[{k}]")
 
-    q = _refit_level(fam) if leaf_refit else None
+    rule = facts.leaf_rule(fam)
+    twin = facts.twin_params(fam, _ENGINE) if native and guard == resolve_guard(fam, "auto") else None
+    if twin is not None:
+        clash = sorted(k for k in twin if k != "objective" and k in params and params[k] != twin[k])
+        if clash:
+            raise ValueError(f"params {clash} would change LightGBM's built-in objective away from the {fam.name} "
+                             "loss; drop them or pass native=False")
     refit = None
-    if q is not None:
-        if "metric" in params and str(params["metric"]).lower() not in ("none", "na", "null", "custom", ""):
-            raise ValueError("leaf refit keeps its own scores; LightGBM's built-in metrics would see the unedited "
-                             "ones: drop params['metric'] or pass leaf_refit=False")
-        refit = _LeafRefit(fam, q, _learning_rate(params), y, w, _feature_data(data, "data"), start)
-        for k in _THREAD_NAMES:
-            if k in params:
-                refit.predict_kw = {"num_threads": int(params[k])}
-                break
+    if twin is None and rule != "newton":
+        if str(params.get("metric", "None")).lower() not in ("none", "na", "null", "custom", ""):
+            raise ValueError(f"{fam.name} refits leaves and keeps its own scores; LightGBM's built-in metrics "
+                             "would see the unedited ones: drop params['metric']")
+        bag = None
+        fraction = float(_param(params, ("bagging_fraction", "sub_row", "subsample", "bagging"), 1.0))
+        freq = int(_param(params, ("bagging_freq", "subsample_freq"), 0))
+        if fraction < 1.0 and freq > 0:
+            bag = RowBag(y.size, fraction, freq, int(_param(params, ("bagging_seed", "seed"), 3)))
+            for k in ("bagging_fraction", "sub_row", "subsample", "bagging", "bagging_freq", "subsample_freq"):
+                params.pop(k, None)
+        threads = _param(params, _THREAD_NAMES, None)
+        refit = _Refit(fam, guard, float(_param(params, _LR_NAMES, 0.1)), y, w, _feature_data(data, "data"),
+                       plan.start, bag, {} if threads is None else {"num_threads": int(threads)})
         for k, vs in enumerate(valid_sets):
             if k in starts:
                 refit.track(vs, _feature_data(vs, f"valid_sets[{k}]"), starts[k])
-            # the training set itself is tracked as set 0
 
-    own_metric = _Metric(fam, metric_kind)
+    own_metric = _Metric(fam, metric_kind, from_output=twin is not None)
     fevals = [own_metric] + user_feval
     if refit is not None:
         def wrap(fn):
@@ -727,62 +498,85 @@ def train(family, params, data, num_boost_round=100, *, offset=None, valid_offse
             return feval
         fevals = [wrap(fn) for fn in fevals]
 
-        def fobj(preds, train_data):
-            return refit.grow_gradients()
-
         def before_round(env):
             refit.catch_up(env.model)
         before_round.before_iteration = True
         before_round.order = -1000
         callbacks.append(before_round)
-        params["objective"] = fobj
+        def grow(preds, train_data):  # a plain function: lightgbm deep-copies params, and would copy a bound method's object
+            return refit.grow(preds, train_data)
+        params["objective"] = grow
+    elif twin is not None:
+        params.update(twin)
     else:
-        native = _native_params(fam, step) if builtin_if_exact else None
-        if native is not None:
-            clash = sorted(k for k in native if k != "objective" and k in params and params[k] != native[k])
-            if clash:
-                raise ValueError(f"params {clash} would change LightGBM's built-in objective away from the "
-                                 f"{fam.name} loss; drop them or pass builtin_if_exact=False")
-            params.update(native)
-        else:
-            params["objective"] = _Objective(fam, step)
+        params["objective"] = _Objective(fam, guard, check_start=False)
     params.setdefault("metric", "None")
 
     touched = [data] + [valid_sets[k] for k in starts]
+    constant = False
     try:
-        data.set_init_score(start)
+        data.set_init_score(plan.start)
         for k, s in starts.items():
             valid_sets[k].set_init_score(s)
-        booster = lgb.train(
-            params, data, num_boost_round=num_boost_round,
-            valid_sets=valid_sets or None, feval=fevals if valid_sets else None,
-            callbacks=callbacks, keep_training_booster=True, **engine_kwargs,
-        )
+        try:
+            booster = lgb.train(params, data, num_boost_round=num_boost_round, valid_sets=valid_sets or None,
+                                valid_names=valid_names, feval=fevals if valid_sets else None, callbacks=callbacks,
+                                keep_training_booster=True, **engine_kwargs)
+        except lgb.basic.LightGBMError as exc:
+            if "num_features()) > (0)" not in str(exc):
+                raise
+            # no feature can split (too few rows for min_data_in_leaf): a custom objective makes
+            # LightGBM fail where its built-ins return a constant model; return that constant
+            booster = _constant_booster(lgb, params, data)
+            refit, twin = None, None
+            constant = True
         if refit is not None:
             refit.catch_up(booster)
         best = booster.best_iteration
         cut = 0 < best < booster.current_iteration()
         while 0 < best < booster.current_iteration():
             booster.rollback_one_iter()
-        if refit is not None:
-            train_raw = refit.raw[0] if not cut else _raw_from_trees(booster, refit.X[0], start)
+        pred = None
+        if constant:
+            train_raw = plan.start.copy()
+        elif refit is not None and not cut:
+            train_raw = refit.raw[0]
+        elif refit is not None:
+            train_raw = np.asarray(booster.predict(refit.X[0], raw_score=True), dtype=np.float64) + plan.start
         else:
             captured = {}
 
             def grab(preds, _data):
-                captured["raw"] = np.array(preds, dtype=np.float64)
-                return "raw", 0.0, False
+                captured["out"] = np.array(preds, dtype=np.float64)
+                return "out", 0.0, False
             booster.eval_train(feval=grab)
-            train_raw = captured["raw"]
+            if twin is not None:
+                pred = captured["out"]
+                train_raw = raw_from_output(fam, pred)
+            else:
+                train_raw = captured["out"]
         if not keep_training:
             booster = lgb.Booster(model_str=booster.model_to_string())
     finally:
         for ds in touched:
             _clear_start(ds)
-    fitted = fam.fit_nuisance(y, train_raw, w) if fam.params else fam
-    return TrainedModel(booster, fam, baseline, fitted)
-
-
-def _raw_from_trees(booster, X, start):
-    """Raw training scores from the booster's trees plus the starting scores."""
-    return np.asarray(booster.predict(X, raw_score=True), dtype=np.float64) + start
+    if pred is not None:
+        check_trained(fam, pred=pred)
+    else:
+        check_trained(fam, raw=train_raw)
+    if fam.params:
+        if nuisance_set is None:
+            fitted = fit_nuisance_or_keep(fam, y, train_raw, w)
+        else:
+            k = int(nuisance_set)
+            if k not in starts:
+                fitted = fit_nuisance_or_keep(fam, y, train_raw, w)
+            else:
+                vraw = np.asarray(booster.predict(_feature_data(valid_sets[k], f"valid_sets[{k}]"), raw_score=True),
+                                  dtype=np.float64) + starts[k]
+                fitted = fit_nuisance_or_keep(fam, vdata[k][0], vraw, vdata[k][1])
+    else:
+        fitted = fam
+    info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
+            "step_limit": None if guard.limit is None else guard.limit, "hessian_damping": guard.damping}
+    return BoostedFit(_ENGINE, booster, fam, plan.baseline, fitted, best - 1 if cut or 0 < best else None, info)

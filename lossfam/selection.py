@@ -56,7 +56,7 @@ held-back slice serves two purposes:
 
 The held-out fold is then scored with that model and those parameters.  For
 huber, whose location fit depends on the scale, the trees are grown once more
-at the held-back scale (LightGBM) and the scale refitted (one step of the
+at the held-back scale (both boosting engines) and the scale refitted (one step of the
 alternating location/scale fit).  The linear engine fits on the whole
 training fold: a linear model with a handful of coefficients barely overfits,
 and the nuisance parameters are its maximum-likelihood fits (huber: fitted
@@ -109,10 +109,10 @@ BOOSTING = ("lightgbm", "xgboost")
 
 #: families left out of the default candidates (see the module docstring)
 NOT_BY_DEFAULT = ("asymmetric_laplace",)
-#: families whose location fit depends on the scale: one more location/scale round ...
-_REFIT_LOCATION = ("huber",)
-#: ... with the engines that train at a given scale (the linear engine fits huber jointly)
-_REFIT_ENGINES = ("lightgbm",)
+#: engines that train at a given scale: families whose location depends on it
+#: (``Family.location_needs_nuisance``) get one more location/scale round (the linear
+#: engine fits huber jointly)
+_REFIT_ENGINES = ("lightgbm", "xgboost")
 #: PIT values inside [(1 - level)/2, (1 + level)/2] make the calibration column
 CALIBRATION_LEVEL = 0.9
 #: levels of the coverage table kept for plots
@@ -165,13 +165,17 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
         from .lightgbm import train
 
         params = {**BOOST_DEFAULTS["lightgbm"], "seed": seed, **options}
+        leaf = int(params.get("min_data_in_leaf", 20))
+        if len(y) < 2 * leaf:  # LightGBM would stop with a native fatal error (no feature can be split)
+            raise ValueError(f"too few rows to grow trees: {len(y)} training rows in a fold, fewer than "
+                             f"2 x min_data_in_leaf = {2 * leaf}; use more rows, fewer folds or a smaller "
+                             "min_data_in_leaf")
         kw = {}
         if hold is not None:
             kw = {"valid_sets": [lgb.Dataset(hold[0], hold[1], weight=hold[2])], "valid_offsets": [hold[3]],
                   "callbacks": [lgb.early_stopping(STOP_PATIENCE, first_metric_only=True, verbose=False)]}
         model = train(fam, params, lgb.Dataset(X, y, weight=w), num_boost_round=rounds, offset=offset,
-                      prefit_params=not keep_params, **kw)
-        used = model.booster.current_iteration()  # rounds kept (cut back to the best round)
+                      prefit=not keep_params, **kw)
     elif engine == "xgboost":
         import xgboost as xgb
 
@@ -184,10 +188,11 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
             dh = xgb.DMatrix(hold[0], hold[1], weight=hold[2], base_margin=hold[3], enable_categorical=cat)
             kw = {"evals": [(dh, "held_back")], "early_stopping_rounds": STOP_PATIENCE, "verbose_eval": False}
         model = train(fam, params, xgb.DMatrix(X, y, weight=w, base_margin=offset, enable_categorical=cat),
-                      num_boost_round=rounds, **kw)
-        used = model.booster.num_boosted_rounds()  # trees kept (cut back to the best round)
+                      num_boost_round=rounds, prefit=not keep_params, **kw)
     else:
         raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+    # with early stopping the model keeps rounds 0..best_iteration
+    used = model.best_iteration + 1 if model.best_iteration is not None else rounds
     return (lambda Z, off=None: np.asarray(model.predict_raw(Z, offset=off), dtype=float)), int(used)
 
 
@@ -243,7 +248,7 @@ def _fit_family(fit, engine, fam, X, y, w, off, hold):
     predict, used = fit(fam, X, y, w, off, hold, False)
     Xn, yn, wn, on = hold if hold is not None else (X, y, w, off)
     fam = fam.fit_nuisance(yn, predict(Xn, on), wn)
-    if engine in _REFIT_ENGINES and fam.name in _REFIT_LOCATION and fam.params:
+    if engine in _REFIT_ENGINES and fam.location_needs_nuisance and fam.params:
         predict, used = fit(fam, X, y, w, off, hold, True)
         fam = fam.fit_nuisance(yn, predict(Xn, on), wn)
     return fam, predict, used

@@ -1,27 +1,23 @@
-"""Gradient-boosted trees trained on a family's nll: wrappers around LightGBM and XGBoost estimators.
+"""Gradient-boosted trees trained on a family's nll: scikit-learn wrappers around the engines' ``train``.
 
-``BoostedLikelihoodRegressor(estimator, family)`` takes an (unfitted) ``LGBMRegressor``
-or ``XGBRegressor`` and, at fit time, trains a clone of it with
+``BoostedLikelihoodRegressor(estimator, family)`` takes an (unfitted)
+``LGBMRegressor`` or ``XGBRegressor`` for its settings only.  ``fit`` turns
+them into the engine's training parameters (``n_estimators`` rounds, the
+rest as given) and calls ``lossfam.lightgbm.train`` / ``lossfam.xgboost.train``,
+so the wrapper trains exactly what ``train`` trains: the same baseline,
+nuisance pre-fit, native twin, guard, leaf refit and metric.  The trained
+:class:`lossfam.BoostedFit` is ``model_`` (``model_.save(path)``,
+``lossfam.load(path)``); ``family_`` holds the nuisance parameters fitted on
+the training data, ``baseline_`` the starting raw score and
+``evals_result_`` the metric log of ``eval_set``.
 
-* objective   -- ``lossfam.lightgbm.objective(family)`` / ``lossfam.xgboost.objective(family)``;
-* start score -- ``b = family.baseline(y, w, offset=o)``: passed as ``init_score``
-  (LightGBM) or ``base_margin`` (XGBoost) equal to ``b + o``, for the training
-  set and every evaluation set (the engines estimate no intercept under a
-  custom objective, and ``base_margin`` replaces XGBoost's ``base_score``);
-* metric      -- ``lossfam.<engine>.metric(family)`` (mean nll, named
-  ``"<family>_nll"``) in place of the engine's default metric, so early
-  stopping watches the likelihood;
-* prediction  -- raw score = trees + b + offset (``predict(raw_score=True)`` /
-  ``predict(output_margin=True, base_margin=b + o)``), mean = inverse link.
-
-After fit, ``family_`` holds the nuisance parameters at their maximum-likelihood
-values given the training raw scores (``family.fit_nuisance``).  For laplace and
-asymmetric_laplace the scale is first fitted at the baseline (their location
-minimiser does not depend on it; it sets the surrogate Hessian's floor in the
-units of y).  These wrappers use the engines' scikit-learn ``fit``: the leaf
-refit to exact medians / quantiles that ``lossfam.lightgbm.train`` and
-``lossfam.xgboost.train`` perform for laplace and asymmetric_laplace is not
-done here, so those families train on the surrogate (IRLS) Hessian alone.
+``fit(X, y, sample_weight=None, offset=None, eval_set=None, **fit_params)``:
+``offset`` is a per-row raw-scale term; ``eval_set`` a list of ``(X, y)`` or
+``(X, y, offset)`` (with a training offset every evaluation set needs its
+own).  Engine keywords: LightGBM ``callbacks`` (e.g.
+``lightgbm.early_stopping(k)``), XGBoost ``verbose``; XGBoost's
+``early_stopping_rounds`` is read from the estimator.  ``X`` may be a numpy
+array, a pandas DataFrame or a scipy sparse matrix.
 
 ``BoostedLikelihoodClassifier(estimator)`` is the bernoulli family as a binary
 classifier (``classes_``, ``predict_proba``, ``decision_function``); it
@@ -29,18 +25,24 @@ accepts a LightGBM or XGBoost regressor or classifier.
 
 All parameters, including the nested estimator's (``estimator__n_estimators``),
 go through ``get_params`` / ``set_params``, and ``sklearn.base.clone`` works;
-the given estimator is never modified (a clone is fitted, ``estimator_``).
+the given estimator is never modified.
 """
 from __future__ import annotations
 
 import numpy as np
-from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin, clone, is_classifier
+from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin, is_classifier
 from sklearn.utils.multiclass import check_classification_targets, type_of_target
 from sklearn.utils.validation import check_is_fitted, column_or_1d, validate_data
 
-from ..families import AsymmetricLaplace, Laplace
+from .. import _checks
 from ..registry import family as make_family
 from .linear import _check_offset, _check_sample_weight, _RawScoreRegressorMethods
+
+#: estimator parameters that are not training parameters of the engine
+_NOT_ENGINE = {
+    "lightgbm": ("n_estimators", "objective", "class_weight", "importance_type", "metric"),
+    "xgboost": ("objective", "base_score", "eval_metric"),
+}
 
 
 def _engine_of(estimator, owner):
@@ -68,91 +70,119 @@ def _is_frame(X):
     return hasattr(X, "columns") and hasattr(X, "iloc")
 
 
+def _check_labels_finite(y, owner):
+    """Refuse NaN / infinite labels naming the rows (numeric y only; class labels may be strings)."""
+    arr = np.asarray(y)
+    if arr.dtype.kind == "f" or arr.dtype.kind == "c":
+        _checks.REAL.check(arr.astype(np.float64, copy=False).reshape(-1), "y", owner)
+
+
+def _engine_settings(base, engine):
+    """(training parameters, rounds, early_stopping_rounds) from the estimator's settings."""
+    if engine == "lightgbm":
+        params = base.get_params(deep=False)
+        rounds = int(params["n_estimators"])
+        early = None
+    else:
+        params = base.get_xgb_params()
+        rounds = 100 if base.n_estimators is None else int(base.n_estimators)
+        early = base.early_stopping_rounds
+    params = {k: v for k, v in params.items() if v is not None and k not in _NOT_ENGINE[engine]}
+    return params, rounds, early
+
+
 class _BoostBase(BaseEstimator):
     """Shared fitting and prediction of the two wrappers."""
-
-    def _validate_Xy(self, X, y):
-        """Validate training data: X as in _validate_X, y one-dimensional (a column is flattened with a warning)."""
-        if y is None:
-            raise ValueError(f"{type(self).__name__} requires y to be passed, but the target y is None")
-        if _is_frame(X):
-            validate_data(self, X, reset=True, skip_check_array=True)
-            return X, column_or_1d(y, warn=True)
-        return validate_data(self, X, y, dtype=np.float64, ensure_all_finite="allow-nan")
 
     def _validate_X(self, X, reset):
         if _is_frame(X):  # pass data frames through (categorical columns stay categorical)
             validate_data(self, X, reset=reset, skip_check_array=True)
             return X
-        return validate_data(self, X, reset=reset, dtype=np.float64, ensure_all_finite="allow-nan")
+        return validate_data(self, X, reset=reset, dtype=np.float64, ensure_all_finite="allow-nan",
+                             accept_sparse=("csr", "csc"))
+
+    def _validate_Xy(self, X, y):
+        """X as in _validate_X; y one-dimensional (a column is flattened with a warning), finite."""
+        owner = type(self).__name__
+        if y is None:
+            raise ValueError(f"{owner} requires y to be passed, but the target y is None")
+        X = self._validate_X(X, reset=True)
+        y = column_or_1d(y, warn=True)
+        _check_labels_finite(y, owner)
+        if y.shape[0] != X.shape[0]:
+            raise ValueError(f"{owner}: X has {X.shape[0]} rows but y has {y.shape[0]}")
+        return X, y
 
     def _fit_engine(self, fam, X, y, w, offset, eval_set, fit_params):
         owner = type(self).__name__
         base = self.estimator if self.estimator is not None else _default_estimator()
         engine = _engine_of(base, owner)
-        if engine == "lightgbm":
-            from .. import lightgbm as adapter
-        else:
-            from .. import xgboost as adapter
         unit_w = None if np.all(w == 1.0) else w
-        baseline = fam.baseline(y, unit_w, offset=offset)
-        if isinstance(fam, (Laplace, AsymmetricLaplace)):
-            start = np.full_like(y, baseline) if offset is None else baseline + offset
-            try:
-                fam = fam.fit_nuisance(y, start, unit_w)
-            except ValueError:
-                pass  # every residual is zero at the baseline: keep the given scale
-        est = clone(base)
-        start = np.full(y.shape, baseline) if offset is None else baseline + offset
         evals = []
         for k, item in enumerate(eval_set or []):
             if len(item) not in (2, 3):
                 raise ValueError(f"{owner}: eval_set[{k}] must be (X, y) or (X, y, offset)")
             Xe = self._validate_X(item[0], reset=False)
-            ye = fam.check_target(np.asarray(item[1], dtype=float).reshape(-1), for_nll=True)
+            ye = np.asarray(item[1], dtype=float).reshape(-1)
+            _check_labels_finite(ye, f"{owner} eval_set[{k}]")
+            ye = fam.check_target(ye, for_nll=True)
             if ye.shape[0] != Xe.shape[0]:
                 raise ValueError(f"{owner}: eval_set[{k}] has {Xe.shape[0]} rows in X but {ye.shape[0]} targets")
             oe = _check_offset(item[2] if len(item) == 3 else None, ye.shape[0], owner)
-            evals.append((Xe, ye, baseline + (0.0 if oe is None else oe) + np.zeros(ye.shape)))
+            if offset is not None and oe is None:
+                raise ValueError(f"{owner}: fit used an offset but eval_set[{k}] has none; pass (X, y, offset) "
+                                 "(zeros where there truly is none), or its metric would be wrong")
+            evals.append((Xe, ye, oe))
+        params, rounds, early = _engine_settings(base, engine)
         kwargs = dict(fit_params)
+        history = {}
         if engine == "lightgbm":
-            est.set_params(objective=adapter.objective(fam), metric="None")
-            if evals:
-                kwargs.update(eval_X=tuple(e[0] for e in evals), eval_y=tuple(e[1] for e in evals),
-                              eval_init_score=[e[2] for e in evals], eval_metric=adapter.metric(fam))
-            est.fit(X, y, sample_weight=unit_w, init_score=start, **kwargs)
-        else:
-            est.set_params(objective=adapter.objective(fam), eval_metric=adapter.metric(fam),
-                           disable_default_eval_metric=True)
-            if evals:
-                kwargs.update(eval_set=[(e[0], e[1]) for e in evals],
-                              base_margin_eval_set=[e[2] for e in evals])
-                kwargs.setdefault("verbose", False)
-            est.fit(X, y, sample_weight=unit_w, base_margin=start, **kwargs)
-        self.estimator_ = est
-        self.engine_ = engine
-        self.baseline_ = float(baseline)
-        raw = self._raw(X, offset)
-        try:
-            self.family_ = fam.fit_nuisance(y, raw, unit_w)
-        except ValueError:
-            self.family_ = fam  # zero residuals: the nuisance parameters keep their values
-        return self
+            import lightgbm as lgb
 
-    def _raw(self, X, offset):
-        n = X.shape[0]
-        start = np.full(n, self.baseline_)
-        if offset is not None:
-            start = start + offset
-        if self.engine_ == "lightgbm":
-            return np.asarray(self.estimator_.predict(X, raw_score=True), dtype=float).reshape(-1) + start
-        return np.asarray(self.estimator_.predict(X, output_margin=True, base_margin=start), dtype=float).reshape(-1)
+            from .. import lightgbm as adapter
+
+            known = {"callbacks", "categorical_feature", "feature_name"}
+            unknown = sorted(set(kwargs) - known)
+            if unknown:
+                raise ValueError(f"{owner}: unknown fit keyword(s) {unknown} for LightGBM; accepted: {sorted(known)}")
+            ds_kw = {k: kwargs.pop(k) for k in ("categorical_feature", "feature_name") if k in kwargs}
+            dtrain = lgb.Dataset(X, y, weight=unit_w, free_raw_data=False, **ds_kw)
+            valid = [lgb.Dataset(Xe, ye, reference=dtrain, free_raw_data=False) for Xe, ye, _ in evals]
+            callbacks = list(kwargs.pop("callbacks", None) or [])
+            if valid:
+                callbacks.append(lgb.record_evaluation(history))
+            model = adapter.train(fam, params, dtrain, rounds, valid_sets=valid or None,
+                                  valid_names=[f"validation_{k}" for k in range(len(valid))] or None,
+                                  valid_offsets=[oe for _, _, oe in evals] if valid else None, offset=offset,
+                                  callbacks=callbacks)
+        else:
+            import xgboost as xgb
+
+            from .. import xgboost as adapter
+
+            known = {"verbose"}
+            unknown = sorted(set(kwargs) - known)
+            if unknown:
+                raise ValueError(f"{owner}: unknown fit keyword(s) {unknown} for XGBoost; accepted: {sorted(known)}")
+            dm_kw = dict(missing=base.missing, enable_categorical=base.enable_categorical,
+                         feature_types=base.feature_types)
+            dtrain = xgb.DMatrix(X, label=y, weight=unit_w, base_margin=offset, **dm_kw)
+            valid = [(xgb.DMatrix(Xe, label=ye, base_margin=oe, **dm_kw), f"validation_{k}")
+                     for k, (Xe, ye, oe) in enumerate(evals)]
+            model = adapter.train(fam, params, dtrain, rounds, evals=valid, early_stopping_rounds=early if valid else None,
+                                  evals_result=history, verbose_eval=bool(kwargs.get("verbose", False)))
+        self.model_ = model
+        self.engine_ = engine
+        self.baseline_ = model.baseline
+        self.family_ = model.fitted_family
+        self.evals_result_ = history
+        return self
 
     def _raw_score(self, X, offset):
         check_is_fitted(self)
         X = self._validate_X(X, reset=False)
         offset = _check_offset(offset, X.shape[0], type(self).__name__)
-        return self._raw(X, offset)
+        return self.model_.predict_raw(X, offset)
 
 
 class BoostedLikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, _BoostBase):
@@ -170,9 +200,11 @@ class BoostedLikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, _Boo
 
     Attributes
     ----------
-    estimator_ (the fitted clone), engine_ ("lightgbm" or "xgboost"), baseline_
-    (the starting raw score), family_ (nuisance parameters fitted by maximum
-    likelihood on the training data), n_features_in_, feature_names_in_.
+    model_ (the trained :class:`lossfam.BoostedFit`: ``save``, ``booster``),
+    engine_ ("lightgbm" or "xgboost"), baseline_ (the starting raw score),
+    family_ (nuisance parameters fitted by maximum likelihood on the training
+    data), evals_result_ (metric log of ``eval_set``), n_features_in_,
+    feature_names_in_.
     """
 
     def __init__(self, estimator=None, family="gaussian", family_params=None):
@@ -183,6 +215,7 @@ class BoostedLikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, _Boo
     def __sklearn_tags__(self):
         tags = super().__sklearn_tags__()
         tags.input_tags.allow_nan = True
+        tags.input_tags.sparse = True
         try:
             fam = make_family(self.family, **(self.family_params or {}))
         except Exception:
@@ -199,8 +232,6 @@ class BoostedLikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, _Boo
         fam = make_family(self.family, **(self.family_params or {}))
         X, y = self._validate_Xy(X, y)
         y = fam.check_target(y, for_nll=False)
-        if y.shape[0] != X.shape[0]:
-            raise ValueError(f"{owner}: X has {X.shape[0]} rows but y has {y.shape[0]}")
         w = _check_sample_weight(sample_weight, y, owner)
         offset = _check_offset(offset, y.shape[0], owner)
         return self._fit_engine(fam, X, y, w, offset, eval_set, fit_params)
@@ -221,14 +252,13 @@ class BoostedLikelihoodClassifier(ClassifierMixin, _BoostBase):
     def __sklearn_tags__(self):
         tags = super().__sklearn_tags__()
         tags.input_tags.allow_nan = True
+        tags.input_tags.sparse = True
         tags.classifier_tags.multi_class = False
         return tags
 
     def fit(self, X, y, sample_weight=None, offset=None, eval_set=None, **fit_params):
         owner = type(self).__name__
         X, y = self._validate_Xy(X, y)
-        if y.shape[0] != X.shape[0]:
-            raise ValueError(f"{owner}: X has {X.shape[0]} rows but y has {y.shape[0]}")
         check_classification_targets(y)
         kind = type_of_target(y, input_name="y")
         if kind != "binary":

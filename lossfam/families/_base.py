@@ -27,6 +27,45 @@ A user family subclasses :class:`Family`, declares ``name``, ``link_function``,
 ``target_domain`` and its parameter domains, implements ``_nll`` and
 ``_grad_hess`` (the rest have generic numerical defaults), and is registered
 with :func:`lossfam.register`.
+
+Engine facts
+------------
+What the boosting engines (``lossfam.lightgbm``, ``lossfam.xgboost``, the
+scikit-learn boosted wrappers, the ranking) need to know about a family is
+declared here, once, as class attributes; engine code reads these and never
+asks which family it holds.  The defaults suit a smooth family with an exact
+Hessian, so a user family needs none of them unless it wants the treatment:
+
+``dispersion_unit``   ``(parameter, power)`` or None.  The engines multiply
+                      gradient and Hessian by ``parameter ** power`` (a
+                      constant: Newton steps do not change), so the Hessian is
+                      dimensionless and the engines' absolute thresholds
+                      (``min_sum_hessian_in_leaf``, ``min_child_weight``,
+                      ``lambda``) mean what they mean for the built-ins.
+                      gaussian ``("scale", 2)`` gives exactly raw - y and 1.
+``location_needs_nuisance``  True when the location minimiser depends on the
+                      nuisance parameters (huber's threshold is delta * scale
+                      in units of y): the engines then fit them at the
+                      baseline before growing trees.
+``leaf_value``        how a leaf's value is set after a tree is grown:
+                      ``"newton"`` (the engine's -sum g / sum h), ``"median"``
+                      or ``"quantile"`` (the tree is grown on the pinball
+                      subgradient with a unit Hessian, then each leaf takes the
+                      exact weighted median / tau-quantile of its rows'
+                      residuals; tau is the ``quantile`` parameter), or
+                      ``"line_search"`` (each leaf takes the constant that
+                      minimises its rows' nll, found by vectorised Newton /
+                      IRLS iterations on the family's own Hessian).
+``hessian_damping``   log of a factor applied to every Hessian by the default
+                      step guard, or None (poisson: 0.7, the damping of both
+                      engines' built-in poisson objective).
+``native_twins``      ``{engine: {parameter: value}}``: the engine's built-in
+                      objective whose loss, gradient, Hessian and leaf rule are
+                      exactly this family's (in dispersion units, under the
+                      default guard).  A value ``FromParam("quantile")`` is
+                      replaced by the family's parameter.  The engines then
+                      compute the gradients in C++; lossfam still supplies the
+                      baseline, metric, nuisance fit and model file.
 """
 from __future__ import annotations
 
@@ -39,6 +78,16 @@ from scipy import optimize
 from .. import _checks
 from .._checks import Domain
 from ..links import Link
+
+
+@dataclasses.dataclass(frozen=True)
+class FromParam:
+    """In ``Family.native_twins``: the value of the family's parameter ``name``."""
+
+    name: str
+
+
+LEAF_VALUE_RULES = ("newton", "median", "quantile", "line_search")
 
 
 @dataclasses.dataclass(frozen=True)
@@ -60,6 +109,18 @@ class Family:
     discrete: ClassVar[bool] = False
     #: what the response-scale prediction ``inverse_link(raw)`` is
     prediction_kind: ClassVar[str] = "mean"
+
+    # engine facts (module docstring, "Engine facts")
+    #: (parameter, power): gradient and Hessian are multiplied by parameter ** power in the engines
+    dispersion_unit: ClassVar[tuple | None] = None
+    #: True when the location minimiser depends on the nuisance parameters (pre-fitted at the baseline)
+    location_needs_nuisance: ClassVar[bool] = False
+    #: leaf-value rule: "newton", "median", "quantile" or "line_search"
+    leaf_value: ClassVar[str] = "newton"
+    #: log of the factor the default step guard applies to every Hessian, or None
+    hessian_damping: ClassVar[float | None] = None
+    #: {engine: {engine parameter: value or FromParam(name)}}: built-in objectives equal to this loss
+    native_twins: ClassVar[dict] = {}
 
     def __post_init__(self):
         for f in dataclasses.fields(self):

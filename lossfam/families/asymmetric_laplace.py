@@ -32,7 +32,7 @@ from scipy import stats
 
 from .._checks import OPEN_UNIT, POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family
+from ._base import Family, FromParam
 from .laplace import FLOOR, weighted_quantile
 
 
@@ -52,6 +52,13 @@ class AsymmetricLaplace(Family):
     param_domains = {"quantile": OPEN_UNIT, "scale": POSITIVE}
     exact_hessian = False
     prediction_kind = "quantile"
+    # engine facts: as laplace, with the tau-quantile (the built-in quantile objectives at alpha = tau)
+    dispersion_unit = ("scale", 2.0)
+    leaf_value = "quantile"
+    native_twins = {
+        "lightgbm": {"objective": "quantile", "alpha": FromParam("quantile")},
+        "xgboost": {"objective": "reg:quantileerror", "quantile_alpha": FromParam("quantile")},
+    }
 
     def _nll(self, y, raw):
         t = self.quantile

@@ -41,6 +41,7 @@ class Bernoulli(Family):
     link_function = LOGIT
     target_domain = BINARY
     discrete = True
+    native_twins = {"lightgbm": {"objective": "binary"}, "xgboost": {"objective": "binary:logistic"}}
 
     def _nll(self, y, raw):
         return -(y * log_expit(raw) + (1.0 - y) * log_expit(-raw))

@@ -38,6 +38,10 @@ class Gamma(Family):
     link_function = LOG
     target_domain = POSITIVE
     param_domains = {"shape": POSITIVE}
+    # engine facts: in 1/shape units the gradient and Hessian are 1 - y e^-raw and y e^-raw,
+    # the built-in gamma objectives' own (neither engine damps them)
+    dispersion_unit = ("shape", -1.0)
+    native_twins = {"lightgbm": {"objective": "gamma"}, "xgboost": {"objective": "reg:gamma"}}
 
     def _nll(self, y, raw):
         k = self.shape

@@ -35,6 +35,9 @@ class Gaussian(Family):
     link_function = IDENTITY
     target_domain = REAL
     param_domains = {"scale": POSITIVE}
+    # engine facts: in scale**2 units the gradient and Hessian are raw - y and 1, the built-ins' own
+    dispersion_unit = ("scale", 2.0)
+    native_twins = {"lightgbm": {"objective": "regression"}, "xgboost": {"objective": "reg:squarederror"}}
 
     def _nll(self, y, raw):
         z = (y - raw) / self.scale

@@ -57,6 +57,11 @@ class Laplace(Family):
     param_domains = {"scale": POSITIVE}
     exact_hessian = False
     prediction_kind = "median"
+    # engine facts: trees grown on the sign of the residual, leaves set to the weighted residual
+    # median, which is what the built-in absolute-error objectives do (leaf renewal in C++)
+    dispersion_unit = ("scale", 2.0)
+    leaf_value = "median"
+    native_twins = {"lightgbm": {"objective": "regression_l1"}, "xgboost": {"objective": "reg:absoluteerror"}}
 
     def _nll(self, y, raw):
         return np.abs(y - raw) / self.scale + np.log(2.0 * self.scale)

@@ -36,6 +36,12 @@ class Poisson(Family):
     target_domain = NONNEGATIVE
     nll_domain = NONNEGATIVE_INTEGER
     discrete = True
+    # engine facts: both engines' built-in poisson multiply every Hessian by e^0.7 (LightGBM
+    # poisson_max_delta_step, XGBoost max_delta_step, which also clips each leaf at 0.7); the
+    # default step guard does the same, so the default is the built-in
+    hessian_damping = 0.7
+    native_twins = {"lightgbm": {"objective": "poisson", "poisson_max_delta_step": 0.7},
+                    "xgboost": {"objective": "count:poisson", "max_delta_step": 0.7}}
 
     def _nll(self, y, raw):
         return np.exp(raw) - y * raw + gammaln(y + 1.0)

@@ -1,0 +1,244 @@
+r"""The step guard, gradient/Hessian assembly and target caching, shared by both engines.
+
+Assembly
+--------
+For validated float64 targets ``y``, raw scores and weights ``w``::
+
+    g, h = family gradient and Hessian (or surrogate) in the raw score
+    g, h = u g, u h                      u = the family's dispersion unit
+    h    = h e^damping                   damped guard (poisson's default)
+    h    = max(h, |g| / step_limit)      per-row cap (step_limit a number)
+    g, h = w g, w h
+
+then checks: a NaN, infinite or negative value raises ValueError naming the
+rows and their raw scores; a row with zero Hessian and non-zero gradient
+(which LightGBM and XGBoost would ignore, or stop on) gets ``h = |g|``, a unit
+Newton step.
+
+The step guard (``step_limit``)
+-------------------------------
+One parameter, one default, the same in both engines:
+
+``"auto"`` (default)
+    The family's ``hessian_damping`` when it declares one: every Hessian times
+    e^damping (poisson: e^0.7, exactly what both engines' built-in poisson
+    objective does, so the default trains on the built-in), otherwise off.
+``None``
+    Off: the family's Hessian as is.
+a positive number ``s``
+    The per-row cap: each row's Hessian is raised to ``|g| / s`` where it is
+    smaller.  A leaf's Newton step ``-sum g / sum h`` is then a
+    Hessian-weighted average of steps no longer than ``s``, so no leaf moves
+    by more than ``s`` on the raw scale before the learning rate.  The gradient
+    is untouched, so the fixed point is unchanged; only the path is damped.
+    Stronger than the damping where a log-link mean sits far below its
+    targets (a Newton step y / mu - 1 in the thousands).
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+import warnings
+import weakref
+
+import numpy as np
+
+from .. import _checks
+from . import facts
+
+#: the default of ``step_limit`` in both engines
+STEP_LIMIT_DEFAULT = "auto"
+
+
+@dataclasses.dataclass(frozen=True)
+class Guard:
+    """The resolved step guard: a per-row cap and/or a Hessian damping (log factor)."""
+
+    limit: float | None = None
+    damping: float | None = None
+
+    @property
+    def is_off(self) -> bool:
+        return self.limit is None and self.damping is None
+
+
+def resolve_guard(fam, step_limit) -> Guard:
+    """The guard that ``step_limit`` means for ``fam`` (module docstring)."""
+    if isinstance(step_limit, str):
+        if step_limit != "auto":
+            raise ValueError(f"step_limit must be 'auto', None or a positive number, got {step_limit!r}")
+        return Guard(damping=fam.hessian_damping)
+    if step_limit is None:
+        return Guard()
+    try:
+        v = float(step_limit)
+    except (TypeError, ValueError):
+        raise ValueError(f"step_limit must be 'auto', None or a positive number, got {step_limit!r}") from None
+    if not (v > 0 and math.isfinite(v)):
+        raise ValueError(f"step_limit must be 'auto', None or a positive finite number, got {step_limit!r}")
+    return Guard(limit=v)
+
+
+class Gradients:
+    """Assembles the weighted, unit-scaled, guarded and checked gradient and Hessian of a family."""
+
+    _BLOCK = 1 << 16  # rows per block of the cap's scratch array
+
+    def __init__(self, fam, guard: Guard):
+        self.family = fam
+        self.guard = guard
+        self.unit = facts.dispersion_unit(fam)
+        self.factor = math.exp(guard.damping) if guard.damping is not None else 1.0
+        self._tmp = None
+
+    def __call__(self, y, raw, w):
+        """(g, h) at validated float64 ``y``, ``raw`` (float64) and ``w`` (or None)."""
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            g, h = self.family._grad_hess(y, raw)
+        if self.unit != 1.0:
+            g *= self.unit
+            h *= self.unit
+        if self.factor != 1.0:
+            h *= self.factor
+        if self.guard.limit is not None:
+            inv = 1.0 / self.guard.limit
+            n = min(g.size, self._BLOCK)
+            if self._tmp is None or self._tmp.size != n:
+                self._tmp = np.empty(n)
+            for i in range(0, g.size, self._BLOCK):
+                gb, hb = g[i:i + self._BLOCK], h[i:i + self._BLOCK]
+                a = np.abs(gb, out=self._tmp[:gb.size])
+                a *= inv
+                np.maximum(hb, a, out=hb)  # NaN propagates and is caught below
+        if w is not None:
+            g *= w
+            h *= w
+        if not (h.min() > 0 and np.isfinite(h.max()) and np.isfinite(g.sum())):
+            self._repair(g, h, raw)
+        return g, h
+
+    def _repair(self, g, h, raw):
+        with np.errstate(invalid="ignore"):
+            bad = ~(np.isfinite(g) & np.isfinite(h)) | (h < 0)
+        if bad.any():
+            raise ValueError(
+                f"{self.family.name}: the gradient or Hessian is NaN, infinite or negative at "
+                f"{_checks._describe_rows(bad, raw).replace(' outside', '')} (raw scores); the raw scores have "
+                "left the range where the nll is finite: use a smaller learning rate, or a step_limit"
+            )
+        dead = (h == 0) & (g != 0)
+        if dead.any():
+            h[dead] = np.abs(g[dead])
+
+    def __getstate__(self):
+        return {"family": self.family, "guard": self.guard}
+
+    def __setstate__(self, state):
+        self.__init__(state["family"], state["guard"])
+
+
+def growth_gradients(level, y, raw, w):
+    """The pinball subgradient at ``level`` with a unit Hessian (times the weights).
+
+    ``(1[raw > y] - level)``, ``1/2 - level`` at a tie; for the median
+    (level 1/2) ``sign(raw - y)``, the built-in absolute-error objectives' own.
+    Trees grown on it split where the built-in median/quantile objectives
+    split; the leaf values come from the leaf table afterwards.
+    """
+    g = np.sign(raw - y)
+    if level != 0.5:
+        g += 1.0
+        g *= 0.5
+        g -= level
+    if w is None:
+        return g, np.ones_like(g)
+    g *= w
+    return g, np.array(w, dtype=np.float64)
+
+
+class TargetCache:
+    """Validated float64 targets and weights, re-validated only when their source changes.
+
+    ``get(fam, keys, read)``: ``keys`` are the objects whose identity marks the
+    same targets (a Dataset or DMatrix, or the label and weight arrays);
+    ``read()`` returns the unvalidated ``(y, w)``.  Nothing here is needed for
+    correctness: a deep or pickled copy starts empty.
+    """
+
+    def __init__(self):
+        self._refs = None
+        self._y = self._w = None
+
+    def get(self, fam, keys, read, *, for_nll):
+        if self._refs is not None and len(self._refs) == len(keys) and all(
+                r() is k for r, k in zip(self._refs, keys)):
+            return self._y, self._w
+        y, w = read()
+        y = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1), for_nll=for_nll)
+        w = None if w is None or np.size(w) == 0 else _checks.check_weight(np.asarray(w).reshape(-1), y, fam.name)
+        try:
+            self._refs = [_ref(k) for k in keys]
+        except TypeError:  # lists and the like cannot be weakly referenced: no caching
+            self._refs = None
+            return y, w
+        self._y, self._w = y, w
+        return y, w
+
+    def __deepcopy__(self, memo):
+        return TargetCache()
+
+    def __getstate__(self):
+        return {}
+
+    def __setstate__(self, state):
+        self.__init__()
+
+
+def _none():
+    return None
+
+
+def _ref(obj):
+    return _none if obj is None else weakref.ref(obj)
+
+
+class FarStartWarning(UserWarning):
+    """The bare objective was started far from the family's baseline."""
+
+
+def warn_if_far_from_baseline(fam, y, w, raw, engine):
+    """Warn when every raw score is one constant that lies outside the bulk of the targets.
+
+    Built-in objectives start from the targets' average; a custom objective
+    starts wherever the engine puts it (raw score 0 without an init score or
+    base margin).  When that constant is beyond all but 1% of the rows'
+    gradient signs, the first trees spend themselves moving the constant (or,
+    with a constant Hessian floor, find no gain and stop).
+    """
+    if raw.size == 0 or not np.all(raw == raw[0]):
+        return
+    try:
+        base = fam.baseline(y, w)
+    except ValueError:
+        return
+    if abs(base - raw[0]) <= 1e-6 * max(1.0, abs(base)):
+        return
+    with np.errstate(over="ignore", invalid="ignore"):
+        g, _ = fam._grad_hess(y, np.full_like(y, raw[0]))
+    wt = np.ones_like(y) if w is None else w
+    total = wt.sum()
+    if not total > 0:
+        return
+    pos = float(wt[g > 0].sum()) / total
+    neg = float(wt[g < 0].sum()) / total
+    if min(pos, neg) < 0.01:
+        hint = ("pass init_score=np.full(n, b) (and the same for eval sets) to lgb.Dataset or fit()"
+                if engine == "lightgbm" else
+                "pass base_score=b to the parameters (or base_margin=b + offset per row)")
+        warnings.warn(
+            f"{fam.name} objective: every raw score is {float(raw[0]):g} on the first call, but the "
+            f"family's baseline is {base:.6g}: training starts far from the targets and may stall "
+            f"(e.g. one tree, a constant model).  Start from the baseline: b = lossfam.family({fam.name!r})"
+            f".baseline(y, weight); {hint}; lossfam.{engine}.train does this for you.",
+            FarStartWarning, stacklevel=3,
+        )

@@ -1,0 +1,100 @@
+r"""Leaf-value tables for the refit path, vectorised over leaves (no per-leaf Python loop).
+
+After a tree is grown, ``leaf_table`` gives each leaf the learning rate times
+the constant that minimises its rows' nll given their current raw scores:
+
+``"median"`` / ``"quantile"`` (level tau)
+    the weighted tau-quantile of the residuals ``y - raw`` (the smallest
+    residual whose cumulative weight reaches tau times the leaf's weight,
+    numpy's "inverted_cdf" rule): an exact minimiser of the leaf's pinball
+    loss, so of the Laplace / asymmetric Laplace nll.
+``"line_search"``
+    the root of the leaf's summed gradient, by Newton steps on the family's
+    own Hessian (for a surrogate Hessian these are the iteratively reweighted
+    least-squares steps, which decrease the nll monotonically), all leaves
+    at once with ``np.bincount``, until every step is below 1e-10 in raw units
+    relative or 50 iterations.
+
+Leaves without rows of positive weight keep the engine's value.
+"""
+from __future__ import annotations
+
+import numpy as np
+
+LINE_SEARCH_STEPS = 50
+LINE_SEARCH_TOL = 1e-10
+
+
+def grouped_quantile(leaf, r, w, q, n_leaves):
+    """Per leaf, the weighted q-quantile of ``r`` (inverted-cdf rule); returns (values, has_rows)."""
+    order = np.lexsort((r, leaf))
+    ls = leaf[order]
+    rs = r[order]
+    cw = np.cumsum(w[order]) if w is not None else np.arange(1, r.size + 1, dtype=np.float64)
+    ids = np.arange(n_leaves)
+    starts = np.searchsorted(ls, ids, side="left")
+    ends = np.searchsorted(ls, ids, side="right")
+    has = ends > starts
+    before = np.where(starts > 0, cw[np.maximum(starts - 1, 0)], 0.0)
+    total = np.where(has, cw[np.maximum(ends - 1, 0)] - before, 0.0)
+    has &= total > 0
+    idx = np.searchsorted(cw, before + q * total, side="left")
+    idx = np.clip(idx, starts, np.maximum(ends - 1, starts))
+    idx = np.minimum(idx, r.size - 1)
+    return rs[idx], has
+
+
+def grouped_line_search(fam, leaf, y, raw, w, n_leaves):
+    """Per leaf, the constant c with sum over the leaf of w g(y, raw + c) = 0 (Newton / IRLS)."""
+    wt = np.ones_like(y) if w is None else w
+    mass = np.bincount(leaf, weights=wt, minlength=n_leaves)
+    has = mass > 0
+    c = np.zeros(n_leaves)
+    for _ in range(LINE_SEARCH_STEPS):
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            g, h = fam._grad_hess(y, raw + c[leaf])
+        G = np.bincount(leaf, weights=g * wt, minlength=n_leaves)
+        H = np.bincount(leaf, weights=h * wt, minlength=n_leaves)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            step = np.where(has & (H > 0), -G / H, 0.0)
+        if not np.all(np.isfinite(step)):
+            break
+        c += step
+        if np.all(np.abs(step) <= LINE_SEARCH_TOL * (1.0 + np.abs(c))):
+            break
+    return c, has
+
+
+def leaf_table(rule, level, fam, leaf, y, raw, w, n_leaves, learning_rate):
+    """(learning_rate * per-leaf minimiser, has_rows) for the leaves of one tree (module docstring)."""
+    leaf = np.asarray(leaf, dtype=np.intp).reshape(-1)
+    if rule in ("median", "quantile"):
+        c, has = grouped_quantile(leaf, y - raw, w, level, n_leaves)
+    elif rule == "line_search":
+        c, has = grouped_line_search(fam, leaf, y, raw, w, n_leaves)
+    else:  # pragma: no cover - the adapters only call this for refit rules
+        raise ValueError(f"no leaf table for rule {rule!r}")
+    return learning_rate * c, has
+
+
+class RowBag:
+    """lossfam's own row bagging on the refit path: the engine sees zero gradient and Hessian on
+    out-of-bag rows (so they do not shape the tree), and the leaf table uses in-bag rows only.
+
+    ``fraction`` and ``every`` mirror the engines' settings (LightGBM
+    ``bagging_fraction``/``bagging_freq``, XGBoost ``subsample`` every round).
+    """
+
+    def __init__(self, n, fraction, every, seed):
+        self.n = n
+        self.fraction = float(fraction)
+        self.every = max(int(every), 1)
+        self.rng = np.random.default_rng(seed)
+        self.mask = None
+
+    def weights(self, round_index, w):
+        """Row weights for this round: w on in-bag rows, 0 out of bag."""
+        if self.mask is None or round_index % self.every == 0:
+            self.mask = self.rng.random(self.n) < self.fraction
+        base = np.ones(self.n) if w is None else w
+        return np.where(self.mask, base, 0.0)

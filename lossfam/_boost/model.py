@@ -1,0 +1,106 @@
+"""``BoostedFit``: the trained model of both engines, and ``load``, which reads either engine's file."""
+from __future__ import annotations
+
+import importlib
+import math
+
+import numpy as np
+
+from .._modelfile import read_model_file, write_model_file
+
+_ADAPTERS = {"lightgbm": "lossfam.lightgbm", "xgboost": "lossfam.xgboost"}
+
+
+def _adapter(engine):
+    if engine not in _ADAPTERS:
+        raise ValueError(f"unknown engine {engine!r}; lossfam models come from {sorted(_ADAPTERS)}")
+    return importlib.import_module(_ADAPTERS[engine])
+
+
+class BoostedFit:
+    """A boosted model trained on a family's nll, by LightGBM or XGBoost.
+
+    Attributes
+    ----------
+    engine : "lightgbm" or "xgboost"
+    booster : the engine's booster (``lightgbm.Booster`` / ``xgboost.Booster``)
+    family : Family
+        The family as trained (nuisance parameters pre-fitted at the baseline
+        when the family's location depends on them).
+    fitted_family : Family
+        ``family`` with its nuisance parameters fitted by maximum likelihood
+        on the training rows (or the ``nuisance_set``) at the final raw
+        scores; used by :meth:`distribution`.
+    baseline : float
+        The starting raw score; ``predict_raw`` adds it (and the offset).
+    best_iteration : int or None
+        After early stopping, the 0-based index of the best round (the model
+        keeps rounds 0..best_iteration); None otherwise.
+    info : dict
+        How it was trained: the engine objective (``"custom"`` or the native
+        twin), the step guard, the leaf-value rule.
+    """
+
+    def __init__(self, engine, booster, family, baseline, fitted_family=None, best_iteration=None, info=None):
+        self.engine = engine
+        self.booster = booster
+        self.family = family
+        self.baseline = float(baseline)
+        self.fitted_family = family if fitted_family is None else fitted_family
+        self.best_iteration = None if best_iteration is None else int(best_iteration)
+        self.info = dict(info or {})
+
+    def __repr__(self):
+        return (f"BoostedFit(engine={self.engine!r}, family={self.family!r}, baseline={self.baseline:.6g}, "
+                f"rounds={_adapter(self.engine)._rounds(self.booster)})")
+
+    def predict_raw(self, X, offset=None):
+        """Raw scores (link scale), float64: trees + baseline (+ offset, one per row).
+
+        ``X``: numpy array, pandas DataFrame, scipy sparse matrix or the
+        engine's own data object (an XGBoost DMatrix, whose ``base_margin``
+        is read as the offset when ``offset`` is None).
+        """
+        return np.asarray(_adapter(self.engine)._margin(self, X, offset), dtype=np.float64).reshape(-1)
+
+    def predict(self, X, offset=None):
+        """Predictions on the response scale (``family.prediction_kind``): inverse link of predict_raw."""
+        return self.family.link_function.inverse(self.predict_raw(X, offset))
+
+    def distribution(self, X, offset=None):
+        """The predictive law per row, with the fitted nuisance parameters."""
+        return self.fitted_family.distribution(self.predict_raw(X, offset))
+
+    def save(self, path, key=None):
+        """Write the model to ``path``: one JSON file (the engine's model, the family, the baseline)."""
+        adapter = _adapter(self.engine)
+        text, extra = adapter._model_text(self.booster)
+        extra.update(fitted_params=self.fitted_family.params, best_iteration=self.best_iteration, info=self.info)
+        write_model_file(path, engine=self.engine, family=self.family, baseline=self.baseline, model=text,
+                         extra=extra, key=key)
+
+
+def load(path, key=None, *, engine=None) -> BoostedFit:
+    """Read a model saved by :meth:`BoostedFit.save` (either engine).
+
+    Raises ValueError for files that are truncated, corrupted, edited, written
+    by the other engine when ``engine`` is given, or not lossfam model files.
+    """
+    doc = read_model_file(path, engine=engine, key=key)
+    eng = doc["engine"]
+    adapter = _adapter(eng)
+    fam = doc["family"]
+    baseline = doc["baseline"]
+    if isinstance(baseline, bool) or not isinstance(baseline, (int, float)) or not math.isfinite(baseline):
+        raise ValueError(f"{path}: the baseline {baseline!r} is not a finite number")
+    extra = doc["extra"] if isinstance(doc["extra"], dict) else {}
+    try:
+        fitted = fam.with_params(**extra.get("fitted_params", {}))
+    except (TypeError, ValueError) as exc:
+        raise ValueError(f"{path}: the fitted parameters are malformed ({exc})") from None
+    best = extra.get("best_iteration")
+    if best is not None and (isinstance(best, bool) or not isinstance(best, int) or best < 0):
+        raise ValueError(f"{path}: best_iteration {best!r} is not a non-negative integer")
+    info = extra.get("info") if isinstance(extra.get("info"), dict) else {}
+    booster = adapter._booster_from_text(doc["model"], extra, path, fam, float(baseline), info)
+    return BoostedFit(eng, booster, fam, baseline, fitted, best, info)

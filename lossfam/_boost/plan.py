@@ -1,0 +1,87 @@
+"""The start plan (baseline, starting scores, nuisance pre-fit), the final nuisance fit and the
+check of the trained raw scores: the engine-neutral phases of ``train``."""
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+
+from .. import _checks
+
+
+@dataclasses.dataclass
+class StartPlan:
+    """Where training starts.
+
+    family
+        The family as trained: the given one, with its nuisance parameters
+        fitted at the baseline first when it declares
+        ``location_needs_nuisance`` (and ``prefit`` is on).
+    baseline
+        The constant raw score minimising the weighted nll given the offset
+        (``family.baseline(y, w, offset=o)``), rounded to ``precision``.
+    start
+        Starting raw scores of the training rows: ``baseline + offset``.
+    """
+
+    family: object
+    baseline: float
+    start: np.ndarray
+    offset: np.ndarray | None
+
+    def start_for(self, n, offset=None, what="offset"):
+        """Starting raw scores of other rows (a validation set): baseline + their offset."""
+        s = np.full(n, self.baseline)
+        if offset is not None:
+            s += _checks.check_raw(np.asarray(offset, dtype=np.float64).reshape(-1), s, what)
+        return s
+
+
+def start_plan(fam, y, w, offset=None, *, prefit=True, precision=np.float64) -> StartPlan:
+    """Baseline given offset and weights, starting scores and the pre-fit (see StartPlan)."""
+    o = None if offset is None else _checks.check_raw(np.asarray(offset, dtype=np.float64).reshape(-1), y,
+                                                      f"{fam.name} offset")
+    baseline = float(precision(fam.baseline(y, w, offset=o)))
+    start = np.full(y.shape, baseline) if o is None else baseline + o
+    if prefit and fam.location_needs_nuisance and fam.params:
+        fam = fit_nuisance_or_keep(fam, y, start, w)
+    return StartPlan(fam, baseline, start, o)
+
+
+def fit_nuisance_or_keep(fam, y, raw, w):
+    """``fam.fit_nuisance``, keeping the given parameters where no maximum-likelihood value exists
+    (every residual zero: a scale of 0, a shape of infinity)."""
+    if not fam.params:
+        return fam
+    try:
+        return fam.fit_nuisance(y, raw, w)
+    except ValueError:
+        return fam
+
+
+def check_trained(fam, raw=None, pred=None, what="the training rows"):
+    """Refuse trained scores that are not finite or whose predictions leave the link's range.
+
+    Give ``raw`` (raw scores) or ``pred`` (the engine's transformed predictions
+    under a built-in objective: a probability, a mean).  A learning rate far
+    too large sends raw scores to +-inf or, under a log link, means to 0 or
+    inf; none of that is a model.  Raises ValueError naming the rows.
+    """
+    link = fam.link_function
+    with np.errstate(over="ignore", invalid="ignore"):
+        if raw is not None:
+            values = np.asarray(raw, dtype=np.float64).reshape(-1)
+            bad = ~np.isfinite(values)
+            if not bad.any():
+                bad = ~link.prediction_domain.inside(link.inverse(values))
+            kind = "raw scores"
+        else:
+            values = np.asarray(pred, dtype=np.float64).reshape(-1)
+            bad = ~link.prediction_domain.inside(values)
+            kind = "predictions"
+    if bad.any():
+        raise ValueError(
+            f"{fam.name}: training diverged: the trained model's predictions for {what} are not finite or "
+            f"leave the {link.name} link's range at {_checks._describe_rows(bad, values).replace(' outside', '')} "
+            f"({kind}); use a smaller learning rate (or a step_limit)"
+        )
