@@ -41,8 +41,10 @@ _FIELDS = {_KEY, "engine", "family", "baseline", "extra", "model", _filecheck.SE
 
 
 def _number_map(value, what: str) -> dict:
-    if not isinstance(value, dict) or not all(isinstance(k, str) and _filecheck.is_number(v) for k, v in value.items()):
-        raise ValueError(f"{what} must map parameter names to finite numbers, got {value!r:.80}")
+    """Family parameters: finite numbers, or booleans for a family's switches (student_t's estimate_df)."""
+    if not isinstance(value, dict) or not all(
+            isinstance(k, str) and (isinstance(v, bool) or _filecheck.is_number(v)) for k, v in value.items()):
+        raise ValueError(f"{what} must map parameter names to finite numbers or booleans, got {value!r:.80}")
     return value
 
 

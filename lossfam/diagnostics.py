@@ -56,7 +56,7 @@ __all__ = [
     "qq_data",
     "ks_statistic",
     "calibration_table",
-    "calibration_bins",
+    "binned_calibration",
     "interval_coverage",
     "log_interval_probability",
 ]
@@ -229,25 +229,30 @@ def ks_statistic(residuals) -> float:
     return float(stats.kstest(z, "norm").statistic)
 
 
-def calibration_table(family, y, raw, *, bins=10, strategy="quantile", weight=None) -> dict:
+def calibration_table(family, y, raw, *, bins=10, binning="equal_count", weight=None) -> dict:
     """Binned predicted probability against the observed rate, for 0/1 targets.
 
     The predicted probability that y = 1 is ``law.sf(0.5)`` = P(Y > 1/2), which
-    is p itself for bernoulli; the table is :func:`calibration_bins` of it.
+    is p itself for bernoulli; the table is :func:`binned_calibration` of it.
     """
     fam = _make_family(family)
     y = _checks.as_float_array(y, "y", fam.name)
     _checks.BINARY.check(y, "y (for a calibration table)", fam.name)
     raw = _checks.check_raw(raw, y, fam.name)
     p = np.asarray(fam.distribution(raw).sf(0.5), dtype=float)
-    return calibration_bins(y, p, bins=bins, strategy=strategy, weight=weight)
+    return binned_calibration(y, p, bins=bins, binning=binning, weight=weight)
 
 
-def calibration_bins(y, prob, *, bins=10, strategy="quantile", weight=None) -> dict:
+#: the ways :func:`binned_calibration` can cut [0, 1]
+BINNINGS = ("equal_count", "equal_width")
+
+
+def binned_calibration(y, prob, *, bins=10, binning="equal_count", weight=None) -> dict:
     """Calibration table from 0/1 targets and predicted probabilities of y = 1.
 
-    Rows are binned by ``prob``: ``strategy="quantile"`` gives bins with about
-    equal counts, ``"uniform"`` equal-width bins on [0, 1].  Returns a dict of
+    Rows are binned by ``prob``: ``binning="equal_count"`` cuts at the
+    sample quantiles of ``prob`` (bins with about equal row counts),
+    ``"equal_width"`` cuts [0, 1] into bins of equal width.  Returns a dict of
     equal-length arrays (empty bins dropped): ``lower``, ``upper`` (bin
     edges), ``predicted`` (mean predicted probability), ``observed`` (rate of
     y = 1), ``count`` (rows) and ``weight`` (their total weight; equal to
@@ -265,14 +270,14 @@ def calibration_bins(y, prob, *, bins=10, strategy="quantile", weight=None) -> d
     if isinstance(bins, bool) or int(bins) != bins or int(bins) < 1:
         raise ValueError(f"{owner}: bins must be an integer >= 1, got {bins!r}")
     bins = int(bins)
-    if strategy == "quantile":
+    if binning == "equal_count":
         edges = np.quantile(p, np.linspace(0.0, 1.0, bins + 1))
         edges[0], edges[-1] = 0.0, 1.0
         edges = np.unique(edges)
-    elif strategy == "uniform":
+    elif binning == "equal_width":
         edges = np.linspace(0.0, 1.0, bins + 1)
     else:
-        raise ValueError(f"{owner}: strategy must be 'quantile' or 'uniform', got {strategy!r}")
+        raise ValueError(f"{owner}: binning must be one of {', '.join(map(repr, BINNINGS))}, got {binning!r}")
     idx = np.clip(np.searchsorted(edges, p, side="right") - 1, 0, edges.size - 2)
     nb = edges.size - 1
     count = np.bincount(idx, minlength=nb)

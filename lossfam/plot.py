@@ -42,8 +42,8 @@ def qq_plot(residuals, *, ax=None, title=None, label=None):
     ax.plot(theo, sample, ".", ms=3, alpha=0.6, label=label)
     lim = float(max(np.max(np.abs(theo)), np.max(np.abs(sample)), 1.0))
     ax.plot([-lim, lim], [-lim, lim], color="0.3", lw=1)
-    ax.set_xlabel("standard normal quantile")
-    ax.set_ylabel("quantile residual")
+    ax.set_xlabel("where N(0, 1) puts it")
+    ax.set_ylabel("held-out residual on the normal scale")
     ax.set_title(title or "Normal QQ plot of quantile residuals")
     if label is not None:
         ax.legend(loc="upper left")
@@ -63,8 +63,8 @@ def pit_histogram(pit_values, *, bins=20, ax=None, title=None):
     ax.hist(u, bins=int(bins), range=(0.0, 1.0), density=True, color="C0", alpha=0.75, edgecolor="white")
     ax.axhline(1.0, color="0.3", lw=1)
     ax.set_xlim(0.0, 1.0)
-    ax.set_xlabel("PIT value")
-    ax.set_ylabel("density")
+    ax.set_xlabel("u = F(y), the law's cdf at the target")
+    ax.set_ylabel("height (flat at 1 when calibrated)")
     ax.set_title(title or "PIT histogram")
     return fig
 
@@ -72,7 +72,7 @@ def pit_histogram(pit_values, *, bins=20, ax=None, title=None):
 def calibration_plot(table, *, ax=None, title=None):
     """Calibration curve from :func:`lossfam.diagnostics.calibration_table`.
 
-    Observed rate against mean predicted probability per bin, marker area
+    Share of y = 1 against the average forecast chance per bin, marker area
     proportional to the bin's row count, with the diagonal of perfect calibration.
     """
     pred = np.asarray(table["predicted"], dtype=float)
@@ -85,8 +85,8 @@ def calibration_plot(table, *, ax=None, title=None):
     ax.scatter(pred, obs, s=size, color="C0", zorder=3)
     ax.set_xlim(0.0, 1.0)
     ax.set_ylim(0.0, 1.0)
-    ax.set_xlabel("mean predicted probability")
-    ax.set_ylabel("observed rate of y = 1")
+    ax.set_xlabel("forecast chance of y = 1 (bin average)")
+    ax.set_ylabel("share of rows with y = 1")
     ax.set_title(title or "Calibration")
     return fig
 
@@ -106,7 +106,7 @@ def coverage_plot(table, *, ax=None, title=None):
         ax.annotate(f"{ob:.3f}", (lv, ob), textcoords="offset points", xytext=(4, -10), fontsize=8)
     ax.set_xlim(0.0, 1.0)
     ax.set_ylim(0.0, 1.02)
-    ax.set_xlabel("nominal coverage")
-    ax.set_ylabel("observed coverage")
+    ax.set_xlabel("probability the interval should hold")
+    ax.set_ylabel("share of targets inside it")
     ax.set_title(title or "Prediction-interval coverage")
     return fig

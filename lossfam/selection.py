@@ -2,11 +2,13 @@ r"""Which noise model fits?  Cross-validated held-out likelihood of every candid
 
 ``lossfam.rank_families(X, y)`` fits one model per candidate family on each training
 fold, scores the held-out fold by its negative log-likelihood per row (nats),
-and ranks the families, best (lowest held-out nll) first.  Beside the score it
-reports the standard error of the fold means, the gap to the best family with
-a paired standard error, the fitted nuisance parameters, the observed coverage
-of the central 90% prediction interval and the Kolmogorov-Smirnov distance of
-the held-out quantile residuals from N(0, 1) (see :mod:`lossfam.diagnostics`).
+and puts the families in order, best (lowest held-out nll) first.  Beside the
+mean nll per row it reports how uncertain that mean is (standard error of the
+fold means), how far each family is behind the best one (with the standard
+error of that distance, paired over rows), the fitted nuisance parameters, a
+90% calibration check, the Kolmogorov-Smirnov distance of the held-out
+quantile residuals from N(0, 1) (see :mod:`lossfam.diagnostics`) and, with a
+boosting engine, the number of rounds each family used.
 
 One footing for discrete and continuous families
 ------------------------------------------------
@@ -34,33 +36,68 @@ reparametrised (scale 2b), so it would only duplicate the laplace row.  Pass it
 explicitly (e.g. ``lossfam.family("asymmetric_laplace", quantile=0.9)``) to
 compare a quantile model.
 
-Nuisance parameters and the order of fitting
---------------------------------------------
-Nuisance parameters are fitted on the training fold only, by
-``family.fit_nuisance(y_train, raw_train)`` after the location model, and the
-held-out fold is scored with them.  Where the location fit depends on the
-scale, the order is: scale, location, scale.
+Nuisance parameters: fitted on rows the model did not train on
+--------------------------------------------------------------
+A boosted model fits its training rows more closely than new ones, so a scale
+(or shape) fitted on its training residuals comes out too small and the
+predictive intervals too narrow; a light-tailed family is hurt more than a
+heavy-tailed one, which can flip the order.  With a boosting engine each
+training fold is therefore split once more (seeded): a held-back slice of
+``HOLD_BACK`` (20%) of its rows, and the rest, on which the trees grow.  The
+held-back slice serves two purposes:
 
-* laplace, asymmetric_laplace: their location (a median or quantile) does
-  not depend on the scale; the boosting engines grow their trees on the
-  pinball subgradient and set leaves to exact residual quantiles, and the
-  scale is fitted on the training residuals afterwards.  The linear engine
-  solves the quantile problem exactly (a linear programme).
-* huber (``location_needs_nuisance``): residuals beyond delta * scale are
-  down-weighted, so the location estimate itself depends on the scale.  The
-  linear engine fits scale and coefficients jointly.  With either boosting
-  engine: pilot scale at the baseline, trees, scale from their residuals,
-  then the trees once more at that scale (``prefit=False``) and the scale
-  once more (one step of the alternating location/scale fit).
-* gaussian, gamma (exact Hessians): the Newton step does not depend on the
-  nuisance parameter, so the location is fitted with the defaults, then the parameter.
+* fair rounds: it is the engine's validation set, scored by the family's own
+  nll after every round; training stops ``STOP_PATIENCE`` rounds after the
+  best round (``rounds`` is the maximum) and the model is cut back to its
+  best round.  Each family thus gets the number of rounds that suits it; the
+  column ``rounds_used`` reports the mean over folds;
+* honest nuisance parameters: ``family.fit_nuisance(y, raw)`` on the
+  held-back rows' targets and raw scores, which the trees never saw.
 
-Reported parameters are the means over the training folds.
+The held-out fold is then scored with that model and those parameters.  For
+huber, whose location fit depends on the scale, the trees are grown once more
+at the held-back scale (both boosting engines) and the scale refitted (one step of the
+alternating location/scale fit).  The linear engine fits on the whole
+training fold: a linear model with a handful of coefficients barely overfits,
+and the nuisance parameters are its maximum-likelihood fits (huber: fitted
+jointly with the coefficients).  Reported parameters are the means over folds.
+
+Calibration column
+------------------
+``calibration90`` is the weighted fraction of held-out rows whose PIT value
+u = F(y) lies in [0.05, 0.95]; it is 0.90 up to sampling noise when the
+predictive law is right.  For count and label families the PIT is the
+randomized one of :mod:`lossfam.diagnostics` (uniform under the right model),
+and for continuous families scored on integer targets it is randomized over
+the unit interval around y.  For a continuous family it equals the coverage
+of the central 90% interval.  For discrete families the plain coverage of the
+central 90% interval (whose end points are integers, so it over-covers by
+construction) is kept as the labelled extra ``plain_interval90``.
+
+Offsets and exposure
+--------------------
+``offset`` is added to every raw score (training, held-back and held-out
+rows, every family and engine); ``exposure`` adds log(exposure), so a log-link
+mean becomes rate x exposure.  Both may be given (they add).  Every score,
+residual, calibration figure and plot is computed from the raw score with the
+offset included.
+
+Feature columns
+---------------
+X may be a numeric array or a pandas DataFrame.  In a DataFrame, numeric and
+boolean columns are used as numbers; text (object/string) and categorical
+columns are categories: LightGBM and XGBoost split on them natively (pandas
+``category`` dtype), the linear engine uses a one-hot encoding fitted on each
+training fold (first level as reference; levels not seen in the training fold
+get the reference's coefficient).  Datetime columns are turned into one number,
+days since 1970-01-01 (UTC for time-zone aware columns, fractional), so a
+trend in time can be learnt; other dtypes are refused with the column's name.
 """
 from __future__ import annotations
 
 import math
 import sys
+import warnings
 
 import numpy as np
 
@@ -68,6 +105,7 @@ from . import _checks, diagnostics
 from .registry import available, family as make_family
 
 ENGINES = ("linear", "lightgbm", "xgboost")
+BOOSTING = ("lightgbm", "xgboost")
 
 #: families left out of the default candidates (see the module docstring)
 NOT_BY_DEFAULT = ("asymmetric_laplace",)
@@ -75,10 +113,16 @@ NOT_BY_DEFAULT = ("asymmetric_laplace",)
 #: (``Family.location_needs_nuisance``) get one more location/scale round (the linear
 #: engine fits huber jointly)
 _REFIT_ENGINES = ("lightgbm", "xgboost")
-#: central interval whose coverage is reported
-COVERAGE_LEVEL = 0.9
+#: PIT values inside [(1 - level)/2, (1 + level)/2] make the calibration column
+CALIBRATION_LEVEL = 0.9
 #: levels of the coverage table kept for plots
 PLOT_LEVELS = (0.5, 0.8, 0.9, 0.95)
+#: share of each training fold held back (boosting engines): early stopping and nuisance fits
+HOLD_BACK = 0.2
+#: rounds without improvement of the held-back nll before training stops
+STOP_PATIENCE = 20
+#: default maximum number of boosting rounds
+DEFAULT_ROUNDS = 300
 
 SCORED_DENSITY = "log density"
 SCORED_MASS = "log probability"
@@ -93,46 +137,74 @@ BOOST_DEFAULTS = {
     "lightgbm": {"learning_rate": 0.1, "num_leaves": 15, "min_data_in_leaf": 20, "num_threads": 2, "verbose": -1},
     "xgboost": {"eta": 0.1, "max_depth": 4, "nthread": 2},
 }
+#: the engines' names for their thread count
+THREAD_PARAM = {"lightgbm": "num_threads", "xgboost": "nthread"}
 
-__all__ = ["rank_families", "ENGINES", "NOT_BY_DEFAULT"]
+#: the table's columns, in order (see :func:`rank_families`)
+COLUMNS = ("place", "family", "nll_per_row", "nll_uncertainty", "behind_best", "behind_best_uncertainty",
+           "calibration90", "plain_interval90", "residual_ks", "rounds_used", "nuisance", "scored_by",
+           "status", "note")
+
+__all__ = ["rank_families", "ENGINES", "NOT_BY_DEFAULT", "COLUMNS", "Ranking"]
 
 
 # ---------------------------------------------------------------------- engines
-def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=False):
-    """Fit a location model for ``fam``; return a function X -> raw scores.
+def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=False, offset=None, hold=None):
+    """Fit a location model for ``fam``; return (function (X, offset) -> raw scores, rounds used).
 
     The one place that knows each engine's fitting call.  ``keep_params``:
     train with the family's nuisance parameters as given (no pilot fit).
+    ``hold`` = (X, y, w, offset) of the held-back rows: the validation set of
+    early stopping on the family's nll (boosting engines).
     """
     if engine == "linear":
-        return _fit_linear_bounded(fam, X, y, w, seed=seed, options=options)
+        return _fit_linear(fam, X, y, w, offset, options, seed), None
     if engine == "lightgbm":
         import lightgbm as lgb
 
         from .lightgbm import train
 
         params = {**BOOST_DEFAULTS["lightgbm"], "seed": seed, **options}
-        model = train(fam, params, lgb.Dataset(X, y, weight=w), num_boost_round=rounds, prefit=not keep_params)
-        return lambda Z: np.asarray(model.predict_raw(Z), dtype=float)
-    if engine == "xgboost":
+        leaf = int(params.get("min_data_in_leaf", 20))
+        if len(y) < 2 * leaf:  # LightGBM would stop with a native fatal error (no feature can be split)
+            raise ValueError(f"too few rows to grow trees: {len(y)} training rows in a fold, fewer than "
+                             f"2 x min_data_in_leaf = {2 * leaf}; use more rows, fewer folds or a smaller "
+                             "min_data_in_leaf")
+        kw = {}
+        if hold is not None:
+            kw = {"valid_sets": [lgb.Dataset(hold[0], hold[1], weight=hold[2])], "valid_offsets": [hold[3]],
+                  "callbacks": [lgb.early_stopping(STOP_PATIENCE, first_metric_only=True, verbose=False)]}
+        model = train(fam, params, lgb.Dataset(X, y, weight=w), num_boost_round=rounds, offset=offset,
+                      prefit=not keep_params, **kw)
+    elif engine == "xgboost":
         import xgboost as xgb
 
         from .xgboost import train
 
         params = {**BOOST_DEFAULTS["xgboost"], "seed": seed, **options}
-        model = train(fam, params, xgb.DMatrix(X, y, weight=w), num_boost_round=rounds, prefit=not keep_params)
-        return lambda Z: np.asarray(model.predict_raw(Z), dtype=float)
-    raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+        cat = _has_categories(X)
+        kw = {}
+        if hold is not None:
+            dh = xgb.DMatrix(hold[0], hold[1], weight=hold[2], base_margin=hold[3], enable_categorical=cat)
+            kw = {"evals": [(dh, "held_back")], "early_stopping_rounds": STOP_PATIENCE, "verbose_eval": False}
+        model = train(fam, params, xgb.DMatrix(X, y, weight=w, base_margin=offset, enable_categorical=cat),
+                      num_boost_round=rounds, prefit=not keep_params, **kw)
+    else:
+        raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+    # with early stopping the model keeps rounds 0..best_iteration
+    used = model.best_iteration + 1 if model.best_iteration is not None else rounds
+    return (lambda Z, off=None: np.asarray(model.predict_raw(Z, offset=off), dtype=float)), int(used)
 
 
 #: ridge penalties (on standardised columns) tried when a family's unpenalised MLE is unbounded
 RIDGE_FALLBACK = (1e-4, 1e-3, 1e-2, 1e-1)
 
 
-def _fit_linear_bounded(fam, X, y, w, *, seed, options):
-    """Linear engine: the unpenalised MLE, or a small ridge penalty where that MLE is unbounded.
+def _fit_linear(fam, X, y, w, offset, options, seed):
+    """The linear engine: LikelihoodRegressor on the (one-hot encoded, centred) features.
 
-    When the fit warns that the likelihood has no finite maximiser (separated
+    The unpenalised MLE, or a small ridge penalty where that MLE is unbounded:
+    when the fit warns that the likelihood has no finite maximiser (separated
     0/1 classes for bernoulli, zero counts a linear score can push to a mean of
     0 for poisson), the fold is refitted with a ridge penalty alpha on the
     standardised columns x_j / sd(x_j), alpha chosen from RIDGE_FALLBACK by
@@ -140,50 +212,90 @@ def _fit_linear_bounded(fam, X, y, w, *, seed, options):
     family).  The returned predictor carries ``note`` saying so (shown in the
     table).  A penalty given in ``options`` (alpha) is used as it is.
     """
-    import warnings
-
     from .sklearn import LikelihoodRegressor, UnboundedLikelihoodWarning
 
+    onehot = _OneHot(X) if _has_categories(X) else None
+    Xe = X if onehot is None else onehot(X)
+    # centre the columns at the training fold's means: the same model (the intercept absorbs the
+    # shift, and a penalty never applies to it), but a column far from 0 with little spread (a date
+    # as days since 1970) is no longer nearly collinear with the intercept
+    centre = Xe.mean(axis=0)
+    Xc = Xe - centre
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", UnboundedLikelihoodWarning)
-        est = LikelihoodRegressor(family=fam, **options).fit(X, y, sample_weight=w)
+        est = LikelihoodRegressor(family=fam, **options).fit(Xc, y, sample_weight=w, offset=offset)
     unbounded = [c for c in caught if issubclass(c.category, UnboundedLikelihoodWarning)]
     for c in caught:
         if c not in unbounded:
             warnings.warn_explicit(c.message, c.category, c.filename, c.lineno)
-    if not unbounded or "alpha" in options:
-        predict = lambda Z: np.asarray(est.predict_raw(Z), dtype=float)  # noqa: E731
-        predict.note = ""
-        return predict
-    sd = np.std(X, axis=0)
-    sd[~(sd > 0)] = 1.0
-    Xs = X / sd
-    inner = _folds(y.size, 3, seed)
-    best, best_alpha = np.inf, RIDGE_FALLBACK[-1]
-    for alpha in RIDGE_FALLBACK:
-        total = 0.0
-        for test in inner:
-            train = np.ones(y.size, dtype=bool)
-            train[test] = False
-            m = LikelihoodRegressor(family=fam, alpha=alpha, **options).fit(Xs[train], y[train], sample_weight=w[train])
-            total += float(np.dot(w[test], m.family_.nll(y[test], m.predict_raw(Xs[test]))))
-        if total < best:
-            best, best_alpha = total, alpha
-    est = LikelihoodRegressor(family=fam, alpha=best_alpha, **options).fit(Xs, y, sample_weight=w)
-    predict = lambda Z: np.asarray(est.predict_raw(np.asarray(Z, dtype=float) / sd), dtype=float)  # noqa: E731
-    predict.note = (f"unpenalised MLE unbounded; ridge alpha={best_alpha:g} on standardised columns, "
-                    "chosen by 3-fold CV within the training fold")
+    sd = np.ones(Xc.shape[1])
+    note = ""
+    if unbounded and "alpha" not in options:
+        sd = np.std(Xc, axis=0)
+        sd[~(sd > 0)] = 1.0
+        Xs = Xc / sd
+        inner = _folds(y.size, 3, seed)
+        best, best_alpha = np.inf, RIDGE_FALLBACK[-1]
+        for alpha in RIDGE_FALLBACK:
+            total = 0.0
+            for test in inner:
+                train = np.ones(y.size, dtype=bool)
+                train[test] = False
+                o_tr = None if offset is None else offset[train]
+                o_te = None if offset is None else offset[test]
+                m = LikelihoodRegressor(family=fam, alpha=alpha, **options).fit(
+                    Xs[train], y[train], sample_weight=w[train], offset=o_tr)
+                total += float(np.dot(w[test], m.family_.nll(y[test], m.predict_raw(Xs[test], offset=o_te))))
+            if total < best:
+                best, best_alpha = total, alpha
+        est = LikelihoodRegressor(family=fam, alpha=best_alpha, **options).fit(Xs, y, sample_weight=w, offset=offset)
+        note = (f"unpenalised MLE unbounded; ridge alpha={best_alpha:g} on standardised columns, "
+                "chosen by 3-fold CV within the training fold")
+
+    def predict(Z, off=None):
+        Ze = Z if onehot is None else onehot(Z)
+        return np.asarray(est.predict_raw((Ze - centre) / sd, offset=off), dtype=float)
+    predict.note = note
     return predict
 
 
-def _fit_family(fit, engine, fam, X, y, w):
-    """Location then nuisance parameters on one training fold (order: module docstring)."""
-    predict = fit(fam, X, y, w, False)
-    fam = fam.fit_nuisance(y, predict(X), w)
+class _OneHot:
+    """One-hot encoding of a DataFrame's category columns fitted on training rows (sparse, first level dropped)."""
+
+    def __init__(self, frame):
+        from sklearn.preprocessing import OneHotEncoder
+
+        self.cats = [c for c in frame.columns if str(frame[c].dtype) == "category"]
+        self.nums = [c for c in frame.columns if c not in self.cats]
+        self.enc = OneHotEncoder(drop="first", handle_unknown="ignore", sparse_output=True)
+        self.enc.fit(frame[self.cats].astype(object))
+
+    def __call__(self, frame):
+        import scipy.sparse as sp
+
+        with warnings.catch_warnings():
+            # levels unseen in the training fold are encoded as the reference level (documented)
+            warnings.filterwarnings("ignore", message="Found unknown categories")
+            dummies = self.enc.transform(frame[self.cats].astype(object))
+        nums = sp.csr_matrix(frame[self.nums].to_numpy(dtype=float)) if self.nums else None
+        out = dummies if nums is None else sp.hstack([nums, dummies], format="csr")
+        # the linear estimators take dense arrays: the encoding is built sparse, handed over dense
+        return out.toarray()
+
+
+def _has_categories(X):
+    return hasattr(X, "dtypes") and any(str(t) == "category" for t in X.dtypes)
+
+
+def _fit_family(fit, engine, fam, X, y, w, off, hold):
+    """Location, then nuisance parameters from held-back rows (boosting) or the training fold (linear)."""
+    predict, used = fit(fam, X, y, w, off, hold, False)
+    Xn, yn, wn, on = hold if hold is not None else (X, y, w, off)
+    fam = fam.fit_nuisance(yn, predict(Xn, on), wn)
     if engine in _REFIT_ENGINES and fam.location_needs_nuisance and fam.params:
-        predict = fit(fam, X, y, w, True)
-        fam = fam.fit_nuisance(y, predict(X), w)
-    return fam, predict
+        predict, used = fit(fam, X, y, w, off, hold, True)
+        fam = fam.fit_nuisance(yn, predict(Xn, on), wn)
+    return fam, predict, used
 
 
 # ---------------------------------------------------------------------- scoring
@@ -272,7 +384,83 @@ def _candidates(families, y):
     return out
 
 
-# ---------------------------------------------------------------------- public
+# ---------------------------------------------------------------------- inputs
+def _features(X, n_rows_hint=None):
+    """(features for the engines, feature names, kinds by name): a float array, or a DataFrame with categories."""
+    if hasattr(X, "iloc") and hasattr(X, "dtypes") and hasattr(X, "columns"):
+        return _frame_features(X)
+    arr = np.asarray(X)
+    if arr.dtype.kind in "OUS":
+        import pandas as pd
+
+        return _frame_features(pd.DataFrame(arr if arr.ndim == 2 else arr[:, None]))
+    X = _checks.as_float_array(X, "X", "rank_families")
+    if X.ndim == 1:
+        X = X[:, None]
+    names = [f"x{j}" for j in range(X.shape[1])] if X.ndim == 2 else []
+    return X, names, {nm: "number" for nm in names}
+
+
+def _frame_features(frame):
+    import pandas as pd
+
+    out, kinds = {}, {}
+    for col in frame.columns:
+        s = frame[col]
+        name = str(col)
+        kind = s.dtype.kind
+        if isinstance(s.dtype, pd.CategoricalDtype):
+            out[name] = s.cat.remove_unused_categories()
+            kinds[name] = "category"
+        elif kind == "M":
+            if getattr(s.dt, "tz", None) is not None:
+                s = s.dt.tz_convert("UTC").dt.tz_localize(None)
+            days = (s - pd.Timestamp("1970-01-01")) / pd.Timedelta(days=1)
+            out[name] = days.astype(float)
+            kinds[name] = "date (days since 1970-01-01)"
+        elif kind in "biuf":
+            out[name] = s.astype(float)
+            kinds[name] = "number"
+        elif kind in "OSU" or isinstance(s.dtype, pd.StringDtype):
+            bad = [i for i, v in enumerate(s.to_numpy()) if not (isinstance(v, str) or v is None
+                                                               or (isinstance(v, float) and math.isnan(v)))]
+            if bad:
+                raise ValueError(f"rank_families: column {name!r} mixes text with other values, e.g. rows "
+                                 f"{bad[:5]} (counted from 0); make it all text (a category) or all numbers")
+            out[name] = s.astype("category")
+            kinds[name] = "category"
+        else:
+            raise ValueError(f"rank_families: column {name!r} has dtype {s.dtype}, which is neither a number, "
+                             "a category, text nor a date")
+    if not out:
+        raise ValueError("rank_families: X has no feature columns")
+    feats = pd.DataFrame(out, index=range(len(frame)))
+    if all(v == "number" or v.startswith("date") for v in kinds.values()):
+        return feats.to_numpy(dtype=float), list(out), kinds
+    return feats, list(out), kinds
+
+
+def _rows(X, idx):
+    return X.iloc[idx].reset_index(drop=True) if hasattr(X, "iloc") else X[idx]
+
+
+def _offsets(offset, exposure, n):
+    """The total raw-scale offset (offset + log exposure) or None."""
+    total = None
+    if offset is not None:
+        total = _checks.as_float_array(offset, "offset", "rank_families").ravel()
+        if total.size != n:
+            raise ValueError(f"rank_families: offset has {total.size} values for {n} rows")
+        _checks.REAL.check(total, "offset", "rank_families")
+    if exposure is not None:
+        e = _checks.as_float_array(exposure, "exposure", "rank_families").ravel()
+        if e.size != n:
+            raise ValueError(f"rank_families: exposure has {e.size} values for {n} rows")
+        _checks.Domain("finite and > 0", lambda a: np.isfinite(a) & (a > 0)).check(e, "exposure", "rank_families")
+        total = np.log(e) if total is None else total + np.log(e)
+    return total
+
+
 def _as_inputs(X, y, weight, engine):
     y = _checks.as_float_array(y, "y", "rank_families")
     if y.ndim != 1:
@@ -280,43 +468,80 @@ def _as_inputs(X, y, weight, engine):
     if y.ndim != 1:
         raise ValueError(f"rank_families: y must be one-dimensional, got shape {y.shape}")
     _checks.REAL.check(y, "y", "rank_families")
-    X = _checks.as_float_array(X, "X", "rank_families")
-    if X.ndim == 1:
-        X = X[:, None]
+    X, names, kinds = _features(X)
     if X.ndim != 2 or X.shape[0] != y.shape[0]:
         raise ValueError(f"rank_families: X must be 2-D with one row per target; X has shape {X.shape}, y has {y.shape[0]} rows")
     if X.shape[1] == 0:
         raise ValueError("rank_families: X has no feature columns")
+    numeric = X if isinstance(X, np.ndarray) else X[[c for c in X.columns if kinds[c] != "category"]].to_numpy(float)
     if engine == "linear":
-        _checks.REAL.check(X, "X (the linear engine needs finite features)", "rank_families")
-    elif np.any(np.isinf(X)):
-        _checks.Domain("finite or NaN (missing)", lambda a: ~np.isinf(a)).check(X, "X", "rank_families")
+        _checks.REAL.check(numeric, "X (the linear engine needs finite features)", "rank_families")
+    elif np.any(np.isinf(numeric)):
+        _checks.Domain("finite or NaN (missing)", lambda a: ~np.isinf(a)).check(numeric, "X", "rank_families")
     w = _checks.check_weight(weight, y, "rank_families", need_positive_sum=True)
     w = np.ones_like(y) if w is None else np.ascontiguousarray(w, dtype=float)
-    return X, y, w
+    return X, y, w, names, kinds
+
+
+def _engine_errors(engine):
+    """Exceptions that mean "this family could not be fitted here" (listed as failed, not raised)."""
+    # ArithmeticError: overflow, division by zero, floating-point traps; RuntimeError: a solver giving up
+    errors = [ValueError, ArithmeticError, RuntimeError, np.linalg.LinAlgError]
+    if engine == "lightgbm":
+        import lightgbm as lgb
+
+        errors.append(lgb.basic.LightGBMError)
+    elif engine == "xgboost":
+        import xgboost as xgb
+
+        errors.append(xgb.core.XGBoostError)
+    return tuple(errors)
+
+
+def _split_hold(idx, seed, k):
+    """Split a training fold's row indices into (grow, held back)."""
+    rng = np.random.default_rng([seed, k, 7])
+    perm = rng.permutation(idx)
+    m = max(1, int(round(HOLD_BACK * perm.size)))
+    return np.sort(perm[m:]), np.sort(perm[:m])
 
 
 def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, *,
-                      rounds=100, engine_params=None, progress=None):
-    """The machinery behind :func:`rank_families`: returns (rows, details by label)."""
+                   offset=None, exposure=None, rounds=DEFAULT_ROUNDS, engine_params=None, threads=None,
+                   progress=None):
+    """The machinery behind :func:`rank_families`: returns (rows, details by label, summary)."""
     if engine not in ENGINES:
         raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
-    X, y, w = _as_inputs(X, y, weight, engine)
+    X, y, w, names, kinds = _as_inputs(X, y, weight, engine)
     n = y.size
+    off = _offsets(offset, exposure, n)
     if isinstance(folds, bool) or not isinstance(folds, (int, np.integer)) or not 2 <= folds <= n:
         raise ValueError(f"rank_families: folds must be an integer between 2 and the number of rows ({n}), got {folds!r}")
-    if int(rounds) < 1:
-        raise ValueError(f"rank_families: rounds must be >= 1, got {rounds!r}")
+    if isinstance(rounds, bool) or int(rounds) != rounds or int(rounds) < 1:
+        raise ValueError(f"rank_families: rounds must be an integer >= 1, got {rounds!r}")
     options = dict(engine_params or {})
+    if threads is not None:
+        if isinstance(threads, bool) or int(threads) != threads or int(threads) < 1:
+            raise ValueError(f"rank_families: threads must be an integer >= 1, got {threads!r}")
+        if engine in THREAD_PARAM:
+            options[THREAD_PARAM[engine]] = int(threads)
+    boosting = engine in BOOSTING
     integer_footing = bool(np.all(np.floor(y) == y))
     say = progress if callable(progress) else (
         (lambda msg: print(f"[lossfam rank] {msg}", file=sys.stderr, flush=True)) if progress else (lambda msg: None))
 
-    def fit(fam, Xa, ya, wa, keep_params):
+    def fit(fam, Xa, ya, wa, oa, hold, keep_params):
         return _fit_engine(engine, fam, Xa, ya, wa, seed=seed, rounds=int(rounds), options=options,
-                           keep_params=keep_params)
+                           keep_params=keep_params, offset=oa, hold=hold)
+
+    def sub(a, idx):
+        return None if a is None else a[idx]
 
     parts = _folds(n, int(folds), seed)
+    fold_of = np.empty(n, dtype=int)
+    for k, test in enumerate(parts):
+        fold_of[test] = k
+    failures = _engine_errors(engine)
     rows, details = [], {}
     cands = _candidates(families, y)
     for ci, (fam0, na_label, reason, obj) in enumerate(cands):
@@ -324,53 +549,74 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
             rows.append({"family": na_label, "status": STATUS_NA, "note": reason})
             continue
         nll_rows = np.empty(n)
-        z_all, u_all = np.empty(n), np.empty(n)
+        z_all, u_all, mean_all = np.empty(n), np.empty(n), np.empty(n)
         inside = {lv: np.zeros(n, dtype=bool) for lv in PLOT_LEVELS}
         p1 = np.empty(n) if np.all((y == 0) | (y == 1)) else None
-        fold_means, params, penalty_notes = [], [], []
+        fold_means, params, used, penalty_notes = [], [], [], []
         label = fam0.name
         try:
             for k, test in enumerate(parts):
                 say(f"{engine}: {fam0.name} fold {k + 1}/{len(parts)} ({ci + 1}/{len(cands)} families)")
-                train = np.ones(n, dtype=bool)
-                train[test] = False
-                fam, predict = _fit_family(fit, engine, fam0, X[train], y[train], w[train])
+                train = np.setdiff1d(np.arange(n), test)
+                hold = None
+                if boosting:
+                    train, back = _split_hold(train, seed, k)
+                    hold = (_rows(X, back), y[back], w[back], sub(off, back))
+                fam, predict, k_used = _fit_family(fit, engine, fam0, _rows(X, train), y[train], w[train],
+                                                   sub(off, train), hold)
                 penalty_notes.append(getattr(predict, "note", ""))
-                raw = predict(X[test])
+                raw = predict(_rows(X, test), sub(off, test))
+                if not np.all(np.isfinite(raw)):
+                    raise ValueError(f"the model's raw scores on held-out fold {k + 1} are not all finite")
                 rng = np.random.default_rng([seed, k])
                 s_nll, s_z, s_u, s_in, s_p1 = _score_fold(fam, y[test], raw, integer_footing, rng)
+                if not np.all(np.isfinite(s_nll)):
+                    raise ValueError(f"the held-out nll on fold {k + 1} is not finite for "
+                                     f"{int(np.sum(~np.isfinite(s_nll)))} row(s)")
                 nll_rows[test], z_all[test], u_all[test] = s_nll, s_z, s_u
+                mean_all[test] = np.asarray(fam.distribution(raw).mean(), dtype=float)
                 for lv in PLOT_LEVELS:
                     inside[lv][test] = s_in[lv]
                 if p1 is not None:
                     p1[test] = s_p1
                 fold_means.append(_wmean(s_nll, w[test]))
                 params.append(fam.params)
+                if k_used is not None:
+                    used.append(k_used)
                 if k == 0:
                     label = _label(fam0, obj, fam.params)
                     while label in details:
                         label += "'"  # the same family listed twice
-        except ValueError as exc:
-            rows.append({"family": _label(fam0, obj, None), "status": STATUS_FAILED, "note": str(exc)})
+        except failures as exc:
+            msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+            rows.append({"family": _label(fam0, obj, None), "status": STATUS_FAILED, "note": msg})
             continue
         kf = len(fold_means)
         se = float(np.std(fold_means, ddof=1) / math.sqrt(kf))
         mean_params = {key: float(np.mean([p[key] for p in params])) for key in params[0]}
         scored = SCORED_MASS if fam0.discrete else (SCORED_INTERVAL if integer_footing else SCORED_DENSITY)
-        note = ""
+        notes = []
         if scored == SCORED_INTERVAL:
-            note = "continuous law scored on integer targets by the probability of the unit interval around y"
+            notes.append("continuous law scored on integer targets by the probability of the unit interval around y")
+        if exposure is not None and fam0.link_function.name != "log":
+            notes.append(f"log(exposure) shifts this family's raw score on its {fam0.link_function.name} "
+                         "link; exposure scales the mean only under a log link")
         penalised = [t for t in penalty_notes if t]
         if penalised:
-            note = "; ".join(filter(None, [f"{len(penalised)} of {len(penalty_notes)} folds: {penalised[0]}", note]))
+            notes.insert(0, f"{len(penalised)} of {len(penalty_notes)} folds: {penalised[0]}")
+        note = "; ".join(notes)
+        lo_u, hi_u = (1 - CALIBRATION_LEVEL) / 2, (1 + CALIBRATION_LEVEL) / 2
+        discrete_like = fam0.discrete or integer_footing
         rows.append({
             "family": label,
             "status": STATUS_OK,
-            "nll": _wmean(nll_rows, w),
-            "nll_se": se,
-            "coverage90": _wmean(inside[COVERAGE_LEVEL], w),
-            "ks": diagnostics.ks_statistic(z_all),
-            "params": mean_params,
+            "nll_per_row": _wmean(nll_rows, w),
+            "nll_uncertainty": se,
+            "calibration90": _wmean((u_all >= lo_u) & (u_all <= hi_u), w),
+            "plain_interval90": _wmean(inside[CALIBRATION_LEVEL], w) if discrete_like else None,
+            "residual_ks": diagnostics.ks_statistic(z_all),
+            "rounds_used": float(np.mean(used)) if used else None,
+            "nuisance": mean_params,
             "scored_by": scored,
             "note": note,
         })
@@ -378,6 +624,8 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
             "nll_rows": nll_rows,
             "residuals": z_all,
             "pit": u_all,
+            "mean": mean_all,
+            "fold": fold_of,
             "coverage": {
                 "level": np.asarray(PLOT_LEVELS),
                 "observed": np.asarray([_wmean(inside[lv], w) for lv in PLOT_LEVELS]),
@@ -385,39 +633,64 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
             },
             "p1": p1,
         }
-    return _finish(rows, details, y, w), details
+    summary = {
+        "rows": int(n), "features": names, "feature_kinds": kinds, "folds": int(folds), "engine": engine,
+        "seed": seed, "max_rounds": int(rounds) if boosting else None,
+        "offset": "given" if offset is not None else None, "exposure": "given" if exposure is not None else None,
+    }
+    return _finish(rows, details, y, w), details, summary
 
 
 def _finish(rows, details, y, w):
-    ok = sorted((r for r in rows if r["status"] == STATUS_OK), key=lambda r: r["nll"])
+    ok = sorted((r for r in rows if r["status"] == STATUS_OK), key=lambda r: r["nll_per_row"])
     rest = [r for r in rows if r["status"] == STATUS_FAILED] + [r for r in rows if r["status"] == STATUS_NA]
     out = []
     best = details[ok[0]["family"]]["nll_rows"] if ok else None
-    for rank, r in enumerate(ok, start=1):
+    for place, r in enumerate(ok, start=1):
         d = details[r["family"]]["nll_rows"] - best
-        # paired over rows: the gap's standard error is that of the mean row-wise difference
-        gap_se = float(np.sqrt(np.cov(d, aweights=w)) / math.sqrt(d.size)) if rank > 1 else 0.0
-        out.append(_row(rank=rank, gap=_wmean(d, w), gap_se=gap_se, **r))
+        # paired over rows: the distance's standard error is that of the mean row-wise difference;
+        # the best row has no distance to be uncertain about (None, null in JSON)
+        unc = float(np.sqrt(np.cov(d, aweights=w)) / math.sqrt(d.size)) if place > 1 else None
+        out.append(_row(place=place, behind_best=_wmean(d, w), behind_best_uncertainty=unc, **r))
     for r in rest:
-        out.append(_row(rank=None, **r))
+        out.append(_row(place=None, **r))
     return out
 
 
-_COLUMNS = ("rank", "family", "nll", "nll_se", "gap", "gap_se", "coverage90", "ks", "params", "scored_by", "status", "note")
-
-
 def _row(**kw):
-    return {c: kw.get(c) for c in _COLUMNS} | {"note": kw.get("note") or ""}
+    return {c: kw.get(c) for c in COLUMNS} | {"note": kw.get("note") or ""}
+
+
+class Ranking(list):
+    """The rows of :func:`rank_families` (a list of dicts) that render as an HTML table in notebooks."""
+
+    notes = ()
+
+    def _repr_html_(self):
+        from .report import table_html
+
+        return table_html(self, notes=self.notes)
+
+
+def _table_notes(rows):
+    notes = []
+    if any(r["scored_by"] == SCORED_INTERVAL for r in rows):
+        notes.append("integer-valued targets: continuous families are scored by "
+                     "-log(F(y+1/2) - F(y-1/2)), the probability of the unit interval around y")
+    return notes
 
 
 def rank_families(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, *,
-            rounds=100, engine_params=None, progress=False, as_frame=None):
-    """Rank noise models by cross-validated held-out negative log-likelihood.
+                  offset=None, exposure=None, rounds=DEFAULT_ROUNDS, engine_params=None, threads=None,
+                  progress=False, as_frame=None):
+    """Put noise models in order by cross-validated held-out negative log-likelihood.
 
     Parameters
     ----------
-    X : array-like (n, p)
-        Features (NaN allowed as missing for the boosting engines).
+    X : array-like (n, p) or pandas DataFrame
+        Features (NaN allowed as missing for the boosting engines).  In a
+        DataFrame, text and categorical columns are categories and datetime
+        columns become days since 1970-01-01 (module docstring).
     y : array-like (n,)
         Targets.  Integer-valued targets put continuous families on the
         interval-probability footing (module docstring).
@@ -425,50 +698,73 @@ def rank_families(X, y, families=None, engine="linear", folds=5, weight=None, se
         Default: every registered family applicable to y except asymmetric_laplace.
     engine : {"linear", "lightgbm", "xgboost"}
         "linear": ``lossfam.sklearn.LikelihoodRegressor``; the others boost
-        ``rounds`` trees with ``lossfam.lightgbm.train`` / ``lossfam.xgboost.train``.
+        trees with ``lossfam.lightgbm.train`` / ``lossfam.xgboost.train``.
     folds : int
         Number of cross-validation folds (rows shuffled with ``seed``).
     weight : array-like (n,), optional
         Row weights, used in fitting and in every mean reported.
     seed : int
-        Seeds the folds, the engines and the randomized residuals.
+        Seeds the folds, the held-back slices, the engines and the randomized residuals.
+    offset : array-like (n,), optional
+        Raw-scale offset added to every raw score.
+    exposure : array-like (n,), optional
+        Positive exposure; its log is added to the offset (log-link means
+        become rate x exposure).
     rounds : int
-        Boosting rounds (boosting engines only).
+        Maximum boosting rounds; each family stops early on its own held-back
+        nll (module docstring).  Boosting engines only.
     engine_params : dict, optional
         Extra settings for the engine (estimator keyword arguments for
         "linear", booster parameters for the others).
+    threads : int, optional
+        Threads per boosting engine (default 2).
     progress : bool or callable
         Report progress (on stderr when True, or to the callable).
     as_frame : bool, optional
         Return a pandas DataFrame (default when pandas is installed) or a
-        list of dicts.
+        :class:`Ranking` (a list of dicts that renders as HTML in notebooks).
 
     Returns
     -------
-    Table, best first, one row per family with columns: ``rank`` (None when
-    not scored), ``family``, ``nll`` (mean held-out nll per row, nats),
-    ``nll_se`` (standard error of the fold means), ``gap`` (nll minus the
-    best family's) and ``gap_se`` (its standard error, paired over rows),
-    ``coverage90`` (observed coverage of the central 90% interval), ``ks``
-    (Kolmogorov-Smirnov distance of the held-out quantile residuals from
-    N(0, 1); unweighted, over all rows), ``params`` (fitted nuisance parameters, mean over folds),
-    ``scored_by`` (log density, log probability, or log probability of the
-    unit interval around y), ``status`` ("ok", "not applicable", "failed")
-    and ``note`` (the reason, or the footing).
+    Table, best first, one row per family, columns :data:`COLUMNS`:
+
+    * ``place``: 1 for the best family (None when not scored);
+    * ``family``;
+    * ``nll_per_row``: mean held-out nll per row (nats), lower is better;
+    * ``nll_uncertainty``: its standard error over folds;
+    * ``behind_best``: nll_per_row minus the best family's;
+    * ``behind_best_uncertainty``: that distance's standard error, paired over
+      rows (None for the best row);
+    * ``calibration90``: fraction of held-out PIT values in [0.05, 0.95]
+      (0.90 when the law is right; randomized PIT for discrete laws);
+    * ``plain_interval90``: coverage of the central 90% interval, for discrete
+      laws and integer footings only (over-covers by construction);
+    * ``residual_ks``: Kolmogorov-Smirnov distance of the held-out quantile
+      residuals from N(0, 1) (unweighted, all rows);
+    * ``rounds_used``: boosting rounds kept after early stopping (mean over folds);
+    * ``nuisance``: fitted nuisance parameters (mean over folds);
+    * ``scored_by``: log density, log probability, or log probability of the
+      unit interval around y;
+    * ``status`` ("ok", "not applicable", "failed") and ``note`` (the reason,
+      or the footing).
     """
-    rows, _ = _rank_detailed(X, y, families, engine, folds, weight, seed,
-                                rounds=rounds, engine_params=engine_params, progress=progress)
+    rows, _, _ = _rank_detailed(X, y, families, engine, folds, weight, seed, offset=offset, exposure=exposure,
+                                rounds=rounds, engine_params=engine_params, threads=threads, progress=progress)
+    notes = _table_notes(rows)
     if as_frame is False:
-        return rows
+        out = Ranking(rows)
+        out.notes = tuple(notes)
+        return out
     try:
         import pandas as pd
     except ImportError:
         if as_frame:
             raise ImportError('rank_families(as_frame=True) needs pandas: pip install "lossfam[all]"') from None
-        return rows
-    frame = pd.DataFrame(rows, columns=list(_COLUMNS))
-    frame["rank"] = frame["rank"].astype("Int64")
-    if any(r["scored_by"] == SCORED_INTERVAL for r in rows):
-        frame.attrs["note"] = ("integer-valued targets: continuous families are scored by "
-                               "-log(F(y+1/2) - F(y-1/2)), the probability of the unit interval around y")
+        out = Ranking(rows)
+        out.notes = tuple(notes)
+        return out
+    frame = pd.DataFrame(rows, columns=list(COLUMNS))
+    frame["place"] = frame["place"].astype("Int64")
+    if notes:
+        frame.attrs["note"] = notes[0]
     return frame

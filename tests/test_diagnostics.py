@@ -237,7 +237,7 @@ def test_calibration_table_of_a_calibrated_model():
     assert np.all(np.abs(tab["observed"] - tab["predicted"]) < 4 * se + 1e-3)
     # quantile bins hold about equal counts
     assert tab["count"].min() >= N / 8 - 2
-    uni = dg.calibration_table(fam, y, raw, bins=10, strategy="uniform")
+    uni = dg.calibration_table(fam, y, raw, bins=10, binning="equal_width")
     assert uni["count"].sum() == N and np.all(uni["upper"] - uni["lower"] == pytest.approx(0.1))
 
 
@@ -250,10 +250,10 @@ def test_calibration_table_detects_miscalibration_and_checks_input():
     assert tw["weight"].sum() == pytest.approx(w.sum())
     with pytest.raises(ValueError, match="0 or 1"):
         dg.calibration_table(fam, y + 2, raw)
-    with pytest.raises(ValueError, match="strategy"):
-        dg.calibration_table(fam, y, raw, strategy="equal")
+    with pytest.raises(ValueError, match="binning must be one of 'equal_count', 'equal_width'"):
+        dg.calibration_table(fam, y, raw, binning="equal")
     with pytest.raises(ValueError, match="probability"):
-        dg.calibration_bins(y, raw)  # raw scores are not probabilities
+        dg.binned_calibration(y, raw)  # raw scores are not probabilities
 
 
 # ---------------------------------------------------------------------- coverage

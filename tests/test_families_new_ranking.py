@@ -35,15 +35,15 @@ def test_true_family_ranks_first_by_default(truth, seed):
     X, y = simulate(truth, seed)
     rows = lossfam.rank_families(X, y, engine="linear", folds=2, seed=seed, as_frame=False)
     ok = [r for r in rows if r["status"] == "ok"]
-    table = ", ".join(f"{r['family']} {r['nll']:.4f}" for r in ok)
+    table = ", ".join(f"{r['family']} {r['nll_per_row']:.4f}" for r in ok)
     assert ok[0]["family"] == truth, f"seed {seed}, {truth} data: {table}"
-    assert ok[1]["gap"] > 0
+    assert ok[1]["behind_best"] > 0
     # the fitted nuisance parameters are near the truth (a loose check: two folds of 1500 rows)
     fixed = {"df"}  # student_t's df is not estimated by default
     for key, value in TRUTH[truth][0].items():
         if key in fixed:
             continue
-        assert abs(ok[0]["params"][key] / value - 1) < 0.25, (key, ok[0]["params"])
+        assert abs(ok[0]["nuisance"][key] / value - 1) < 0.25, (key, ok[0]["nuisance"])
 
 
 def test_default_candidates_follow_the_targets():

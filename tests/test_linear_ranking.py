@@ -19,10 +19,10 @@ def test_bernoulli_ranks_first_on_breast_cancer_at_defaults():
     with warnings.catch_warnings():
         warnings.simplefilter("error", UnboundedLikelihoodWarning)  # handled, not passed on
         table = lossfam.rank_families(X, y.astype(float), as_frame=False)
-    assert table[0]["family"] == "bernoulli", [(r["family"], r["nll"]) for r in table]
+    assert table[0]["family"] == "bernoulli", [(r["family"], r["nll_per_row"]) for r in table]
     assert "ridge alpha=" in table[0]["note"] and "unpenalised MLE unbounded" in table[0]["note"]
     # a bernoulli model that predicts this well has held-out log loss well below log 2
-    assert table[0]["nll"] < 0.2
+    assert table[0]["nll_per_row"] < 0.2
 
 
 def test_bounded_fits_stay_unpenalised():
@@ -33,4 +33,4 @@ def test_bounded_fits_stay_unpenalised():
     assert "ridge" not in table[0]["note"]
     # the overlapping classes of this demo: the same held-out nll as a plain alpha=0 fit per fold
     explicit = lossfam.rank_families(X, y, families=["bernoulli"], engine_params={"alpha": 0.0}, as_frame=False)
-    assert table[0]["nll"] == pytest.approx(explicit[0]["nll"], rel=1e-12)
+    assert table[0]["nll_per_row"] == pytest.approx(explicit[0]["nll_per_row"], rel=1e-12)

@@ -1,8 +1,10 @@
 """Execute the example notebooks with nbclient (kernel "python3") so they never rot.
 
-The committed notebooks carry no outputs; each runs here in a fresh kernel with
-the repository root as its working directory.  A few claims their text makes
-are checked against what the cells print.
+The committed notebooks carry their outputs (tables and plots, for readers on
+the web) and are written by notebooks/build_notebooks.py; their cells must be
+the builder's.  Each runs here again in a fresh kernel with the repository
+root as its working directory, and a few claims their text makes are checked
+against what the cells print.
 """
 import pathlib
 
@@ -35,14 +37,31 @@ def _text(nb):
     return "\n".join(parts)
 
 
-def test_there_are_notebooks_and_they_are_stripped():
+def _builder():
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("build_notebooks", ROOT / "notebooks" / "build_notebooks.py")
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    return mod
+
+
+def test_notebooks_are_the_builders_and_carry_their_outputs():
+    builder = _builder()
     assert len(NOTEBOOKS) >= 2
+    assert {p.name for p in NOTEBOOKS} == set(builder.NOTEBOOKS)
     for path in NOTEBOOKS:
         nb = nbformat.read(path, as_version=4)
         nbformat.validate(nb)
-        for cell in nb.cells:
-            if cell.cell_type == "code":
-                assert cell.outputs == [] and cell.execution_count is None, f"{path.name} has outputs"
+        built = builder.build(builder.NOTEBOOKS[path.name], execute=False)
+        assert [(c.cell_type, c.source) for c in nb.cells] == [(c.cell_type, c.source) for c in built.cells], (
+            f"{path.name} differs from notebooks/build_notebooks.py: run it to rebuild")
+        code = [c for c in nb.cells if c.cell_type == "code"]
+        assert all(c.execution_count is not None for c in code), f"{path.name} was not executed"
+        assert not [o for c in code for o in c.outputs if o.get("output_type") == "error"]
+        kinds = {k for c in code for o in c.outputs for k in o.get("data", {})}
+        assert "image/png" in kinds, f"{path.name} has no plot in its outputs"
+        assert [i for i, c in enumerate(code) if c.execution_count != i + 1] == []  # run top to bottom, once
 
 
 @pytest.mark.parametrize("path", NOTEBOOKS, ids=[p.stem for p in NOTEBOOKS])

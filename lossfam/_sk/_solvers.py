@@ -521,6 +521,50 @@ def huber_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, co
     return fit
 
 
+def nuisance_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+                   buf=None) -> LinearFit:
+    """Coefficients and nuisance parameters jointly, for families whose location fit depends on them.
+
+    Block coordinate descent on the (penalised) joint nll: Newton's method on the
+    coefficients at fixed nuisance parameters (to max |dF| <= tol), then the
+    family's maximum-likelihood nuisance fit (``fit_nuisance``) at fixed
+    coefficients, repeated until no nuisance parameter changes by more than
+    1e-10 relatively.  Neither block step raises the nll, and the fixed point
+    satisfies both blocks' optimality conditions: the joint maximum-likelihood
+    estimate (negative_binomial's dispersion, beta's precision, student_t's
+    scale, and df when it is estimated).  When the nuisance fit has no
+    maximum-likelihood value (ValueError) the last parameters are kept and
+    ``nuisance_fitted`` is False.
+    """
+    raw = _raw(X, coef, intercept, offset)
+    fitted = True
+    try:
+        fam = fam.fit_nuisance(y, raw, w)
+    except ValueError:
+        fitted = False
+    total = 0
+    for _ in range(max(1, max_iter)):
+        fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept, buf=buf)
+        total += max(fit.n_iter, 1)
+        coef, intercept = fit.coef, fit.intercept
+        if not fitted:
+            break
+        try:
+            new = fam.fit_nuisance(y, fit.raw, w)
+        except ValueError:
+            fitted = False
+            break
+        change = max((abs(np.log(new.params[k] / fam.params[k])) for k in fam.params
+                      if not isinstance(fam.params[k], bool)), default=0.0)
+        fam = new
+        if change <= 1e-10 and fit.converged:
+            break
+    fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept, buf=buf)
+    fit.n_iter = total + fit.n_iter
+    fit.nuisance_fitted = fitted
+    return fit
+
+
 def _pow2(a):
     """The power of two nearest to a > 0 (dividing by it is exact in binary floating point)."""
     return float(np.ldexp(1.0, int(np.round(np.log2(a)))))
@@ -568,54 +612,6 @@ def quantile_lp(X, y, v, offset, tau, fit_intercept, names=None) -> LinearFit:
     interpolates nfree rows), and the polished point is kept if its objective is
     not larger.
     """
-
-
-def nuisance_joint(fam, X, y, w, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-                   buf=None) -> LinearFit:
-    """Coefficients and nuisance parameters jointly, for families whose location fit depends on them.
-
-    Block coordinate descent on the (penalised) joint nll: Newton's method on the
-    coefficients at fixed nuisance parameters (to max |dF| <= tol), then the
-    family's maximum-likelihood nuisance fit (``fit_nuisance``) at fixed
-    coefficients, repeated until no nuisance parameter changes by more than
-    1e-10 relatively.  Neither block step raises the nll, and the fixed point
-    satisfies both blocks' optimality conditions: the joint maximum-likelihood
-    estimate (negative_binomial's dispersion, beta's precision, student_t's
-    scale, and df when it is estimated).  When the nuisance fit has no
-    maximum-likelihood value (ValueError) the last parameters are kept and
-    ``nuisance_fitted`` is False.
-    """
-    raw = _raw(X, coef, intercept, offset)
-    fitted = True
-    try:
-        fam = fam.fit_nuisance(y, raw, w)
-    except ValueError:
-        fitted = False
-    total = 0
-    for _ in range(max(1, max_iter)):
-        fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept, buf=buf)
-        total += max(fit.n_iter, 1)
-        coef, intercept = fit.coef, fit.intercept
-        if not fitted:
-            break
-        try:
-            new = fam.fit_nuisance(y, fit.raw, w)
-        except ValueError:
-            fitted = False
-            break
-        change = max((abs(np.log(new.params[k] / fam.params[k])) for k in fam.params
-                      if not isinstance(fam.params[k], bool)), default=0.0)
-        fam = new
-        if change <= 1e-10 and fit.converged:
-            break
-    fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept, buf=buf)
-    fit.n_iter = total + fit.n_iter
-    fit.nuisance_fitted = fitted
-    return fit
-
-
-def quantile_lp(X, y, v, offset, tau, fit_intercept) -> LinearFit:
-    """Exact minimiser of sum v rho_tau(y - raw) by linear programming (HiGHS)."""
     n, p = X.shape
     keep = v > 0
     Xk, vk = X[keep], v[keep]
