@@ -21,7 +21,7 @@ For each engine the script measures, in one process:
   ranking's trainings kept, with the ranking's booster settings; the ratio is
   rank / (plain x families x folds).
 
-Run:  /work/venv/bin/python benchmarks/ranking.py [--rows 100000] [--engines linear,lightgbm,xgboost]
+Run:  python benchmarks/ranking.py [--rows 100000] [--engines linear,lightgbm,xgboost]
       [--repeats 1] [--threads 2]
 """
 from __future__ import annotations
