@@ -178,8 +178,12 @@ class Family:
     def nll(self, y, raw) -> np.ndarray:
         """Per-row negative log-likelihood in nats, every constant included."""
         y, raw = self._inputs(y, raw, for_nll=True)
+        scalar = y.ndim == 0
+        if scalar:  # kernels may index or assign rows: give them one row
+            y, raw = y.reshape(1), raw.reshape(1)
         with np.errstate(over="ignore"):
-            return self._nll(y, raw)
+            out = self._nll(y, raw)
+        return out[0] if scalar else out
 
     def grad_hess(self, y, raw, weight=None):
         """(gradient, Hessian) of weight * nll with respect to the raw score.

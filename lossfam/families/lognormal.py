@@ -25,6 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
+from .. import _checks
 from .._checks import POSITIVE
 from ..links import LOG
 from ._base import Family
@@ -49,11 +50,13 @@ class Lognormal(Family):
         return 0.5 * z * z + ly + (np.log(self.scale) + _HALF_LOG_2PI)
 
     def _grad_hess(self, y, raw):
-        inv_var = 1.0 / (self.scale * self.scale)
+        s = np.float64(self.scale)
+        inv_var = 1.0 / s / s  # inf (not ZeroDivisionError) when it overflows
         g = np.log(y)
         np.subtract(raw, g, out=g)
         if inv_var != 1.0:
-            g *= inv_var
+            g /= s  # divide twice: 0 / s^2 stays 0 when s^2 underflows (as in gaussian)
+            g /= s
         return g, np.full_like(g, inv_var)
 
     def _deviance(self, y, raw):
@@ -65,12 +68,13 @@ class Lognormal(Family):
         return np.average(t, weights=w)
 
     def _fit_nuisance(self, y, raw, w):
-        lr = np.log(y) - raw
-        var = np.dot(w, lr * lr) / w.sum()
-        if not var > 0:
+        r = _checks.finite_residuals(np.log(y) - raw, self.name)
+        m = float(np.max(np.abs(r)))
+        if not m > 0 or not np.any(r[w > 0] != 0):
             raise ValueError("lognormal: every log residual is zero, so the maximum-likelihood scale is 0 "
                              "(not a valid scale)")
-        return {"scale": float(np.sqrt(var))}
+        u = r / m  # relative to the largest: squares neither overflow nor all underflow (as in gaussian)
+        return {"scale": float(m * np.sqrt(np.dot(w, u * u) / w.sum()))}
 
     def _distribution(self, raw):
         with np.errstate(over="ignore"):
