@@ -125,12 +125,16 @@ class NegativeBinomial(Family):
             alpha = np.exp(log_alpha)
             r = 1.0 / alpha
             l1p = np.logaddexp(0.0, raw + log_alpha)
-            s = (digamma(y + r) - digamma(r) - l1p) / alpha**2 + (mu - y) / (alpha * (1.0 + alpha * mu))
+            with np.errstate(invalid="ignore"):  # mu = inf (raw > 709): the term's limit is 1 / alpha^2
+                t = (mu - y) / (alpha * (1.0 + alpha * mu))
+            t = np.where(np.isinf(mu), 1.0 / alpha**2, t)
+            s = (digamma(y + r) - digamma(r) - l1p) / alpha**2 + t
             return float(np.dot(w, s) / sw)
 
         # moment estimate: sum (y - mu)^2 - y = alpha sum mu^2 (common practice as a start)
-        excess = float(np.dot(w, (y - mu) ** 2 - y) / np.dot(w, mu * mu))
-        start = max(np.log(excess) if excess > 0 else np.log(1e-3), _LOG_ALPHA_MIN + 1.0)
+        with np.errstate(invalid="ignore", divide="ignore"):  # inf / inf when mu^2 overflows: no estimate
+            excess = float(np.dot(w, (y - mu) ** 2 - y) / np.dot(w, mu * mu))
+        start = max(np.log(excess) if 0 < excess < np.inf else np.log(1e-3), _LOG_ALPHA_MIN + 1.0)
         lo, hi = start - 1.0, start + 1.0
         while score(lo) > 0:
             if lo <= _LOG_ALPHA_MIN:
