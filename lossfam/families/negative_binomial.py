@@ -73,7 +73,8 @@ class NegativeBinomial(Family):
         alpha = self.dispersion
         la = np.log(alpha)
         t = raw + la
-        return -log_binomial_term(y, 1.0 / alpha) + (y + 1.0 / alpha) * np.logaddexp(0.0, t) - y * t
+        # (y + r) log(1 + e^t) - y t = y log(1 + e^-t) + r log(1 + e^t): two terms >= 0, no inf - inf
+        return -log_binomial_term(y, 1.0 / alpha) + y * np.logaddexp(0.0, -t) + np.logaddexp(0.0, t) / alpha
 
     def _grad_hess(self, y, raw):
         alpha = self.dispersion
@@ -94,8 +95,9 @@ class NegativeBinomial(Family):
         pos = y > 0
         ys = np.where(pos, y, 1.0)
         soft_mu = np.logaddexp(0.0, raw + np.log(alpha))  # log(1 + alpha mu)
-        part = np.where(pos, y * (np.log(ys) - raw), 0.0)
-        dev = part - (y + r) * (np.log1p(alpha * y) - soft_mu)
+        gap = np.log1p(alpha * y) - soft_mu
+        # y (log y - raw - gap) - r gap: the logs are differenced before multiplying by y (no inf - inf)
+        dev = y * (np.where(pos, np.log(ys) - raw, 0.0) - gap) - r * gap
         return np.maximum(2.0 * dev, 0.0)
 
     def _baseline(self, y, w, offset):
