@@ -117,7 +117,8 @@ class NegativeBinomial(Family):
             lo -= 2.0 * (hi - lo)
         while score(hi) < 0:
             hi += 2.0 * (hi - lo)
-        return optimize.brentq(score, lo, hi, xtol=1e-13)
+        # maxiter: at extreme dispersion one side of the score is flat near 1e-300 and Brent creeps
+        return optimize.brentq(score, lo, hi, xtol=1e-13, maxiter=2000)
 
     def _fit_nuisance(self, y, raw, w):
         mu = np.exp(raw)
