@@ -37,14 +37,9 @@ def _data(name):
     rng = np.random.default_rng(11)
     X = rng.normal(size=(N_ROWS, N_FEATURES))
     eta = 0.5 * X[:, 0]
-    if name == "bernoulli":
-        y = (eta + rng.normal(size=N_ROWS) > 0).astype(float)
-    elif name == "poisson":
-        y = rng.poisson(np.exp(eta)).astype(float)
-    elif name == "gamma":
-        y = rng.gamma(2.0, np.exp(eta) / 2.0)
-    else:
-        y = eta + rng.normal(size=N_ROWS)
+    # targets inside each family's support: draws from the family's own law at raw score eta
+    law = lossfam.family(name).distribution(eta)
+    y = np.asarray(law.rvs(random_state=rng), dtype=float)
     return X, y
 
 
