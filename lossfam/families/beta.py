@@ -80,21 +80,51 @@ class Beta(Family):
         mu, nu = expit(raw), expit(-raw)  # nu = 1 - mu without cancellation
         a, b = phi * mu, phi * nu
         logit_y = np.log(y) - np.log1p(-y)
-        g = nu * a * digamma(a + 1.0) - mu * b * digamma(b + 1.0) + (2.0 * mu - 1.0) - phi * mu * nu * logit_y
-        h = nu * nu * (a * a * polygamma(1, a + 1.0) + 1.0) + mu * mu * (b * b * polygamma(1, b + 1.0) + 1.0)
+        # phi mu nu [digamma(a) - digamma(b) - logit y] with digamma(a) = digamma(a+1) - 1/a:
+        # phi mu nu / a = nu and phi mu nu / b = mu, so no 1/a that overflows for tiny a
+        g = phi * (mu * nu) * (digamma(a + 1.0) - digamma(b + 1.0) - logit_y) + (mu - nu)
+        # a (a trigamma(a+1)) <= a: no a^2 that overflows before its factor nu^2 underflows
+        h = nu * nu * (a * (a * polygamma(1, a + 1.0)) + 1.0) + mu * mu * (b * (b * polygamma(1, b + 1.0)) + 1.0)
         return g, h
 
-    def _saturated_raw(self, y):
+    def _logit_root(self, target):
+        """Raw scores c solving digamma(a) - digamma(b) = target (a = phi expit(c), b = phi expit(-c)).
+
+        With digamma(x) = digamma(x+1) - 1/x and 1/b - 1/a = 2 sinh(c) / phi the equation
+        reads 2 sinh(c) / phi + D(c) = target, D(c) = digamma(a+1) - digamma(b+1), and
+        |D| <= M = digamma(phi+1) - digamma(1); so the root lies between
+        asinh(phi (target -+ M) / 2), a bracket that is always finite, and the function
+        is evaluated without 1/a, which overflows for tiny a.
+        """
         phi = self.precision
-        target = np.log(y) - np.log1p(-y)
+        log_phi = np.log(phi)
+        target = np.asarray(target, dtype=float)
 
         def score(c, t):
-            return digamma(phi * expit(c)) - digamma(phi * expit(-c)) - t
+            u = np.abs(c)
+            with np.errstate(divide="ignore", over="ignore"):
+                # 2 sinh(c) / phi = sign(c) exp(log(2 sinh|c|) - log phi), no inf - inf for tiny phi
+                lead = np.copysign(np.exp(u + np.log1p(-np.exp(-2.0 * u)) - log_phi), c)
+            return lead + digamma(phi * expit(c) + 1.0) - digamma(phi * expit(-c) + 1.0) - t
 
-        bracket = elementwise.bracket_root(score, target - 1.0, xr0=target + 1.0, args=(target,))
-        res = elementwise.find_root(score, bracket.bracket, args=(target,),
+        def asinh_half_phi(v):  # asinh(phi v / 2) without overflowing phi v
+            with np.errstate(divide="ignore", over="ignore"):
+                x = 0.5 * phi * v
+                far = np.copysign(log_phi + np.log(np.abs(v)), v)
+            return np.where(np.abs(x) < 1e300, np.arcsinh(x), far)
+
+        # M <= trigamma(1) phi (digamma is concave); the bound keeps M > 0 where digamma(phi+1)
+        # rounds to digamma(1)
+        m = max(float(digamma(phi + 1.0) - digamma(1.0)), 1.65 * phi)
+        lo, hi = asinh_half_phi(target - m), asinh_half_phi(target + m)
+        res = elementwise.find_root(score, (lo, hi), args=(target,),
                                     tolerances={"xatol": 1e-14, "xrtol": 1e-15})
-        return res.x
+        # the bracket is exact; one so narrow that rounding puts both ends on one side of the
+        # root (no root found) holds the root to working precision: take its midpoint
+        return np.where(np.isnan(res.x), lo + 0.5 * (hi - lo), res.x)
+
+    def _saturated_raw(self, y):
+        return self._logit_root(np.log(y) - np.log1p(-y))
 
     def _deviance(self, y, raw):
         sat = self._saturated_raw(y)
@@ -103,19 +133,8 @@ class Beta(Family):
     def _baseline(self, y, w, offset):
         if offset is not None:
             return super()._baseline(y, w, offset)
-        phi = self.precision
         target = float(np.dot(w, np.log(y) - np.log1p(-y)) / w.sum())
-
-        def score(c):
-            a, b = phi * expit(c), phi * expit(-c)
-            return float(digamma(a) - digamma(b)) - target
-
-        lo, hi = target - 1.0, target + 1.0
-        while score(lo) > 0:
-            lo -= 2.0 * (hi - lo)
-        while score(hi) < 0:
-            hi += 2.0 * (hi - lo)
-        return optimize.brentq(score, lo, hi, xtol=1e-14)
+        return float(self._logit_root(np.array([target]))[0])
 
     def _fit_nuisance(self, y, raw, w):
         mu, nu = expit(raw), expit(-raw)
@@ -123,9 +142,13 @@ class Beta(Family):
         sw = w.sum()
         fixed = float(np.dot(w, mu * ly + nu * l1y) / sw)
 
+        # mu digamma(a) + nu digamma(b) - digamma(phi) = mu digamma(a+1) + nu digamma(b+1)
+        # - digamma(phi+1) - 1/phi (digamma(x) = digamma(x+1) - 1/x; mu / a = nu / b = 1/phi):
+        # no digamma of a subnormal shape
         def score(log_phi):
             phi = np.exp(log_phi)
-            return float(np.dot(w, mu * digamma(phi * mu) + nu * digamma(phi * nu)) / sw - digamma(phi)) - fixed
+            mean = float(np.dot(w, mu * digamma(phi * mu + 1.0) + nu * digamma(phi * nu + 1.0)) / sw)
+            return mean - float(digamma(phi + 1.0)) - 1.0 / phi - fixed
 
         lo, hi = -1.0, 1.0
         while score(lo) > 0:
