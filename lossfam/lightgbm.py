@@ -455,12 +455,8 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
         starts[k] = plan.start_for(vy.size, vo, f"valid_offsets[{k}]")
 
     rule = facts.leaf_rule(fam)
-    twin = facts.twin_params(fam, _ENGINE) if native and guard == resolve_guard(fam, "auto") else None
-    if twin is not None:
-        clash = sorted(k for k in twin if k != "objective" and k in params and params[k] != twin[k])
-        if clash:
-            raise ValueError(f"params {clash} would change LightGBM's built-in objective away from the {fam.name} "
-                             "loss; drop them or pass native=False")
+    twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native,
+                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
     refit = None
     if twin is None and rule != "newton":
         if str(params.get("metric", "None")).lower() not in ("none", "na", "null", "custom", ""):

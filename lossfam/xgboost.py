@@ -361,12 +361,8 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
 
     guard = resolve_guard(fam, step_limit)
     rule = facts.leaf_rule(fam)
-    twin = facts.twin_params(fam, _ENGINE) if native and guard == resolve_guard(fam, "auto") else None
-    if twin is not None:
-        clash = sorted(k for k in twin if k != "objective" and k in params and params[k] != twin[k])
-        if clash:
-            raise ValueError(f"params {clash} would change XGBoost's built-in objective away from the {fam.name} "
-                             "loss; drop them or pass native=False")
+    twin = facts.chosen_twin(fam, _ENGINE, "XGBoost", native=native,
+                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
     params.setdefault("disable_default_eval_metric", 1)
     user_metric = engine_kwargs.pop("custom_metric", None)
     kw = dict(engine_kwargs, early_stopping_rounds=early_stopping_rounds, evals_result=evals_result,

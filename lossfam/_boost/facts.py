@@ -40,3 +40,19 @@ def twin_params(fam, engine: str) -> dict | None:
     if not spec:
         return None
     return {k: (fam.params[v.name] if isinstance(v, FromParam) else v) for k, v in spec.items()}
+
+
+def chosen_twin(fam, engine: str, engine_name: str, *, native: bool, guard_is_default: bool, params: dict):
+    """The native twin's parameters when training should use it, else None.
+
+    The twin is used only with ``native=True`` and the default step guard (the
+    twin's own damping).  User parameters that would change the twin's loss are
+    refused rather than silently overridden.
+    """
+    twin = twin_params(fam, engine) if native and guard_is_default else None
+    if twin is not None:
+        clash = sorted(k for k in twin if k != "objective" and k in params and params[k] != twin[k])
+        if clash:
+            raise ValueError(f"params {clash} would change {engine_name}'s built-in objective away from the "
+                             f"{fam.name} loss; drop them or pass native=False")
+    return twin
