@@ -50,7 +50,7 @@ import subprocess
 import sys
 import time
 
-FAMILIES = ("gaussian", "laplace", "asymmetric_laplace:0.9", "bernoulli", "poisson", "gamma", "huber")
+FAMILIES = ("gaussian", "laplace", "asymmetric_laplace:0.9", "bernoulli", "poisson", "gamma", "huber", "tweedie:1.5")
 SIZES = ("1000000x100:1.05", "10000x1000:1.10")
 CONTENDERS = ("builtin", "train", "custom", "floor")
 
@@ -66,6 +66,8 @@ def huber_threshold(trained):
 
 def twin(engine, name, tau, trained):
     """The built-in objective whose loss is the family's (as trained)."""
+    if name == "tweedie":  # both engines call the power tweedie_variance_power
+        return {"objective": "tweedie" if engine == "lightgbm" else "reg:tweedie", "tweedie_variance_power": tau}
     if engine == "lightgbm":
         if name == "huber":  # LightGBM's alpha is the threshold on the target's scale
             return {"objective": "huber", "alpha": huber_threshold(trained)}
@@ -99,6 +101,10 @@ def simulate(name, n, p, seed):
         y = rng.gamma(2.0, np.exp(1.0 + s) / 2.0)
     elif name == "gaussian":
         y = 3.0 + 2.0 * s + rng.standard_normal(n)
+    elif name == "tweedie":  # compound Poisson-gamma at p = 1.5, dispersion 1: about 25% exact zeros
+        from lossfam.families import TweedieLaw
+
+        y = TweedieLaw(np.exp(0.3 + s), 1.5, 1.0).rvs(random_state=rng)
     else:
         y = 3.0 + 2.0 * s + (0.5 + 0.5 * np.abs(X[:, 5])) * rng.gumbel(size=n)
     return X, y
@@ -123,6 +129,8 @@ def held_out_score(name, tau, trained, y, mean):
         return metrics.mean_poisson_deviance(y, mean)
     if name == "gamma":
         return metrics.mean_gamma_deviance(y, mean)
+    if name == "tweedie":
+        return metrics.mean_tweedie_deviance(y, mean, power=tau)
     return float(np.mean(special.huber(huber_threshold(trained), y - mean)))
 
 
@@ -149,7 +157,10 @@ def measure(spec, data_sets=None):
 
     engine, side, name, tau = spec["engine"], spec["side"], spec["family"], spec["tau"]
     n, rounds, threads = spec["rows"], spec["rounds"], spec["threads"]
-    fam = lossfam.family(name) if tau is None else lossfam.family(name, quantile=tau)
+    if tau is None:
+        fam = lossfam.family(name)
+    else:  # the number after the colon: asymmetric_laplace's quantile, tweedie's power
+        fam = lossfam.family(name, **{"power" if name == "tweedie" else "quantile": tau})
     X, y, Xt, yt = data_sets or sample(spec)
     inverse = {"log": np.exp, "logit": special.expit}.get(fam.link_function.name, lambda r: r)
 
@@ -236,7 +247,7 @@ def parse_size(text):
 
 
 def label(name, tau):
-    return name if tau is None else f"{name} τ={tau}"
+    return name if tau is None else f"{name} {'p' if name == 'tweedie' else 'τ'}={tau}"
 
 
 def fmt(x, spec=".2f"):
