@@ -70,7 +70,7 @@ from scipy import optimize, special
 
 from .._checks import POSITIVE, Domain, NONNEGATIVE
 from ..links import LOG
-from ._base import Family, FromParam
+from ._base import Family, FromParam, by_row_blocks
 
 POWER_DOMAIN = Domain("strictly between 1 and 2", lambda a: np.isfinite(a) & (a > 1) & (a < 2))
 
@@ -217,20 +217,24 @@ class Tweedie(Family):
         return out
 
     def _grad_hess(self, y, raw):
+        g, h = by_row_blocks(self._fill_grad_hess, (y, raw), n_out=2, n_scratch=1)
+        return g, h
+
+    def _fill_grad_hess(self, y, raw, g, h, t):
+        """Gradient into g and Hessian into h for one block of rows (t: work array)."""
         p, phi = self.power, self.dispersion
-        t = np.multiply(raw, 1.0 - p)
+        np.multiply(raw, 1.0 - p, out=t)
         np.exp(t, out=t)
         t *= y  # y e^((1-p) raw)
-        m = np.multiply(raw, 2.0 - p)
-        np.exp(m, out=m)  # e^((2-p) raw)
-        g = np.subtract(m, t)
-        m *= 2.0 - p
+        np.multiply(raw, 2.0 - p, out=h)
+        np.exp(h, out=h)  # e^((2-p) raw)
+        np.subtract(h, t, out=g)
+        h *= 2.0 - p
         t *= p - 1.0
-        m += t
+        h += t
         if phi != 1.0:
             g /= phi
-            m /= phi
-        return g, m
+            h /= phi
 
     def _deviance(self, y, raw):
         p = self.power
