@@ -12,14 +12,13 @@ the terms fall below e^-105 (~1e-46) of the largest (log W_j is concave in j, so
 smaller still), and P(Y = 0) = exp(-mu^(2-p) / (phi (2-p))).  The inputs are the float64 values
 themselves (converted exactly), so the reference is the exact nll of what lossfam receives.
 """
+import mpmath
 import numpy as np
 import pytest
 from scipy import special
 
 import lossfam
 from lossfam.families import TweedieLaw
-
-mpmath = pytest.importorskip("mpmath")
 
 
 def reference_nll(y, raw, p, phi):
