@@ -88,8 +88,8 @@ def scaled_mean(a: np.ndarray, w: np.ndarray) -> float:
     return m * float(np.dot(w, a / m) / w.sum())
 
 
-#: rows per block in :func:`by_row_blocks`: a few block-sized float64 arrays (128 KiB each) fit in L2
-BLOCK_ROWS = 1 << 14
+#: rows per block in :func:`by_row_blocks`: a few block-sized float64 arrays (256 KiB each) fit in L2
+BLOCK_ROWS = 1 << 15
 
 
 def by_row_blocks(fill, inputs, n_out, n_scratch=0, rows=BLOCK_ROWS):
