@@ -133,10 +133,14 @@ def _series_z_of_log(log_y, p, phi):
 
 def log_series(y, power, dispersion):
     """log sum_{j>=1} W_j of Dunn and Smyth's series for targets y > 0 (module docstring)."""
-    return _log_series_of_log(np.log(np.asarray(y, dtype=float)), power, dispersion)
+    log_y = np.log(np.asarray(y, dtype=float))
+    return _log_series_of_log(log_y.ravel(), power, dispersion).reshape(log_y.shape)
 
 
 def _log_series_of_log(log_y, power, dispersion):
+    """log_series from log y (a one-dimensional array)."""
+    if log_y.size == 0:
+        return np.empty(0)
     z, a = _series_z_of_log(log_y, power, dispersion)
     # the integral form takes the rows with sigma_j > _WIDE_SIGMA whose nodes stay above j = 1
     # (j* - 14 sigma_j > 1); both conditions grow with j*, so together they are j* > j_wide, and
