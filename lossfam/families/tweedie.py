@@ -90,8 +90,10 @@ _WIDE_SIGMA = 40.0
 _BLOCK = 1 << 21
 #: elements per block of the term x row matrices of the series (a few such blocks fit in the L2 cache)
 _CELLS = 1 << 15
-#: neighbouring central indices share a group only while it holds fewer rows than this
+#: neighbouring central indices share a group only while it holds at most this many rows ...
 _GROUP_ROWS = 2048
+#: ... and while the extra terms the merge costs stay below this (see _merge_runs)
+_MERGE_TERMS = 1 << 13
 #: exponents are raised to this floor before exp: such terms are below 1e-300 of a sum that is at
 #: least 1, and numpy's exp is several times slower on arguments whose result underflows
 _FLOOR = -700.0
@@ -169,7 +171,7 @@ def _narrow_sum(z, a):
     """log sum_{j>=1} exp(j z + c_j) for rows whose terms gather within a few dozen j of j*.
 
     Rows are sorted by their central index jc = max(1, rint(j*)), and neighbouring central
-    indices (at most 2 sigma_j apart) are grouped.  A group shares its window of j and its
+    indices are grouped (_merge_runs).  A group shares its window of j and its
     anchor j1 (the smallest central index): each row's sum is
     exp(c_j1 + j1 z) sum_j exp((c_j - c_j1) + (j - j1) z), where the differences c_j - c_j1 are
     the same for every row, so the terms of a block of rows are one outer product plus a vector.
@@ -208,7 +210,7 @@ def _narrow_sum(z, a):
         diff = table[first:last + 1] - table[j1]
         steps = np.arange(first - j1, last - j1 + 1, dtype=float)
         # the smallest exponent of the group (linear in z: at one of its ends) decides the floor
-        lowest = min(np.min(diff + steps * zl), np.min(diff + steps * zh))
+        lowest = min((diff + steps * zl).min(), (diff + steps * zh).min())
         diff, steps = diff[:, None], steps[:, None]
         anchor = float(table[j1])
         rows = max(1, _CELLS // width)
@@ -230,42 +232,53 @@ def _narrow_sum(z, a):
 
 
 def _merge_runs(centres, counts, a):
-    """Index of the first run of each group: a run of rows with one central index joins the group
-    before it while it lies within 2 sigma_j of the group's first central index and the group
-    holds fewer than _GROUP_ROWS rows."""
+    """Index of the first run of each group.
+
+    A run of rows with one central index joins the group before it while the group stays
+    below _GROUP_ROWS rows, the central indices stay within 8 sigma_j of the group's first one
+    j1 (the terms then stay within about e^32 of the anchor's), and the extra terms the
+    merge costs, (j - j1) per row, stay below _MERGE_TERMS (about what a group of its own costs
+    in Python overhead): sparse central indices are merged, well-filled ones are not.
+    """
     firsts = [0]
-    j1, rows, span = centres[0], counts[0], int(2.0 * np.sqrt(centres[0] / (1.0 + a)))
+    j1, rows, span = centres[0], counts[0], int(8.0 * np.sqrt(centres[0] / (1.0 + a)))
     for k in range(1, len(centres)):
         j, c = centres[k], counts[k]
-        if j - j1 <= span and rows + c <= _GROUP_ROWS:
-            rows += c
-        else:
+        rows += c
+        if j - j1 > span or rows > _GROUP_ROWS or (j - j1) * rows > _MERGE_TERMS:
             firsts.append(k)
-            j1, rows, span = j, c, int(2.0 * np.sqrt(j / (1.0 + a)))
+            j1, rows, span = j, c, int(8.0 * np.sqrt(j / (1.0 + a)))
     return np.array(firsts)
 
 
 def _group_window(table, a, j1, j2, z_lo, z_hi):
     """(first j, last j, table) of a group's window (see _narrow_sum); the table grows when needed."""
     i = np.arange(j1, j2 + 1)
-    top_hi = np.min(table[j1:j2 + 1] + i * z_hi)
     reach = int(10.0 * np.sqrt(j2 / (1.0 + a)) + 20.0)
-    while True:
+    top = (table[j1:j2 + 1] + i * z_hi).min()
+    while True:  # rightwards from j2 until the bound falls below e^-_DROP
         if j2 + reach >= table.size:
             table = _log_weights(a, 2 * (j2 + reach))
         j = np.arange(j2 + 1, j2 + reach + 1)
-        below = np.flatnonzero(table[j2 + 1:j2 + reach + 1] + j * z_hi - top_hi < -_DROP)
-        if below.size:
-            last = j2 + 1 + int(below[0])
+        below = table[j2 + 1:j2 + reach + 1] + j * z_hi - top < -_DROP
+        k = int(below.argmax())
+        if below[k]:
+            last = j2 + 1 + k
             break
         reach *= 2
     first = 1
-    if j1 > 1:
-        top_lo = np.min(table[j1:j2 + 1] + i * z_lo)
-        j = np.arange(1, j1)
-        below = np.flatnonzero(table[1:j1] + j * z_lo - top_lo < -_DROP)
-        if below.size:
-            first = 1 + int(below[-1])
+    top = (table[j1:j2 + 1] + i * z_lo).min()
+    while j1 > 1:  # leftwards from j1 down to 1 at most
+        lo = max(1, j1 - reach)
+        j = np.arange(lo, j1)
+        below = (table[lo:j1] + j * z_lo - top < -_DROP)[::-1]
+        k = int(below.argmax())
+        if below[k]:
+            first = j1 - 1 - k
+            break
+        if lo == 1:
+            break
+        reach *= 2
     return first, last, table
 
 
