@@ -93,12 +93,29 @@ def _quick_finite(arr):
     return _finite_sum(arr)
 
 
+#: rows per block of :func:`_bounds` (a block stays in the L2 cache between its two reductions)
+_BOUNDS_BLOCK = 1 << 16
+
+
+def _bounds(arr):
+    """(min, max) of ``arr`` with one pass over memory: each block is reduced twice while cached.
+
+    NaN propagates into both (numpy's min and max do).
+    """
+    if arr.ndim != 1 or arr.size <= _BOUNDS_BLOCK:
+        return float(np.min(arr)), float(np.max(arr))
+    blocks = [arr[i:i + _BOUNDS_BLOCK] for i in range(0, arr.size, _BOUNDS_BLOCK)]
+    return float(np.min([b.min() for b in blocks])), float(np.max([b.max() for b in blocks]))
+
+
 def _quick_nonneg(arr):
-    return float(np.min(arr)) >= 0 and _finite_sum(arr)  # min propagates NaN
+    lo, hi = _bounds(arr)
+    return lo >= 0 and hi < np.inf  # lo >= 0 is False for NaN
 
 
 def _quick_positive(arr):
-    return float(np.min(arr)) > 0 and _finite_sum(arr)
+    lo, hi = _bounds(arr)
+    return lo > 0 and hi < np.inf
 
 
 REAL = Domain("a finite real number", np.isfinite, _quick_finite)

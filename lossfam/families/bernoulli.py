@@ -33,7 +33,7 @@ from scipy.special import expit, log_expit, logit
 
 from .._checks import BINARY
 from ..links import LOGIT
-from ._base import Family
+from ._base import Family, by_row_blocks
 
 
 @dataclass(frozen=True)
@@ -48,15 +48,19 @@ class Bernoulli(Family):
         return -(y * log_expit(raw) + (1.0 - y) * log_expit(-raw))
 
     def _grad_hess(self, y, raw):
-        half = np.multiply(raw, 0.5)
-        g = np.tanh(half)
+        g, h = by_row_blocks(self._fill_grad_hess, (y, raw), n_out=2)
+        return g, h
+
+    def _fill_grad_hess(self, y, raw, g, h):
+        """Gradient into g and Hessian into h for one block of rows."""
+        half = np.multiply(raw, 0.5, out=h)
+        np.tanh(half, out=g)
         g *= 0.5
         g += 0.5  # expit(raw)
         g -= y
-        h = np.cosh(half, out=half)
+        np.cosh(half, out=h)
         h *= h
         np.divide(0.25, h, out=h)  # expit(raw) expit(-raw)
-        return g, h
 
     def _deviance(self, y, raw):
         return 2.0 * self._nll(y, raw)

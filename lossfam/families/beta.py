@@ -45,7 +45,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize, stats
 from scipy.optimize import elementwise
-from scipy.special import digamma, expit, gammaln, log_expit, polygamma
+from scipy.special import digamma, expit, gammaln, log_expit, zeta
 
 from .._checks import OPEN_UNIT, POSITIVE
 from ..links import LOGIT
@@ -83,8 +83,9 @@ class Beta(Family):
         # phi mu nu [digamma(a) - digamma(b) - logit y] with digamma(a) = digamma(a+1) - 1/a:
         # phi mu nu / a = nu and phi mu nu / b = mu, so no 1/a that overflows for tiny a
         g = phi * (mu * nu) * (digamma(a + 1.0) - digamma(b + 1.0) - logit_y) + (mu - nu)
-        # a (a trigamma(a+1)) <= a: no a^2 that overflows before its factor nu^2 underflows
-        h = nu * nu * (a * (a * polygamma(1, a + 1.0)) + 1.0) + mu * mu * (b * (b * polygamma(1, b + 1.0)) + 1.0)
+        # a (a trigamma(a+1)) <= a: no a^2 that overflows before its factor nu^2 underflows;
+        # trigamma(x) = zeta(2, x), the Hurwitz zeta function (what scipy's polygamma(1, x) evaluates)
+        h = nu * nu * (a * (a * zeta(2.0, a + 1.0)) + 1.0) + mu * mu * (b * (b * zeta(2.0, b + 1.0)) + 1.0)
         return g, h
 
     def _logit_root(self, target):

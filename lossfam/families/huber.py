@@ -35,7 +35,7 @@ from scipy import optimize, special
 from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family
+from ._base import Family, by_row_blocks
 
 
 def huber_rho(u, delta):
@@ -164,16 +164,21 @@ class Huber(Family):
         return huber_rho(u, self.delta) + (np.log(self.scale) + huber_log_norm(self.delta))
 
     def _grad_hess(self, y, raw):
+        g, h = by_row_blocks(self._fill_grad_hess, (y, raw), n_out=2)
+        return g, h
+
+    def _fill_grad_hess(self, y, raw, g, h):
+        """Gradient into g and Hessian into h for one block of rows."""
         s, d = np.float64(self.scale), self.delta
-        r = raw - y
-        g = np.clip(r / s, -d, d)
+        r = np.subtract(raw, y, out=h)
+        np.divide(r, s, out=g)
+        np.clip(g, -d, d, out=g)
         g /= s
         # min(1, d / |u|) / s^2 = d / (s max(|r|, d s)): finite even where |u| = |r| / s overflows
         a = np.abs(r, out=r)
         np.maximum(a, d * s, out=a)
         a *= s
-        h = np.divide(d, a, out=a)
-        return g, h
+        np.divide(d, a, out=h)
 
     def _deviance(self, y, raw):
         # 2 s^2 rho(r / s) written in r = y - raw: r^2 in the core, d s (2|r| - d s) in the tails

@@ -43,7 +43,7 @@ from scipy.special import betaln, digamma, expit
 
 from .._checks import NONNEGATIVE, NONNEGATIVE_INTEGER, POSITIVE
 from ..links import LOG
-from ._base import Family
+from ._base import Family, by_row_blocks
 
 
 #: the dispersion search stops here (see the module docstring)
@@ -77,17 +77,21 @@ class NegativeBinomial(Family):
         return -log_binomial_term(y, 1.0 / alpha) + y * np.logaddexp(0.0, -t) + np.logaddexp(0.0, t) / alpha
 
     def _grad_hess(self, y, raw):
+        g, h = by_row_blocks(self._fill_grad_hess, (y, raw), n_out=2, n_scratch=1)
+        return g, h
+
+    def _fill_grad_hess(self, y, raw, q, h, yr):
+        """Gradient into q and Hessian into h for one block of rows (yr: work array)."""
         alpha = self.dispersion
-        q = np.add(raw, np.log(alpha))
-        h = np.negative(q)
+        np.add(raw, np.log(alpha), out=q)
+        np.negative(q, out=h)
         expit(q, out=q)
         expit(h, out=h)  # 1 - q without cancellation
-        yr = np.add(y, 1.0 / alpha)
+        np.add(y, 1.0 / alpha, out=yr)
         h *= q
         h *= yr
         q *= yr
         q -= y
-        return q, h
 
     def _deviance(self, y, raw):
         alpha = self.dispersion

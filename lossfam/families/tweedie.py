@@ -37,18 +37,27 @@ is convex); by Stirling its maximum is near j* = y^(2-p) / (phi (2-p)) and
 its curvature there is about (1+a)/j*, so the terms that matter lie within a
 few sigma_j = sqrt(j*/(1+a)) of j*.  Everything is done in log space:
 
-* sigma_j <= 8 (most rows): sum j over an integer window around j*, with the
-  constants c_j = -lgamma(j+1) - lgamma(a j) tabulated once per call (they do
-  not depend on y); the window (6 sigma_j + 4 on each side to start) grows
-  until both end terms are below the central one by ``_DROP`` = 37 nats
-  (relative 1e-16), then log-sum-exp shifted by the central term.
-* sigma_j > 8 (large y / phi): the terms vary smoothly on the integer grid, so
+* sigma_j <= 40 (most rows): the sum itself, with the constants
+  c_j = -lgamma(j+1) - lgamma(a j) tabulated once per call (they do not depend
+  on y).  Rows are sorted by their central index jc = max(1, rint(j*)) and
+  neighbouring central indices are grouped; a group shares one window of j
+  and one anchor j1, so the shifted exponents (c_j - c_j1) + (j - j1) z of a
+  block of rows are one outer product plus a vector, summed in the L2 cache.
+  The window is read off the table: for j beyond the group's largest central
+  index j2 the ratio of a row's term to its central one is at most
+  exp(c_j + j z_hi - min_(j1<=i<=j2) (c_i + i z_hi)), z_hi the group's largest
+  z, a bound concave in j; the window ends at the first j where it falls below
+  e^-``_DROP`` = e^-37 (relative 1e-16), and likewise on the left with the
+  smallest z.  Concavity keeps every term outside below that.
+* sigma_j > 40 (large y / phi): the terms vary smoothly on the integer grid, so
   by the Poisson summation formula the sum equals the integral of
   exp(log W_x) over real x up to a relative error below exp(-2 pi^2 sigma_j^2);
   that integral is computed by the trapezoidal rule with step sigma_j / 4 over
   [x* - 14 sigma_j, x* + 24 sigma_j] around the maximiser x* (two Newton steps
   with digamma/polygamma from the Stirling guess).  This keeps the cost
-  bounded for any (y, phi, p), where the plain series needs O(sqrt(j*)) terms.
+  bounded for any (y, phi, p), where the plain series needs O(sqrt(j*)) terms
+  (the sum costs about as much as the integral's 153 nodes near sigma_j ~ 200;
+  it is used up to 40, where it is still ~6 times cheaper).
 
 Every legal (y, mu, phi, p) gives a finite nll except where e^raw itself
 over- or underflows (|raw| beyond ~700 / (2-p)), where the nll is +inf (never NaN).
@@ -65,21 +74,29 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from numpy.lib.stride_tricks import sliding_window_view
 from scipy import optimize, special
 
 from .._checks import POSITIVE, Domain, NONNEGATIVE
 from ..links import LOG
-from ._base import Family, FromParam
+from ._base import Family, FromParam, by_row_blocks
 
 POWER_DOMAIN = Domain("strictly between 1 and 2", lambda a: np.isfinite(a) & (a > 1) & (a < 2))
 
-#: series terms smaller than the central one by this many nats are left out (e^-37 ~ 1e-16)
+#: series terms below a row's central term by more than this many nats are left out (e^-37 ~ 1e-16)
 _DROP = 37.0
 #: rows whose terms spread over more than this many sigma_j use the integral form
-_WIDE_SIGMA = 8.0
-#: elements per block of the row x term matrices (bounds memory)
+_WIDE_SIGMA = 40.0
+#: elements per block of the row x node matrices of the integral form and of the law's cdf (bounds memory)
 _BLOCK = 1 << 21
+#: elements per block of the term x row matrices of the series (a few such blocks fit in the L2 cache)
+_CELLS = 1 << 15
+#: neighbouring central indices share a group only while it holds at most this many rows ...
+_GROUP_ROWS = 2048
+#: ... and while the extra terms the merge costs stay below this (see _merge_runs)
+_MERGE_TERMS = 1 << 13
+#: exponents are raised to this floor before exp: such terms are below 1e-300 of a sum that is at
+#: least 1, and numpy's exp is several times slower on arguments whose result underflows
+_FLOOR = -700.0
 #: trapezoid nodes of the integral form, in units of sigma_j around the maximiser
 _NODES = np.arange(-14.0, 24.0 + 1e-9, 0.25)
 
@@ -107,72 +124,167 @@ def _poisson_window(lam):
 
 
 def _series_z(y, p, phi):
+    return _series_z_of_log(np.log(y), p, phi)
+
+
+def _series_z_of_log(log_y, p, phi):
+    """z = a log y - a log(p-1) - (1+a) log phi - log(2-p) and a = (2-p)/(p-1), from log y."""
     a = (2.0 - p) / (p - 1.0)
-    return a * np.log(y) - a * np.log(p - 1.0) - (1.0 + a) * np.log(phi) - np.log(2.0 - p), a
+    return a * log_y - (a * np.log(p - 1.0) + (1.0 + a) * np.log(phi) + np.log(2.0 - p)), a
 
 
 def log_series(y, power, dispersion):
     """log sum_{j>=1} W_j of Dunn and Smyth's series for targets y > 0 (module docstring)."""
-    y = np.asarray(y, dtype=float)
-    z, a = _series_z(y, power, dispersion)
-    log_jstar = (z - a * np.log(a)) / (1.0 + a)
-    out = np.empty_like(y)
-    sigma_sq_log = log_jstar - np.log1p(a)  # log of j*/(1+a)
-    wide = sigma_sq_log > 2.0 * np.log(_WIDE_SIGMA)
-    jstar = np.exp(np.minimum(log_jstar, 700.0))
-    wide &= jstar - 14.0 * np.sqrt(jstar / (1.0 + a)) > 1.0
-    narrow = ~wide
-    if np.any(narrow):
-        out[narrow] = _narrow_sum(z[narrow], a, jstar[narrow])
-    if np.any(wide):
-        out[wide] = _wide_integral(z[wide], a, log_jstar[wide])
-    return out
+    log_y = np.log(np.asarray(y, dtype=float))
+    return _log_series_of_log(log_y.ravel(), power, dispersion).reshape(log_y.shape)
 
 
-def _narrow_sum(z, a, jstar):
-    """log sum_j exp(j z + c_j) over an integer window around j*, widened until both ends are negligible."""
-    jc = np.maximum(np.rint(jstar), 1.0).astype(np.int64)
-    half = np.ceil(6.0 * np.sqrt(jstar / (1.0 + a)) + 4.0).astype(np.int64)
+def _log_series_of_log(log_y, power, dispersion):
+    """log_series from log y (a one-dimensional array)."""
+    if log_y.size == 0:
+        return np.empty(0)
+    z, a = _series_z_of_log(log_y, power, dispersion)
+    # the integral form takes the rows with sigma_j > _WIDE_SIGMA whose nodes stay above j = 1
+    # (j* - 14 sigma_j > 1); both conditions grow with j*, so together they are j* > j_wide, and
+    # since log j* = (z - a log a) / (1 + a), z > z_wide
+    k = 14.0 / np.sqrt(1.0 + a)
+    j_wide = max(_WIDE_SIGMA**2 * (1.0 + a), (0.5 * (k + np.sqrt(k * k + 4.0))) ** 2)
+    wide = z > (1.0 + a) * np.log(j_wide) + a * np.log(a)
+    if not wide.any():
+        return _narrow_sum(z, a)
     out = np.empty_like(z)
-    todo = np.arange(z.size)
-    table = np.empty(0)
-    while todo.size:
-        lo_all = np.maximum(jc[todo] - half[todo], 1)
-        need = int((lo_all + 2 * half[todo] + 1).max()) + 1
-        if need > table.size:
-            j = np.arange(1, need + 1, dtype=float)
-            table = -special.gammaln(j + 1.0) - special.gammaln(a * j)  # table[k] = c_(k+1)
-        redo = []
-        order = np.argsort(half[todo], kind="stable")
-        groups = np.split(order, np.flatnonzero(np.diff(half[todo][order])) + 1)
-        for group in groups:  # rows with the same window width together
-            width = int(2 * half[todo[group[0]]] + 1)
-            windows = sliding_window_view(table, width)
-            steps = np.arange(width, dtype=float)
-            rows_per_block = max(1, _BLOCK // width)
-            for s in range(0, group.size, rows_per_block):
-                idx = todo[group[s:s + rows_per_block]]
-                lo_b = lo_all[group[s:s + rows_per_block]]
-                zb = z[idx]
-                terms = windows[lo_b - 1]  # c_j for j = lo .. lo + width - 1 (a copy)
-                terms += (lo_b * zb)[:, None]
-                terms += np.multiply.outer(zb, steps)
-                # shift by the term at the window's centre (at or next to the peak): no max pass
-                top = terms[np.arange(idx.size), np.minimum(jc[idx] - lo_b, width - 1)]
-                first_ok = (lo_b == 1) | (terms[:, 0] < top - _DROP)
-                last_ok = terms[:, -1] < top - _DROP
-                terms -= top[:, None]
-                np.exp(terms, out=terms)
-                out[idx] = top + np.log(terms.sum(axis=1))
-                redo.append(idx[~(first_ok & last_ok)])
-        todo = np.concatenate(redo)
-        half[todo] *= 2
+    narrow = ~wide
+    if narrow.any():
+        out[narrow] = _narrow_sum(z[narrow], a)
+    out[wide] = _wide_integral(z[wide], a)
     return out
 
 
-def _wide_integral(z, a, log_jstar):
+def _log_weights(a, top):
+    """c_j = -lgamma(j + 1) - lgamma(a j) at index j = 1 .. top (index 0 unused: NaN)."""
+    j = np.arange(top + 1, dtype=float)
+    j[0] = np.nan
+    return -special.gammaln(j + 1.0) - special.gammaln(a * j)
+
+
+def _narrow_sum(z, a):
+    """log sum_{j>=1} exp(j z + c_j) for rows whose terms gather within a few dozen j of j*.
+
+    Rows are sorted by their central index jc = max(1, rint(j*)), and neighbouring central
+    indices are grouped (_merge_runs).  A group shares its window of j and its
+    anchor j1 (the smallest central index): each row's sum is
+    exp(c_j1 + j1 z) sum_j exp((c_j - c_j1) + (j - j1) z), where the differences c_j - c_j1 are
+    the same for every row, so the terms of a block of rows are one outer product plus a vector.
+    The window holds every j whose term can exceed e^-_DROP times the row's central term
+    (plus the first term below on each side): for j beyond the group's largest central index
+    j2, term_j / term_jc <= exp(c_j + j z_hi - min_(j1<=i<=j2) (c_i + i z_hi)) with z_hi the
+    group's largest z, and that bound is concave in j (module docstring), so once below the
+    threshold it stays below; the same with the smallest z on the left.  The anchor's term
+    is 1, so the sum is >= 1 and terms floored at e^-700 do not change it.
+    """
+    jstar = np.exp((z - a * np.log(a)) / (1.0 + a))
+    np.rint(jstar, out=jstar)
+    top = max(float(jstar.max()), 1.0)
+    centre = np.maximum(jstar, 1.0).astype(np.int32 if top < 2.0**31 else np.int64)
+    order = np.argsort(centre)
+    zs = z[order]
+    counts = np.bincount(centre)
+    centres = np.flatnonzero(counts)
+    counts = counts[centres]
+    firsts = np.cumsum(counts) - counts
+    groups = _merge_runs(centres.tolist(), counts.tolist(), a)  # index of each group's first run
+    starts = firsts[groups]
+    bounds = np.append(starts, zs.size)
+    z_lo = np.minimum.reduceat(zs, starts)
+    z_hi = np.maximum.reduceat(zs, starts)
+    j_lo = centres[groups]
+    j_hi = centres[np.append(groups[1:], centres.size) - 1]
+    table = _log_weights(a, int(top + 12.0 * np.sqrt(top / (1.0 + a)) + 40.0))
+    acc = np.empty(zs.size)
+    buf = np.empty(_CELLS)
+    for g in range(groups.size):
+        j1, j2 = int(j_lo[g]), int(j_hi[g])
+        zl, zh = float(z_lo[g]), float(z_hi[g])
+        first, last, table = _group_window(table, a, j1, j2, zl, zh)
+        width = last - first + 1
+        diff = table[first:last + 1] - table[j1]
+        steps = np.arange(first - j1, last - j1 + 1, dtype=float)
+        # the smallest exponent of the group (linear in z: at one of its ends) decides the floor
+        lowest = min((diff + steps * zl).min(), (diff + steps * zh).min())
+        diff, steps = diff[:, None], steps[:, None]
+        anchor = float(table[j1])
+        rows = max(1, _CELLS // width)
+        for b in range(bounds[g], bounds[g + 1], rows):
+            e = min(b + rows, bounds[g + 1])
+            terms = buf[:width * (e - b)].reshape(width, e - b)
+            np.multiply(steps, zs[b:e], out=terms)
+            terms += diff
+            if lowest < _FLOOR:
+                np.maximum(terms, _FLOOR, out=terms)
+            np.exp(terms, out=terms)
+            part = acc[b:e]
+            np.add.reduce(terms, axis=0, out=part)
+            np.log(part, out=part)
+            part += anchor + j1 * zs[b:e]
+    out = np.empty_like(acc)
+    out[order] = acc
+    return out
+
+
+def _merge_runs(centres, counts, a):
+    """Index of the first run of each group.
+
+    A run of rows with one central index joins the group before it while the group stays
+    below _GROUP_ROWS rows, the central indices stay within 8 sigma_j of the group's first one
+    j1 (the terms then stay within about e^32 of the anchor's), and the extra terms the
+    merge costs, (j - j1) per row, stay below _MERGE_TERMS (about what a group of its own costs
+    in Python overhead): sparse central indices are merged, well-filled ones are not.
+    """
+    firsts = [0]
+    j1, rows, span = centres[0], counts[0], int(8.0 * np.sqrt(centres[0] / (1.0 + a)))
+    for k in range(1, len(centres)):
+        j, c = centres[k], counts[k]
+        rows += c
+        if j - j1 > span or rows > _GROUP_ROWS or (j - j1) * rows > _MERGE_TERMS:
+            firsts.append(k)
+            j1, rows, span = j, c, int(8.0 * np.sqrt(j / (1.0 + a)))
+    return np.array(firsts)
+
+
+def _group_window(table, a, j1, j2, z_lo, z_hi):
+    """(first j, last j, table) of a group's window (see _narrow_sum); the table grows when needed."""
+    i = np.arange(j1, j2 + 1)
+    reach = int(10.0 * np.sqrt(j2 / (1.0 + a)) + 20.0)
+    top = (table[j1:j2 + 1] + i * z_hi).min()
+    while True:  # rightwards from j2 until the bound falls below e^-_DROP
+        if j2 + reach >= table.size:
+            table = _log_weights(a, 2 * (j2 + reach))
+        j = np.arange(j2 + 1, j2 + reach + 1)
+        below = table[j2 + 1:j2 + reach + 1] + j * z_hi - top < -_DROP
+        k = int(below.argmax())
+        if below[k]:
+            last = j2 + 1 + k
+            break
+        reach *= 2
+    first = 1
+    top = (table[j1:j2 + 1] + i * z_lo).min()
+    while j1 > 1:  # leftwards from j1 down to 1 at most
+        lo = max(1, j1 - reach)
+        j = np.arange(lo, j1)
+        below = (table[lo:j1] + j * z_lo - top < -_DROP)[::-1]
+        k = int(below.argmax())
+        if below[k]:
+            first = j1 - 1 - k
+            break
+        if lo == 1:
+            break
+        reach *= 2
+    return first, last, table
+
+
+def _wide_integral(z, a):
     """log of the integral of exp(x z - lgamma(x+1) - lgamma(a x)) dx by the trapezoidal rule."""
-    x = np.exp(log_jstar)
+    x = np.exp((z - a * np.log(a)) / (1.0 + a))
     for _ in range(2):  # Newton steps on d/dx log W_x = z - digamma(x+1) - a digamma(a x)
         slope = z - special.digamma(x + 1.0) - a * special.digamma(a * x)
         curv = special.polygamma(1, x + 1.0) + a * a * special.polygamma(1, a * x)
@@ -207,30 +319,48 @@ class Tweedie(Family):
 
     def _nll(self, y, raw):
         p, phi = self.power, self.dispersion
-        kappa = np.exp((2.0 - p) * raw) / (2.0 - p)
+        out = np.multiply(raw, 2.0 - p)
+        np.exp(out, out=out)
+        out /= (2.0 - p) * phi  # mu^(2-p) / (phi (2-p)), the whole nll at y = 0
         pos = y > 0
-        out = kappa / phi
-        if np.any(pos):
+        if pos.all():
+            yp, rp = y, raw
+        elif pos.any():
             yp, rp = y[pos], raw[pos]
-            exponent = np.exp(np.log(yp) + (1.0 - p) * rp) / (p - 1.0)
-            out[pos] += exponent / phi + np.log(yp) - log_series(yp, p, phi)
+        else:
+            return out
+        log_y = np.log(yp)
+        part = np.multiply(rp, 1.0 - p)
+        part += log_y
+        np.exp(part, out=part)
+        part /= (p - 1.0) * phi  # y mu^(1-p) / (phi (p-1))
+        part += log_y
+        part -= _log_series_of_log(log_y, p, phi)
+        if yp is y:
+            out += part
+        else:
+            out[pos] += part
         return out
 
     def _grad_hess(self, y, raw):
+        g, h = by_row_blocks(self._fill_grad_hess, (y, raw), n_out=2, n_scratch=1)
+        return g, h
+
+    def _fill_grad_hess(self, y, raw, g, h, t):
+        """Gradient into g and Hessian into h for one block of rows (t: work array)."""
         p, phi = self.power, self.dispersion
-        t = np.multiply(raw, 1.0 - p)
+        np.multiply(raw, 1.0 - p, out=t)
         np.exp(t, out=t)
         t *= y  # y e^((1-p) raw)
-        m = np.multiply(raw, 2.0 - p)
-        np.exp(m, out=m)  # e^((2-p) raw)
-        g = np.subtract(m, t)
-        m *= 2.0 - p
+        np.multiply(raw, 2.0 - p, out=h)
+        np.exp(h, out=h)  # e^((2-p) raw)
+        np.subtract(h, t, out=g)
+        h *= 2.0 - p
         t *= p - 1.0
-        m += t
+        h += t
         if phi != 1.0:
             g /= phi
-            m /= phi
-        return g, m
+            h /= phi
 
     def _deviance(self, y, raw):
         p = self.power
