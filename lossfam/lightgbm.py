@@ -258,6 +258,8 @@ def _label_weight(data, fam, what):
     w = _field(data, "weight")
     w = None if w is None else _checks.check_weight(np.asarray(w, dtype=np.float64).ravel(), y, fam.name,
                                                    need_positive_sum=True)
+    if w is not None and np.all(w == 1.0):
+        w = None  # LightGBM drops weights that are all ones: the data are unweighted for it too
     return y, w
 
 
@@ -305,6 +307,8 @@ class _Refit:
         self.family = fam
         self.rule = facts.leaf_rule(fam)
         self.level = facts.leaf_level(fam)
+        # LightGBM's own renewal definition, so that the custom path grows the native twin's model
+        self.definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
         self.grads = Gradients(fam, guard)
         self.lr = lr
         self.y, self.w = y, w
@@ -346,7 +350,7 @@ class _Refit:
                                            **self.predict_kw)).astype(np.intp).reshape(-1) for X in self.X]
             n_leaves = 1 + max(int(lv.max()) for lv in leaves if lv.size)
             values, has = leaf_table(self.rule, self.level, self.family, leaves[0], self.y, self.raw[0],
-                                     self.tree_w[t], n_leaves, self.lr)
+                                     self.tree_w[t], n_leaves, self.lr, self.definition)
             table = np.array([b.get_leaf_output(t, j) for j in range(n_leaves)])
             table[has] = values[has]
             for j in np.flatnonzero(has):

@@ -470,6 +470,8 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
     verbose = kw.get("verbose_eval", True)
     eta = float(params.get("learning_rate", params.get("eta", 0.3)))
     rule, level = facts.leaf_rule(fam), facts.leaf_level(fam)
+    # XGBoost's own renewal definition, so that the custom path grows the native twin's model
+    definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
     grads = Gradients(fam, guard)
     bag = None
     fraction = float(params.get("subsample", 1.0))
@@ -496,7 +498,7 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
         n_nodes = int(leaves.max()) + 1
         lvs = [np.asarray(tree.predict(d, pred_leaf=True), dtype=np.intp).reshape(-1) for d, _, _ in eval_state]
         n_nodes = max([n_nodes] + [int(lv.max()) + 1 for lv in lvs if lv.size])
-        values, has = leaf_table(rule, level, fam, leaves, y, raw, wi, n_nodes, eta)
+        values, has = leaf_table(rule, level, fam, leaves, y, raw, wi, n_nodes, eta, definition)
         table = np.where(has, values, 0.0).astype(np.float32).astype(np.float64)
         tables.append(table)
         raw += table[leaves]
