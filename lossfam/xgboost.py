@@ -45,7 +45,9 @@ Python objective).  lossfam runs the rounds itself: each tree is grown with
 ``Booster.boost`` on the rule's gradient (the pinball subgradient with a unit
 Hessian for median/quantile, as the built-ins; the family's own for a line
 search), its leaves are read with ``booster[i:i+1].predict(pred_leaf=True)``
-and set from ``lossfam._boost.leaves``; the values are tracked by lossfam and
+and set from ``lossfam._boost.leaves`` (a median / quantile leaf by XGBoost's
+own definition: Hyndman and Fan's 6 without weights, the inverted weighted cdf
+with them; so ``native=False`` gives the native path's model); the values are tracked by lossfam and
 written into the model's JSON once, at the end.  With ``subsample`` < 1
 lossfam draws the bag itself and refits on in-bag rows only.  This path
 accepts ``evals``, ``early_stopping_rounds``, ``evals_result``,
