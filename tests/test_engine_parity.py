@@ -264,9 +264,10 @@ def _check(engine, case, source, learning_rate, rounds, paths):
 # (geometric means 0.998-1.002): start-dependent noise, not a worse model.  One float32 ulp of
 # XGBoost's own start changed its held-out pinball loss by 2.4% (tau = 0.05, sim0, 0.05 x 1000).
 _START_GAPS = {
-    ("lightgbm", ("asymmetric_laplace", 0.9)): "1.013 x the built-in (start differs from LightGBM's in every fold)",
-    ("lightgbm", ("asymmetric_laplace", 0.95)): "1.032 x the built-in (start differs from LightGBM's in every fold)",
-    ("xgboost", ("asymmetric_laplace", 0.9)): "1.012 x the built-in (start differs from XGBoost's in 1 of 5 folds)",
+    ("lightgbm", ("asymmetric_laplace", 0.9)): "1.013 x the built-in (starts differ in 3 of 5 folds: 268 vs 267.4, "
+                                               "265 vs 264.7, 270 vs 269.4)",
+    ("lightgbm", ("asymmetric_laplace", 0.95)): "1.032 x the built-in (starts differ in 4 of 5 folds, e.g. 288 vs 284.75)",
+    ("xgboost", ("asymmetric_laplace", 0.9)): "1.012 x the built-in (starts differ in 1 of 5 folds: 265 vs 266.8)",
 }
 
 
