@@ -339,7 +339,7 @@ class _Refit:
         w = self.w if self.bag is None else self.bag.weights(len(self.tree_w), self.w)
         self.tree_w.append(w)
         if self.level is not None:
-            return growth_gradients(self.level, self.y, self.raw[0], w)
+            return growth_gradients(self.rule, self.level, self.y, self.raw[0], w)
         return self.grads(self.y, self.raw[0], w)
 
     def catch_up(self, booster=None):

@@ -492,7 +492,7 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
     best_score, best_iter = math.inf, None
     for i in range(num_boost_round):
         wi = w if bag is None else bag.weights(i, w)
-        g, h = growth_gradients(level, y, raw, wi) if level is not None else grads(y, raw, wi)
+        g, h = growth_gradients(rule, level, y, raw, wi) if level is not None else grads(y, raw, wi)
         booster.boost(dtrain, i, grad=g, hess=h)
         del g, h
         tree = booster[i:i + 1]
