@@ -40,7 +40,11 @@ Refit path (families with a ``leaf_value`` rule other than ``"newton"``, on
 the Python objective).  Each tree is grown on the rule's gradient (the pinball
 subgradient with a unit Hessian for median/quantile; the family's own for a
 line search), then its leaves are set from ``lossfam._boost.leaves`` via
-``Booster.set_leaf_output``.  LightGBM's score caches never see edited leaves,
+``Booster.set_leaf_output`` (a median / quantile leaf by LightGBM's own
+definition, Hyndman and Fan's 7, on unweighted rows: the same leaf values as
+the native twin's, so ``native=False`` gives the native path's model; on
+weighted rows, which LightGBM renews by a rule of its own, the midpoint of the
+leaf's minimisers).  LightGBM's score caches never see edited leaves,
 so ``train`` keeps the raw scores of the training and validation sets itself
 (each new tree's leaf indices, ``predict(pred_leaf=True)`` on the in-memory
 features); the objective and metrics read those.  This path needs the feature
@@ -258,6 +262,8 @@ def _label_weight(data, fam, what):
     w = _field(data, "weight")
     w = None if w is None else _checks.check_weight(np.asarray(w, dtype=np.float64).ravel(), y, fam.name,
                                                    need_positive_sum=True)
+    if w is not None and np.all(w == 1.0):
+        w = None  # LightGBM drops weights that are all ones: the data are unweighted for it too
     return y, w
 
 
@@ -305,6 +311,8 @@ class _Refit:
         self.family = fam
         self.rule = facts.leaf_rule(fam)
         self.level = facts.leaf_level(fam)
+        # LightGBM's own renewal definition, so that the custom path grows the native twin's model
+        self.definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
         self.grads = Gradients(fam, guard)
         self.lr = lr
         self.y, self.w = y, w
@@ -331,7 +339,7 @@ class _Refit:
         w = self.w if self.bag is None else self.bag.weights(len(self.tree_w), self.w)
         self.tree_w.append(w)
         if self.level is not None:
-            return growth_gradients(self.level, self.y, self.raw[0], w)
+            return growth_gradients(self.rule, self.level, self.y, self.raw[0], w)
         return self.grads(self.y, self.raw[0], w)
 
     def catch_up(self, booster=None):
@@ -346,7 +354,7 @@ class _Refit:
                                            **self.predict_kw)).astype(np.intp).reshape(-1) for X in self.X]
             n_leaves = 1 + max(int(lv.max()) for lv in leaves if lv.size)
             values, has = leaf_table(self.rule, self.level, self.family, leaves[0], self.y, self.raw[0],
-                                     self.tree_w[t], n_leaves, self.lr)
+                                     self.tree_w[t], n_leaves, self.lr, self.definition)
             table = np.array([b.get_leaf_output(t, j) for j in range(n_leaves)])
             table[has] = values[has]
             for j in np.flatnonzero(has):

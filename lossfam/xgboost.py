@@ -45,7 +45,9 @@ Python objective).  lossfam runs the rounds itself: each tree is grown with
 ``Booster.boost`` on the rule's gradient (the pinball subgradient with a unit
 Hessian for median/quantile, as the built-ins; the family's own for a line
 search), its leaves are read with ``booster[i:i+1].predict(pred_leaf=True)``
-and set from ``lossfam._boost.leaves``; the values are tracked by lossfam and
+and set from ``lossfam._boost.leaves`` (a median / quantile leaf by XGBoost's
+own definition: Hyndman and Fan's 6 without weights, the inverted weighted cdf
+with them; so ``native=False`` gives the native path's model); the values are tracked by lossfam and
 written into the model's JSON once, at the end.  With ``subsample`` < 1
 lossfam draws the bag itself and refits on in-bag rows only.  This path
 accepts ``evals``, ``early_stopping_rounds``, ``evals_result``,
@@ -470,6 +472,8 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
     verbose = kw.get("verbose_eval", True)
     eta = float(params.get("learning_rate", params.get("eta", 0.3)))
     rule, level = facts.leaf_rule(fam), facts.leaf_level(fam)
+    # XGBoost's own renewal definition, so that the custom path grows the native twin's model
+    definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
     grads = Gradients(fam, guard)
     bag = None
     fraction = float(params.get("subsample", 1.0))
@@ -488,7 +492,7 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
     best_score, best_iter = math.inf, None
     for i in range(num_boost_round):
         wi = w if bag is None else bag.weights(i, w)
-        g, h = growth_gradients(level, y, raw, wi) if level is not None else grads(y, raw, wi)
+        g, h = growth_gradients(rule, level, y, raw, wi) if level is not None else grads(y, raw, wi)
         booster.boost(dtrain, i, grad=g, hess=h)
         del g, h
         tree = booster[i:i + 1]
@@ -496,7 +500,7 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
         n_nodes = int(leaves.max()) + 1
         lvs = [np.asarray(tree.predict(d, pred_leaf=True), dtype=np.intp).reshape(-1) for d, _, _ in eval_state]
         n_nodes = max([n_nodes] + [int(lv.max()) + 1 for lv in lvs if lv.size])
-        values, has = leaf_table(rule, level, fam, leaves, y, raw, wi, n_nodes, eta)
+        values, has = leaf_table(rule, level, fam, leaves, y, raw, wi, n_nodes, eta, definition)
         table = np.where(has, values, 0.0).astype(np.float32).astype(np.float64)
         tables.append(table)
         raw += table[leaves]

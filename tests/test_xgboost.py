@@ -72,8 +72,9 @@ def test_huber_no_worse_than_pseudohuber():
 
 def test_refit_leaves_are_the_residual_quantiles_grown_on_a_unit_hessian():
     # One tree, learning rate 1: every leaf holds the tau-quantile of y - baseline of its rows
-    # (numpy quantile, inverted-cdf rule), and the split is the one reg:quantileerror's unit-Hessian
-    # recipe finds (same first split as the built-in)
+    # (numpy quantile, "weibull" rule: XGBoost's own renewal on unweighted rows), and the split is
+    # the one reg:quantileerror's unit-Hessian recipe finds (same first split as the built-in);
+    # the baseline is the midpoint of the minimisers (numpy's "averaged_inverted_cdf")
     rng = np.random.default_rng(6)
     n = 3000
     X = rng.normal(size=(n, 2))
@@ -81,12 +82,13 @@ def test_refit_leaves_are_the_residual_quantiles_grown_on_a_unit_hessian():
     tau = 0.9
     p = {"eta": 1.0, "max_depth": 2, "nthread": 1}
     model = lx.train(lossfam.family("asymmetric_laplace", quantile=tau), p, xgb.DMatrix(X, label=y), 1, native=False)
-    assert model.baseline == np.float32(np.quantile(y, tau, method="inverted_cdf"))
+    y32 = y.astype(np.float32).astype(np.float64)  # the labels XGBoost stores
+    assert model.baseline == np.float32(np.quantile(y32, tau, method="averaged_inverted_cdf"))
     leaves = model.booster.predict(xgb.DMatrix(X), pred_leaf=True).reshape(-1)
     step = model.predict_raw(X) - model.baseline
     for leaf in np.unique(leaves):
         rows = leaves == leaf
-        expected = np.quantile(y[rows] - model.baseline, tau, method="inverted_cdf")
+        expected = np.quantile(y[rows] - model.baseline, tau, method="weibull")
         np.testing.assert_allclose(step[rows], expected, rtol=1e-5, atol=1e-5)
     ref = xgb.train(dict(p, objective="reg:quantileerror", quantile_alpha=tau, base_score=model.baseline),
                     xgb.DMatrix(X, label=y), 1)

@@ -9,7 +9,10 @@ family gets the same treatment as a built-in one.
 module              holds
 ==================  ==========================================================
 ``facts``           the family's engine facts as numbers: dispersion unit,
-                    native twin parameters, leaf-value level
+                    native twin parameters, leaf-value level; and the
+                    engines' own sample quantile definitions (leaf renewal)
+``quantiles``       sample quantiles per group (midpoint of the minimisers,
+                    Hyndman-Fan 1, 6, 7): baselines and leaf values
 ``gradients``       the step guard (``step_limit``), gradient/Hessian assembly
                     (unit, guard, checks), target caching, the far-start warning
 ``plan``            the start plan (baseline given offset and weights,

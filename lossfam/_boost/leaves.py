@@ -4,10 +4,12 @@ After a tree is grown, ``leaf_table`` gives each leaf the learning rate times
 the constant that minimises its rows' nll given their current raw scores:
 
 ``"median"`` / ``"quantile"`` (level tau)
-    the weighted tau-quantile of the residuals ``y - raw`` (the smallest
-    residual whose cumulative weight reaches tau times the leaf's weight,
-    numpy's "inverted_cdf" rule): an exact minimiser of the leaf's pinball
-    loss, so of the Laplace / asymmetric Laplace nll.
+    the tau-quantile of the leaf's residuals ``y - raw``, by the sample
+    quantile definition the engine's built-in median / quantile objective
+    renews its leaves with (``facts.renewal_definition``; definitions in
+    ``lossfam._boost.quantiles``), so that a tree grown on the same
+    gradients gets the same leaf values on the custom path as on the native
+    twin.
 ``"line_search"``
     the root of the leaf's summed gradient, by Newton steps on the family's
     own Hessian (for a surrogate Hessian these are the iteratively reweighted
@@ -21,27 +23,10 @@ from __future__ import annotations
 
 import numpy as np
 
+from .quantiles import grouped_quantile
+
 LINE_SEARCH_STEPS = 50
 LINE_SEARCH_TOL = 1e-10
-
-
-def grouped_quantile(leaf, r, w, q, n_leaves):
-    """Per leaf, the weighted q-quantile of ``r`` (inverted-cdf rule); returns (values, has_rows)."""
-    order = np.lexsort((r, leaf))
-    ls = leaf[order]
-    rs = r[order]
-    cw = np.cumsum(w[order]) if w is not None else np.arange(1, r.size + 1, dtype=np.float64)
-    ids = np.arange(n_leaves)
-    starts = np.searchsorted(ls, ids, side="left")
-    ends = np.searchsorted(ls, ids, side="right")
-    has = ends > starts
-    before = np.where(starts > 0, cw[np.maximum(starts - 1, 0)], 0.0)
-    total = np.where(has, cw[np.maximum(ends - 1, 0)] - before, 0.0)
-    has &= total > 0
-    idx = np.searchsorted(cw, before + q * total, side="left")
-    idx = np.clip(idx, starts, np.maximum(ends - 1, starts))
-    idx = np.minimum(idx, r.size - 1)
-    return rs[idx], has
 
 
 def grouped_line_search(fam, leaf, y, raw, w, n_leaves):
@@ -65,11 +50,15 @@ def grouped_line_search(fam, leaf, y, raw, w, n_leaves):
     return c, has
 
 
-def leaf_table(rule, level, fam, leaf, y, raw, w, n_leaves, learning_rate):
-    """(learning_rate * per-leaf minimiser, has_rows) for the leaves of one tree (module docstring)."""
+def leaf_table(rule, level, fam, leaf, y, raw, w, n_leaves, learning_rate, definition="midpoint"):
+    """(learning_rate * per-leaf value, has_rows) for the leaves of one tree (module docstring).
+
+    ``definition``: the sample quantile definition of the median / quantile
+    rules (``lossfam._boost.quantiles``); rows of zero weight (out of the
+    bag) are left out."""
     leaf = np.asarray(leaf, dtype=np.intp).reshape(-1)
     if rule in ("median", "quantile"):
-        c, has = grouped_quantile(leaf, y - raw, w, level, n_leaves)
+        c, has = grouped_quantile(leaf, y - raw, w, level, n_leaves, definition)
     elif rule == "line_search":
         c, has = grouped_line_search(fam, leaf, y, raw, w, n_leaves)
     else:  # pragma: no cover - the adapters only call this for refit rules

@@ -51,8 +51,11 @@ Hessian, so a user family needs none of them unless it wants the treatment:
                       ``"newton"`` (the engine's -sum g / sum h), ``"median"``
                       or ``"quantile"`` (the tree is grown on the pinball
                       subgradient with a unit Hessian, then each leaf takes the
-                      exact weighted median / tau-quantile of its rows'
-                      residuals; tau is the ``quantile`` parameter), or
+                      median / tau-quantile of its rows' residuals, by the
+                      engine's own sample quantile definition so that the
+                      custom path grows the native twin's trees
+                      (``lossfam._boost.facts.renewal_definition``); tau is
+                      the ``quantile`` parameter), or
                       ``"line_search"`` (each leaf takes the constant that
                       minimises its rows' nll, found by vectorised Newton /
                       IRLS iterations on the family's own Hessian).

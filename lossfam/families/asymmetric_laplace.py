@@ -10,7 +10,8 @@ rho_tau(u) = u (tau - 1[u < 0]):
     gradient = (1[y < raw] - tau) / b            (a subgradient)
     Hessian  = 0 almost everywhere: replaced by the surrogate below
     deviance = 2 rho_tau(y - raw)
-    baseline = weighted tau-quantile of y (of y - o with an offset)
+    baseline = weighted tau-quantile of y (of y - o with an offset): the
+               midpoint of the set of minimisers (lossfam._boost.quantiles)
     b^       = sum w rho_tau(y - raw) / sum w    (maximum likelihood)
 
 Surrogate Hessian.  rho_tau(r) = (|r| + (2 tau - 1) r) / 2 is a linear term
@@ -34,7 +35,8 @@ from .. import _checks
 from .._checks import OPEN_UNIT, POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family, FromParam, scaled_mean
-from .laplace import FLOOR, weighted_quantile
+from .._boost.quantiles import sample_quantile
+from .laplace import FLOOR
 
 
 def pinball(r, tau):
@@ -87,7 +89,7 @@ class AsymmetricLaplace(Family):
 
     def _baseline(self, y, w, offset):
         target = y if offset is None else y - offset
-        return weighted_quantile(target, w, self.quantile)
+        return sample_quantile(target, w, self.quantile, "midpoint")
 
     def _fit_nuisance(self, y, raw, w):
         b = scaled_mean(pinball(_checks.finite_residuals(y - raw, self.name), self.quantile), w)

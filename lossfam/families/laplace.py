@@ -8,7 +8,9 @@ Density, with location (median) mu = raw (identity link) and scale b > 0:
     gradient = sign(raw - y) / b                 (a subgradient; 0 at raw = y)
     Hessian  = 0 almost everywhere: replaced by the surrogate below
     deviance = 2 |y - raw|                       (2 (nll - nll at raw = y), times b)
-    baseline = weighted median of y (of y - o with an offset)
+    baseline = weighted median of y (of y - o with an offset): the midpoint
+               of the set of minimisers (the mean of the two middle values
+               for an even count of unit weights; lossfam._boost.quantiles)
     b^       = sum w |y - raw| / sum w           (maximum likelihood)
 
 Surrogate Hessian.  |r| is majorised at the current residual r0 by the
@@ -32,6 +34,7 @@ import numpy as np
 from scipy import stats
 
 from .. import _checks
+from .._boost.quantiles import sample_quantile
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family, scaled_mean
@@ -132,7 +135,7 @@ class Laplace(Family):
 
     def _baseline(self, y, w, offset):
         target = y if offset is None else y - offset
-        return weighted_quantile(target, w, 0.5)
+        return sample_quantile(target, w, 0.5, "midpoint")
 
     def _fit_nuisance(self, y, raw, w):
         b = scaled_mean(np.abs(_checks.finite_residuals(y - raw, self.name)), w)

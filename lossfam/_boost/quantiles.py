@@ -1,0 +1,121 @@
+r"""Sample quantiles of groups of rows, vectorised over the groups (no per-group Python loop).
+
+Used for the baseline of the median / quantile families (one group: every row)
+and for their leaf values (one group per leaf).  For a group with values
+``x_(1) <= ... <= x_(n)`` (weights ``w_(k)``, cumulative ``S_k``, total ``W``)
+and level ``q`` in (0, 1), the definitions are:
+
+``"midpoint"``
+    The midpoint of the set of minimisers of ``sum_k w_k rho_q(x_k - c)``
+    (``rho_q`` the pinball loss).  That set is ``[x_lo, x_hi]`` with
+    ``x_lo`` the smallest value whose cumulative weight reaches ``q W`` and
+    ``x_hi`` the smallest whose cumulative weight exceeds it; the two differ
+    only when some ``S_k`` equals ``q W`` exactly (compared to within
+    ``TIE_TOL * W``: ``0.1 * 30`` is ``3.0000000000000004`` in floating
+    point).  With unit weights it is Hyndman and Fan's definition 2
+    (numpy's ``"averaged_inverted_cdf"``); at ``q = 1/2`` it is the usual
+    median (the mean of the two middle values for even ``n``).  It depends on
+    the weights only through the weighted empirical law, so integer weights
+    give exactly what repeated rows give, and scaling every weight changes
+    nothing; and it is symmetric: the ``q``-quantile of ``x`` is minus the
+    ``(1 - q)``-quantile of ``-x``.
+``"lower"``
+    ``x_lo`` alone (Hyndman and Fan's definition 1, numpy's
+    ``"inverted_cdf"``), the left end of the minimiser set.
+``"linear"`` (unit weights)
+    Hyndman and Fan's definition 7: with ``h = (n - 1) q`` (0-based),
+    ``x_[floor h] + (h - floor h) (x_[floor h + 1] - x_[floor h])``; numpy's
+    default ``"linear"``.
+``"weibull"`` (unit weights)
+    Hyndman and Fan's definition 6: the same interpolation at
+    ``h = (n + 1) q - 1`` (0-based), clamped to ``[0, n - 1]``; numpy's
+    ``"weibull"``.
+
+"linear" and "weibull" interpolate between order statistics and so are, for
+most ``q``, not minimisers of the group's pinball loss; they are here because
+the engines' built-in median / quantile objectives renew leaves (and start)
+with them (``lossfam._boost.facts`` and the adapters say which engine uses
+which; measured on lightgbm 4.7.0 and xgboost 3.2.0).
+
+Reference: R. J. Hyndman and Y. Fan, "Sample quantiles in statistical
+packages", The American Statistician 50(4), 361-365 (1996), definitions 1, 2,
+6 and 7 (recalled from memory; tests/test_engine_contract.py checks each
+against numpy.quantile's method of the same name).
+"""
+from __future__ import annotations
+
+import numpy as np
+
+DEFINITIONS = ("midpoint", "lower", "linear", "weibull")
+UNWEIGHTED_ONLY = ("linear", "weibull")
+#: relative tolerance (of the group's total weight) under which a cumulative weight equals q W
+TIE_TOL = 1e-12
+
+
+def grouped_quantile(group, x, w, q, n_groups, definition="midpoint"):
+    """Per group, the ``q``-quantile of ``x`` by ``definition`` (module docstring).
+
+    ``group``: integer group index of each row in ``[0, n_groups)``; ``w``:
+    row weights or None (unit weights).  Rows of zero weight are left out.
+    The unit-weight definitions ("linear", "weibull") refuse other weights.
+    Returns ``(values, has_rows)``; groups without rows of positive weight
+    get value 0 and ``has_rows`` False.
+    """
+    if definition not in DEFINITIONS:
+        raise ValueError(f"unknown quantile definition {definition!r}; one of {DEFINITIONS}")
+    group = np.asarray(group, dtype=np.intp).reshape(-1)
+    x = np.asarray(x, dtype=np.float64).reshape(-1)
+    if w is not None:
+        w = np.asarray(w, dtype=np.float64).reshape(-1)
+        keep = w > 0
+        if not keep.all():
+            group, x, w = group[keep], x[keep], w[keep]
+        if definition in UNWEIGHTED_ONLY:
+            if np.any(w != 1.0):
+                raise ValueError(f"the {definition!r} quantile is defined for unit weights only")
+            w = None
+    order = np.lexsort((x, group))
+    gs = group[order]
+    xs = x[order]
+    ids = np.arange(n_groups)
+    starts = np.searchsorted(gs, ids, side="left")
+    ends = np.searchsorted(gs, ids, side="right")
+    has = ends > starts
+    last = np.maximum(ends - 1, starts)
+    values = np.zeros(n_groups)
+    if not has.any():
+        return values, has
+    if definition in UNWEIGHTED_ONLY:
+        n = (ends - starts).astype(np.float64)
+        h = (n - 1.0) * q if definition == "linear" else (n + 1.0) * q - 1.0
+        h = np.clip(h, 0.0, np.maximum(n - 1.0, 0.0))
+        lo = np.floor(h)
+        frac = h - lo
+        i0 = np.minimum(starts + lo.astype(np.intp), last)
+        i1 = np.minimum(i0 + 1, last)
+        a, b = xs[np.where(has, i0, 0)], xs[np.where(has, i1, 0)]
+        # numpy's lerp: from the nearer end, so frac 0 and 1 return the order statistic exactly
+        values = np.where(frac < 0.5, a + (b - a) * frac, b - (b - a) * (1.0 - frac))
+        return np.where(has, values, 0.0), has
+    cw = np.cumsum(w[order]) if w is not None else np.arange(1, xs.size + 1, dtype=np.float64)
+    before = np.where(starts > 0, cw[np.maximum(starts - 1, 0)], 0.0)
+    total = np.where(has, cw[np.maximum(ends - 1, 0)] - before, 0.0)
+    has &= total > 0
+    target = before + q * total
+    tol = TIE_TOL * total
+    i_lo = np.clip(np.searchsorted(cw, target - tol, side="left"), starts, last)
+    a = xs[np.minimum(i_lo, xs.size - 1)]
+    if definition == "lower":
+        return np.where(has, a, 0.0), has
+    i_hi = np.clip(np.searchsorted(cw, target + tol, side="right"), starts, last)
+    b = xs[np.minimum(i_hi, xs.size - 1)]
+    return np.where(has, 0.5 * (a + b), 0.0), has
+
+
+def sample_quantile(x, w, q, definition="midpoint") -> float:
+    """The ``q``-quantile of all of ``x`` (weights ``w`` or None) by ``definition``."""
+    x = np.asarray(x, dtype=np.float64).reshape(-1)
+    values, has = grouped_quantile(np.zeros(x.size, dtype=np.intp), x, w, q, 1, definition)
+    if not has[0]:
+        raise ValueError("no row of positive weight")
+    return float(values[0])
