@@ -100,6 +100,7 @@ SUBSAMPLE_WHILE_STEP = 0.02  # ... while the last step moved some raw score by m
 CHORD_SHRINK = 0.01  # a chord (or subsampled) step is kept only if it shrinks ||C^-1 dF||^2 by this factor
 SUBSAMPLE_SHRINK = 0.25  # ... and subsampled steps must shrink ||C^-1 dF||^2 by this factor (two misses in a row: full Hessians)
 CHORD_MIN_COLUMNS = 200  # ... used for sparse X or more coefficients than this
+CG_MEMORY = 40  # sparse X with more coefficients than CHORD_MIN_COLUMNS: pairs kept by the quasi-Newton preconditioner
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
 
@@ -157,21 +158,43 @@ def weighted_gram(X, hv, buf=None):
     return X.T @ (hv[:, None] * X), X.T @ hv
 
 
-def column_scales(X, v):
-    """c_j = sqrt(sum_i v_i x_ij^2) (1 for an all-zero column), in blocks of rows for sparse X."""
+def _csr_row_block(X, s, e):
+    """Rows s:e of a CSR matrix as a CSR matrix sharing X's data and index arrays (no copy of them)."""
+    a, b = int(X.indptr[s]), int(X.indptr[e])
+    return sparse.csr_matrix((X.data[a:b], X.indices[a:b], X.indptr[s:e + 1] - a), shape=(e - s, X.shape[1]),
+                             copy=False)
+
+
+def weighted_column_squares(X, hv, unit=False):
+    """sum_i hv_i x_ij^2 for every column j (the diagonal of X^T diag(hv) X).
+
+    Sparse X (CSR): ``unit`` (every stored entry 0 or 1, so x^2 = x) gives it as
+    one product X^T hv; otherwise the squares are formed for one block of rows
+    at a time (views of X's index arrays, so the only copy is one block's
+    values).  Dense X: in blocks of rows.
+    """
     n, p = X.shape
     if sparse.issparse(X):
         X = X.tocsr() if X.format != "csr" else X
+        if unit:
+            return np.asarray(X.T @ hv, dtype=float).ravel()
         ss = np.zeros(p)
         for s in range(0, n, _SPARSE_BLOCK):
-            blk = X[s:s + _SPARSE_BLOCK]
-            ss += np.asarray(blk.multiply(blk).T @ v[s:s + _SPARSE_BLOCK]).ravel()
-    else:
-        ss = np.zeros(p)
-        for s in range(0, n, _BLOCK):
-            blk = X[s:s + _BLOCK]
-            ss += v[s:s + _BLOCK] @ (blk * blk)
-    c = np.sqrt(ss)
+            e = min(n, s + _SPARSE_BLOCK)
+            blk = _csr_row_block(X, s, e)
+            blk = sparse.csr_matrix((blk.data * blk.data, blk.indices, blk.indptr), shape=blk.shape, copy=False)
+            ss += blk.T @ hv[s:e]
+        return ss
+    ss = np.zeros(p)
+    for s in range(0, n, _BLOCK):
+        blk = X[s:s + _BLOCK]
+        ss += hv[s:s + _BLOCK] @ (blk * blk)
+    return ss
+
+
+def column_scales(X, v, unit=False):
+    """c_j = sqrt(sum_i v_i x_ij^2) (1 for an all-zero column); ``unit`` as in ``weighted_column_squares``."""
+    c = np.sqrt(weighted_column_squares(X, v, unit))
     c[~(c > 0) | ~np.isfinite(c)] = 1.0
     return c
 
@@ -257,6 +280,9 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     cannot make progress, the step falls back to the objective merit.
     """
     n, p = X.shape
+    if (sparse.issparse(X) and merit == "gradient" and curvature is None
+            and p + int(fit_intercept) > CHORD_MIN_COLUMNS):
+        return newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept, cscale)
     coef = np.array(coef, dtype=float)
     intercept = float(intercept)
     if np.any(coef):
@@ -436,6 +462,197 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     if F is None:
         F = np.nan  # not evaluated (the gradient merit needs no nll values)
     return LinearFit(coef, intercept, raw, it, F, gnorm, converged, fam)
+
+
+def _is_unit(X):
+    """Every stored entry of the sparse matrix X is 0 or 1 (one-hot and indicator designs): x^2 = x."""
+    d = X.data
+    return bool(d.size == 0 or np.all((d == 1.0) | (d == 0.0)))
+
+
+def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+              cscale=None) -> LinearFit:
+    r"""Truncated Newton iteration for F with sparse X: Newton directions from preconditioned conjugate gradients.
+
+    Used by ``newton`` for sparse X with many columns, where forming the dense
+    Newton matrix X^T diag(v h) X (one sparse product with ~k^2 terms for a row
+    of k non-zeros) and factorising it costs far more than the solve needs.
+    Each outer iteration solves d2F d = -dF approximately by the conjugate
+    gradient method on exact Hessian-vector products
+
+        d2F u = [X 1]^T (v h * ([X 1] u)) + alpha (u_coef, 0)
+
+    (one product with X and one with X^T; the matrix is never formed),
+    preconditioned by its diagonal (Jacobi: sum_i v_i h_i x_ij^2 + alpha, and
+    sum v h for the intercept; one product X^T (v h) when every stored entry
+    is 0 or 1).  Jacobi preconditioning makes the iterates independent of the
+    columns' units, as the equilibrated Cholesky solve of the dense path.
+    The inner iteration stops at the truncated-Newton (inexact Newton) rule
+
+        ||C^-1 r|| <= eta_k ||C^-1 dF||,   eta_k = min(1/2, max_j |dF_j| / c_j)
+
+    (r the residual of the linear system, C = diag(c) the column scales of the
+    stopping rule), or once max_j |r_j| / c_j <= tol / 10, when the step
+    already reaches the outer tolerance.  A forcing term eta_k of the order of
+    the gradient keeps Newton's quadratic convergence near the optimum
+    (Dembo, Eisenstat & Steihaug, Inexact Newton methods, SIAM J. Numer. Anal.
+    19, 1982, Theorem 3.3; Nocedal & Wright, Numerical Optimization, 2nd ed.,
+    2006, section 7.1, Theorem 7.2 and Algorithm 7.1 -- both recalled from
+    memory).  Conjugate gradients started at 0 return a descent direction, and
+    with eta_k <= 1/2 also one for ||C^-1 dF||^2, so the step is accepted by
+    the same backtracking line search on the gradient norm as in ``newton``
+    (falling back to F itself).  The raw-score change X d is accumulated from
+    the products already made (no extra pass).  The gradient is exact at every
+    outer step, so the solution and the stopping rule are those of the dense
+    path; memory above X is a handful of length-n vectors.
+    """
+    n, p = X.shape
+    X = X.tocsr() if X.format != "csr" else X
+    XT = X.T  # CSC view of X^T, no copy
+    unit = _is_unit(X)
+    coef = np.array(coef, dtype=float)
+    intercept = float(intercept)
+    nfree = p + int(fit_intercept)
+    raw = _raw(X, coef, intercept, offset) if np.any(coef) else (
+        np.full(n, intercept) if offset is None else offset + intercept)
+    if cscale is None:
+        cscale = column_scales(X, v, unit)
+    inv_c = np.ones(nfree)
+    inv_c[:p] = 1.0 / cscale
+
+    def derivatives(raw_, coef_):
+        with np.errstate(over="ignore", invalid="ignore"):
+            g, h = fam._grad_hess(y, raw_)
+        g *= v
+        grad = np.empty(nfree)
+        grad[:p] = XT @ g
+        grad[:p] += alpha * coef_
+        if fit_intercept:
+            grad[p] = g.sum()
+        del g
+        h *= v
+        return grad, h
+
+    def objective(raw_, coef_):
+        with np.errstate(over="ignore", invalid="ignore"):
+            per_row = fam._nll(y, raw_)
+        return float(np.dot(v, per_row)) + 0.5 * alpha * float(coef_ @ coef_)
+
+    xd = np.empty(n)  # X u + u_0 for the current conjugate direction u
+    hxd = np.empty(n)
+    draw = np.empty(n)  # X d + d_0 for the Newton step d being built
+    grad, hv = derivatives(raw, coef)
+    converged = False
+    gnorm = np.inf
+    mem = []  # (s, H s, 1 / s.H s) of past conjugate steps: the quasi-Newton preconditioner's pairs
+    it = 0
+    for it in range(max_iter + 1):
+        sgrad = grad * inv_c
+        gnorm = float(np.max(np.abs(sgrad))) if nfree else 0.0
+        if not np.isfinite(gnorm):
+            raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+        if gnorm <= tol:
+            converged = True
+            break
+        if it == max_iter:
+            break
+        diag = np.empty(nfree)
+        diag[:p] = weighted_column_squares(X, hv, unit) + alpha
+        if fit_intercept:
+            diag[p] = hv.sum()
+        diag[~(diag > 0) | ~np.isfinite(diag)] = 1.0
+        eta = min(0.5, gnorm)
+        target = eta * float(np.linalg.norm(sgrad))
+        d = np.zeros(nfree)
+        draw[:] = 0.0
+        r = -grad
+
+        def precond(r_):
+            q = r_.copy()
+            al = []
+            for s_, y_, rho in reversed(mem):
+                a_ = rho * float(s_ @ q)
+                q -= a_ * y_
+                al.append(a_)
+            z_ = q / diag
+            for (s_, y_, rho), a_ in zip(mem, reversed(al)):
+                b_ = rho * float(y_ @ z_)
+                z_ += s_ * (a_ - b_)
+            return z_
+        z = precond(r)
+        u = z.copy()
+        newmem = []
+        rz = float(r @ z)
+        for _ in range(max(10 * nfree, 50)):
+            np.copyto(xd, X @ u[:p])
+            if fit_intercept:
+                xd += u[p]
+            np.multiply(xd, hv, out=hxd)
+            hu = np.empty(nfree)
+            hu[:p] = XT @ hxd
+            hu[:p] += alpha * u[:p]
+            if fit_intercept:
+                hu[p] = hxd.sum()
+            curv = float(u @ hu)
+            if not (curv > 0.0 and np.isfinite(curv)):
+                break  # no curvature left along u (a singular direction): keep the step so far
+            a = rz / curv
+            d += a * u
+            draw += a * xd
+            newmem.append((a * u, a * hu, 1.0 / (a * a * curv)))
+            r = r - a * hu
+            sr = r * inv_c
+            if float(np.linalg.norm(sr)) <= target or float(np.max(np.abs(sr))) <= 0.1 * tol:
+                break
+            z = precond(r)
+            rz_new = float(r @ z)
+            u = z + (rz_new / rz) * u
+            rz = rz_new
+        mem = (mem + newmem)[-CG_MEMORY:]
+        if not np.any(d):
+            d = -grad / diag  # no curvature along the first direction: a scaled gradient step
+            np.copyto(draw, _raw(X, d[:p], d[p] if fit_intercept else 0.0, None))
+        dc = d[:p]
+        db = d[p] if fit_intercept else 0.0
+        m0 = float(sgrad @ sgrad)
+        accepted = False
+        t = 1.0
+        for _ in range(30):
+            raw_new = raw + t * draw
+            coef_new = coef + t * dc
+            grad_new, hv_new = derivatives(raw_new, coef_new)
+            sg = grad_new * inv_c
+            m1 = float(sg @ sg)
+            if np.isfinite(m1) and m1 <= (1.0 - 2e-4 * t) * m0:
+                accepted = True
+                break
+            del raw_new, grad_new, hv_new
+            t *= 0.5
+        if not accepted:
+            F = objective(raw, coef)
+            slope = float(grad @ d)
+            t = 1.0
+            for _ in range(60):
+                raw_new = raw + t * draw
+                coef_new = coef + t * dc
+                F_new = objective(raw_new, coef_new)
+                if np.isfinite(F_new) and F_new <= F + 1e-4 * t * slope:
+                    accepted = True
+                    break
+                t *= 0.5
+            if not accepted:
+                converged = float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(
+                    np.max(np.abs(raw), initial=0.0))
+                break
+            grad_new, hv_new = derivatives(raw_new, coef_new)
+        change = t * float(np.max(np.abs(draw), initial=0.0))
+        coef, intercept, raw, grad, hv = coef_new, intercept + t * db, raw_new, grad_new, hv_new
+        if change <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)) and t == 1.0:
+            gnorm = float(np.max(np.abs(grad * inv_c))) if nfree else 0.0
+            converged = True
+            it += 1
+            break
+    return LinearFit(coef, intercept, raw, it, np.nan, gnorm, converged, fam)
 
 
 def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, rounds=3):
