@@ -263,7 +263,7 @@ def _raw(X, coef, intercept, offset):
 
 
 def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-           curvature=None, buf=None, merit="objective", cscale=None) -> LinearFit:
+           curvature=None, buf=None, merit="objective", cscale=None, fused=True) -> LinearFit:
     """Damped Newton iteration for F (see the module docstring).
 
     ``curvature(fam, y, raw, h)`` may replace the family's Hessian per row
@@ -283,6 +283,10 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     if (sparse.issparse(X) and merit == "gradient" and curvature is None
             and p + int(fit_intercept) > CHORD_MIN_COLUMNS):
         return newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept, cscale)
+    if (fused and not sparse.issparse(X) and merit == "gradient" and curvature is None and p
+            and p + int(fit_intercept) <= CHORD_MIN_COLUMNS):
+        return newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+                            cscale, buf)
     coef = np.array(coef, dtype=float)
     intercept = float(intercept)
     if np.any(coef):
@@ -345,6 +349,7 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     F = None
     solve = reuse = None
     poor_sub = 0
+    pairs = []  # (step, gradient change) since the last factorisation
     converged = False
     gnorm = np.inf
     it = 0
@@ -468,6 +473,279 @@ def _is_unit(X):
     """Every stored entry of the sparse matrix X is 0 or 1 (one-hot and indicator designs): x^2 = x."""
     d = X.data
     return bool(d.size == 0 or np.all((d == 1.0) | (d == 0.0)))
+
+
+def _secant_solve(solve, pairs):
+    """r -> an approximation of d2F^-1 r: ``solve`` corrected by BFGS updates from the pairs (s, y) of past steps.
+
+    The two-loop recursion of limited-memory BFGS (Nocedal & Wright, Numerical
+    Optimization, 2nd ed., 2006, Algorithm 7.4) with ``solve`` (a factorised
+    Newton matrix) as the initial inverse: each pair s (a step) and y (the
+    change of the exact gradient along it) makes the approximation exact along
+    y, so the chord steps, which converge linearly at the rate of the
+    factorisation's error, gain the error's directions as they go.  Pairs with
+    s.y <= 0 are skipped (they carry no positive curvature).
+    """
+    usable = [(s, y, 1.0 / float(s @ y)) for s, y in pairs if float(s @ y) > 0]
+    if not usable:
+        return solve
+
+    def apply(r):
+        q = np.array(r, dtype=float)
+        coefs = []
+        for s, y, rho in reversed(usable):
+            a = rho * float(s @ q)
+            q -= a * y
+            coefs.append(a)
+        z = solve(q)
+        for (s, y, rho), a in zip(usable, reversed(coefs)):
+            z += s * (a - rho * float(y @ z))
+        return z
+    return apply
+
+
+def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_intercept, buf, squares=None):
+    """One pass over the rows of dense X in blocks: the raw scores, gradient and Newton matrix at a trial point.
+
+    Returns (raw, grad, H) with raw = raw_base + t draw, where ``draw`` holds
+    X dc + db (recomputed into it, block by block, when ``new_draw``); grad the
+    unpenalised gradient of sum v nll at raw; H (``hessian`` "full": all rows;
+    "sub": one row in SUBSAMPLE_FRACTION, reweighted to the total weight;
+    None: not formed) the unpenalised [X 1]^T diag(v h) [X 1].  The subsample
+    is the first 1/SUBSAMPLE_FRACTION of every block of rows (a systematic sample
+    spread over the data in runs of _BLOCK / SUBSAMPLE_FRACTION rows).  Each block is
+    used by all three while it is in cache; H is accumulated with one dsyrk
+    per block on the rows scaled by sqrt(v h) (``weighted_gram``).  ``squares``
+    (length p), when given, has sum_i v_i x_ij^2 added to it in the same pass.
+    """
+    n, p = X.shape
+    nfree = p + int(fit_intercept)
+    m = buf.shape[0]
+    raw_new = np.empty(n)
+    grad = np.zeros(nfree)
+    H = np.zeros((p, p), order="F") if hessian else None
+    xh = np.zeros(p)
+    hsum = vsum = 0.0
+    general = False
+    step = SUBSAMPLE_FRACTION if hessian == "sub" else 1
+    with np.errstate(over="ignore", invalid="ignore"):
+        for s in range(0, n, m):
+            e = min(n, s + m)
+            Xb = X[s:e]
+            rb = raw_new[s:e]
+            if new_draw:
+                np.dot(Xb, dc, out=draw[s:e])
+                draw[s:e] += db
+            np.multiply(draw[s:e], t, out=rb)
+            rb += raw_base[s:e]
+            g, h = fam._grad_hess(y[s:e], rb)
+            vb = v[s:e]
+            if squares is not None:
+                sq = np.multiply(Xb, Xb, out=buf[: e - s])
+                squares += vb @ sq
+            g *= vb
+            grad[:p] += g @ Xb
+            if fit_intercept:
+                grad[p] += g.sum()
+            if not hessian:
+                continue
+            if step > 1:
+                k = -(-(e - s) // step)  # the first 1/step of the block: contiguous, so cheap to scale and multiply
+                Xb, h, vb = Xb[:k], h[:k], vb[:k]
+                vsum += float(vb.sum())
+            h *= vb
+            hsum += float(h.sum())
+            if general or np.min(h) < 0:
+                general = True  # a negative curvature: no square roots, plain products
+                H += Xb.T @ (h[:, None] * Xb)
+                xh += h @ Xb
+                continue
+            np.sqrt(h, out=h)
+            a = np.multiply(Xb, h[:, None], out=buf[: Xb.shape[0]])
+            H = dsyrk(1.0, a.T, beta=1.0, c=H, trans=0, lower=0, overwrite_c=1)
+            xh += h @ a
+    if not hessian:
+        return raw_new, grad, None
+    full = np.empty((nfree, nfree))
+    full[:p, :p] = H if general else np.triu(H) + np.triu(H, 1).T
+    if fit_intercept:
+        full[:p, p] = xh
+        full[p, :p] = xh
+        full[p, p] = hsum
+    if step > 1:
+        full *= 1.0 / max(vsum, 1e-300)
+    return raw_new, grad, full
+
+
+def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+                 cscale=None, buf=None) -> LinearFit:
+    r"""Damped Newton iteration for F with dense X and few columns, one pass over X per step.
+
+    The iteration of ``newton`` with the gradient-norm line search (the
+    built-in families whose nll is convex in raw), organised so that each
+    trial point costs one pass over X (``dense_sweep``): the raw-score
+    update X d, the gradient and, when wanted, the Newton matrix at the trial
+    point (used if the step is accepted) share one read of each block of rows.
+    Which Newton matrix the next step uses:
+
+    * far from the optimum (the last step moved some raw score by more than
+      SUBSAMPLE_WHILE_STEP, n >= SUBSAMPLE_MIN_ROWS): the one from every
+      SUBSAMPLE_FRACTION-th row (an inexact Newton step; the gradient is
+      exact, so the solution is unchanged), until such steps twice shrink
+      ||C^-1 dF||^2 less than SUBSAMPLE_SHRINK;
+    * then the full matrix, and its factorisation is kept (chord steps, no
+      new matrix) while each step shrinks ||C^-1 dF||^2 by CHORD_SHRINK.
+
+    Forming the matrix is the costly part of a pass (a dsyrk with n p^2 / 2
+    multiply-adds against 2 n p for the two matrix-vector products), so it
+    is formed on all rows about once per fit.  At the gradient test the last
+    factorisation refines the solution as in ``newton`` (``_refine``), each
+    round one pass.  If the gradient norm cannot be decreased the general
+    iteration (``newton``, with its fall-back to F itself) takes over.
+    """
+    n, p = X.shape
+    coef = np.array(coef, dtype=float)
+    intercept = float(intercept)
+    nfree = p + int(fit_intercept)
+    raw = _raw(X, coef, intercept, offset) if np.any(coef) else (
+        np.full(n, intercept) if offset is None else offset + intercept)
+    m = max(SUBSAMPLE_FRACTION, min(_BLOCK, n))
+    if buf is None or buf.shape[0] < m or buf.shape[1] != p:
+        buf = np.empty((m, p))
+    else:
+        buf = buf[:m]
+    draw = np.zeros(n)
+
+    def sweep(raw_base, t, dc, db, new_draw, hessian, coef_, squares=None):
+        raw_new, grad, H = dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian,
+                                       fit_intercept, buf, squares)
+        if alpha:
+            grad[:p] += alpha * coef_
+            if H is not None:
+                H[np.arange(p), np.arange(p)] += alpha
+        return raw_new, grad, H
+
+    large = n >= SUBSAMPLE_MIN_ROWS
+    use_sub = large
+    squares = np.zeros(p) if cscale is None else None  # the column scales, from the same pass
+    raw, grad, H = sweep(raw, 0.0, None, 0.0, False, "sub" if use_sub else "full", coef, squares)
+    if cscale is None:
+        cscale = np.sqrt(squares)
+        cscale[~(cscale > 0) | ~np.isfinite(cscale)] = 1.0
+    inv_c = np.ones(nfree)
+    inv_c[:p] = 1.0 / cscale
+    H_kind = "sub" if use_sub else "full"
+    solve = None
+    poor_sub = 0
+    pairs = []  # (step, gradient change) since the last factorisation
+    converged = False
+    gnorm = np.inf
+    it = 0
+    for it in range(max_iter + 1):
+        sgrad = grad * inv_c
+        gnorm = float(np.max(np.abs(sgrad)))
+        if not np.isfinite(gnorm):
+            raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+        if gnorm <= tol:
+            converged = True
+            break
+        if it == max_iter:
+            break
+        used = "chord"
+        if H is not None:
+            d, new_solve = _newton_step(H, grad, exact=H_kind == "full")
+            if d is None:  # the subsample's matrix is singular: all rows from here on
+                use_sub = False
+                _, _, H = sweep(raw, 0.0, None, 0.0, False, "full", coef)
+                H_kind = "full"
+                d, new_solve = _newton_step(H, grad)
+            d, solve, used = -d, new_solve, H_kind
+            pairs = []
+        else:
+            d = -_secant_solve(solve, pairs)(grad)
+        dc = d[:p]
+        db = d[p] if fit_intercept else 0.0
+        m0 = float(sgrad @ sgrad)
+        # the matrix formed at the trial point: the subsample's far from the optimum; on small
+        # data all rows at every step (Newton's method); on large data near the optimum none
+        # (chord steps with the last factorisation; a full matrix only when they stall)
+        want = "sub" if use_sub else (None if large else "full")
+        accepted = False
+        t = 1.0
+        for k in range(30):
+            raw_new, grad_new, H_new = sweep(raw, t, dc, db, k == 0, want, coef + t * dc)
+            sg = grad_new * inv_c
+            m1 = float(sg @ sg)
+            if np.isfinite(m1) and m1 <= (1.0 - 2e-4 * t) * m0:
+                accepted = True
+                break
+            t *= 0.5
+        if not accepted:
+            # no progress on the gradient norm (rounding near the optimum, or a singular problem):
+            # the general iteration takes over from here, with its fall-back to F itself
+            fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter - it, tol, coef, intercept,
+                         buf=buf, merit="gradient", cscale=cscale, fused=False)
+            fit.n_iter += it
+            return fit
+        change = t * float(np.max(np.abs(draw)))
+        shrink = m1 / m0 if m0 > 0 else 0.0
+        pairs.append((t * d, grad_new - grad))
+        coef, intercept, raw, grad = coef + t * dc, intercept + t * db, raw_new, grad_new
+        if used == "sub":
+            poor_sub = poor_sub + 1 if not (t == 1.0 and shrink <= SUBSAMPLE_SHRINK) else 0
+        if use_sub and (poor_sub >= 2 or change <= SUBSAMPLE_WHILE_STEP):
+            use_sub = False
+        H, H_kind = H_new, want
+        if large and not use_sub and not (t == 1.0 and shrink <= CHORD_SHRINK) and used != "full":
+            # the last step (with the subsample's or an older matrix) stalled: all rows at this point
+            _, _, H = sweep(raw, 0.0, None, 0.0, False, "full", coef)
+            H_kind = "full"
+        if change <= _ROUNDING * float(np.max(np.abs(raw))) and t == 1.0:
+            gnorm = float(np.max(np.abs(grad * inv_c)))
+            converged = True
+            it += 1
+            break
+    if converged and solve is not None:
+        coef, intercept, raw, grad, gnorm = _refine_dense(
+            solve, pairs, sweep, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
+    return LinearFit(coef, intercept, raw, it, np.nan, gnorm, converged, fam)
+
+
+def _refine_dense(solve, pairs, sweep, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol, rounds=3):
+    """``_refine`` for ``newton_dense``: each round is one pass (X d and the gradient together).
+
+    The last factorisation is corrected by the secant pairs of the steps since
+    it was made (``_secant_solve``); each round adds its own pair.  Rounds are
+    made only when needed: when the first correction, in standardised units
+    (max_j c_j |d_j|, and |d_0| for the intercept; it estimates the error of
+    the coefficients that the gradient test left), exceeds ``tol`` -- i.e. when
+    the problem's conditioning has amplified the gradient's tolerance.  A
+    well-conditioned fit then costs no extra pass over X.
+    """
+    p = coef.shape[0]
+    sg = grad * inv_c
+    m0 = float(sg @ sg)
+    scale = 1e-11 * float(np.max(np.abs(raw), initial=0.0))
+    for k in range(rounds):
+        d = -_secant_solve(solve, pairs)(grad)
+        dc = d[:p]
+        db = d[p] if fit_intercept else 0.0
+        if k == 0 and not float(np.max(np.abs(d) / inv_c)) > tol:
+            break
+        if not float(np.sum(np.abs(dc) / inv_c[:p])) + abs(db) > scale:
+            break
+        raw_new, grad_new, _ = sweep(raw, 1.0, dc, db, True, None, coef + dc)
+        pairs.append((d, grad_new - grad))
+        if float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)):
+            break
+        sg = grad_new * inv_c
+        m1 = float(sg @ sg)
+        if not (m1 < m0):
+            break
+        coef, intercept, raw, grad, m_prev, m0 = coef + dc, intercept + db, raw_new, grad_new, m0, m1
+        if m1 > CHORD_SHRINK * m_prev:
+            break
+    return coef, intercept, raw, grad, float(np.sqrt(np.max(grad * grad * inv_c * inv_c, initial=0.0)))
 
 
 def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
