@@ -707,20 +707,23 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             break
     if converged and solve is not None:
         coef, intercept, raw, grad, gnorm = _refine_dense(
-            solve, pairs, sweep, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
+            solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
     return LinearFit(coef, intercept, raw, it, np.nan, gnorm, converged, fam)
 
 
-def _refine_dense(solve, pairs, sweep, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol, rounds=3):
+def _refine_dense(solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol, rounds=3):
     """``_refine`` for ``newton_dense``: each round is one pass (X d and the gradient together).
 
     The last factorisation is corrected by the secant pairs of the steps since
-    it was made (``_secant_solve``); each round adds its own pair.  Rounds are
-    made only when needed: when the first correction, in standardised units
-    (max_j c_j |d_j|, and |d_0| for the intercept; it estimates the error of
-    the coefficients that the gradient test left), exceeds ``tol`` -- i.e. when
-    the problem's conditioning has amplified the gradient's tolerance.  A
-    well-conditioned fit then costs no extra pass over X.
+    it was made (``_secant_solve``); each round adds its own pair.  Checked
+    rounds (a pass for X d and the gradient, kept only if the gradient
+    shrinks) are made only when needed: when the first correction d, in
+    standardised units (max_j c_j |d_j|, and |d_0| for the intercept; it
+    estimates the error of the coefficients that the gradient test left),
+    exceeds ``tol`` -- the problem's conditioning has amplified the gradient's
+    tolerance.  Otherwise d is below tol and the iteration that produced it was
+    contracting (the gradient test was reached by it), so d is applied without
+    a check: one matrix-vector product X d for the raw scores, no gradient.
     """
     p = coef.shape[0]
     sg = grad * inv_c
@@ -730,10 +733,11 @@ def _refine_dense(solve, pairs, sweep, coef, intercept, raw, grad, inv_c, fit_in
         d = -_secant_solve(solve, pairs)(grad)
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
-        if k == 0 and not float(np.max(np.abs(d) / inv_c)) > tol:
-            break
         if not float(np.sum(np.abs(dc) / inv_c[:p])) + abs(db) > scale:
             break
+        if k == 0 and not float(np.max(np.abs(d) / inv_c)) > tol:
+            raw = raw + _raw(X, dc, db, None)
+            return coef + dc, intercept + db, raw, grad, float(np.max(np.abs(sg)))  # gradient before the step
         raw_new, grad_new, _ = sweep(raw, 1.0, dc, db, True, None, coef + dc)
         pairs.append((d, grad_new - grad))
         if float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)):
@@ -835,7 +839,11 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
         if it == max_iter:
             break
         diag = np.empty(nfree)
-        diag[:p] = weighted_column_squares(X, hv, unit) + alpha
+        h0 = hv[0] / v[0] if v[0] > 0 else np.nan
+        if np.all(hv == h0 * v):
+            diag[:p] = h0 * cscale * cscale + alpha  # h is the same on every row (e.g. at the start): no pass
+        else:
+            diag[:p] = weighted_column_squares(X, hv, unit) + alpha
         if fit_intercept:
             diag[p] = hv.sum()
         diag[~(diag > 0) | ~np.isfinite(diag)] = 1.0
