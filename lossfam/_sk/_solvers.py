@@ -783,8 +783,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     memory).  Conjugate gradients started at 0 return a descent direction, and
     with eta_k <= 1/2 also one for ||C^-1 dF||^2, so the step is accepted by
     the same backtracking line search on the gradient norm as in ``newton``
-    (falling back to F itself).  The raw-score change X d is accumulated from
-    the products already made (no extra pass).  The gradient is exact at every
+    (falling back to F itself).  The gradient is exact at every
     outer step, so the solution and the stopping rule are those of the dense
     path; memory above X is a handful of length-n vectors.
     """
@@ -820,9 +819,6 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
             per_row = fam._nll(y, raw_)
         return float(np.dot(v, per_row)) + 0.5 * alpha * float(coef_ @ coef_)
 
-    xd = np.empty(n)  # X u + u_0 for the current conjugate direction u
-    hxd = np.empty(n)
-    draw = np.empty(n)  # X d + d_0 for the Newton step d being built
     grad, hv = derivatives(raw, coef)
     converged = False
     gnorm = np.inf
@@ -850,7 +846,6 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
         eta = min(0.5, gnorm)
         target = eta * float(np.linalg.norm(sgrad))
         d = np.zeros(nfree)
-        draw[:] = 0.0
         r = -grad
 
         def precond(r_):
@@ -870,21 +865,21 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
         newmem = []
         rz = float(r @ z)
         for _ in range(max(10 * nfree, 50)):
-            np.copyto(xd, X @ u[:p])
+            xd = X @ u[:p]
             if fit_intercept:
                 xd += u[p]
-            np.multiply(xd, hv, out=hxd)
+            xd *= hv
             hu = np.empty(nfree)
-            hu[:p] = XT @ hxd
+            hu[:p] = XT @ xd
             hu[:p] += alpha * u[:p]
             if fit_intercept:
-                hu[p] = hxd.sum()
+                hu[p] = xd.sum()
+            del xd
             curv = float(u @ hu)
             if not (curv > 0.0 and np.isfinite(curv)):
                 break  # no curvature left along u (a singular direction): keep the step so far
             a = rz / curv
             d += a * u
-            draw += a * xd
             newmem.append((a * u, a * hu, 1.0 / (a * a * curv)))
             r = r - a * hu
             sr = r * inv_c
@@ -897,9 +892,9 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
         mem = (mem + newmem)[-CG_MEMORY:]
         if not np.any(d):
             d = -grad / diag  # no curvature along the first direction: a scaled gradient step
-            np.copyto(draw, _raw(X, d[:p], d[p] if fit_intercept else 0.0, None))
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
+        draw = _raw(X, dc, db, None)
         m0 = float(sgrad @ sgrad)
         accepted = False
         t = 1.0
