@@ -100,6 +100,7 @@ SUBSAMPLE_WHILE_STEP = 0.02  # ... while the last step moved some raw score by m
 CHORD_SHRINK = 0.01  # a chord (or subsampled) step is kept only if it shrinks ||C^-1 dF||^2 by this factor
 SUBSAMPLE_SHRINK = 0.25  # ... and subsampled steps must shrink ||C^-1 dF||^2 by this factor (two misses in a row: full Hessians)
 CHORD_MIN_COLUMNS = 200  # ... used for sparse X or more coefficients than this
+SUBSAMPLE_START_TOL = 1e-4  # sparse conjugate-gradient fits: tolerance of the subsample's fit that gives the start
 CG_MEMORY = 40  # sparse X with more coefficients than CHORD_MIN_COLUMNS: pairs kept by the quasi-Newton preconditioner
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
@@ -753,7 +754,7 @@ def _refine_dense(solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit
 
 
 def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-              cscale=None) -> LinearFit:
+              cscale=None, mem=None, warm=True) -> LinearFit:
     r"""Truncated Newton iteration for F with sparse X: Newton directions from preconditioned conjugate gradients.
 
     Used by ``newton`` for sparse X with many columns, where forming the dense
@@ -794,6 +795,26 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     coef = np.array(coef, dtype=float)
     intercept = float(intercept)
     nfree = p + int(fit_intercept)
+    if mem is None:
+        mem = []  # (s, H s, 1 / s.H s) of past conjugate steps: the quasi-Newton preconditioner's pairs
+    start_iter = 0
+    if warm and n >= SUBSAMPLE_MIN_ROWS and not np.any(coef):
+        # a starting point from one row in SUBSAMPLE_FRACTION, solved to SUBSAMPLE_START_TOL; its
+        # conjugate pairs (curvature of the subsample, weights rescaled to the same total) seed the
+        # preconditioner
+        rows = slice(0, None, SUBSAMPLE_FRACTION)
+        total = float(v[rows].sum())
+        if total > 0:
+            try:
+                start = newton_cg(fam, X[rows], y[rows], v[rows] / total, None if offset is None else offset[rows],
+                                  alpha, fit_intercept, max_iter, max(tol, SUBSAMPLE_START_TOL), coef, intercept,
+                                  mem=mem, warm=False)
+            except (FloatingPointError, ValueError, np.linalg.LinAlgError):
+                start = None
+            if start is not None and np.all(np.isfinite(start.coef)) and np.isfinite(start.intercept):
+                coef, intercept, start_iter = start.coef, float(start.intercept), start.n_iter
+            else:
+                mem.clear()
     raw = _raw(X, coef, intercept, offset) if np.any(coef) else (
         np.full(n, intercept) if offset is None else offset + intercept)
     if cscale is None:
@@ -822,7 +843,6 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     grad, hv = derivatives(raw, coef)
     converged = False
     gnorm = np.inf
-    mem = []  # (s, H s, 1 / s.H s) of past conjugate steps: the quasi-Newton preconditioner's pairs
     it = 0
     for it in range(max_iter + 1):
         sgrad = grad * inv_c
@@ -889,7 +909,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
             rz_new = float(r @ z)
             u = z + (rz_new / rz) * u
             rz = rz_new
-        mem = (mem + newmem)[-CG_MEMORY:]
+        mem[:] = (mem + newmem)[-CG_MEMORY:]
         if not np.any(d):
             d = -grad / diag  # no curvature along the first direction: a scaled gradient step
         dc = d[:p]
@@ -933,7 +953,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
             converged = True
             it += 1
             break
-    return LinearFit(coef, intercept, raw, it, np.nan, gnorm, converged, fam)
+    return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)
 
 
 def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, rounds=3):
