@@ -42,6 +42,19 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     family) use the same iteration with the surrogate in place of d2F: each
     step is then a majorise-minimise step (linear, not quadratic, convergence).
 
+    Two organisations of this iteration serve the built-in families whose nll
+    is convex in raw (gaussian, poisson, gamma, bernoulli), where most time
+    goes:
+    * dense X with at most CHORD_MIN_COLUMNS coefficients (``newton_dense``):
+      one pass over X per trial point, the raw-score update, the gradient and
+      the Newton matrix sharing each block of rows while it is in cache; on
+      large data subsampled Newton matrices far from the optimum, then chord
+      steps corrected by secant (BFGS) updates; refinement when needed;
+    * sparse X with more coefficients (``newton_cg``): truncated Newton, the
+      direction from conjugate gradients on Hessian-vector products (the
+      matrix is never formed), preconditioned by its diagonal and BFGS pairs
+      from earlier solves, started from the fit of a row subsample.
+
 ``huber``
     The Huber nll is convex and once continuously differentiable in raw; its
     second derivative is 1/s^2 inside the core |u| <= delta and 0 outside.
@@ -765,11 +778,29 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
 
         d2F u = [X 1]^T (v h * ([X 1] u)) + alpha (u_coef, 0)
 
-    (one product with X and one with X^T; the matrix is never formed),
-    preconditioned by its diagonal (Jacobi: sum_i v_i h_i x_ij^2 + alpha, and
+    (one product with X and one with X^T; the matrix is never formed).
+
+    Preconditioner: its diagonal (Jacobi: sum_i v_i h_i x_ij^2 + alpha, and
     sum v h for the intercept; one product X^T (v h) when every stored entry
-    is 0 or 1).  Jacobi preconditioning makes the iterates independent of the
+    is 0 or 1, none while h is the same on every row), corrected by BFGS
+    updates from the last CG_MEMORY conjugate steps s and their products
+    d2F s, applied by the two-loop recursion (``_secant_solve``; the
+    preconditioner built from earlier conjugate-gradient runs of Morales &
+    Nocedal, Automatic preconditioning by limited memory quasi-Newton
+    updating, SIAM J. Optim. 10, 2000 -- recalled from memory).  For one-hot
+    designs the Jacobi-scaled matrix has about one outlying eigenvalue per
+    categorical factor (each factor's columns nearly add up to the intercept)
+    around a tight cluster near 1; the pairs of one solve carry those
+    directions into the next, which then needs a few iterations instead of a
+    few tens.  Jacobi preconditioning makes the iterates independent of the
     columns' units, as the equilibrated Cholesky solve of the dense path.
+
+    Start: with n >= SUBSAMPLE_MIN_ROWS the same iteration first fits one
+    row in SUBSAMPLE_FRACTION (weights rescaled to the same total) to
+    SUBSAMPLE_START_TOL; its solution is the starting point and its conjugate
+    pairs seed the preconditioner, so the expensive products on all rows are
+    spent near the optimum only.
+
     The inner iteration stops at the truncated-Newton (inexact Newton) rule
 
         ||C^-1 r|| <= eta_k ||C^-1 dF||,   eta_k = min(1/2, max_j |dF_j| / c_j)
@@ -786,7 +817,10 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     the same backtracking line search on the gradient norm as in ``newton``
     (falling back to F itself).  The gradient is exact at every
     outer step, so the solution and the stopping rule are those of the dense
-    path; memory above X is a handful of length-n vectors.
+    path; memory above X is a handful of length-n vectors (and the copy of
+    the subsample's rows).  Unlike the dense path there is no refinement
+    after the gradient test: the coefficients are accurate to about tol
+    divided by the smallest eigenvalue of the equilibrated Newton matrix.
     """
     n, p = X.shape
     X = X.tocsr() if X.format != "csr" else X
@@ -796,7 +830,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     intercept = float(intercept)
     nfree = p + int(fit_intercept)
     if mem is None:
-        mem = []  # (s, H s, 1 / s.H s) of past conjugate steps: the quasi-Newton preconditioner's pairs
+        mem = []  # (s, d2F s) of past conjugate steps: the pairs of the quasi-Newton preconditioner
     start_iter = 0
     if warm and n >= SUBSAMPLE_MIN_ROWS and not np.any(coef):
         # a starting point from one row in SUBSAMPLE_FRACTION, solved to SUBSAMPLE_START_TOL; its
@@ -868,18 +902,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
         d = np.zeros(nfree)
         r = -grad
 
-        def precond(r_):
-            q = r_.copy()
-            al = []
-            for s_, y_, rho in reversed(mem):
-                a_ = rho * float(s_ @ q)
-                q -= a_ * y_
-                al.append(a_)
-            z_ = q / diag
-            for (s_, y_, rho), a_ in zip(mem, reversed(al)):
-                b_ = rho * float(y_ @ z_)
-                z_ += s_ * (a_ - b_)
-            return z_
+        precond = _secant_solve(lambda r_: r_ / diag, mem)
         z = precond(r)
         u = z.copy()
         newmem = []
@@ -900,7 +923,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
                 break  # no curvature left along u (a singular direction): keep the step so far
             a = rz / curv
             d += a * u
-            newmem.append((a * u, a * hu, 1.0 / (a * a * curv)))
+            newmem.append((a * u, a * hu))
             r = r - a * hu
             sr = r * inv_c
             if float(np.linalg.norm(sr)) <= target or float(np.max(np.abs(sr))) <= 0.1 * tol:
