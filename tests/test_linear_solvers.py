@@ -166,3 +166,25 @@ def test_secant_solve_has_the_bfgs_secant_and_quadratic_properties():
     r = rng.standard_normal(p)
     np.testing.assert_allclose(full(r), np.linalg.solve(A, r), rtol=1e-9)  # p conjugate pairs: A^-1
     assert _solvers._secant_solve(solve, []) is solve
+
+
+def test_large_dense_badly_scaled_fit_matches_its_standardised_twin_and_sklearn():
+    # n >= SUBSAMPLE_MIN_ROWS takes the subsampled-then-chord path; columns in very different
+    # units and correlated.  References: the fit on standardised columns mapped back (the model
+    # is invariant to column units), and scikit-learn's newton-cholesky GammaRegressor on those.
+    rng = np.random.default_rng(21)
+    n = 120_000
+    Z = rng.standard_normal((n, 3))
+    Z[:, 2] = 0.9 * Z[:, 0] + 0.1 * Z[:, 2]  # strongly correlated with the first column
+    scale = np.array([1e-3, 1.0, 1e6])
+    X = 5.0 * scale + Z * scale  # units and offsets of the columns differ by nine orders
+    y = rng.gamma(2.0, np.exp(0.4 + Z @ np.array([0.2, -0.1, 0.15])) / 2.0)
+    ours = LikelihoodRegressor(family="gamma").fit(X, y)
+    mean, sd = X.mean(axis=0), X.std(axis=0)
+    Xs = (X - mean) / sd
+    twin = LikelihoodRegressor(family="gamma").fit(Xs, y)
+    coef = twin.coef_ / sd
+    np.testing.assert_allclose(ours.coef_, coef, rtol=1e-7)
+    np.testing.assert_allclose(ours.intercept_, twin.intercept_ - mean @ coef, rtol=1e-7)
+    ref = GammaRegressor(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=200).fit(Xs, y)
+    np.testing.assert_allclose(twin.coef_, ref.coef_, rtol=1e-7)

@@ -280,6 +280,10 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
            curvature=None, buf=None, merit="objective", cscale=None, fused=True) -> LinearFit:
     """Damped Newton iteration for F (see the module docstring).
 
+    With merit "gradient" and no ``curvature``, sparse X with more than
+    CHORD_MIN_COLUMNS coefficients goes to ``newton_cg`` and dense X with at
+    most that many (and ``fused``) to ``newton_dense``; the rest is below.
+
     ``curvature(fam, y, raw, h)`` may replace the family's Hessian per row
     (used for Huber's generalised Hessian).  ``cscale``: the column scales c_j
     of the stopping rule (computed from X and v when None).
@@ -710,8 +714,9 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
         if use_sub and (poor_sub >= 2 or change <= SUBSAMPLE_WHILE_STEP):
             use_sub = False
         H, H_kind = H_new, want
-        if large and not use_sub and not (t == 1.0 and shrink <= CHORD_SHRINK) and used != "full":
-            # the last step (with the subsample's or an older matrix) stalled: all rows at this point
+        if large and not use_sub and not (t == 1.0 and shrink <= CHORD_SHRINK):
+            # the last step stalled (a chord step, the subsample's matrix, or far from the optimum):
+            # the matrix from all rows at this point
             _, _, H = sweep(raw, 0.0, None, 0.0, False, "full", coef)
             H_kind = "full"
         if change <= _ROUNDING * float(np.max(np.abs(raw))) and t == 1.0:
