@@ -48,8 +48,9 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     * dense X with at most CHORD_MIN_COLUMNS coefficients (``newton_dense``):
       one pass over X per trial point, the raw-score update, the gradient and
       the Newton matrix sharing each block of rows while it is in cache; on
-      large data subsampled Newton matrices far from the optimum, then chord
-      steps corrected by secant (BFGS) updates; refinement when needed;
+      large data a start from the fit of a row subsample, then chord steps
+      with its factorisation corrected by secant (BFGS) updates; refinement
+      when needed;
     * sparse X with more coefficients (``newton_cg``): truncated Newton, the
       direction from conjugate gradients on Hessian-vector products (the
       matrix is never formed), preconditioned by its diagonal and BFGS pairs
@@ -113,7 +114,7 @@ SUBSAMPLE_WHILE_STEP = 0.02  # ... while the last step moved some raw score by m
 CHORD_SHRINK = 0.01  # a chord (or subsampled) step is kept only if it shrinks ||C^-1 dF||^2 by this factor
 SUBSAMPLE_SHRINK = 0.25  # ... and subsampled steps must shrink ||C^-1 dF||^2 by this factor (two misses in a row: full Hessians)
 CHORD_MIN_COLUMNS = 200  # ... used for sparse X or more coefficients than this
-SUBSAMPLE_START_TOL = 1e-4  # sparse conjugate-gradient fits: tolerance of the subsample's fit that gives the start
+SUBSAMPLE_START_TOL = 1e-4  # large data (fast paths): tolerance of the subsample's fit that gives the start
 CG_MEMORY = 40  # sparse X with more coefficients than CHORD_MIN_COLUMNS: pairs kept by the quasi-Newton preconditioner
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
@@ -596,7 +597,7 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
 
 
 def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-                 cscale=None, buf=None) -> LinearFit:
+                 cscale=None, buf=None, warm=True, state=None) -> LinearFit:
     r"""Damped Newton iteration for F with dense X and few columns, one pass over X per step.
 
     The iteration of ``newton`` with the gradient-norm line search (the
@@ -604,29 +605,55 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     trial point costs one pass over X (``dense_sweep``): the raw-score
     update X d, the gradient and, when wanted, the Newton matrix at the trial
     point (used if the step is accepted) share one read of each block of rows.
-    Which Newton matrix the next step uses:
+    Forming the Newton matrix is the costly part of a pass (a dsyrk with
+    n p^2 / 2 multiply-adds against 2 n p for the two matrix-vector
+    products), so on large data (n >= SUBSAMPLE_MIN_ROWS) it is avoided on
+    all rows:
 
-    * far from the optimum (the last step moved some raw score by more than
-      SUBSAMPLE_WHILE_STEP, n >= SUBSAMPLE_MIN_ROWS): the one from every
-      SUBSAMPLE_FRACTION-th row (an inexact Newton step; the gradient is
-      exact, so the solution is unchanged), until such steps twice shrink
-      ||C^-1 dF||^2 less than SUBSAMPLE_SHRINK;
-    * then the full matrix, and its factorisation is kept (chord steps, no
-      new matrix) while each step shrinks ||C^-1 dF||^2 by CHORD_SHRINK.
+    * start: Newton's method on one row in SUBSAMPLE_FRACTION (weights
+      rescaled to the same total), to SUBSAMPLE_START_TOL; its solution is
+      the starting point and its last factorisation (with its secant pairs)
+      the matrix of the first steps on all rows;
+    * chord steps with that factorisation, corrected by BFGS updates from
+      the secant pairs (step, change of the exact gradient) of the steps on
+      all rows (``_secant_solve``), while each shrinks ||C^-1 dF||^2 by
+      CHORD_SHRINK; a step that does not gets the matrix from all rows at
+      its end point.  (Without the start -- it failed, or a starting point
+      was given -- the matrices come from the first 1/SUBSAMPLE_FRACTION of
+      each block of rows while steps move some raw score by more than
+      SUBSAMPLE_WHILE_STEP.)
 
-    Forming the matrix is the costly part of a pass (a dsyrk with n p^2 / 2
-    multiply-adds against 2 n p for the two matrix-vector products), so it
-    is formed on all rows about once per fit.  At the gradient test the last
-    factorisation refines the solution as in ``newton`` (``_refine``), each
-    round one pass.  If the gradient norm cannot be decreased the general
-    iteration (``newton``, with its fall-back to F itself) takes over.
+    The gradient is exact at every step, so the solution and the stopping
+    rule are those of ``newton``.  On smaller data every step is a Newton
+    step with the matrix from all rows.  At the gradient test the last
+    factorisation refines the solution (``_refine_dense``).  If the gradient
+    norm cannot be decreased the general iteration (``newton``, with its
+    fall-back to F itself) takes over.
     """
     n, p = X.shape
     coef = np.array(coef, dtype=float)
     intercept = float(intercept)
     nfree = p + int(fit_intercept)
-    raw = _raw(X, coef, intercept, offset) if np.any(coef) else (
-        np.full(n, intercept) if offset is None else offset + intercept)
+    large = n >= SUBSAMPLE_MIN_ROWS
+    start_solve, start_iter = None, 0
+    if large and warm and not np.any(coef):
+        # a starting point from one row in SUBSAMPLE_FRACTION (Newton's method on those rows, to
+        # SUBSAMPLE_START_TOL); its last factorisation serves the first chord steps on all rows
+        rows = slice(0, None, SUBSAMPLE_FRACTION)
+        total = float(v[rows].sum())
+        if total > 0:
+            got = {}
+            try:
+                start = newton_dense(fam, np.ascontiguousarray(X[rows]), y[rows], v[rows] / total,
+                                     None if offset is None else offset[rows], alpha, fit_intercept, max_iter,
+                                     max(tol, SUBSAMPLE_START_TOL), coef, intercept, warm=False, state=got)
+            except (FloatingPointError, ValueError, np.linalg.LinAlgError):
+                start = None
+            if (start is not None and start.converged and got.get("solve") is not None
+                    and np.all(np.isfinite(start.coef)) and np.isfinite(start.intercept)):
+                coef, intercept = start.coef, float(start.intercept)
+                start_solve, start_iter = got["solve"], start.n_iter
+    raw = np.full(n, intercept) if offset is None else offset + intercept
     m = max(SUBSAMPLE_FRACTION, min(_BLOCK, n))
     if buf is None or buf.shape[0] < m or buf.shape[1] != p:
         buf = np.empty((m, p))
@@ -643,17 +670,19 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
                 H[np.arange(p), np.arange(p)] += alpha
         return raw_new, grad, H
 
-    large = n >= SUBSAMPLE_MIN_ROWS
-    use_sub = large
+    use_sub = large and start_solve is None
     squares = np.zeros(p) if cscale is None else None  # the column scales, from the same pass
-    raw, grad, H = sweep(raw, 0.0, None, 0.0, False, "sub" if use_sub else "full", coef, squares)
+    # the first pass: raw = X coef + intercept (+ offset), the gradient, the column scales, and the
+    # Newton matrix unless the subsample's factorisation is at hand
+    first = None if start_solve is not None else ("sub" if use_sub else "full")
+    raw, grad, H = sweep(raw, 1.0, coef, 0.0, True, first, coef, squares)
     if cscale is None:
         cscale = np.sqrt(squares)
         cscale[~(cscale > 0) | ~np.isfinite(cscale)] = 1.0
     inv_c = np.ones(nfree)
     inv_c[:p] = 1.0 / cscale
-    H_kind = "sub" if use_sub else "full"
-    solve = None
+    H_kind = first
+    solve = start_solve
     poor_sub = 0
     pairs = []  # (step, gradient change) since the last factorisation
     converged = False
@@ -703,7 +732,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             # the general iteration takes over from here, with its fall-back to F itself
             fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter - it, tol, coef, intercept,
                          buf=buf, merit="gradient", cscale=cscale, fused=False)
-            fit.n_iter += it
+            fit.n_iter += it + start_iter
             return fit
         change = t * float(np.max(np.abs(draw)))
         shrink = m1 / m0 if m0 > 0 else 0.0
@@ -724,10 +753,12 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             converged = True
             it += 1
             break
+    if state is not None:
+        state["solve"] = _secant_solve(solve, pairs) if solve is not None else None
     if converged and solve is not None:
         coef, intercept, raw, grad, gnorm = _refine_dense(
             solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
-    return LinearFit(coef, intercept, raw, it, np.nan, gnorm, converged, fam)
+    return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)
 
 
 def _refine_dense(solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol, rounds=3):
