@@ -368,7 +368,6 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     F = None
     solve = reuse = None
     poor_sub = 0
-    pairs = []  # (step, gradient change) since the last factorisation
     converged = False
     gnorm = np.inf
     it = 0
@@ -575,7 +574,9 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
             h *= vb
             hsum += float(h.sum())
             if general or np.min(h) < 0:
-                general = True  # a negative curvature: no square roots, plain products
+                if not general:  # a negative curvature: no square roots, plain products from here on
+                    H = np.triu(H) + np.triu(H, 1).T
+                    general = True
                 H += Xb.T @ (h[:, None] * Xb)
                 xh += h @ Xb
                 continue
