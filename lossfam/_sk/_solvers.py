@@ -497,7 +497,7 @@ def _secant_solve(solve, pairs):
     """r -> an approximation of d2F^-1 r: ``solve`` corrected by BFGS updates from the pairs (s, y) of past steps.
 
     The two-loop recursion of limited-memory BFGS (Nocedal & Wright, Numerical
-    Optimization, 2nd ed., 2006, Algorithm 7.4) with ``solve`` (a factorised
+    Optimization, 2nd ed., 2006, Algorithm 7.4 -- recalled from memory) with ``solve`` (a factorised
     Newton matrix) as the initial inverse: each pair s (a step) and y (the
     change of the exact gradient along it) makes the approximation exact along
     y, so the chord steps, which converge linearly at the rate of the
