@@ -1,32 +1,38 @@
 """Fit time of LikelihoodRegressor against scikit-learn's GLM estimators, side by side in one run.
 
 Poisson and gamma (log link), n x p = 500000 x 30 by default, no penalty.
-For each family the script times (median of --repeats runs, same data):
+For each family the script times (median of --repeats rounds; in each round
+every contender fits once, in turn, on the same data):
 
-* LikelihoodRegressor(family=..., alpha=0) -- Newton with Cholesky, tol=1e-8
+* LikelihoodRegressor(family=..., alpha=0) -- Newton, one pass over X per step, tol=1e-8
 * scikit-learn PoissonRegressor / GammaRegressor(solver="lbfgs", alpha=0) at
   its default tol=1e-4, and at tol=1e-8
 * scikit-learn ...(solver="newton-cholesky", alpha=0) at its default tol
 
-and prints the time ratio to the default lbfgs fit together with the largest
-relative difference of each fit's coefficients (intercept included) from a
-tightly converged reference: scikit-learn's newton-cholesky solver with
-tol=1e-12 (an implementation independent of lossfam).
+and prints wall and CPU (process) time, their ratios to the default lbfgs fit,
+and the largest relative difference of each fit's coefficients (intercept
+included) from a tightly converged reference: scikit-learn's newton-cholesky
+solver with tol=1e-12 (an implementation independent of lossfam).  Every fit
+runs on one BLAS thread, so CPU time is the work done; it is less disturbed
+than wall time when the machine is shared.
 
 Two more sections:
 
-* equilibration cost on the same well-scaled data: the time of the column-scale
-  pass (``_solvers.column_scales``) and of the refinement rounds, as a share
-  of the whole fit;
+* equilibration cost on the same well-scaled data: the time of the column
+  scales (``_solvers.column_scales``; inside the fit they are accumulated in
+  the first pass over X), of the symmetric scaling of each Newton matrix
+  (``_solvers._equilibrate``) and of the refinement at the end
+  (``_solvers._refine_dense``), as shares of the whole fit;
 * sparse: a claim-count scenario with ten categorical rating factors of 200
   levels each, one-hot encoded (first level dropped) into a CSR matrix of
   --sparse-n rows x 1990 columns (~10 non-zeros a row), poisson, alpha=0,
-  LikelihoodRegressor against ``PoissonRegressor(solver="lbfgs", alpha=0)`` on
-  the same matrix.  Each fit runs in its own child process (the matrix is
-  written once to a .npz file and loaded by each child), which reports its
-  wall time and its peak resident memory during the fit (VmHWM, reset after
-  loading through /proc/self/clear_refs), in total and above the loaded data;
-  medians over --repeats children.
+  LikelihoodRegressor (truncated Newton, conjugate gradients) against
+  ``PoissonRegressor(solver="lbfgs", alpha=0)`` on the same matrix.  Each fit
+  runs in its own child process (the matrix is written once to a .npz file
+  and loaded by each child; the two estimators alternate), which reports its
+  wall and CPU time and its peak resident memory during the fit (VmHWM, reset
+  after loading through /proc/self/clear_refs), in total and above the loaded
+  data; medians over --repeats children.
 
 Run:  python benchmarks/linear_fit.py [--n 500000] [--p 30] [--repeats 3] [--sparse-n 1000000]
       (--section dense|equilibration|sparse to run one section)
@@ -77,23 +83,34 @@ def params(est):
     return np.r_[est.intercept_, est.coef_]
 
 
-def timed(make, X, y, repeats):
-    times, est = [], None
+def fit_once(make, X, y):
+    est = make()
+    t0, c0 = time.perf_counter(), time.process_time()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        est.fit(X, y)
+    return time.perf_counter() - t0, time.process_time() - c0, est
+
+
+def alternated(rows, X, y, repeats):
+    """Median wall and CPU time of each contender; each round fits every contender once, in turn."""
+    wall = {label: [] for label, _ in rows}
+    cpu = {label: [] for label, _ in rows}
+    last = {}
     for _ in range(repeats):
-        est = make()
-        t0 = time.perf_counter()
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", ConvergenceWarning)
-            est.fit(X, y)
-        times.append(time.perf_counter() - t0)
-    return float(np.median(times)), est
+        for label, make in rows:
+            w, c, last[label] = fit_once(make, X, y)
+            wall[label].append(w)
+            cpu[label].append(c)
+    return [(label, float(np.median(wall[label])), float(np.median(cpu[label])), last[label]) for label, _ in rows]
 
 
 def dense_section(args):
-    print(f"n = {args.n}, p = {args.p}, median of {args.repeats} fits each; "
+    print(f"n = {args.n}, p = {args.p}, median of {args.repeats} alternating rounds; "
           "coef diff = max relative difference from the reference (newton-cholesky, tol=1e-12)")
     print()
-    print(f"{'family':8s} {'estimator':42s} {'time [s]':>9s} {'ratio':>7s} {'n_iter':>7s} {'coef diff':>10s}")
+    print(f"{'family':8s} {'estimator':42s} {'wall [s]':>9s} {'ratio':>6s} {'CPU [s]':>8s} {'ratio':>6s} "
+          f"{'n_iter':>7s} {'coef diff':>10s}")
     sk_cls = {"poisson": PoissonRegressor, "gamma": GammaRegressor}
     for fam in ("poisson", "gamma"):
         X, y = make_data(args.n, args.p, fam)
@@ -106,45 +123,55 @@ def dense_section(args):
             (f"{cls.__name__} lbfgs tol=1e-8", lambda: cls(alpha=0.0, solver="lbfgs", tol=1e-8, max_iter=10_000)),
             (f"{cls.__name__} newton-cholesky tol=1e-4", lambda: cls(alpha=0.0, solver="newton-cholesky")),
         ]
-        results = [(label, *timed(make, X, y, args.repeats)) for label, make in rows]
-        t_lbfgs = results[1][1]
-        for label, t, est in results:
+        results = alternated(rows, X, y, args.repeats)
+        w_lbfgs, c_lbfgs = results[1][1], results[1][2]
+        for label, w, c, est in results:
             diff = float(np.max(np.abs(params(est) - ref_params) / np.maximum(np.abs(ref_params), 1e-12)))
-            print(f"{fam:8s} {label:42s} {t:9.3f} {t / t_lbfgs:7.2f} {int(np.max(est.n_iter_)):7d} {diff:10.2e}")
+            print(f"{fam:8s} {label:42s} {w:9.3f} {w / w_lbfgs:6.2f} {c:8.3f} {c / c_lbfgs:6.2f} "
+                  f"{int(np.max(est.n_iter_)):7d} {diff:10.2e}")
     print()
     print("ratio = time / time of the default lbfgs fit of the same family (target for LikelihoodRegressor: <= 1.0)")
 
 
 def equilibration_section(args):
-    """Share of a fit spent on what the scale-free solver adds: the column-scale pass and refinement."""
+    """Share of a fit spent on what the scale-free solver adds: column scales, matrix scaling, refinement."""
     X, y = make_data(args.n, args.p, "poisson")
     v = np.full(args.n, 1.0 / args.n)
-    t_scale, t_fit, t_refine = [], [], []
-    original = _solvers._refine
+    t_scale, t_fit = [], []
+    spent = {"_equilibrate": [], "_refine_dense": []}
+    originals = {name: getattr(_solvers, name) for name in spent}
 
-    def timed_refine(*a, **k):
-        t0 = time.perf_counter()
-        out = original(*a, **k)
-        t_refine.append(time.perf_counter() - t0)
-        return out
+    def timing(name):
+        def wrapper(*a, **k):
+            t0 = time.perf_counter()
+            out = originals[name](*a, **k)
+            spent[name][-1] += time.perf_counter() - t0
+            return out
+        return wrapper
 
-    _solvers._refine = timed_refine
+    for name in spent:
+        setattr(_solvers, name, timing(name))
     try:
         for _ in range(args.repeats):
             t0 = time.perf_counter()
             _solvers.column_scales(X, v)
             t_scale.append(time.perf_counter() - t0)
+            for name in spent:
+                spent[name].append(0.0)
             t0 = time.perf_counter()
             LikelihoodRegressor(family="poisson").fit(X, y)
             t_fit.append(time.perf_counter() - t0)
     finally:
-        _solvers._refine = original
-    fit, sc, rf = np.median(t_fit), np.median(t_scale), np.median(t_refine)
+        for name, f in originals.items():
+            setattr(_solvers, name, f)
+    fit, sc = np.median(t_fit), np.median(t_scale)
+    eq, rf = np.median(spent["_equilibrate"]), np.median(spent["_refine_dense"])
     print(f"poisson, n = {args.n}, p = {args.p} (standard-normal columns), medians of {args.repeats}")
-    print(f"  whole fit                     {fit:8.3f} s")
-    print(f"  column-scale pass             {sc:8.3f} s  ({100 * sc / fit:5.1f}% of the fit)")
-    print(f"  refinement rounds at the end  {rf:8.3f} s  ({100 * rf / fit:5.1f}% of the fit)")
-    print("  (the p x p equilibration of each Newton matrix is O(p^2) and not measurable here)")
+    print(f"  whole fit                              {fit:8.3f} s")
+    print(f"  column scales as a separate pass       {sc:8.3f} s  ({100 * sc / fit:5.1f}% of the fit; "
+          "in the fit they share the first pass)")
+    print(f"  scaling of the Newton matrices         {eq:8.3f} s  ({100 * eq / fit:5.1f}% of the fit)")
+    print(f"  refinement at the end                  {rf:8.3f} s  ({100 * rf / fit:5.1f}% of the fit)")
 
 
 def make_sparse(n, factors=10, levels=200, seed=0):
@@ -187,14 +214,14 @@ def child(path, which):
     _reset_peak()
     est = (LikelihoodRegressor(family="poisson") if which == "lossfam"
            else PoissonRegressor(alpha=0.0, solver="lbfgs"))
-    t0 = time.perf_counter()
+    t0, c0 = time.perf_counter(), time.process_time()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
         est.fit(X, y)
-    t = time.perf_counter() - t0
+    t, c = time.perf_counter() - t0, time.process_time() - c0
     peak = _rss_kb("VmHWM")
     np.save(path + f".{which}.coef.npy", params(est))
-    print(json.dumps({"time": t, "peak_kb": peak, "data_kb": base, "n_iter": int(np.max(est.n_iter_))}))
+    print(json.dumps({"time": t, "cpu": c, "peak_kb": peak, "data_kb": base, "n_iter": int(np.max(est.n_iter_))}))
 
 
 def sparse_section(args):
@@ -207,24 +234,26 @@ def sparse_section(args):
         np.save(path + ".y.npy", y)
         ref = PoissonRegressor(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=100).fit(X, y)
         ref_params = params(ref)
-        res = {}
-        for which in ("lossfam", "sklearn"):
-            runs = []
-            for _ in range(args.repeats):
+        runs = {"lossfam": [], "sklearn": []}
+        for _ in range(args.repeats):
+            for which in runs:  # the two estimators alternate
                 out = subprocess.run([sys.executable, __file__, "--child", path, which],
                                      check=True, capture_output=True, text=True).stdout
-                runs.append(json.loads(out.strip().splitlines()[-1]))
+                runs[which].append(json.loads(out.strip().splitlines()[-1]))
+        res = {}
+        for which, rs in runs.items():
             coef = np.load(path + f".{which}.coef.npy")
-            res[which] = {k: float(np.median([r[k] for r in runs])) for k in runs[0]}
+            res[which] = {k: float(np.median([r[k] for r in rs])) for k in rs[0]}
             res[which]["diff"] = float(np.max(np.abs(coef - ref_params) / np.maximum(np.abs(ref_params), 1e-12)))
     print()
-    print(f"{'estimator':44s} {'time [s]':>9s} {'ratio':>6s} {'peak MB':>8s} {'ratio':>6s} "
-          f"{'above data MB':>14s} {'n_iter':>7s} {'coef diff':>10s}")
-    labels = {"lossfam": "LikelihoodRegressor (Newton, tol=1e-8)", "sklearn": "PoissonRegressor lbfgs (default tol)"}
+    print(f"{'estimator':44s} {'wall [s]':>9s} {'ratio':>6s} {'CPU [s]':>8s} {'ratio':>6s} {'peak MB':>8s} "
+          f"{'ratio':>6s} {'above data MB':>14s} {'n_iter':>7s} {'coef diff':>10s}")
+    labels = {"lossfam": "LikelihoodRegressor (Newton-CG, tol=1e-8)", "sklearn": "PoissonRegressor lbfgs (default tol)"}
     sk = res["sklearn"]
     for which in ("lossfam", "sklearn"):
         r = res[which]
-        print(f"{labels[which]:44s} {r['time']:9.2f} {r['time'] / sk['time']:6.2f} {r['peak_kb'] / 1024:8.0f} "
+        print(f"{labels[which]:44s} {r['time']:9.2f} {r['time'] / sk['time']:6.2f} {r['cpu']:8.2f} "
+              f"{r['cpu'] / sk['cpu']:6.2f} {r['peak_kb'] / 1024:8.0f} "
               f"{r['peak_kb'] / sk['peak_kb']:6.2f} {(r['peak_kb'] - r['data_kb']) / 1024:14.0f} "
               f"{int(r['n_iter']):7d} {r['diff']:10.2e}")
     print("coef diff: max relative difference from PoissonRegressor(solver='newton-cholesky', tol=1e-12)")

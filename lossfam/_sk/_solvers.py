@@ -42,6 +42,20 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     family) use the same iteration with the surrogate in place of d2F: each
     step is then a majorise-minimise step (linear, not quadratic, convergence).
 
+    Two organisations of this iteration serve the built-in families whose nll
+    is convex in raw (gaussian, poisson, gamma, bernoulli), where most time
+    goes:
+    * dense X with at most CHORD_MIN_COLUMNS coefficients (``newton_dense``):
+      one pass over X per trial point, the raw-score update, the gradient and
+      the Newton matrix sharing each block of rows while it is in cache; on
+      large data a start from the fit of a row subsample, then chord steps
+      with its factorisation corrected by secant (BFGS) updates; refinement
+      when needed;
+    * sparse X with more coefficients (``newton_cg``): truncated Newton, the
+      direction from conjugate gradients on Hessian-vector products (the
+      matrix is never formed), preconditioned by its diagonal and BFGS pairs
+      from earlier solves, started from the fit of a row subsample.
+
 ``huber``
     The Huber nll is convex and once continuously differentiable in raw; its
     second derivative is 1/s^2 inside the core |u| <= delta and 0 outside.
@@ -100,6 +114,8 @@ SUBSAMPLE_WHILE_STEP = 0.02  # ... while the last step moved some raw score by m
 CHORD_SHRINK = 0.01  # a chord (or subsampled) step is kept only if it shrinks ||C^-1 dF||^2 by this factor
 SUBSAMPLE_SHRINK = 0.25  # ... and subsampled steps must shrink ||C^-1 dF||^2 by this factor (two misses in a row: full Hessians)
 CHORD_MIN_COLUMNS = 200  # ... used for sparse X or more coefficients than this
+SUBSAMPLE_START_TOL = 1e-4  # large data (fast paths): tolerance of the subsample's fit that gives the start
+CG_MEMORY = 40  # sparse X with more coefficients than CHORD_MIN_COLUMNS: pairs kept by the quasi-Newton preconditioner
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
 
@@ -157,21 +173,43 @@ def weighted_gram(X, hv, buf=None):
     return X.T @ (hv[:, None] * X), X.T @ hv
 
 
-def column_scales(X, v):
-    """c_j = sqrt(sum_i v_i x_ij^2) (1 for an all-zero column), in blocks of rows for sparse X."""
+def _csr_row_block(X, s, e):
+    """Rows s:e of a CSR matrix as a CSR matrix sharing X's data and index arrays (no copy of them)."""
+    a, b = int(X.indptr[s]), int(X.indptr[e])
+    return sparse.csr_matrix((X.data[a:b], X.indices[a:b], X.indptr[s:e + 1] - a), shape=(e - s, X.shape[1]),
+                             copy=False)
+
+
+def weighted_column_squares(X, hv, unit=False):
+    """sum_i hv_i x_ij^2 for every column j (the diagonal of X^T diag(hv) X).
+
+    Sparse X (CSR): ``unit`` (every stored entry 0 or 1, so x^2 = x) gives it as
+    one product X^T hv; otherwise the squares are formed for one block of rows
+    at a time (views of X's index arrays, so the only copy is one block's
+    values).  Dense X: in blocks of rows.
+    """
     n, p = X.shape
     if sparse.issparse(X):
         X = X.tocsr() if X.format != "csr" else X
+        if unit:
+            return np.asarray(X.T @ hv, dtype=float).ravel()
         ss = np.zeros(p)
         for s in range(0, n, _SPARSE_BLOCK):
-            blk = X[s:s + _SPARSE_BLOCK]
-            ss += np.asarray(blk.multiply(blk).T @ v[s:s + _SPARSE_BLOCK]).ravel()
-    else:
-        ss = np.zeros(p)
-        for s in range(0, n, _BLOCK):
-            blk = X[s:s + _BLOCK]
-            ss += v[s:s + _BLOCK] @ (blk * blk)
-    c = np.sqrt(ss)
+            e = min(n, s + _SPARSE_BLOCK)
+            blk = _csr_row_block(X, s, e)
+            blk = sparse.csr_matrix((blk.data * blk.data, blk.indices, blk.indptr), shape=blk.shape, copy=False)
+            ss += blk.T @ hv[s:e]
+        return ss
+    ss = np.zeros(p)
+    for s in range(0, n, _BLOCK):
+        blk = X[s:s + _BLOCK]
+        ss += hv[s:s + _BLOCK] @ (blk * blk)
+    return ss
+
+
+def column_scales(X, v, unit=False):
+    """c_j = sqrt(sum_i v_i x_ij^2) (1 for an all-zero column); ``unit`` as in ``weighted_column_squares``."""
+    c = np.sqrt(weighted_column_squares(X, v, unit))
     c[~(c > 0) | ~np.isfinite(c)] = 1.0
     return c
 
@@ -240,8 +278,12 @@ def _raw(X, coef, intercept, offset):
 
 
 def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-           curvature=None, buf=None, merit="objective", cscale=None) -> LinearFit:
+           curvature=None, buf=None, merit="objective", cscale=None, fused=True) -> LinearFit:
     """Damped Newton iteration for F (see the module docstring).
+
+    With merit "gradient" and no ``curvature``, sparse X with more than
+    CHORD_MIN_COLUMNS coefficients goes to ``newton_cg`` and dense X with at
+    most that many (and ``fused``) to ``newton_dense``; the rest is below.
 
     ``curvature(fam, y, raw, h)`` may replace the family's Hessian per row
     (used for Huber's generalised Hessian).  ``cscale``: the column scales c_j
@@ -257,6 +299,13 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     cannot make progress, the step falls back to the objective merit.
     """
     n, p = X.shape
+    if (sparse.issparse(X) and merit == "gradient" and curvature is None
+            and p + int(fit_intercept) > CHORD_MIN_COLUMNS):
+        return newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept, cscale)
+    if (fused and not sparse.issparse(X) and merit == "gradient" and curvature is None and p
+            and p + int(fit_intercept) <= CHORD_MIN_COLUMNS):
+        return newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+                            cscale, buf)
     coef = np.array(coef, dtype=float)
     intercept = float(intercept)
     if np.any(coef):
@@ -436,6 +485,535 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     if F is None:
         F = np.nan  # not evaluated (the gradient merit needs no nll values)
     return LinearFit(coef, intercept, raw, it, F, gnorm, converged, fam)
+
+
+def _is_unit(X):
+    """Every stored entry of the sparse matrix X is 0 or 1 (one-hot and indicator designs): x^2 = x."""
+    d = X.data
+    return bool(d.size == 0 or np.all((d == 1.0) | (d == 0.0)))
+
+
+def _secant_solve(solve, pairs):
+    """r -> an approximation of d2F^-1 r: ``solve`` corrected by BFGS updates from the pairs (s, y) of past steps.
+
+    The two-loop recursion of limited-memory BFGS (Nocedal & Wright, Numerical
+    Optimization, 2nd ed., 2006, Algorithm 7.4 -- recalled from memory) with ``solve`` (a factorised
+    Newton matrix) as the initial inverse: each pair s (a step) and y (the
+    change of the exact gradient along it) makes the approximation exact along
+    y, so the chord steps, which converge linearly at the rate of the
+    factorisation's error, gain the error's directions as they go.  Pairs with
+    s.y <= 0 are skipped (they carry no positive curvature).
+    """
+    usable = [(s, y, 1.0 / float(s @ y)) for s, y in pairs if float(s @ y) > 0]
+    if not usable:
+        return solve
+
+    def apply(r):
+        q = np.array(r, dtype=float)
+        coefs = []
+        for s, y, rho in reversed(usable):
+            a = rho * float(s @ q)
+            q -= a * y
+            coefs.append(a)
+        z = solve(q)
+        for (s, y, rho), a in zip(usable, reversed(coefs)):
+            z += s * (a - rho * float(y @ z))
+        return z
+    return apply
+
+
+def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_intercept, buf, squares=None):
+    """One pass over the rows of dense X in blocks: the raw scores, gradient and Newton matrix at a trial point.
+
+    Returns (raw, grad, H) with raw = raw_base + t draw, where ``draw`` holds
+    X dc + db (recomputed into it, block by block, when ``new_draw``); grad the
+    unpenalised gradient of sum v nll at raw; H (``hessian`` "full": all rows;
+    "sub": one row in SUBSAMPLE_FRACTION, reweighted to the total weight;
+    None: not formed) the unpenalised [X 1]^T diag(v h) [X 1].  The subsample
+    is the first 1/SUBSAMPLE_FRACTION of every block of rows (a systematic sample
+    spread over the data in runs of _BLOCK / SUBSAMPLE_FRACTION rows).  Each block is
+    used by all three while it is in cache; H is accumulated with one dsyrk
+    per block on the rows scaled by sqrt(v h) (``weighted_gram``).  ``squares``
+    (length p), when given, has sum_i v_i x_ij^2 added to it in the same pass.
+    """
+    n, p = X.shape
+    nfree = p + int(fit_intercept)
+    m = buf.shape[0]
+    raw_new = np.empty(n)
+    grad = np.zeros(nfree)
+    H = np.zeros((p, p), order="F") if hessian else None
+    xh = np.zeros(p)
+    hsum = vsum = 0.0
+    general = False
+    step = SUBSAMPLE_FRACTION if hessian == "sub" else 1
+    with np.errstate(over="ignore", invalid="ignore"):
+        for s in range(0, n, m):
+            e = min(n, s + m)
+            Xb = X[s:e]
+            rb = raw_new[s:e]
+            if new_draw:
+                np.dot(Xb, dc, out=draw[s:e])
+                draw[s:e] += db
+            np.multiply(draw[s:e], t, out=rb)
+            rb += raw_base[s:e]
+            g, h = fam._grad_hess(y[s:e], rb)
+            vb = v[s:e]
+            if squares is not None:
+                sq = np.multiply(Xb, Xb, out=buf[: e - s])
+                squares += vb @ sq
+            g *= vb
+            grad[:p] += g @ Xb
+            if fit_intercept:
+                grad[p] += g.sum()
+            if not hessian:
+                continue
+            if step > 1:
+                k = -(-(e - s) // step)  # the first 1/step of the block: contiguous, so cheap to scale and multiply
+                Xb, h, vb = Xb[:k], h[:k], vb[:k]
+                vsum += float(vb.sum())
+            h *= vb
+            hsum += float(h.sum())
+            if general or np.min(h) < 0:
+                if not general:  # a negative curvature: no square roots, plain products from here on
+                    H = np.triu(H) + np.triu(H, 1).T
+                    general = True
+                H += Xb.T @ (h[:, None] * Xb)
+                xh += h @ Xb
+                continue
+            np.sqrt(h, out=h)
+            a = np.multiply(Xb, h[:, None], out=buf[: Xb.shape[0]])
+            H = dsyrk(1.0, a.T, beta=1.0, c=H, trans=0, lower=0, overwrite_c=1)
+            xh += h @ a
+    if not hessian:
+        return raw_new, grad, None
+    full = np.empty((nfree, nfree))
+    full[:p, :p] = H if general else np.triu(H) + np.triu(H, 1).T
+    if fit_intercept:
+        full[:p, p] = xh
+        full[p, :p] = xh
+        full[p, p] = hsum
+    if step > 1:
+        full *= 1.0 / max(vsum, 1e-300)
+    return raw_new, grad, full
+
+
+def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+                 cscale=None, buf=None, warm=True, state=None) -> LinearFit:
+    r"""Damped Newton iteration for F with dense X and few columns, one pass over X per step.
+
+    The iteration of ``newton`` with the gradient-norm line search (the
+    built-in families whose nll is convex in raw), organised so that each
+    trial point costs one pass over X (``dense_sweep``): the raw-score
+    update X d, the gradient and, when wanted, the Newton matrix at the trial
+    point (used if the step is accepted) share one read of each block of rows.
+    Forming the Newton matrix is the costly part of a pass (a dsyrk with
+    n p^2 / 2 multiply-adds against 2 n p for the two matrix-vector
+    products), so on large data (n >= SUBSAMPLE_MIN_ROWS) it is avoided on
+    all rows:
+
+    * start: Newton's method on one row in SUBSAMPLE_FRACTION (weights
+      rescaled to the same total), to SUBSAMPLE_START_TOL; its solution is
+      the starting point and its last factorisation (with its secant pairs)
+      the matrix of the first steps on all rows;
+    * chord steps with that factorisation, corrected by BFGS updates from
+      the secant pairs (step, change of the exact gradient) of the steps on
+      all rows (``_secant_solve``), while each shrinks ||C^-1 dF||^2 by
+      CHORD_SHRINK; a step that does not gets the matrix from all rows at
+      its end point.  (Without the start -- it failed, or a starting point
+      was given -- the matrices come from the first 1/SUBSAMPLE_FRACTION of
+      each block of rows while steps move some raw score by more than
+      SUBSAMPLE_WHILE_STEP.)
+
+    The gradient is exact at every step, so the solution and the stopping
+    rule are those of ``newton``.  On smaller data every step is a Newton
+    step with the matrix from all rows.  At the gradient test the last
+    factorisation refines the solution (``_refine_dense``).  If the gradient
+    norm cannot be decreased the general iteration (``newton``, with its
+    fall-back to F itself) takes over.
+    """
+    n, p = X.shape
+    coef = np.array(coef, dtype=float)
+    intercept = float(intercept)
+    nfree = p + int(fit_intercept)
+    large = n >= SUBSAMPLE_MIN_ROWS
+    start_solve, start_iter = None, 0
+    if large and warm and not np.any(coef):
+        # a starting point from one row in SUBSAMPLE_FRACTION (Newton's method on those rows, to
+        # SUBSAMPLE_START_TOL); its last factorisation serves the first chord steps on all rows
+        rows = slice(0, None, SUBSAMPLE_FRACTION)
+        total = float(v[rows].sum())
+        if total > 0:
+            got = {}
+            try:
+                start = newton_dense(fam, np.ascontiguousarray(X[rows]), y[rows], v[rows] / total,
+                                     None if offset is None else offset[rows], alpha, fit_intercept, max_iter,
+                                     max(tol, SUBSAMPLE_START_TOL), coef, intercept, warm=False, state=got)
+            except (FloatingPointError, ValueError, np.linalg.LinAlgError):
+                start = None
+            if (start is not None and start.converged and got.get("solve") is not None
+                    and np.all(np.isfinite(start.coef)) and np.isfinite(start.intercept)):
+                coef, intercept = start.coef, float(start.intercept)
+                start_solve, start_iter = got["solve"], start.n_iter
+    raw = np.full(n, intercept) if offset is None else offset + intercept
+    m = max(SUBSAMPLE_FRACTION, min(_BLOCK, n))
+    if buf is None or buf.shape[0] < m or buf.shape[1] != p:
+        buf = np.empty((m, p))
+    else:
+        buf = buf[:m]
+    draw = np.zeros(n)
+
+    def sweep(raw_base, t, dc, db, new_draw, hessian, coef_, squares=None):
+        raw_new, grad, H = dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian,
+                                       fit_intercept, buf, squares)
+        if alpha:
+            grad[:p] += alpha * coef_
+            if H is not None:
+                H[np.arange(p), np.arange(p)] += alpha
+        return raw_new, grad, H
+
+    use_sub = large and start_solve is None
+    squares = np.zeros(p) if cscale is None else None  # the column scales, from the same pass
+    # the first pass: raw = X coef + intercept (+ offset), the gradient, the column scales, and the
+    # Newton matrix unless the subsample's factorisation is at hand
+    first = None if start_solve is not None else ("sub" if use_sub else "full")
+    raw, grad, H = sweep(raw, 1.0, coef, 0.0, True, first, coef, squares)
+    if cscale is None:
+        cscale = np.sqrt(squares)
+        cscale[~(cscale > 0) | ~np.isfinite(cscale)] = 1.0
+    inv_c = np.ones(nfree)
+    inv_c[:p] = 1.0 / cscale
+    H_kind = first
+    solve = start_solve
+    poor_sub = 0
+    pairs = []  # (step, gradient change) since the last factorisation
+    converged = False
+    gnorm = np.inf
+    it = 0
+    for it in range(max_iter + 1):
+        sgrad = grad * inv_c
+        gnorm = float(np.max(np.abs(sgrad)))
+        if not np.isfinite(gnorm):
+            raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+        if gnorm <= tol:
+            converged = True
+            break
+        if it == max_iter:
+            break
+        used = "chord"
+        if H is not None:
+            d, new_solve = _newton_step(H, grad, exact=H_kind == "full")
+            if d is None:  # the subsample's matrix is singular: all rows from here on
+                use_sub = False
+                _, _, H = sweep(raw, 0.0, None, 0.0, False, "full", coef)
+                H_kind = "full"
+                d, new_solve = _newton_step(H, grad)
+            d, solve, used = -d, new_solve, H_kind
+            pairs = []
+        else:
+            d = -_secant_solve(solve, pairs)(grad)
+        dc = d[:p]
+        db = d[p] if fit_intercept else 0.0
+        m0 = float(sgrad @ sgrad)
+        # the matrix formed at the trial point: the subsample's far from the optimum; on small
+        # data all rows at every step (Newton's method); on large data near the optimum none
+        # (chord steps with the last factorisation; a full matrix only when they stall)
+        want = "sub" if use_sub else (None if large else "full")
+        accepted = False
+        t = 1.0
+        for k in range(30):
+            raw_new, grad_new, H_new = sweep(raw, t, dc, db, k == 0, want, coef + t * dc)
+            sg = grad_new * inv_c
+            m1 = float(sg @ sg)
+            if np.isfinite(m1) and m1 <= (1.0 - 2e-4 * t) * m0:
+                accepted = True
+                break
+            t *= 0.5
+        if not accepted:
+            # no progress on the gradient norm (rounding near the optimum, or a singular problem):
+            # the general iteration takes over from here, with its fall-back to F itself
+            fit = newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter - it, tol, coef, intercept,
+                         buf=buf, merit="gradient", cscale=cscale, fused=False)
+            fit.n_iter += it + start_iter
+            return fit
+        change = t * float(np.max(np.abs(draw)))
+        shrink = m1 / m0 if m0 > 0 else 0.0
+        pairs.append((t * d, grad_new - grad))
+        coef, intercept, raw, grad = coef + t * dc, intercept + t * db, raw_new, grad_new
+        if used == "sub":
+            poor_sub = poor_sub + 1 if not (t == 1.0 and shrink <= SUBSAMPLE_SHRINK) else 0
+        if use_sub and (poor_sub >= 2 or change <= SUBSAMPLE_WHILE_STEP):
+            use_sub = False
+        H, H_kind = H_new, want
+        if large and not use_sub and not (t == 1.0 and shrink <= CHORD_SHRINK):
+            # the last step stalled (a chord step, the subsample's matrix, or far from the optimum):
+            # the matrix from all rows at this point
+            _, _, H = sweep(raw, 0.0, None, 0.0, False, "full", coef)
+            H_kind = "full"
+        if change <= _ROUNDING * float(np.max(np.abs(raw))) and t == 1.0:
+            gnorm = float(np.max(np.abs(grad * inv_c)))
+            converged = True
+            it += 1
+            break
+    if state is not None:
+        state["solve"] = _secant_solve(solve, pairs) if solve is not None else None
+    if converged and solve is not None:
+        coef, intercept, raw, grad, gnorm = _refine_dense(
+            solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
+    return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)
+
+
+def _refine_dense(solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol, rounds=3):
+    """``_refine`` for ``newton_dense``: each round is one pass (X d and the gradient together).
+
+    The last factorisation is corrected by the secant pairs of the steps since
+    it was made (``_secant_solve``); each round adds its own pair.  Checked
+    rounds (a pass for X d and the gradient, kept only if the gradient
+    shrinks) are made only when needed: when the first correction d, in
+    standardised units (max_j c_j |d_j|, and |d_0| for the intercept; it
+    estimates the error of the coefficients that the gradient test left),
+    exceeds ``tol`` -- the problem's conditioning has amplified the gradient's
+    tolerance.  Otherwise d is below tol and the iteration that produced it was
+    contracting (the gradient test was reached by it), so d is applied without
+    a check: one matrix-vector product X d for the raw scores, no gradient.
+    """
+    p = coef.shape[0]
+    sg = grad * inv_c
+    m0 = float(sg @ sg)
+    scale = 1e-11 * float(np.max(np.abs(raw), initial=0.0))
+    for k in range(rounds):
+        d = -_secant_solve(solve, pairs)(grad)
+        dc = d[:p]
+        db = d[p] if fit_intercept else 0.0
+        if not float(np.sum(np.abs(dc) / inv_c[:p])) + abs(db) > scale:
+            break
+        if k == 0 and not float(np.max(np.abs(d) / inv_c)) > tol:
+            raw = raw + _raw(X, dc, db, None)
+            return coef + dc, intercept + db, raw, grad, float(np.max(np.abs(sg)))  # gradient before the step
+        raw_new, grad_new, _ = sweep(raw, 1.0, dc, db, True, None, coef + dc)
+        pairs.append((d, grad_new - grad))
+        if float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)):
+            break
+        sg = grad_new * inv_c
+        m1 = float(sg @ sg)
+        if not (m1 < m0):
+            break
+        coef, intercept, raw, grad, m_prev, m0 = coef + dc, intercept + db, raw_new, grad_new, m0, m1
+        if m1 > CHORD_SHRINK * m_prev:
+            break
+    return coef, intercept, raw, grad, float(np.sqrt(np.max(grad * grad * inv_c * inv_c, initial=0.0)))
+
+
+def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
+              cscale=None, mem=None, warm=True) -> LinearFit:
+    r"""Truncated Newton iteration for F with sparse X: Newton directions from preconditioned conjugate gradients.
+
+    Used by ``newton`` for sparse X with many columns, where forming the dense
+    Newton matrix X^T diag(v h) X (one sparse product with ~k^2 terms for a row
+    of k non-zeros) and factorising it costs far more than the solve needs.
+    Each outer iteration solves d2F d = -dF approximately by the conjugate
+    gradient method on exact Hessian-vector products
+
+        d2F u = [X 1]^T (v h * ([X 1] u)) + alpha (u_coef, 0)
+
+    (one product with X and one with X^T; the matrix is never formed).
+
+    Preconditioner: its diagonal (Jacobi: sum_i v_i h_i x_ij^2 + alpha, and
+    sum v h for the intercept; one product X^T (v h) when every stored entry
+    is 0 or 1, none while h is the same on every row), corrected by BFGS
+    updates from the last CG_MEMORY conjugate steps s and their products
+    d2F s, applied by the two-loop recursion (``_secant_solve``; the
+    preconditioner built from earlier conjugate-gradient runs of Morales &
+    Nocedal, Automatic preconditioning by limited memory quasi-Newton
+    updating, SIAM J. Optim. 10, 2000 -- recalled from memory).  For one-hot
+    designs the Jacobi-scaled matrix has about one outlying eigenvalue per
+    categorical factor (each factor's columns nearly add up to the intercept)
+    around a tight cluster near 1; the pairs of one solve carry those
+    directions into the next, which then needs a few iterations instead of a
+    few tens.  Jacobi preconditioning makes the iterates independent of the
+    columns' units, as the equilibrated Cholesky solve of the dense path.
+
+    Start: with n >= SUBSAMPLE_MIN_ROWS the same iteration first fits one
+    row in SUBSAMPLE_FRACTION (weights rescaled to the same total) to
+    SUBSAMPLE_START_TOL; its solution is the starting point and its conjugate
+    pairs seed the preconditioner, so the expensive products on all rows are
+    spent near the optimum only.
+
+    The inner iteration stops at the truncated-Newton (inexact Newton) rule
+
+        ||C^-1 r|| <= eta_k ||C^-1 dF||,   eta_k = min(1/2, max_j |dF_j| / c_j)
+
+    (r the residual of the linear system, C = diag(c) the column scales of the
+    stopping rule), or once max_j |r_j| / c_j <= tol / 10, when the step
+    already reaches the outer tolerance.  A forcing term eta_k of the order of
+    the gradient keeps Newton's quadratic convergence near the optimum
+    (Dembo, Eisenstat & Steihaug, Inexact Newton methods, SIAM J. Numer. Anal.
+    19, 1982, Theorem 3.3; Nocedal & Wright, Numerical Optimization, 2nd ed.,
+    2006, section 7.1, Theorem 7.2 and Algorithm 7.1 -- both recalled from
+    memory).  Conjugate gradients started at 0 return a descent direction, and
+    with eta_k <= 1/2 also one for ||C^-1 dF||^2, so the step is accepted by
+    the same backtracking line search on the gradient norm as in ``newton``
+    (falling back to F itself).  The gradient is exact at every
+    outer step, so the solution and the stopping rule are those of the dense
+    path; memory above X is a handful of length-n vectors (and the copy of
+    the subsample's rows).  Unlike the dense path there is no refinement
+    after the gradient test: the coefficients are accurate to about tol
+    divided by the smallest eigenvalue of the equilibrated Newton matrix.
+    """
+    n, p = X.shape
+    X = X.tocsr() if X.format != "csr" else X
+    XT = X.T  # CSC view of X^T, no copy
+    unit = _is_unit(X)
+    coef = np.array(coef, dtype=float)
+    intercept = float(intercept)
+    nfree = p + int(fit_intercept)
+    if mem is None:
+        mem = []  # (s, d2F s) of past conjugate steps: the pairs of the quasi-Newton preconditioner
+    start_iter = 0
+    if warm and n >= SUBSAMPLE_MIN_ROWS and not np.any(coef):
+        # a starting point from one row in SUBSAMPLE_FRACTION, solved to SUBSAMPLE_START_TOL; its
+        # conjugate pairs (curvature of the subsample, weights rescaled to the same total) seed the
+        # preconditioner
+        rows = slice(0, None, SUBSAMPLE_FRACTION)
+        total = float(v[rows].sum())
+        if total > 0:
+            try:
+                start = newton_cg(fam, X[rows], y[rows], v[rows] / total, None if offset is None else offset[rows],
+                                  alpha, fit_intercept, max_iter, max(tol, SUBSAMPLE_START_TOL), coef, intercept,
+                                  mem=mem, warm=False)
+            except (FloatingPointError, ValueError, np.linalg.LinAlgError):
+                start = None
+            if start is not None and np.all(np.isfinite(start.coef)) and np.isfinite(start.intercept):
+                coef, intercept, start_iter = start.coef, float(start.intercept), start.n_iter
+            else:
+                mem.clear()
+    raw = _raw(X, coef, intercept, offset) if np.any(coef) else (
+        np.full(n, intercept) if offset is None else offset + intercept)
+    if cscale is None:
+        cscale = column_scales(X, v, unit)
+    inv_c = np.ones(nfree)
+    inv_c[:p] = 1.0 / cscale
+
+    def derivatives(raw_, coef_):
+        with np.errstate(over="ignore", invalid="ignore"):
+            g, h = fam._grad_hess(y, raw_)
+        g *= v
+        grad = np.empty(nfree)
+        grad[:p] = XT @ g
+        grad[:p] += alpha * coef_
+        if fit_intercept:
+            grad[p] = g.sum()
+        del g
+        h *= v
+        return grad, h
+
+    def objective(raw_, coef_):
+        with np.errstate(over="ignore", invalid="ignore"):
+            per_row = fam._nll(y, raw_)
+        return float(np.dot(v, per_row)) + 0.5 * alpha * float(coef_ @ coef_)
+
+    grad, hv = derivatives(raw, coef)
+    converged = False
+    gnorm = np.inf
+    it = 0
+    for it in range(max_iter + 1):
+        sgrad = grad * inv_c
+        gnorm = float(np.max(np.abs(sgrad))) if nfree else 0.0
+        if not np.isfinite(gnorm):
+            raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+        if gnorm <= tol:
+            converged = True
+            break
+        if it == max_iter:
+            break
+        diag = np.empty(nfree)
+        h0 = hv[0] / v[0] if v[0] > 0 else np.nan
+        if np.all(hv == h0 * v):
+            diag[:p] = h0 * cscale * cscale + alpha  # h is the same on every row (e.g. at the start): no pass
+        else:
+            diag[:p] = weighted_column_squares(X, hv, unit) + alpha
+        if fit_intercept:
+            diag[p] = hv.sum()
+        diag[~(diag > 0) | ~np.isfinite(diag)] = 1.0
+        eta = min(0.5, gnorm)
+        target = eta * float(np.linalg.norm(sgrad))
+        d = np.zeros(nfree)
+        r = -grad
+
+        precond = _secant_solve(lambda r_: r_ / diag, mem)
+        z = precond(r)
+        u = z.copy()
+        newmem = []
+        rz = float(r @ z)
+        for _ in range(max(10 * nfree, 50)):
+            xd = X @ u[:p]
+            if fit_intercept:
+                xd += u[p]
+            xd *= hv
+            hu = np.empty(nfree)
+            hu[:p] = XT @ xd
+            hu[:p] += alpha * u[:p]
+            if fit_intercept:
+                hu[p] = xd.sum()
+            del xd
+            curv = float(u @ hu)
+            if not (curv > 0.0 and np.isfinite(curv)):
+                break  # no curvature left along u (a singular direction): keep the step so far
+            a = rz / curv
+            d += a * u
+            newmem.append((a * u, a * hu))
+            r = r - a * hu
+            sr = r * inv_c
+            if float(np.linalg.norm(sr)) <= target or float(np.max(np.abs(sr))) <= 0.1 * tol:
+                break
+            z = precond(r)
+            rz_new = float(r @ z)
+            u = z + (rz_new / rz) * u
+            rz = rz_new
+        mem[:] = (mem + newmem)[-CG_MEMORY:]
+        if not np.any(d):
+            d = -grad / diag  # no curvature along the first direction: a scaled gradient step
+        dc = d[:p]
+        db = d[p] if fit_intercept else 0.0
+        draw = _raw(X, dc, db, None)
+        m0 = float(sgrad @ sgrad)
+        accepted = False
+        t = 1.0
+        for _ in range(30):
+            raw_new = raw + t * draw
+            coef_new = coef + t * dc
+            grad_new, hv_new = derivatives(raw_new, coef_new)
+            sg = grad_new * inv_c
+            m1 = float(sg @ sg)
+            if np.isfinite(m1) and m1 <= (1.0 - 2e-4 * t) * m0:
+                accepted = True
+                break
+            del raw_new, grad_new, hv_new
+            t *= 0.5
+        if not accepted:
+            F = objective(raw, coef)
+            slope = float(grad @ d)
+            t = 1.0
+            for _ in range(60):
+                raw_new = raw + t * draw
+                coef_new = coef + t * dc
+                F_new = objective(raw_new, coef_new)
+                if np.isfinite(F_new) and F_new <= F + 1e-4 * t * slope:
+                    accepted = True
+                    break
+                t *= 0.5
+            if not accepted:
+                converged = float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(
+                    np.max(np.abs(raw), initial=0.0))
+                break
+            grad_new, hv_new = derivatives(raw_new, coef_new)
+        change = t * float(np.max(np.abs(draw), initial=0.0))
+        coef, intercept, raw, grad, hv = coef_new, intercept + t * db, raw_new, grad_new, hv_new
+        if change <= _ROUNDING * float(np.max(np.abs(raw), initial=0.0)) and t == 1.0:
+            gnorm = float(np.max(np.abs(grad * inv_c))) if nfree else 0.0
+            converged = True
+            it += 1
+            break
+    return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)
 
 
 def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, rounds=3):

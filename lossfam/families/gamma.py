@@ -79,6 +79,10 @@ class Gamma(Family):
         return np.maximum(2.0 * (np.expm1(lr) - lr), 0.0)
 
     def _baseline(self, y, w, offset):
+        if offset is None:
+            total = float(np.dot(w, y))
+            if np.isfinite(total) and total > 1e-280:
+                return np.log(total) - np.log(w.sum())  # the sum is a normal number: no log space needed
         # log(sum w y e^-o / sum w) in log space: no overflow of y e^-o, no underflow of tiny y
         t = np.log(y) if offset is None else np.log(y) - offset
         return logsumexp(t, b=w) - np.log(w.sum())

@@ -74,8 +74,11 @@ class Poisson(Family):
         return np.maximum(2.0 * dev, 0.0)
 
     def _baseline(self, y, w, offset):
-        if not np.dot(w, y) > 0:
+        total = float(np.dot(w, y))
+        if not total > 0:
             raise ValueError("poisson: every row with positive weight has count 0, so the best constant raw score is -inf")
+        if offset is None and np.isfinite(total) and total > 1e-280:
+            return np.log(total) - np.log(w.sum())  # the sum is a normal number: no log space needed
         # log sum w y - log sum w e^o, in log space so that large offsets neither overflow nor underflow
         with np.errstate(divide="ignore"):
             log_total = logsumexp(np.log(y), b=w)
