@@ -143,3 +143,37 @@ def test_scorer_refuses_an_offset_it_cannot_use():
         scorer("poisson")(PoissonRegressor().fit(X, y), X, y, offset=off)
     with pytest.raises(TypeError, match="unexpected argument 'exposure'"):
         scorer("poisson").set_score_request(exposure=True)
+
+
+def _yes_no_with_exposure(n=400, seed=3):
+    # demo scenario: whether a delivery van reports a breakdown, over observation windows of varying length
+    rng = np.random.default_rng(seed)
+    X = rng.standard_normal((n, 2))
+    offset = np.log(rng.uniform(0.1, 4.0, n))
+    y = (rng.uniform(size=n) < 1.0 / (1.0 + np.exp(-(offset + 0.8 * X[:, 0])))).astype(float)
+    return X, y, offset
+
+
+def _linear_classifier():
+    return LikelihoodClassifier()
+
+
+def _boosted_classifier():
+    import lightgbm
+
+    from lossfam.sklearn import BoostedLikelihoodClassifier
+
+    return BoostedLikelihoodClassifier(lightgbm.LGBMRegressor(n_estimators=20, n_jobs=1, verbose=-1))
+
+
+@pytest.mark.parametrize("make", [_linear_classifier, _boosted_classifier], ids=["linear", "boosted"])
+def test_classifier_score_takes_the_offset(make):
+    from sklearn.metrics import accuracy_score
+
+    X, y, off = _yes_no_with_exposure()
+    est = make().fit(X, y, offset=off)
+    # reference: scikit-learn's accuracy of the offset-aware predictions
+    assert est.score(X, y, offset=off) == accuracy_score(y, est.predict(X, offset=off))
+    assert est.score(X, y, offset=off) != est.score(X, y, offset=np.zeros_like(off))
+    with pytest.warns(UserWarning, match="fitted with an offset but is scored without"):
+        est.score(X, y)

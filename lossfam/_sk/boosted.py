@@ -31,12 +31,13 @@ from __future__ import annotations
 
 import numpy as np
 from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin, is_classifier
+from sklearn.metrics import accuracy_score
 from sklearn.utils.multiclass import check_classification_targets, type_of_target
 from sklearn.utils.validation import check_is_fitted, column_or_1d, validate_data
 
 from .. import _checks
 from ..registry import family as make_family
-from .linear import _check_offset, _check_sample_weight, _RawScoreRegressorMethods
+from .linear import _check_offset, _check_sample_weight, _RawScoreRegressorMethods, _warn_missing_offset
 
 #: estimator parameters that are not training parameters of the engine
 _NOT_ENGINE = {
@@ -172,6 +173,7 @@ class _BoostBase(BaseEstimator):
             model = adapter.train(fam, params, dtrain, rounds, evals=valid, early_stopping_rounds=early if valid else None,
                                   evals_result=history, verbose_eval=bool(kwargs.get("verbose", False)))
         self.model_ = model
+        self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
         self.engine_ = engine
         self.baseline_ = model.baseline
         self.family_ = model.fitted_family
@@ -276,6 +278,11 @@ class BoostedLikelihoodClassifier(ClassifierMixin, _BoostBase):
                      for item in eval_set]
         offset = _check_offset(offset, y01.shape[0], owner)
         return self._fit_engine(make_family("bernoulli"), X, y01, w, offset, evals, fit_params)
+
+    def score(self, X, y, sample_weight=None, offset=None):
+        """Accuracy of ``predict(X, offset)`` (offset routed as in the regressors' ``score``)."""
+        _warn_missing_offset(self, offset)
+        return accuracy_score(y, self.predict(X, offset=offset), sample_weight=sample_weight)
 
     def decision_function(self, X, offset=None):
         """Raw score (log odds of ``classes_[1]``)."""
