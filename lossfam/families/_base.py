@@ -84,7 +84,12 @@ from ..links import Link
 
 
 def scaled_mean(a: np.ndarray, w: np.ndarray) -> float:
-    """sum w a / sum w for a >= 0, without overflowing the sum (a is divided by its largest value first)."""
+    """sum w a / sum w for a >= 0, without overflowing the sum (a is divided by its largest value first).
+
+    Rows of weight 0 take no part (not even in the largest value): their ``a`` may be inf."""
+    pos = w > 0
+    if not pos.all():
+        a, w = a[pos], w[pos]
     m = float(np.max(a))
     if not m > 0 or not np.isfinite(m):
         return m
