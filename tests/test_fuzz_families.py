@@ -26,15 +26,18 @@ import lossfam
 
 FAMILIES = lossfam.available()
 
-#: families whose pointwise math this fuzz still finds a defect in, with what it found
+#: families whose pointwise math this fuzz still finds a defect in, with what it found; not run,
+#: since one of the draws exhausts the machine's memory
 POINTWISE_DEFECTS = {
-    "tweedie": "grad_hess at y = 0, raw = -947 (power 1.75): y e^((1-p) raw) is 0 * inf = NaN with "
-               "'invalid value encountered in multiply' (tweedie._grad_hess)",
+    "tweedie": "nll: at power 1 + 2**-52, dispersion 1.18, y = 1.29e16 the series window around j* ~ 1e16 "
+               "allocates without bound (MemoryError under a 5 GB limit; killed without one); nll is NaN at "
+               "dispersion 1e-300 for every y and at power 1 + 1e-6 for y = 1e300; grad_hess at y = 0, "
+               "raw = -947 (power 1.75) is 0 * inf = NaN (tweedie.log_series and _grad_hess)",
 }
 
 
 def _with_pointwise_defects(names):
-    return [pytest.param(n, marks=pytest.mark.xfail(strict=False, reason=POINTWISE_DEFECTS[n]))
+    return [pytest.param(n, marks=pytest.mark.xfail(run=False, reason=POINTWISE_DEFECTS[n]))
             if n in POINTWISE_DEFECTS else n for n in names]
 
 
@@ -118,7 +121,7 @@ def _fits(fam, y, raw, w):
                 new = fam.fit_nuisance(y, raw, w)
             except ValueError:
                 return
-            assert all(np.isfinite(v) and v > 0 for v in new.params.values())
+            assert all(np.isfinite(v) and v > 0 for v in new.params.values() if not isinstance(v, bool))
 
 
 @pytest.mark.parametrize("name", _with_pointwise_defects(FAMILIES))
