@@ -19,7 +19,9 @@ Since mu / (r + mu) = alpha mu / (1 + alpha mu) and r / (r + mu) = 1 / (1 + alph
                (2 r log(1 + alpha mu) at y = 0)
     baseline = log(sum w y / sum w) without an offset (the gradient of a constant
                model is (sum w (mu - y)) / (1 + alpha mu)); with an offset, the root of
-               sum w (mu_i - y_i) / (1 + alpha mu_i) (brentq; increasing in the constant)
+               sum w (mu_i - y_i) / (1 + alpha mu_i) (increasing in the constant; brentq on
+               asinh of the constant, bracketed from above at max(log y_i - offset_i) over rows
+               with y > 0)
     alpha^   = root in log alpha of the score (d nll / d alpha, weighted sum)
                S(alpha) = sum w [(digamma(y + r) - digamma(r) - log(1 + alpha mu)) / alpha^2
                                  + (mu - y) / (alpha (1 + alpha mu))]
@@ -58,10 +60,21 @@ _LOG_MAX = float(np.log(np.finfo(float).max))
 
 
 def log_binomial_term(y, size):
-    """log Gamma(y + r) / (Gamma(r) Gamma(y + 1)) without cancellation (0 at y = 0)."""
+    """log Gamma(y + r) / (Gamma(r) Gamma(y + 1)) without cancellation (0 at y = 0).
+
+    -log y - log B(y, r).  scipy's betaln returns NaN when both arguments are huge (y >= 1e80
+    at r = 1e300); there, with a = min(y, r) and b = max(y, r) >= 1e15, Stirling's series in
+    differences gives log B(a, b) = lgamma(a) - a log b - (a + b - 1/2) log1p(a/b) + a + O(1/b).
+    """
     pos = y > 0
     safe = np.where(pos, y, 1.0)
-    return np.where(pos, -np.log(safe) - betaln(safe, size), 0.0)
+    with np.errstate(invalid="ignore"):
+        lb = betaln(safe, size)
+    bad = ~np.isfinite(lb)
+    if np.any(bad):
+        a, b = np.minimum(safe, size)[bad], np.maximum(safe, size)[bad]
+        lb[bad] = special.gammaln(a) - a * np.log(b) - (a + b - 0.5) * np.log1p(a / b) + a
+    return np.where(pos, -np.log(safe) - lb, 0.0)
 
 
 @dataclass(frozen=True)
@@ -108,26 +121,31 @@ class NegativeBinomial(Family):
         return np.maximum(2.0 * dev, 0.0)
 
     def _baseline(self, y, w, offset):
-        total = np.dot(w, y)
-        if not total > 0:
+        pos = (y > 0) & (w > 0)
+        if not np.any(pos):
             raise ValueError("negative_binomial: every row with positive weight has count 0, "
                              "so the best constant raw score is -inf")
-        c0 = np.log(total) - np.log(w.sum())
-        if offset is None:
-            return c0
+        if offset is None:  # log(sum w y / sum w), as log-sum-exps: no overflow
+            return float(special.logsumexp(np.log(y[pos]) + np.log(w[pos])) - special.logsumexp(np.log(w[w > 0])))
 
-        def score(c):
-            return float(np.dot(w, self._grad_hess(y, c + offset)[0]))
+        def score(u):  # in u = asinh(c): brackets as wide as float64 take ~60 halvings, not ~1000
+            return float(np.dot(w, self._grad_hess(y, np.sinh(u) + offset)[0]))
 
-        lo, hi = c0 - np.max(offset) - 1.0, c0 - np.min(offset) + 1.0
+        # at c = max over rows with y > 0 of log y - offset (+1) every such row has mu >= y, so the
+        # score is >= 0; below, the bracket widens by doubling steps (in u) until the score is
+        # negative (it tends to -sum w y / sum w as c -> -inf)
+        hi = float(np.arcsinh(np.max(np.log(y[pos]) - offset[pos]) + 1.0))
+        lo, step = hi - 1.0, 1.0
         while score(lo) > 0:
-            lo -= 2.0 * (hi - lo)
-        while score(hi) < 0:
-            hi += 2.0 * (hi - lo)
-        # maxiter: at extreme dispersion one side of the score is flat near 1e-300 and Brent creeps
-        return optimize.brentq(score, lo, hi, xtol=1e-13, maxiter=2000)
+            if lo <= -710.0:  # asinh(-1.8e308): the root lies below float64's range
+                raise ValueError("negative_binomial: no finite constant raw score sets the summed gradient "
+                                 "to zero with these offsets")
+            lo, step = max(lo - step, -710.0), 2.0 * step
+        return float(np.sinh(optimize.brentq(score, lo, hi, xtol=1e-15, maxiter=2000)))
 
     def _fit_nuisance(self, y, raw, w):
+        used = w > 0  # the weights arrive rescaled; a subnormal one may be 0 now, and 0 * inf is NaN
+        y, raw, w = y[used], raw[used], w[used]
         mu = np.exp(raw)
         sw = w.sum()
 
