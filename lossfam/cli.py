@@ -246,7 +246,7 @@ def _num(v, fmt):
 def _params(p):
     if not p:
         return "-"
-    return ", ".join(f"{k}={v:.4g}" for k, v in p.items())
+    return ", ".join(f"{k}={v}" if isinstance(v, bool) else f"{k}={v:.4g}" for k, v in p.items())
 
 
 def format_table(rows) -> str:

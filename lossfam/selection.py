@@ -343,7 +343,8 @@ def _label(fam, given_as_object, fitted_params):
     }
     if not fixed:
         return fam.name
-    return fam.name + "(" + ", ".join(f"{k}={v:g}" for k, v in fixed.items()) + ")"
+    return fam.name + "(" + ", ".join(f"{k}={v}" if isinstance(v, (bool, np.bool_)) else f"{k}={v:g}"
+                                      for k, v in fixed.items()) + ")"
 
 
 def _constructible(cls):
@@ -593,7 +594,9 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
             continue
         kf = len(fold_means)
         se = float(np.std(fold_means, ddof=1) / math.sqrt(kf))
-        mean_params = {key: float(np.mean([p[key] for p in params])) for key in params[0]}
+        # numbers: the mean over folds; switches (bool fields such as student_t's estimate_df) stay bools
+        mean_params = {key: (params[0][key] if isinstance(params[0][key], (bool, np.bool_))
+                             else float(np.mean([p[key] for p in params]))) for key in params[0]}
         scored = SCORED_MASS if fam0.discrete else (SCORED_INTERVAL if integer_footing else SCORED_DENSITY)
         notes = []
         if scored == SCORED_INTERVAL:

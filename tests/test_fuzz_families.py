@@ -26,19 +26,21 @@ import lossfam
 
 FAMILIES = lossfam.available()
 
-#: families of which this fuzz still finds a defect, declared one by one with what it found (they
-#: joined the registry after these contracts were written; see the closing of the families' hardening)
-KNOWN_DEFECTS = {
-    "tweedie": "hypothesis finds legal inputs (e.g. dispersion 1, y = 0, raw = 355) where the dispersion "
-               "fit warns 'invalid value encountered in scalar divide' instead of a finite value or a ValueError",
-    "student_t": "hypothesis finds legal inputs where the scale/df fit ends in scipy's 'function value at "
-                 "x=inf is NaN' instead of a finite value or a ValueError naming rows",
+#: families whose pointwise math this fuzz still finds a defect in, with what it found; not run,
+#: since one of the draws exhausts the machine's memory
+POINTWISE_DEFECTS = {
+    "tweedie": "nll: at power 1 + 2**-52, dispersion 1.18, y = 1.29e16 the series window around j* ~ 1e16 "
+               "allocates without bound (MemoryError under a 5 GB limit; killed without one); nll is NaN at "
+               "dispersion 1e-300 for every y and at power 1 + 1e-6 for y = 1e300; grad_hess at y = 0, "
+               "raw = -947 (power 1.75) is 0 * inf = NaN (tweedie.log_series and _grad_hess)",
 }
 
 
-def _with_known_defects(names):
-    return [pytest.param(n, marks=pytest.mark.xfail(strict=False, reason=KNOWN_DEFECTS[n]))
-            if n in KNOWN_DEFECTS else n for n in names]
+def _with_pointwise_defects(names):
+    return [pytest.param(n, marks=pytest.mark.xfail(run=False, reason=POINTWISE_DEFECTS[n]))
+            if n in POINTWISE_DEFECTS else n for n in names]
+
+
 FAST = settings(max_examples=40, deadline=2000, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
 SLOW = settings(max_examples=400, deadline=2000, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
 
@@ -65,6 +67,8 @@ def _target(fam):
 def _param(domain_rule):
     if domain_rule.startswith("strictly between 0 and 1"):
         return st.floats(min_value=1e-12, max_value=1 - 1e-12)
+    if domain_rule.startswith("strictly between 1 and 2"):
+        return st.floats(min_value=1.0, max_value=2.0, exclude_min=True, exclude_max=True)
     return st.floats(min_value=1e-300, max_value=1e300)
 
 
@@ -117,21 +121,21 @@ def _fits(fam, y, raw, w):
                 new = fam.fit_nuisance(y, raw, w)
             except ValueError:
                 return
-            assert all(np.isfinite(v) and v > 0 for v in new.params.values())
+            assert all(np.isfinite(v) and v > 0 for v in new.params.values() if not isinstance(v, bool))
 
 
-@pytest.mark.parametrize("name", _with_known_defects(FAMILIES))
+@pytest.mark.parametrize("name", _with_pointwise_defects(FAMILIES))
 def test_pointwise_math_never_gives_nan(name):
     FAST(given(case(name))(lambda c: _pointwise(*c)))()
 
 
-@pytest.mark.parametrize("name", _with_known_defects(FAMILIES))
+@pytest.mark.parametrize("name", FAMILIES)
 def test_baseline_and_nuisance_fits_are_finite_or_refused(name):
     FAST(given(case(name))(lambda c: _fits(*c)))()
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("name", FAMILIES)
+@pytest.mark.parametrize("name", _with_pointwise_defects(FAMILIES))
 def test_pointwise_math_never_gives_nan_long(name):
     SLOW(given(case(name, 40))(lambda c: _pointwise(*c)))()
 

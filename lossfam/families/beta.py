@@ -133,7 +133,18 @@ class Beta(Family):
 
     def _baseline(self, y, w, offset):
         if offset is not None:
-            return super()._baseline(y, w, offset)
+            # a scalar minimisation of the weighted mean nll over the rows with positive weight (a
+            # row of weight 0 whose nll is inf would make the sum NaN)
+            used = w > 0
+            yy, ww, oo = y[used], w[used], offset[used]
+            sw = ww.sum()
+
+            def mean_nll(c):
+                with np.errstate(over="ignore", invalid="ignore"):
+                    v = float(np.dot(ww, self._nll(yy, c + oo)) / sw)
+                return np.inf if np.isnan(v) else v
+
+            return optimize.minimize_scalar(mean_nll).x
         target = float(np.dot(w, np.log(y) - np.log1p(-y)) / w.sum())
         return float(self._logit_root(np.array([target]))[0])
 

@@ -19,7 +19,9 @@ Since mu / (r + mu) = alpha mu / (1 + alpha mu) and r / (r + mu) = 1 / (1 + alph
                (2 r log(1 + alpha mu) at y = 0)
     baseline = log(sum w y / sum w) without an offset (the gradient of a constant
                model is (sum w (mu - y)) / (1 + alpha mu)); with an offset, the root of
-               sum w (mu_i - y_i) / (1 + alpha mu_i) (brentq; increasing in the constant)
+               sum w (mu_i - y_i) / (1 + alpha mu_i) (increasing in the constant; brentq on
+               asinh of the constant, bracketed from above at max(log y_i - offset_i) over rows
+               with y > 0)
     alpha^   = root in log alpha of the score (d nll / d alpha, weighted sum)
                S(alpha) = sum w [(digamma(y + r) - digamma(r) - log(1 + alpha mu)) / alpha^2
                                  + (mu - y) / (alpha (1 + alpha mu))]
@@ -31,7 +33,9 @@ Since mu / (r + mu) = alpha mu / (1 + alpha mu) and r / (r + mu) = 1 / (1 + alph
 
 The nll needs integer counts; gradient, Hessian, deviance and baseline accept any y >= 0.
 As alpha -> 0 the law tends to the Poisson (tested), and alpha -> inf to a mass at 0.
-The predictive law is scipy.stats.nbinom(n = r, p = 1 / (1 + alpha mu)).
+The predictive law is :class:`NegativeBinomialLaw`: scipy.stats.nbinom(n = r, p = 1 / (1 + alpha mu))
+for the mass function and moments, with tail probabilities and quantiles of its own that
+return for every mean (scipy's nbinom.ppf can run without end, see the class).
 """
 from __future__ import annotations
 
@@ -39,6 +43,8 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, stats
+from scipy import special
+from scipy.optimize import elementwise
 from scipy.special import betaln, digamma, expit
 
 from .._checks import NONNEGATIVE, NONNEGATIVE_INTEGER, POSITIVE
@@ -48,13 +54,27 @@ from ._base import Family, by_row_blocks
 
 #: the dispersion search stops here (see the module docstring)
 _LOG_ALPHA_MIN = float(np.log(1e-6))
+#: integers above this are not all distinct in float64
+_EXACT_INTEGERS = 2.0**53
+_LOG_MAX = float(np.log(np.finfo(float).max))
 
 
 def log_binomial_term(y, size):
-    """log Gamma(y + r) / (Gamma(r) Gamma(y + 1)) without cancellation (0 at y = 0)."""
+    """log Gamma(y + r) / (Gamma(r) Gamma(y + 1)) without cancellation (0 at y = 0).
+
+    -log y - log B(y, r).  scipy's betaln returns NaN when both arguments are huge (y >= 1e80
+    at r = 1e300); there, with a = min(y, r) and b = max(y, r) >= 1e15, Stirling's series in
+    differences gives log B(a, b) = lgamma(a) - a log b - (a + b - 1/2) log1p(a/b) + a + O(1/b).
+    """
     pos = y > 0
     safe = np.where(pos, y, 1.0)
-    return np.where(pos, -np.log(safe) - betaln(safe, size), 0.0)
+    with np.errstate(invalid="ignore"):
+        lb = betaln(safe, size)
+    bad = ~np.isfinite(lb)
+    if np.any(bad):
+        a, b = np.minimum(safe, size)[bad], np.maximum(safe, size)[bad]
+        lb[bad] = special.gammaln(a) - a * np.log(b) - (a + b - 0.5) * np.log1p(a / b) + a
+    return np.where(pos, -np.log(safe) - lb, 0.0)
 
 
 @dataclass(frozen=True)
@@ -105,26 +125,31 @@ class NegativeBinomial(Family):
         return np.maximum(2.0 * dev, 0.0)
 
     def _baseline(self, y, w, offset):
-        total = np.dot(w, y)
-        if not total > 0:
+        pos = (y > 0) & (w > 0)
+        if not np.any(pos):
             raise ValueError("negative_binomial: every row with positive weight has count 0, "
                              "so the best constant raw score is -inf")
-        c0 = np.log(total) - np.log(w.sum())
-        if offset is None:
-            return c0
+        if offset is None:  # log(sum w y / sum w), as log-sum-exps: no overflow
+            return float(special.logsumexp(np.log(y[pos]) + np.log(w[pos])) - special.logsumexp(np.log(w[w > 0])))
 
-        def score(c):
-            return float(np.dot(w, self._grad_hess(y, c + offset)[0]))
+        def score(u):  # in u = asinh(c): brackets as wide as float64 take ~60 halvings, not ~1000
+            return float(np.dot(w, self._grad_hess(y, np.sinh(u) + offset)[0]))
 
-        lo, hi = c0 - np.max(offset) - 1.0, c0 - np.min(offset) + 1.0
+        # at c = max over rows with y > 0 of log y - offset (+1) every such row has mu >= y, so the
+        # score is >= 0; below, the bracket widens by doubling steps (in u) until the score is
+        # negative (it tends to -sum w y / sum w as c -> -inf)
+        hi = float(np.arcsinh(np.max(np.log(y[pos]) - offset[pos]) + 1.0))
+        lo, step = hi - 1.0, 1.0
         while score(lo) > 0:
-            lo -= 2.0 * (hi - lo)
-        while score(hi) < 0:
-            hi += 2.0 * (hi - lo)
-        # maxiter: at extreme dispersion one side of the score is flat near 1e-300 and Brent creeps
-        return optimize.brentq(score, lo, hi, xtol=1e-13, maxiter=2000)
+            if lo <= -710.0:  # asinh(-1.8e308): the root lies below float64's range
+                raise ValueError("negative_binomial: no finite constant raw score sets the summed gradient "
+                                 "to zero with these offsets")
+            lo, step = max(lo - step, -710.0), 2.0 * step
+        return float(np.sinh(optimize.brentq(score, lo, hi, xtol=1e-15, maxiter=2000)))
 
     def _fit_nuisance(self, y, raw, w):
+        used = w > 0  # the weights arrive rescaled; a subnormal one may be 0 now, and 0 * inf is NaN
+        y, raw, w = y[used], raw[used], w[used]
         mu = np.exp(raw)
         sw = w.sum()
 
@@ -159,6 +184,249 @@ class NegativeBinomial(Family):
         return {"dispersion": float(np.exp(optimize.brentq(score, lo, hi, xtol=1e-14)))}
 
     def _distribution(self, raw):
-        alpha = self.dispersion
+        return NegativeBinomialLaw(raw, self.dispersion)
+
+
+def _log_beta(a, b):
+    """log B(a, b) for a > 0 and an array b >= 1.
+
+    lgamma(a) - log poch(b, a) (poch(b, a) = Gamma(b + a) / Gamma(b)) where that is finite:
+    scipy's betaln loses ~1e-10 absolute to cancellation at a = 1e-3, b = 1e5 (against mpmath);
+    else betaln, and lgamma(a) + lgamma(b) - lgamma(a + b) where betaln is not finite (it
+    returns -inf at a = 1e100, b = 2e78).
+    """
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+        poch = special.poch(b, a)
+        out = np.where(np.isfinite(poch) & (poch > 0), special.gammaln(a) - np.log(poch), special.betaln(a, b))
+        return np.where(np.isfinite(out), out, special.gammaln(a) + special.gammaln(b) - special.gammaln(a + b))
+
+
+def _tails(b, size, t):
+    """(I_p(r, b), 1 - I_p(r, b)) for real b >= 1: P(Y <= b - 1) and P(Y >= b), p = 1 / (1 + e^t),
+    t = log(alpha mu); NaN where none of the forms of :class:`NegativeBinomialLaw` holds."""
+    b, t = np.broadcast_arrays(np.asarray(b, dtype=float), np.asarray(t, dtype=float))
+    r = size
+    with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
+        log_p = -np.logaddexp(0.0, t)
+        log_1mp = -np.logaddexp(0.0, -t)
+        small_p = t > 0.0
+        # the argument below 1/2 given to scipy: I_p(r, b) = 1 - I_(1-p)(b, r)
+        lo_p = np.asarray(special.betainc(r, b, np.exp(log_p)), dtype=float)
+        up_p = np.asarray(special.betaincc(r, b, np.exp(log_p)), dtype=float)
+        up_q = np.asarray(special.betainc(b, r, np.exp(log_1mp)), dtype=float)
+        lo_q = np.asarray(special.betaincc(b, r, np.exp(log_1mp)), dtype=float)
+        lower = np.where(small_p, lo_p, lo_q)
+        upper = np.where(small_p, up_p, up_q)
+        # p below ~1e-300 (subnormal or 0): the leading term of the series in p
+        tiny = (t > 700.0) & ((r + b) * np.exp(-t) < 1e-17)
+        if np.any(tiny):
+            log_lower = r * log_p[tiny] - np.log(r) - _log_beta(r, b[tiny])
+            lower[tiny] = np.exp(log_lower)
+            upper[tiny] = -np.expm1(log_lower)
+        far = (b >= 1e20 * max(1.0, r)) & (~(np.isfinite(lower) & np.isfinite(upper)) | ((t > 700.0) & ~tiny))
+        if np.any(far):
+            x = np.exp(np.log(b[far]) - t[far])  # b s, s = p / (1 - p) = 1 / (alpha mu)
+            lower[far] = special.gammainc(r, x)
+            upper[far] = special.gammaincc(r, x)
+    return lower, upper
+
+
+def _gap(b, size, t, lower_q, upper_q, from_upper):
+    """Increasing in b, >= 0 exactly where P(Y <= b - 1) >= lower_q (= 1 - upper_q), read on the
+    tail that is below 1/2 there so that no probability near 1 is compared."""
+    lower, upper = _tails(b, size, t)
+    return np.where(from_upper, upper_q - upper, lower - lower_q)
+
+
+class NegativeBinomialLaw:
+    r"""The NB2 law per row (scipy.stats.nbinom(n = r, p = 1 / (1 + alpha mu))), with tail
+    probabilities and quantiles that return, accurately, for every legal mean and size.
+
+    Why not scipy's own: scipy.stats.nbinom.ppf (scipy 1.17, measured) runs without end for
+    means from about 1e150, and already at mean 1e18 for size 1e6 at q = 0.5 or for q = 1 - 1e-10;
+    its cdf and sf return NaN for counts from about 1e150.
+
+    Tails.  With r = 1/alpha and p = 1/(1 + alpha mu), P(Y <= k) = I_p(r, k + 1), the regularised
+    incomplete beta function, and P(Y > k) = 1 - I_p(r, k + 1) (the identity behind scipy's nbinom
+    cdf), computed in one of three forms:
+
+    * scipy.special.betainc / betaincc, given the smaller of p and 1 - p (I_p(r, b) =
+      1 - I_(1-p)(b, r)), each formed as exp(-log(1 + e^(+-t))), t = log(alpha mu), so that
+      neither rounds to 1 (scipy's nbinom forms 1 - p and loses digits when alpha mu is small);
+    * where p < e^-700 (subnormal or 0) and (r + b) p < 1e-17, the leading term of the series
+      I_p(r, b) = p^r (1 - p)^b / (r B(r, b)) [1 + O((r + b) p)] (Abramowitz and Stegun,
+      Handbook of Mathematical Functions, eq. 26.5.4, the hypergeometric series of I_x(a, b),
+      recalled from memory), in log space: log I = r log p - log r - log B(r, b);
+    * where scipy returns NaN (measured, scipy 1.17: for b = k + 1 from about 1e150 at r = 4
+      near the median) or p has underflowed, and b >= 1e20 max(1, r), the gamma limit: with
+      X ~ Gamma(r), T ~ Gamma(b) independent, X / (X + T) ~ Beta(r, b), so
+
+          I_p(r, b) = P(X <= T s) = E G_r(T s),   s = p / (1 - p) = 1 / (alpha mu),
+
+      G_r the gamma(r) cdf.  Expanding around T = b (E T = b, Var T = b) the first-order term
+      vanishes and the second is (1 / 2b) x g_r(x) (r - 1 - x) at x = b s, g_r the density: of
+      order max(1, r) / b.  So I_p(r, b) = gammainc(r, b s), complement gammaincc(r, b s), to
+      the accuracy of scipy's gammainc (tested against betainc where both return).
+
+    Where none holds (scipy fails with b not far above r; seen only for r >= 1e20, i.e.
+    dispersion <= 1e-20, far below any fitted one), tails and quantiles raise ValueError naming
+    the rows.
+
+    Quantiles.  ppf(q) is the smallest integer k >= 0 with P(Y <= k) >= q (scipy's convention
+    for discrete laws: -1 at q = 0, inf at q = 1); isf(q) the smallest with P(Y > k) <= q.  The
+    continuous root b* of I_p(r, b) = q is bracketed (b = 1 below, a bracket doubled in log b
+    above) and found by scipy.optimize.elementwise.find_root, first in log b and then in b; then
+    k = ceil(b*) - 1 is checked against its integer neighbours (above 2**53, where float64 has no
+    neighbouring integers, against the neighbouring floats: k is then the smallest float with
+    P(Y <= k) >= q).  A quantile beyond the largest float
+    (mu near overflow) is inf.
+    """
+
+    def __init__(self, raw, dispersion):
+        self.raw = np.asarray(raw, dtype=float)
+        self.dispersion = float(dispersion)
+        self.size = 1.0 / self.dispersion
+        self._t = self.raw + np.log(self.dispersion)  # log(alpha mu)
         with np.errstate(over="ignore"):
-            return stats.nbinom(n=1.0 / alpha, p=expit(-(raw + np.log(alpha))))
+            self.mu = np.exp(self.raw)
+            self.p = np.exp(-np.logaddexp(0.0, self._t))  # 1 / (1 + alpha mu), subnormal rather than 0
+
+    # ------------------------------------------------------------------ mass and moments
+    def logpmf(self, k):
+        """log P(Y = k) = -nll: the family's cancellation-free form (scipy's forms 1 - p, which
+        loses digits when alpha mu is small); -inf off the non-negative integers."""
+        k, raw = np.broadcast_arrays(np.asarray(k, dtype=float), self.raw)
+        ok = (k >= 0) & (np.floor(k) == k)
+        out = np.full(k.shape, -np.inf)
+        with np.errstate(over="ignore", invalid="ignore"):
+            out[ok] = -NegativeBinomial(dispersion=self.dispersion)._nll(k[ok], raw[ok])
+        out[np.isnan(k)] = np.nan
+        return out[()]
+
+    def pmf(self, k):
+        return np.exp(self.logpmf(k))
+
+    def mean(self):
+        return self.mu.copy()
+
+    def var(self):
+        with np.errstate(over="ignore"):
+            return self.mu + self.dispersion * self.mu * self.mu
+
+    def std(self):
+        return np.sqrt(self.var())
+
+    def rvs(self, size=None, random_state=None):
+        """Draws as a Poisson count with gamma-distributed mean (numpy refuses means above ~1e19
+        with a ValueError; its own negative_binomial would return an overflowed integer)."""
+        rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
+        shape = self.mu.shape if size is None else size
+        lam = rng.gamma(self.size, np.broadcast_to(self.mu / self.size, shape))
+        return rng.poisson(lam).astype(float)
+
+    # ------------------------------------------------------------------ tails
+    def _refuse(self, bad, what):
+        rows = np.flatnonzero(bad)
+        raise ValueError(
+            f"negative_binomial: the law's {what} cannot be computed at dispersion {self.dispersion:g} for "
+            f"{rows.size} row(s), e.g. rows {rows[:5].tolist()}: scipy's incomplete beta function fails there "
+            "and its gamma limit needs counts far above 1 / dispersion")
+
+    def _both(self, k):
+        k = np.floor(np.asarray(k, dtype=float))
+        b = np.where(k < 0, 1.0, k + 1.0)
+        lower, upper = _tails(b, self.size, self._t)
+        neg = np.broadcast_to(k < 0, lower.shape)
+        bad = np.isnan(lower) & ~np.isnan(np.broadcast_to(k, lower.shape))
+        if np.any(bad):
+            self._refuse(bad, "tail probabilities")
+        return np.where(neg, 0.0, lower), np.where(neg, 1.0, upper)
+
+    def cdf(self, k):
+        return self._both(k)[0]
+
+    def sf(self, k):
+        return self._both(k)[1]
+
+    def logcdf(self, k):
+        lower, upper = self._both(k)
+        with np.errstate(divide="ignore"):
+            return np.where(lower < 0.5, np.log(lower), np.log1p(-upper))
+
+    def logsf(self, k):
+        lower, upper = self._both(k)
+        with np.errstate(divide="ignore"):
+            return np.where(upper < 0.5, np.log(upper), np.log1p(-lower))
+
+    # ------------------------------------------------------------------ quantiles
+    def ppf(self, q):
+        q = np.asarray(q, dtype=float)
+        return self._quantile(q, np.where(q >= 0.5, 1.0 - q, np.nan), upper_given=False)
+
+    def isf(self, q):
+        q = np.asarray(q, dtype=float)
+        return self._quantile(np.where(q >= 0.5, 1.0 - q, np.nan), q, upper_given=True)
+
+    def median(self):
+        return self.ppf(np.full(self.raw.shape, 0.5))
+
+    def interval(self, confidence):
+        c = np.asarray(confidence, dtype=float)
+        if np.any((c < 0) | (c > 1)):
+            raise ValueError("negative_binomial: confidence must be between 0 and 1 inclusive")
+        return self.ppf((1.0 - c) / 2.0), self.ppf((1.0 + c) / 2.0)
+
+    def _quantile(self, lower_q, upper_q, upper_given):
+        """Smallest integer k >= 0 with P(Y <= k) >= lower_q, i.e. P(Y > k) <= upper_q; one of the
+        two is given exactly, the other is its complement where that is exact (>= 1/2) else NaN."""
+        given = upper_q if upper_given else lower_q
+        given, t, lower_q, upper_q = np.broadcast_arrays(given, self._t, lower_q, upper_q)
+        out = np.full(given.shape, np.nan)
+        low_end, high_end = (1.0, 0.0) if upper_given else (0.0, 1.0)
+        out[given == low_end] = -1.0
+        out[given == high_end] = np.inf
+        todo = (given > 0) & (given < 1)
+        if not np.any(todo):
+            return out[()]
+        t, lq, uq = t[todo], lower_q[todo], upper_q[todo]
+        from_upper = uq < 0.5  # also where lq is NaN
+        r = self.size
+        args = (r, t, lq, uq, from_upper)
+        k = np.zeros(t.shape)
+        up = _gap(1.0, *args) < 0  # k = 0 unless P(Y = 0) < q
+        # upper end: the gamma-limit quantile b s = G_r^-1(q) times 2, plus 10, doubled in log b until past
+        with np.errstate(divide="ignore", over="ignore"):
+            guess = np.where(from_upper, special.gammainccinv(r, uq), special.gammaincinv(r, lq))
+            log_hi = np.logaddexp(np.log(2.0 * guess) + t, np.log(10.0))
+        log_hi = np.minimum(np.maximum(log_hi, np.log(2.0)), _LOG_MAX)
+        short = up & (_gap(np.exp(log_hi), *args) < 0)
+        while np.any(short & (log_hi < _LOG_MAX)):
+            log_hi = np.where(short, np.minimum(2.0 * log_hi + 1.0, _LOG_MAX), log_hi)
+            short = up & (_gap(np.exp(log_hi), *args) < 0)
+        k[short] = np.inf  # beyond the largest float
+        go = up & ~short
+        if np.any(go):
+            a = tuple(v[go] if np.ndim(v) else v for v in args)
+            # find_root passes its own (shrinking) slices of the arrays in args
+            res = elementwise.find_root(lambda x, *z: _gap(np.exp(x), r, *z), (np.zeros(int(go.sum())), log_hi[go]),
+                                        args=a[1:], tolerances={"xatol": 1e-3, "xrtol": 0.0})
+            lo_b, hi_b = np.exp(res.bracket[0]), np.exp(res.bracket[1])
+            res = elementwise.find_root(lambda x, *z: _gap(x, r, *z), (lo_b, np.maximum(hi_b, lo_b)),
+                                        args=a[1:], tolerances={"xatol": 0.25, "xrtol": 4.0 * np.finfo(float).eps})
+            kk = np.maximum(np.ceil(res.x) - 1.0, 0.0)
+            for _ in range(8):  # P(Y <= k) >= q > P(Y <= k'), k' the integer (float above 2**53) below k
+                exact = kk < _EXACT_INTEGERS
+                step_up = np.where(exact, kk + 1.0, np.nextafter(kk, np.inf))
+                step_down = np.where(kk <= _EXACT_INTEGERS, kk - 1.0, np.nextafter(kk, -np.inf))
+                low = _gap(kk + 1.0, *a) < 0
+                high = ~low & (kk >= 1.0) & (_gap(step_down + 1.0, *a) >= 0)
+                if not (np.any(low) or np.any(high)):
+                    break
+                kk = np.where(low, step_up, np.where(high, step_down, kk))
+            k[go] = kk
+        if np.any(np.isnan(k)):
+            bad = np.zeros(given.shape, dtype=bool)
+            bad[todo] = np.isnan(k)
+            self._refuse(bad, "quantiles")
+        out[todo] = k
+        return out[()]

@@ -46,7 +46,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, stats
-from scipy.special import gammaln
+from scipy.special import expit, gammaln
 
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
@@ -58,7 +58,41 @@ DF_RANGE = (0.05, 1e6)
 
 
 def _log_norm(nu):
+    """lgamma(nu/2) - lgamma((nu+1)/2) + log(nu pi)/2, the nll's constant.
+
+    For nu >= 1e3 the lgamma difference cancels (1e-8 relative lost at nu = 1e8, all of it
+    by 1e12, against mpmath at 80 digits); there the expansion
+    log Gamma(x + 1/2) - log Gamma(x) = log(x)/2 - 1/(8x) + 1/(192 x^3) + O(x^-5) (recalled from
+    memory; checked against mpmath) with x = nu/2 gives log(2 pi)/2 + 1/(4 nu) - 1/(24 nu^3).
+    """
+    if nu >= 1e3:
+        inv = 1.0 / nu
+        return 0.5 * np.log(2.0 * np.pi) + (0.25 * inv - inv * inv * inv / 24.0)
     return gammaln(0.5 * nu) - gammaln(0.5 * (nu + 1.0)) + 0.5 * np.log(nu * np.pi)
+
+
+def _log_abs_diff(y, raw):
+    """log|y - raw| without overflow (halved first where the difference exceeds float64)."""
+    y, raw = np.broadcast_arrays(np.asarray(y, dtype=float), np.asarray(raw, dtype=float))
+    with np.errstate(over="ignore", divide="ignore"):
+        r = np.abs(y - raw)
+        out = np.log(r)
+        big = np.isinf(r)
+        if np.any(big):
+            out[big] = np.log(np.abs(0.5 * y[big] - 0.5 * raw[big])) + np.log(2.0)
+    return out
+
+
+def _log1p_u2(y, raw, nu, s):
+    """log1p(u^2 / nu), u = (y - raw) / s, finite wherever u is (in log space where u^2 overflows)."""
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        u = (y - raw) / s
+        out = np.asarray(np.log1p(u * u / nu), dtype=float)
+        far = ~np.isfinite(out)
+        if np.any(far):
+            x = 2.0 * (_log_abs_diff(y, raw)[far] - np.log(s)) - np.log(nu)  # log(u^2 / nu)
+            out[far] = np.logaddexp(0.0, x)
+    return out
 
 
 @dataclass(frozen=True)
@@ -78,71 +112,148 @@ class StudentT(Family):
 
     def __post_init__(self):
         super().__post_init__()
-        if not isinstance(self.estimate_df, (bool, np.bool_)):
-            raise ValueError(f"student_t: parameter estimate_df must be True or False, got {self.estimate_df!r}")
+        v = self.estimate_df
+        # 0 and 1 as numbers are taken as False and True (a switch read back from JSON or a table)
+        if not (isinstance(v, (bool, np.bool_)) or (isinstance(v, (int, float, np.integer, np.floating))
+                                                     and v in (0, 1))):
+            raise ValueError(f"student_t: parameter estimate_df must be True or False, got {v!r}")
         object.__setattr__(self, "estimate_df", bool(self.estimate_df))
 
     def _nll(self, y, raw):
         nu, s = self.df, self.scale
-        u = (y - raw) / s
-        return 0.5 * (nu + 1.0) * np.log1p(u * u / nu) + (np.log(s) + _log_norm(nu))
+        with np.errstate(over="ignore"):  # (nu+1)/2 log1p(.) beyond float64: +inf, as it should
+            return 0.5 * (nu + 1.0) * _log1p_u2(y, raw, nu, s) + (np.log(s) + _log_norm(nu))
 
     def _grad_hess(self, y, raw):
         nu, s = self.df, self.scale
         r = np.subtract(raw, y)
-        h = np.multiply(r, r)
-        h += nu * s * s
-        np.divide(nu + 1.0, h, out=h)
-        r *= h
-        return r, h
+        nu_s2 = nu * s * s
+        if not (1e-290 < nu_s2 < 1e290 and (nu + 1.0) / nu_s2 < 1e290):  # so that h below is finite
+            return self._grad_hess_scaled(r)
+        with np.errstate(over="ignore", invalid="ignore"):
+            h = np.multiply(r, r)
+            h += nu_s2
+            np.divide(nu + 1.0, h, out=h)
+            g = np.multiply(r, h)
+        # with nu s^2 in range, only rows where r^2 overflowed (h = 0, g = 0 * inf) need care
+        bad = h == 0
+        if np.any(bad):
+            g[bad], h[bad] = self._grad_hess_scaled(r[bad])
+        return g, h
+
+    def _grad_hess_scaled(self, r):
+        """Gradient and Hessian surrogate with no overflow or underflow that the true values do
+        not have.  With u = r / s (r = raw - y):
+
+            |u| >= 1:  g = (nu+1) / (r + nu s / u),  h = g / r
+                       (for nu >= 1 as ((nu+1)/nu) / (r / nu + s / u), so nu s cannot overflow)
+            |u| <  1:  g = ((nu+1) / (nu + u^2)) (u / s),  h = ((nu+1) / (nu + u^2)) / s / s
+
+        the same (nu+1) r / (nu s^2 + r^2) and (nu+1) / (nu s^2 + r^2), since s / u = s^2 / r.
+        """
+        nu, s = self.df, self.scale
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+            u = r / s
+            far = np.abs(u) >= 1.0
+            s_u = np.where(far, s / np.where(far, u, 1.0), 0.0)
+            if nu >= 1.0:
+                g_far = ((nu + 1.0) / nu) / (r / nu + s_u)
+            else:
+                g_far = (nu + 1.0) / (r + nu * s_u)
+            h_far = g_far / np.where(far, r, 1.0)
+            ratio = (nu + 1.0) / (nu + u * u)
+            g_near = np.where(u == 0, 0.0, ratio * (u / s))
+            h_near = ratio / s / s
+            return np.where(far, g_far, g_near), np.where(far, h_far, h_near)
 
     def _deviance(self, y, raw):
         nu, s = self.df, self.scale
-        u = (y - raw) / s
-        return (nu + 1.0) * s * s * np.log1p(u * u / nu)
+        L = _log1p_u2(y, raw, nu, s)
+        with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
+            out = np.asarray((nu + 1.0) * s * s * L, dtype=float)
+            # where s^2 or the product left float64's normal range, or log1p lost u^2/nu to underflow:
+            # exp(log(nu+1) + 2 log s + log L), or ((nu+1)/nu) r^2 log1p(x)/x for small x = u^2/nu
+            redo = ~np.isfinite(out) | ~(out > 1e-290) | (not 1e-290 < s * s < 1e290)
+            if np.any(redo):
+                r = np.abs(np.broadcast_to(y - raw, out.shape)[redo])
+                Lr = L[redo]
+                x = (r / s) ** 2 / nu
+                small = ~(Lr >= 1e-3)
+                ratio = np.where(x > 0, Lr / np.where(x > 0, x, 1.0), 1.0)
+                near = np.where(r == 0, 0.0, ((nu + 1.0) / nu) * (r * r) * ratio)
+                logd = np.log(nu + 1.0) + 2.0 * np.log(s) + np.log(Lr)
+                out[redo] = np.where(small, near, np.exp(logd))
+        return out
 
     def _baseline(self, y, w, offset):
-        t = y if offset is None else y - offset
-        nu, s = self.df, self.scale
+        # in halves: t = (y - offset) / 2 cannot overflow, and the EM weights only see (t - c) / s
+        t = 0.5 * y if offset is None else 0.5 * y - 0.5 * offset
+        nu, s = self.df, 0.5 * self.scale
         c = weighted_quantile(t, w, 0.5)
-        size = max(1.0, float(np.max(np.abs(t))))
+        size = max(0.5, float(np.max(np.abs(t))))
+        used = w > 0
+        t, lw = t[used], np.log(w[used])
         for _ in range(10000):
-            h = w * (nu + 1.0) / (nu * s * s + (t - c) ** 2)
-            new = float(np.dot(h, t) / h.sum())
+            # EM weights w (nu+1) / (nu s^2 + (t-c)^2), in logs and divided by their largest:
+            # log w - log(nu + d^2), d = (t - c) / s
+            log_d2 = 2.0 * (_log_abs_diff(t, c) - np.log(s))
+            lh = lw - np.logaddexp(np.log(nu), log_d2)
+            h = np.exp(lh - lh.max())
+            new = float(np.dot(h / h.sum(), t))  # a convex combination of values below 9e307
             if abs(new - c) <= 1e-15 * size:
-                return new
+                return 2.0 * new
             c = new
-        return c
+        return 2.0 * c
 
-    def _fit_scale(self, nu, r, w):
+    def _fit_scale(self, nu, log_r, w):
+        """s^ from log|r| (-inf for zero residuals): the root in log s of
+
+            mean_w (nu+1) u^2 / (nu + u^2) - 1 = mean_w (nu+1) expit(log(u^2 / nu)) - 1,
+            log(u^2 / nu) = 2 (log|r| - log s) - log nu,
+
+        a form that neither overflows nor divides inf by inf; it falls monotonically in log s
+        from (nu+1) times the weight share of nonzero residuals, minus 1, to -1.
+        """
         sw = w.sum()
-        if not np.dot(w, r != 0) > sw * nu / (nu + 1.0):
+        nonzero = np.isfinite(log_r)
+        if not np.dot(w, nonzero) > sw * nu / (nu + 1.0):
             raise ValueError(
                 "student_t: too many residuals are exactly zero, so the likelihood rises without bound "
                 "as the scale shrinks (no maximum-likelihood scale)"
             )
-        r2 = r * r
+        keep = nonzero & (w > 0)
+        lr, wn = log_r[keep], w[keep] / sw
+        log_nu = np.log(nu)
 
         def excess(log_s):
-            u2 = r2 / np.exp(2.0 * log_s)
-            return float(np.dot(w, (nu + 1.0) * u2 / (nu + u2)) / sw) - 1.0
+            return float(np.dot(wn, expit(2.0 * (lr - log_s) - log_nu))) * (nu + 1.0) - 1.0
 
-        amax = float(np.sqrt(r2.max()))
-        lo, hi = np.log(amax) - 10.0, np.log(amax) + 1.0
-        while excess(lo) < 0:
-            lo -= 10.0
-        return float(np.exp(optimize.brentq(excess, lo, hi, xtol=1e-14)))
+        # at log s = max log|r| + log(nu+1)/2 + 1 each term is below (nu+1) e^-2 / (nu+1): negative
+        hi = float(lr.max()) + 0.5 * np.log1p(nu) + 1.0
+        lo, step = min(float(lr.min()) - 0.5 * log_nu - 1.0, hi - 1.0), 1.0
+        while excess(lo) <= 0:
+            lo, step = lo - step, 2.0 * step
+            if step > 1e5:
+                raise ValueError("student_t: no maximum-likelihood scale within float64's range "
+                                 "(too few residuals other than zero)")
+        log_s = optimize.brentq(excess, lo, hi, xtol=1e-14)
+        with np.errstate(over="ignore", under="ignore"):
+            scale = float(np.exp(log_s))
+        if not 0.0 < scale < np.inf:
+            raise ValueError(f"student_t: the maximum-likelihood scale e^{log_s:.6g} is outside float64's range")
+        return scale
 
     def _fit_nuisance(self, y, raw, w):
-        r = y - raw
+        log_r = _log_abs_diff(y, raw)
         if not self.estimate_df:
-            return {"scale": self._fit_scale(self.df, r, w)}
+            return {"scale": self._fit_scale(self.df, log_r, w)}
         sw = w.sum()
+        used = w > 0
 
         def profile(log_nu):
             nu = float(np.exp(log_nu))
-            s = self._fit_scale(nu, r, w)
-            return float(np.dot(w, StudentT(df=nu, scale=s)._nll(y, raw)) / sw)
+            s = self._fit_scale(nu, log_r, w)
+            return float(np.dot(w[used], StudentT(df=nu, scale=s)._nll(y[used], raw[used])) / sw)
 
         lo, hi = np.log(DF_RANGE[0]), np.log(DF_RANGE[1])
         res = optimize.minimize_scalar(profile, bounds=(lo, hi), method="bounded", options={"xatol": 1e-9})
@@ -161,7 +272,7 @@ class StudentT(Family):
             raise ValueError("student_t: the likelihood keeps rising as the degrees of freedom shrink: "
                              "no maximum-likelihood df; fix df")
         nu = float(np.exp(res.x))
-        return {"df": nu, "scale": self._fit_scale(nu, r, w)}
+        return {"df": nu, "scale": self._fit_scale(nu, log_r, w)}
 
     def _distribution(self, raw):
         return stats.t(df=self.df, loc=raw, scale=self.scale)
