@@ -170,3 +170,26 @@ def test_negative_binomial_nll_where_scipy_betaln_fails(strict_warnings):
     ref = mpmath.loggamma(y + r) - mpmath.loggamma(r) - mpmath.loggamma(y + 1)
     from lossfam.families.negative_binomial import log_binomial_term
     assert log_binomial_term(np.array([y]), 1.0 / alpha)[0] == pytest.approx(float(ref), rel=1e-12)
+
+
+@pytest.mark.parametrize("power", [1.2, 1.5, 1.75])
+def test_tweedie_zero_targets_stay_finite_where_the_amount_term_overflows(power):
+    # y = 0 with a raw score so low that e^((1-p) raw) overflows: the amount term y e^((1-p) raw)
+    # is exactly 0, so only the zero-mass part lam = e^((2-p) raw) / (phi (2-p)) remains
+    # (P(Y = 0) = exp(-lam) for the compound Poisson-gamma law; Dunn & Smyth 2005, Statistics and
+    # Computing 15, section 2).
+    import warnings
+
+    fam = lossfam.family("tweedie", power=power, dispersion=0.7)
+    raw = np.array([-710.0 / (power - 1.0) - 5.0])
+    y = np.zeros(1)
+    lam = np.exp((2.0 - power) * raw) / (0.7 * (2.0 - power))
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        g, h = fam.grad_hess(y, raw)
+        dev = fam.deviance(y, raw)
+        nll = fam.nll(y, raw)
+    np.testing.assert_allclose(nll, lam, rtol=1e-12)
+    np.testing.assert_allclose(g, (2.0 - power) * lam, rtol=1e-12)  # d lam / d raw
+    np.testing.assert_allclose(h, (2.0 - power) ** 2 * lam, rtol=1e-12)
+    np.testing.assert_allclose(dev, 2.0 * 0.7 * lam, rtol=1e-12)  # unit deviance = 2 phi (nll - saturated nll)

@@ -399,7 +399,9 @@ class Tweedie(Family):
         p, phi = self.power, self.dispersion
         np.multiply(raw, 1.0 - p, out=t)
         np.exp(t, out=t)
-        t *= y  # y e^((1-p) raw)
+        with np.errstate(invalid="ignore"):
+            t *= y  # y e^((1-p) raw)
+        np.fmax(t, 0.0, out=t)  # y = 0 where e^((1-p) raw) overflows: 0 * inf is NaN, the term is 0
         np.multiply(raw, 2.0 - p, out=h)
         np.exp(h, out=h)  # e^((2-p) raw)
         np.subtract(h, t, out=g)
@@ -415,7 +417,9 @@ class Tweedie(Family):
         mu1 = np.exp((1.0 - p) * raw)
         mu2 = np.exp((2.0 - p) * raw)
         sat = np.power(y, 2.0 - p) / ((1.0 - p) * (2.0 - p))
-        return np.maximum(2.0 * (sat - y * mu1 / (1.0 - p) + mu2 / (2.0 - p)), 0.0)
+        with np.errstate(invalid="ignore"):
+            cross = np.fmax(y * mu1, 0.0)  # y = 0 where mu1 overflows: the term is 0, not 0 * inf = NaN
+        return np.maximum(2.0 * (sat - cross / (1.0 - p) + mu2 / (2.0 - p)), 0.0)
 
     def _baseline(self, y, w, offset):
         # log(sum w y e^((1-p) o)) - log(sum w e^((2-p) o)) as log-sum-exps: no overflow or underflow
