@@ -100,6 +100,8 @@ _MERGE_TERMS = 1 << 13
 #: exponents are raised to this floor before exp: such terms are below 1e-300 of a sum that is at
 #: least 1, and numpy's exp is several times slower on arguments whose result underflows
 _FLOOR = -700.0
+#: longest table of the series constants c_j built for the dispersion score (beyond: computed per term)
+_TABLE_MAX = 1 << 22
 #: trapezoid nodes of the integral form, in units of sigma_j around the maximiser
 _NODES = np.arange(-14.0, 24.0 + 1e-9, 0.25)
 
@@ -325,15 +327,28 @@ def _series_mean_count(y, power, dispersion):
     out = np.empty_like(y)
     narrow = np.flatnonzero(~wide)
     half = np.ceil(6.0 * sd[narrow] + 4.0)
+    table = np.empty(0)
     while narrow.size:
         h = half.max()
-        lo = np.maximum(np.rint(jstar[narrow]) - h, 1.0)
-        j = lo[:, None] + np.arange(2.0 * h + 1.0)
-        logw = j * z[narrow, None] - special.gammaln(j + 1.0) - special.gammaln(a * j)
-        top = logw.max(axis=1)
-        terms = np.exp(logw - top[:, None])
-        out[narrow] = (terms * j).sum(axis=1) / terms.sum(axis=1)
-        ok = ((lo == 1.0) | (logw[:, 0] < top - _DROP)) & (logw[:, -1] < top - _DROP)
+        steps = np.arange(2.0 * h + 1.0)
+        need = int(np.maximum(np.rint(jstar[narrow]) - h, 1.0).max() + 2.0 * h) + 1  # the largest j of any window
+        if table.size < need <= _TABLE_MAX:  # c_j = -lgamma(j+1) - lgamma(a j), the same values as computed per row
+            jj = np.arange(1.0, need + 1.0)
+            table = -special.gammaln(jj + 1.0) - special.gammaln(a * jj)
+        ok = np.empty(narrow.size, dtype=bool)
+        rows = max(1, _BLOCK // steps.size)
+        for s in range(0, narrow.size, rows):  # blocks of rows: memory bounded by _BLOCK terms
+            idx = narrow[s:s + rows]
+            lo = np.maximum(np.rint(jstar[idx]) - h, 1.0)
+            j = lo[:, None] + steps
+            if need <= table.size:
+                logw = j * z[idx, None] + table[j.astype(np.int64) - 1]
+            else:
+                logw = j * z[idx, None] - special.gammaln(j + 1.0) - special.gammaln(a * j)
+            top = logw.max(axis=1)
+            terms = np.exp(logw - top[:, None])
+            out[idx] = (terms * j).sum(axis=1) / terms.sum(axis=1)
+            ok[s:s + rows] = ((lo == 1.0) | (logw[:, 0] < top - _DROP)) & (logw[:, -1] < top - _DROP)
         narrow, half = narrow[~ok], 2.0 * half[~ok]
     if np.any(wide):
         zw = z[wide]
