@@ -134,6 +134,16 @@ class LinearFit:
     nuisance_fitted: bool = True  # huber: False when the scale had no maximum-likelihood value
 
 
+
+def _scaled_gradient(grad, inv_c):
+    """The gradient in equilibrated units and its largest entry (the unit-free stopping test);
+    0 when there is no free coefficient.  A non-finite gradient means the raw scores overflowed."""
+    sgrad = grad * inv_c
+    gnorm = float(np.max(np.abs(sgrad))) if sgrad.size else 0.0
+    if not np.isfinite(gnorm):
+        raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+    return sgrad, gnorm
+
 def weighted_gram(X, hv, buf=None):
     """(X^T diag(hv) X, X^T hv) in one pass over X (dense C-contiguous float64, or scipy.sparse).
 
@@ -372,10 +382,7 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
     gnorm = np.inf
     it = 0
     for it in range(max_iter + 1):
-        sgrad = grad * inv_c
-        gnorm = float(np.max(np.abs(sgrad))) if nfree else 0.0
-        if not np.isfinite(gnorm):
-            raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+        sgrad, gnorm = _scaled_gradient(grad, inv_c)
         if gnorm <= tol:
             converged = True
             if solve is not None:
@@ -690,10 +697,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     gnorm = np.inf
     it = 0
     for it in range(max_iter + 1):
-        sgrad = grad * inv_c
-        gnorm = float(np.max(np.abs(sgrad)))
-        if not np.isfinite(gnorm):
-            raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+        sgrad, gnorm = _scaled_gradient(grad, inv_c)
         if gnorm <= tol:
             converged = True
             break
@@ -916,10 +920,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     gnorm = np.inf
     it = 0
     for it in range(max_iter + 1):
-        sgrad = grad * inv_c
-        gnorm = float(np.max(np.abs(sgrad))) if nfree else 0.0
-        if not np.isfinite(gnorm):
-            raise FloatingPointError("the gradient is not finite: the raw scores overflowed")
+        sgrad, gnorm = _scaled_gradient(grad, inv_c)
         if gnorm <= tol:
             converged = True
             break
