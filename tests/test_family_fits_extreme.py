@@ -177,7 +177,8 @@ def test_tweedie_zero_targets_stay_finite_where_the_amount_term_overflows(power)
     # y = 0 with a raw score so low that e^((1-p) raw) overflows: the amount term y e^((1-p) raw)
     # is exactly 0, so only the zero-mass part lam = e^((2-p) raw) / (phi (2-p)) remains
     # (P(Y = 0) = exp(-lam) for the compound Poisson-gamma law; Dunn & Smyth 2005, Statistics and
-    # Computing 15, section 2).
+    # Computing 15, "Series evaluation of Tweedie exponential dispersion model densities"; section
+    # number recalled from memory).
     import warnings
 
     fam = lossfam.family("tweedie", power=power, dispersion=0.7)
