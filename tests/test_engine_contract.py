@@ -355,7 +355,12 @@ def test_both_engines_share_gradients_baseline_prefit_and_guard(name):
         assert resolve_guard(fam, step_limit) == resolve_guard(lossfam.family(name), step_limit)
     m_l, _ = _train("lightgbm", fam, X, yy, weight=w, rounds=1)
     m_x, _ = _train("xgboost", fam, X, yy, weight=w, rounds=1)
-    assert m_x.baseline == pytest.approx(m_l.baseline, rel=1e-7, abs=1e-7)  # XGBoost: float32
+    # XGBoost: float32.  Median / quantile families start at each engine's own sample quantile
+    # (facts.engine_start); with these weights LightGBM's is not reproduced and falls back to the
+    # midpoint of the minimisers, and XGBoost's (inverted weighted cdf) equals it unless a
+    # cumulative weight hits tau W exactly (never with these weights).  Unweighted at tau != 1/2
+    # the two engines' definitions differ (test_engine_starts_are_reproduced_bit_for_bit).
+    assert m_x.baseline == pytest.approx(m_l.baseline, rel=1e-7, abs=1e-7)
     for k, v in m_l.family.params.items():  # the family as trained (pre-fitted where declared)
         assert m_x.family.params[k] == pytest.approx(v, rel=1e-5), k
     assert m_l.info["step_limit"] == m_x.info["step_limit"]
