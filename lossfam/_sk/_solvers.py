@@ -605,7 +605,7 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
 
 
 def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-                 cscale=None, buf=None, warm=True, state=None) -> LinearFit:
+                 cscale=None, buf=None, warm=True, state=None, nested=False) -> LinearFit:
     r"""Damped Newton iteration for F with dense X and few columns, one pass over X per step.
 
     The iteration of ``newton`` with the gradient-norm line search (the
@@ -618,10 +618,15 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     products), so on large data (n >= SUBSAMPLE_MIN_ROWS) it is avoided on
     all rows:
 
-    * start: Newton's method on one row in SUBSAMPLE_FRACTION (weights
+    * start: the same iteration on one row in SUBSAMPLE_FRACTION (weights
       rescaled to the same total), to SUBSAMPLE_START_TOL; its solution is
       the starting point and its last factorisation (with its secant pairs)
-      the matrix of the first steps on all rows;
+      the matrix of the first steps on all rows.  That subsample fit
+      (``nested``) starts in turn from one of its own rows in
+      SUBSAMPLE_FRACTION when it has at least SUBSAMPLE_MIN_ROWS /
+      SUBSAMPLE_FRACTION rows: it forms its Newton matrix once, at that
+      start, and continues with chord steps, so the costly Newton steps far
+      from the optimum are taken on 1/SUBSAMPLE_FRACTION^2 of the rows;
     * chord steps with that factorisation, corrected by BFGS updates from
       the secant pairs (step, change of the exact gradient) of the steps on
       all rows (``_secant_solve``), while each shrinks ||C^-1 dF||^2 by
@@ -644,7 +649,8 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     nfree = p + int(fit_intercept)
     large = n >= SUBSAMPLE_MIN_ROWS
     start_solve, start_iter = None, 0
-    if large and warm and not np.any(coef):
+    min_rows = SUBSAMPLE_MIN_ROWS // SUBSAMPLE_FRACTION if nested else SUBSAMPLE_MIN_ROWS
+    if warm and n >= min_rows and not np.any(coef):
         # a starting point from one row in SUBSAMPLE_FRACTION (Newton's method on those rows, to
         # SUBSAMPLE_START_TOL); its last factorisation serves the first chord steps on all rows
         rows = slice(0, None, SUBSAMPLE_FRACTION)
@@ -654,7 +660,8 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             try:
                 start = newton_dense(fam, np.ascontiguousarray(X[rows]), y[rows], v[rows] / total,
                                      None if offset is None else offset[rows], alpha, fit_intercept, max_iter,
-                                     max(tol, SUBSAMPLE_START_TOL), coef, intercept, warm=False, state=got)
+                                     max(tol, SUBSAMPLE_START_TOL), coef, intercept, warm=large, state=got,
+                                     nested=True)
             except (FloatingPointError, ValueError, np.linalg.LinAlgError):
                 start = None
             if (start is not None and start.converged and got.get("solve") is not None
@@ -679,10 +686,13 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
         return raw_new, grad, H
 
     use_sub = large and start_solve is None
+    # chord steps (a matrix from all rows only when they stall) on large data and after a start;
+    # Newton steps otherwise.  A nested fit forms its matrix at its start: its subsample's is rougher
+    chord = large or start_solve is not None
     squares = np.zeros(p) if cscale is None else None  # the column scales, from the same pass
     # the first pass: raw = X coef + intercept (+ offset), the gradient, the column scales, and the
-    # Newton matrix unless the subsample's factorisation is at hand
-    first = None if start_solve is not None else ("sub" if use_sub else "full")
+    # Newton matrix unless the subsample's factorisation serves the large data's first steps
+    first = None if (large and start_solve is not None) else ("sub" if use_sub else "full")
     raw, grad, H = sweep(raw, 1.0, coef, 0.0, True, first, coef, squares)
     if cscale is None:
         cscale = np.sqrt(squares)
@@ -721,7 +731,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
         # the matrix formed at the trial point: the subsample's far from the optimum; on small
         # data all rows at every step (Newton's method); on large data near the optimum none
         # (chord steps with the last factorisation; a full matrix only when they stall)
-        want = "sub" if use_sub else (None if large else "full")
+        want = "sub" if use_sub else (None if chord else "full")
         accepted = False
         t = 1.0
         for k in range(30):
@@ -748,7 +758,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
         if use_sub and (poor_sub >= 2 or change <= SUBSAMPLE_WHILE_STEP):
             use_sub = False
         H, H_kind = H_new, want
-        if large and not use_sub and not (t == 1.0 and shrink <= CHORD_SHRINK):
+        if chord and not use_sub and not (t == 1.0 and shrink <= CHORD_SHRINK):
             # the last step stalled (a chord step, the subsample's matrix, or far from the optimum):
             # the matrix from all rows at this point
             _, _, H = sweep(raw, 0.0, None, 0.0, False, "full", coef)
@@ -758,6 +768,11 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             converged = True
             it += 1
             break
+    if converged and H is not None and H_kind == "full":
+        # the matrix formed at the last point: its factorisation refines the solution and is handed on
+        _, last = _newton_step(H, grad, exact=False)
+        if last is not None:
+            solve, pairs = last, []
     if state is not None:
         state["solve"] = _secant_solve(solve, pairs) if solve is not None else None
     if converged and solve is not None:
@@ -805,6 +820,73 @@ def _refine_dense(solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit
         if m1 > CHORD_SHRINK * m_prev:
             break
     return coef, intercept, raw, grad, float(np.sqrt(np.max(grad * grad * inv_c * inv_c, initial=0.0)))
+
+
+
+def _cg_diagonal(X, hv, v, cscale, alpha, fit_intercept, unit):
+    """The diagonal of d2F (Jacobi preconditioner): sum_i v_i h_i x_ij^2 + alpha, and sum v h for the intercept.
+
+    One product X^T (v h) when every stored entry of X is 0 or 1 (``unit``); none while h is the
+    same on every row (then it is h times the squared column scales).
+    """
+    p = X.shape[1]
+    diag = np.empty(p + int(fit_intercept))
+    h0 = hv[0] / v[0] if v[0] > 0 else np.nan
+    if np.all(hv == h0 * v):
+        diag[:p] = h0 * cscale * cscale + alpha
+    else:
+        diag[:p] = weighted_column_squares(X, hv, unit) + alpha
+    if fit_intercept:
+        diag[p] = hv.sum()
+    diag[~(diag > 0) | ~np.isfinite(diag)] = 1.0
+    return diag
+
+
+def _conjugate_gradients(X, XT, hv, alpha, fit_intercept, rhs, diag, mem, inv_c, target, small, precond=None):
+    """Preconditioned conjugate gradients for d2F d = rhs, d2F u = [X 1]^T (hv * ([X 1] u)) + alpha (u_coef, 0).
+
+    Started at d = 0; the preconditioner is the diagonal ``diag`` corrected by the BFGS pairs
+    ``mem`` (``_secant_solve``).  Stops when the residual r = rhs - d2F d has
+    ||C^-1 r|| <= ``target`` or max |C^-1 r| <= ``small`` (C^-1 = diag(``inv_c``)), or when no
+    curvature is left along the search direction.  Returns d and the pairs (step, d2F step) of
+    its conjugate steps.
+    """
+    p = X.shape[1]
+    nfree = rhs.size
+    d = np.zeros(nfree)
+    r = np.array(rhs, dtype=float)
+    if precond is None:
+        precond = _secant_solve(lambda r_: r_ / diag, mem)
+    z = precond(r)
+    u = z.copy()
+    pairs = []
+    rz = float(r @ z)
+    for _ in range(max(10 * nfree, 50)):
+        xd = X @ u[:p]
+        if fit_intercept:
+            xd += u[p]
+        xd *= hv
+        hu = np.empty(nfree)
+        hu[:p] = XT @ xd
+        hu[:p] += alpha * u[:p]
+        if fit_intercept:
+            hu[p] = xd.sum()
+        del xd
+        curv = float(u @ hu)
+        if not (curv > 0.0 and np.isfinite(curv)):
+            break  # no curvature left along u (a singular direction): keep the step so far
+        a = rz / curv
+        d += a * u
+        pairs.append((a * u, a * hu))
+        r -= a * hu
+        sr = r * inv_c
+        if float(np.linalg.norm(sr)) <= target or float(np.max(np.abs(sr))) <= small:
+            break
+        z = precond(r)
+        rz_new = float(r @ z)
+        u = z + (rz_new / rz) * u
+        rz = rz_new
+    return d, pairs
 
 
 def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
@@ -926,50 +1008,10 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
             break
         if it == max_iter:
             break
-        diag = np.empty(nfree)
-        h0 = hv[0] / v[0] if v[0] > 0 else np.nan
-        if np.all(hv == h0 * v):
-            diag[:p] = h0 * cscale * cscale + alpha  # h is the same on every row (e.g. at the start): no pass
-        else:
-            diag[:p] = weighted_column_squares(X, hv, unit) + alpha
-        if fit_intercept:
-            diag[p] = hv.sum()
-        diag[~(diag > 0) | ~np.isfinite(diag)] = 1.0
+        diag = _cg_diagonal(X, hv, v, cscale, alpha, fit_intercept, unit)
         eta = min(0.5, gnorm)
-        target = eta * float(np.linalg.norm(sgrad))
-        d = np.zeros(nfree)
-        r = -grad
-
-        precond = _secant_solve(lambda r_: r_ / diag, mem)
-        z = precond(r)
-        u = z.copy()
-        newmem = []
-        rz = float(r @ z)
-        for _ in range(max(10 * nfree, 50)):
-            xd = X @ u[:p]
-            if fit_intercept:
-                xd += u[p]
-            xd *= hv
-            hu = np.empty(nfree)
-            hu[:p] = XT @ xd
-            hu[:p] += alpha * u[:p]
-            if fit_intercept:
-                hu[p] = xd.sum()
-            del xd
-            curv = float(u @ hu)
-            if not (curv > 0.0 and np.isfinite(curv)):
-                break  # no curvature left along u (a singular direction): keep the step so far
-            a = rz / curv
-            d += a * u
-            newmem.append((a * u, a * hu))
-            r = r - a * hu
-            sr = r * inv_c
-            if float(np.linalg.norm(sr)) <= target or float(np.max(np.abs(sr))) <= 0.1 * tol:
-                break
-            z = precond(r)
-            rz_new = float(r @ z)
-            u = z + (rz_new / rz) * u
-            rz = rz_new
+        d, newmem = _conjugate_gradients(X, XT, hv, alpha, fit_intercept, -grad, diag, mem, inv_c,
+                                         eta * float(np.linalg.norm(sgrad)), 0.1 * tol)
         mem[:] = (mem + newmem)[-CG_MEMORY:]
         if not np.any(d):
             d = -grad / diag  # no curvature along the first direction: a scaled gradient step
