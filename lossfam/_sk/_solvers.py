@@ -54,7 +54,8 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     * sparse X with more coefficients (``newton_cg``): truncated Newton, the
       direction from conjugate gradients on Hessian-vector products (the
       matrix is never formed), preconditioned by its diagonal and BFGS pairs
-      from earlier solves, started from the fit of a row subsample.
+      from earlier solves, started from the fit of a row subsample, and
+      refined at the end by one accurately solved Newton step.
 
 ``huber``
     The Huber nll is convex and once continuously differentiable in raw; its
@@ -115,6 +116,7 @@ CHORD_SHRINK = 0.01  # a chord (or subsampled) step is kept only if it shrinks |
 SUBSAMPLE_SHRINK = 0.25  # ... and subsampled steps must shrink ||C^-1 dF||^2 by this factor (two misses in a row: full Hessians)
 CHORD_MIN_COLUMNS = 200  # ... used for sparse X or more coefficients than this
 SUBSAMPLE_START_TOL = 1e-4  # large data (fast paths): tolerance of the subsample's fit that gives the start
+REFINE_CG_RTOL = 1e-4  # sparse X, many columns: the refinement's conjugate gradients shrink the residual by this factor
 CG_MEMORY = 40  # sparse X with more coefficients than CHORD_MIN_COLUMNS: pairs kept by the quasi-Newton preconditioner
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
@@ -497,7 +499,8 @@ def newton(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, inte
 def _is_unit(X):
     """Every stored entry of the sparse matrix X is 0 or 1 (one-hot and indicator designs): x^2 = x."""
     d = X.data
-    return bool(d.size == 0 or np.all((d == 1.0) | (d == 0.0)))
+    ones = d == 1.0
+    return bool(ones.all() or np.all(ones | (d == 0.0)))
 
 
 def _secant_solve(solve, pairs):
@@ -890,7 +893,7 @@ def _conjugate_gradients(X, XT, hv, alpha, fit_intercept, rhs, diag, mem, inv_c,
 
 
 def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept,
-              cscale=None, mem=None, warm=True) -> LinearFit:
+              cscale=None, mem=None, warm=True, unit=None, refine=True) -> LinearFit:
     r"""Truncated Newton iteration for F with sparse X: Newton directions from preconditioned conjugate gradients.
 
     Used by ``newton`` for sparse X with many columns, where forming the dense
@@ -941,14 +944,15 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     (falling back to F itself).  The gradient is exact at every
     outer step, so the solution and the stopping rule are those of the dense
     path; memory above X is a handful of length-n vectors (and the copy of
-    the subsample's rows).  Unlike the dense path there is no refinement
-    after the gradient test: the coefficients are accurate to about tol
-    divided by the smallest eigenvalue of the equilibrated Newton matrix.
+    the subsample's rows).  At the gradient test one more Newton step,
+    solved to a small relative residual, refines the coefficients
+    (``_refine_cg``), as the last factorisation does on the dense path.
     """
     n, p = X.shape
     X = X.tocsr() if X.format != "csr" else X
     XT = X.T  # CSC view of X^T, no copy
-    unit = _is_unit(X)
+    if unit is None:
+        unit = _is_unit(X)
     coef = np.array(coef, dtype=float)
     intercept = float(intercept)
     nfree = p + int(fit_intercept)
@@ -965,7 +969,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
             try:
                 start = newton_cg(fam, X[rows], y[rows], v[rows] / total, None if offset is None else offset[rows],
                                   alpha, fit_intercept, max_iter, max(tol, SUBSAMPLE_START_TOL), coef, intercept,
-                                  mem=mem, warm=False)
+                                  mem=mem, warm=False, unit=unit, refine=False)
             except (FloatingPointError, ValueError, np.linalg.LinAlgError):
                 start = None
             if start is not None and np.all(np.isfinite(start.coef)) and np.isfinite(start.intercept):
@@ -1000,6 +1004,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     grad, hv = derivatives(raw, coef)
     converged = False
     gnorm = np.inf
+    diag, change = None, np.inf
     it = 0
     for it in range(max_iter + 1):
         sgrad, gnorm = _scaled_gradient(grad, inv_c)
@@ -1008,7 +1013,9 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
             break
         if it == max_iter:
             break
-        diag = _cg_diagonal(X, hv, v, cscale, alpha, fit_intercept, unit)
+        if diag is None or change > SUBSAMPLE_WHILE_STEP:
+            # the Jacobi diagonal at this point; kept (it only preconditions) once steps are small
+            diag = _cg_diagonal(X, hv, v, cscale, alpha, fit_intercept, unit)
         eta = min(0.5, gnorm)
         d, newmem = _conjugate_gradients(X, XT, hv, alpha, fit_intercept, -grad, diag, mem, inv_c,
                                          eta * float(np.linalg.norm(sgrad)), 0.1 * tol)
@@ -1056,7 +1063,46 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
             converged = True
             it += 1
             break
+    if converged and refine and nfree and np.any(grad):
+        if diag is None:
+            diag = _cg_diagonal(X, hv, v, cscale, alpha, fit_intercept, unit)
+        coef, intercept, raw, grad, gnorm = _refine_cg(X, XT, hv, alpha, fit_intercept, coef, intercept, raw,
+                                                       grad, diag, mem, inv_c, derivatives)
     return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)
+
+
+def _refine_cg(X, XT, hv, alpha, fit_intercept, coef, intercept, raw, grad, diag, mem, inv_c, derivatives):
+    """Iterative refinement for ``newton_cg`` at the gradient test: one Newton step solved to REFINE_CG_RTOL.
+
+    The truncated Newton steps stop their conjugate gradients at a residual of
+    the order of the gradient, so at the gradient test the coefficients are
+    accurate to about tol divided by the smallest eigenvalue of the
+    equilibrated Newton matrix (one-hot designs have one small eigenvalue per
+    categorical factor: each factor's columns nearly add up to the
+    intercept).  This step solves d2F d = -dF until ||C^-1 r|| <=
+    REFINE_CG_RTOL ||C^-1 dF||, which shrinks that error by about the same
+    factor (the quadratic term of the step is of the order of the squared
+    error, negligible here).  It is kept only if it lowers ||C^-1 dF||
+    (checked with one more gradient) and moves some raw score beyond rounding.
+    """
+    p = coef.shape[0]
+    sg = grad * inv_c
+    m0 = float(sg @ sg)
+    d, _ = _conjugate_gradients(X, XT, hv, alpha, fit_intercept, -grad, diag, mem, inv_c,
+                                REFINE_CG_RTOL * float(np.sqrt(m0)), 0.0)
+    dc = d[:p]
+    db = d[p] if fit_intercept else 0.0
+    draw = _raw(X, dc, db, None)
+    if not np.all(np.isfinite(draw)) or float(np.max(np.abs(draw), initial=0.0)) <= _ROUNDING * float(
+            np.max(np.abs(raw), initial=0.0)):
+        return coef, intercept, raw, grad, float(np.sqrt(np.max(sg * sg, initial=0.0)))
+    raw_new = raw + draw
+    del draw
+    grad_new, _ = derivatives(raw_new, coef + dc)
+    sg_new = grad_new * inv_c
+    if not float(sg_new @ sg_new) < m0:
+        return coef, intercept, raw, grad, float(np.sqrt(np.max(sg * sg, initial=0.0)))
+    return coef + dc, intercept + db, raw_new, grad_new, float(np.max(np.abs(sg_new)))
 
 
 def _refine(solve, X, coef, intercept, raw, grad, h, inv_c, derivatives, fit_intercept, rounds=3):
