@@ -778,7 +778,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             solve, pairs = last, []
     if state is not None:
         state["solve"] = _secant_solve(solve, pairs) if solve is not None else None
-    if converged and solve is not None:
+    if converged and solve is not None and not nested:  # a start needs no refinement
         coef, intercept, raw, grad, gnorm = _refine_dense(
             solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
     return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)
