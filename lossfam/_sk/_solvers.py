@@ -847,7 +847,7 @@ def _cg_diagonal(X, hv, v, cscale, alpha, fit_intercept, unit):
     return diag
 
 
-def _conjugate_gradients(X, XT, hv, alpha, fit_intercept, rhs, diag, mem, inv_c, target, small, precond=None):
+def _conjugate_gradients(X, XT, hv, alpha, fit_intercept, rhs, diag, mem, inv_c, target, small):
     """Preconditioned conjugate gradients for d2F d = rhs, d2F u = [X 1]^T (hv * ([X 1] u)) + alpha (u_coef, 0).
 
     Started at d = 0; the preconditioner is the diagonal ``diag`` corrected by the BFGS pairs
@@ -860,8 +860,7 @@ def _conjugate_gradients(X, XT, hv, alpha, fit_intercept, rhs, diag, mem, inv_c,
     nfree = rhs.size
     d = np.zeros(nfree)
     r = np.array(rhs, dtype=float)
-    if precond is None:
-        precond = _secant_solve(lambda r_: r_ / diag, mem)
+    precond = _secant_solve(lambda r_: r_ / diag, mem)
     z = precond(r)
     u = z.copy()
     pairs = []
