@@ -476,6 +476,28 @@ def _series_mean_count(y, power, dispersion):
     return _series_sums(z, a, order=1)[1][0]
 
 
+def _log_half_deviance(log_y, raw, p):
+    """log of half the unit deviance at y > 0, log(y^(2-p) B(r)) with r = raw - log y and
+
+        B(r) = expm1((1-p) r) / (p-1) + expm1((2-p) r) / (2-p) >= 0,
+
+    since d / 2 = y^(2-p)/((1-p)(2-p)) - y mu^(1-p)/(1-p) + mu^(2-p)/(2-p) = y^(2-p) B(log(mu/y)).
+    B(0) = 0 and B'(r) = e^((1-p) r) (e^r - 1), so B >= 0 with its minimum at mu = y; written
+    with expm1, neither term is a difference of two numbers of size 1/(p-1), and nothing
+    overflows before the logarithm is taken (the result is -inf at mu = y, +inf where d / 2
+    exceeds float64 only after exp)."""
+    r = raw - log_y
+    with np.errstate(over="ignore", invalid="ignore"):
+        b = np.expm1((1.0 - p) * r)
+        b /= p - 1.0
+        b += np.expm1((2.0 - p) * r) / (2.0 - p)  # inf + inf at most: both terms are >= -1/(p-1) resp. -1/(2-p)
+    np.maximum(b, 0.0, out=b)  # >= 0 in exact arithmetic
+    with np.errstate(divide="ignore"):
+        np.log(b, out=b)
+    b += (2.0 - p) * log_y
+    return b
+
+
 class _TaylorBins:
     """sum_i w_i E_W[j](z_i) at any dispersion from one pass over the rows (Tweedie._fit_nuisance).
 
@@ -541,21 +563,12 @@ class Tweedie(Family):
         else:
             return out
         log_y = np.log(yp)
-        # (D - D_sat) / phi with D_sat = y^(2-p) / ((p-1)(2-p)), r = log(mu / y) (class docstring)
-        r = rp - log_y
-        b = np.expm1((1.0 - p) * r)
-        b /= p - 1.0
-        b += np.expm1((2.0 - p) * r) / (2.0 - p)
-        np.maximum(b, 0.0, out=b)  # >= 0 in exact arithmetic (minimum 0 at r = 0)
-        with np.errstate(divide="ignore"):
-            np.log(b, out=b)
-        log_jstar = _log_jstar(log_y, p, phi)
-        b += log_jstar + np.log(2.0 - p)  # times y^(2-p) / phi = (2-p) j*
-        np.exp(b, out=b)
-        part = b
+        part = _log_half_deviance(log_y, rp, p)  # log(D - D_sat), D_sat = y^(2-p) / ((p-1)(2-p))
+        part -= np.log(phi)
+        np.exp(part, out=part)
         part += log_y
         z, a = _series_z_of_log(log_y, p, phi)
-        part -= _series_sums(z, a, log_jstar=log_jstar)[0]
+        part -= _series_sums(z, a, log_jstar=_log_jstar(log_y, p, phi))[0]
         if yp is y:
             return part
         out[pos] = part
@@ -585,12 +598,15 @@ class Tweedie(Family):
 
     def _deviance(self, y, raw):
         p = self.power
-        mu1 = np.exp((1.0 - p) * raw)
-        mu2 = np.exp((2.0 - p) * raw)
-        sat = np.power(y, 2.0 - p) / ((1.0 - p) * (2.0 - p))
-        with np.errstate(invalid="ignore"):
-            cross = np.fmax(y * mu1, 0.0)  # y = 0 where mu1 overflows: the term is 0, not 0 * inf = NaN
-        return np.maximum(2.0 * (sat - cross / (1.0 - p) + mu2 / (2.0 - p)), 0.0)
+        out = np.multiply(raw, 2.0 - p)
+        np.exp(out, out=out)
+        out *= 2.0 / (2.0 - p)  # 2 mu^(2-p) / (2-p), the deviance at y = 0
+        pos = y > 0
+        if pos.any():
+            half = _log_half_deviance(np.log(y[pos]), raw[pos], p)
+            half += np.log(2.0)
+            out[pos] = np.exp(half)
+        return out
 
     def _baseline(self, y, w, offset):
         # log(sum w y e^((1-p) o)) - log(sum w e^((2-p) o)) as log-sum-exps: no overflow or underflow
@@ -598,6 +614,11 @@ class Tweedie(Family):
         if not np.any(pos):
             raise ValueError("tweedie: every row with positive weight has y = 0, so the best constant raw score is -inf")
         used = w > 0
+        if offset is None:  # log of the weighted mean of y, directly where the sums are normal numbers
+            with np.errstate(over="ignore"):
+                total, scale = float(np.dot(w, y)), float(w.sum())
+            if np.isfinite(total) and total >= np.finfo(float).tiny and scale >= np.finfo(float).tiny:
+                return np.log(total) - np.log(scale)
         o = np.zeros_like(y) if offset is None else offset
         log_total = special.logsumexp((1.0 - self.power) * o[pos] + np.log(y[pos]) + np.log(w[pos]))
         log_scale = special.logsumexp((2.0 - self.power) * o[used] + np.log(w[used]))
