@@ -105,6 +105,8 @@ _TABLE_MAX = 1 << 22
 #: bins per unit of z of the dispersion score's Taylor expansion, and its last order (_TaylorBins)
 _BIN_SCALE = 64.0
 _TAYLOR = 5
+#: rows per block of the dispersion fit's passes
+_FIT_ROWS = 1 << 16
 #: trapezoid nodes of the integral form, in units of sigma_j around the maximiser
 _NODES = np.arange(-14.0, 24.0 + 1e-9, 0.25)
 
@@ -501,32 +503,49 @@ def _log_half_deviance(log_y, raw, p):
 class _TaylorBins:
     """sum_i w_i E_W[j](z_i) at any dispersion from one pass over the rows (Tweedie._fit_nuisance).
 
-    Rows are binned by v = z at phi = 1 into bins of width 1/_BIN_SCALE; each bin keeps
-    its centre and the moments sum w d^k / k!, k = 0 .. _TAYLOR, of the offsets d from it.
+    The rows with y > 0 are binned by v = z at phi = 1 into bins of width 1/_BIN_SCALE; each
+    bin keeps its centre and the moments sum w d^k / k!, k = 0 .. _TAYLOR, of the offsets d
+    from it.  The pass runs over blocks of _FIT_ROWS rows (memory bounded by a few blocks).
     """
 
-    def __init__(self, log_y, w, p):
-        v, self.a = _series_z_of_log(log_y, p, 1.0)
-        k = np.rint(v * _BIN_SCALE)  # a float: v * 64 can exceed the int64 range
-        d = k / -_BIN_SCALE
-        d += v  # the offset from the bin's centre, |d| <= 1 / 128
-        lo, hi = (float(k.min()), float(k.max())) if k.size else (0.0, 0.0)
-        if hi - lo < _TABLE_MAX:
-            k -= lo
-            index = k.astype(np.int64)
-            counts = np.bincount(index)
-            filled = np.flatnonzero(counts)
-            centres = (filled + lo) / _BIN_SCALE
-        else:
+    def __init__(self, y, w, p):
+        self.a = (2.0 - p) / (p - 1.0)
+        pos = y > 0
+        log_ends = np.log([np.min(y, where=pos, initial=np.inf), np.max(y, where=pos, initial=0.0)])
+        # v is increasing in y; one bin of margin on each side covers a last-bit difference of log
+        k_lo, k_hi = np.rint(_series_z_of_log(log_ends, p, 1.0)[0] * _BIN_SCALE) + [-1.0, 1.0]
+        span = int(k_hi - k_lo) + 1 if k_hi - k_lo < _TABLE_MAX else 0
+        if span:
+            moments = np.zeros((_TAYLOR + 1, span))
+            for s in range(0, y.size, _FIT_ROWS):
+                keep = pos[s:s + _FIT_ROWS]
+                k, d = self._offsets(y[s:s + _FIT_ROWS][keep], p)
+                k -= k_lo
+                self._accumulate(moments, k.astype(np.int64), d, w[s:s + _FIT_ROWS][keep], span)
+            filled = np.flatnonzero(moments[0] > 0)
+            self.centres = (filled + k_lo) / _BIN_SCALE
+            self.moments = moments[:, filled]
+        else:  # bins too far apart for one array (targets over hundreds of orders of magnitude)
+            k, d = self._offsets(y[pos], p)
             centres, index = np.unique(k, return_inverse=True)
-            centres = centres / _BIN_SCALE
-            filled = None
-        self.centres = centres
-        self.moments = np.empty((_TAYLOR + 1, centres.size))
+            self.centres = centres / _BIN_SCALE
+            self.moments = np.zeros((_TAYLOR + 1, centres.size))
+            self._accumulate(self.moments, index, d, w[pos], centres.size)
+
+    @staticmethod
+    def _offsets(y, p):
+        """Bin number (a float: v * 64 can exceed the int64 range) and offset d from the centre."""
+        v = _series_z_of_log(np.log(y), p, 1.0)[0]
+        k = np.rint(v * _BIN_SCALE)
+        d = k / -_BIN_SCALE
+        d += v  # |d| <= 1 / 128
+        return k, d
+
+    @staticmethod
+    def _accumulate(moments, index, d, w, n):
         term = w.copy()
         for m in range(_TAYLOR + 1):
-            sums = np.bincount(index, weights=term)
-            self.moments[m] = sums if filled is None else sums[filled]
+            moments[m] += np.bincount(index, weights=term, minlength=n)
             if m < _TAYLOR:
                 term *= d
                 term *= 1.0 / (m + 1.0)
@@ -616,7 +635,7 @@ class Tweedie(Family):
         used = w > 0
         if offset is None:  # log of the weighted mean of y, directly where the sums are normal numbers
             with np.errstate(over="ignore"):
-                total, scale = float(np.dot(w, y)), float(w.sum())
+                total, scale = float((w * y).sum()), float(w.sum())  # not BLAS: its threads stall on a busy machine
             if np.isfinite(total) and total >= np.finfo(float).tiny and scale >= np.finfo(float).tiny:
                 return np.log(total) - np.log(scale)
         o = np.zeros_like(y) if offset is None else offset
@@ -667,26 +686,31 @@ class Tweedie(Family):
             raise ValueError("tweedie: every row with positive weight has y = 0, so the likelihood rises "
                              "without bound as the dispersion grows (no maximum-likelihood dispersion)")
         p = self.power
-        pos = y > 0
         used = w > 0  # the weights arrive rescaled (largest in [1/2, 1)); subnormal ones may be 0 now
-        with np.errstate(over="ignore", invalid="ignore"):
-            dev_part = np.multiply(raw, 1.0 - p)
-            np.exp(dev_part, out=dev_part)
-            dev_part *= y
-            np.fmax(dev_part, 0.0, out=dev_part)  # y = 0 where mu^(1-p) overflows: the term is 0, not NaN
-            dev_part /= p - 1.0
-            kappa = np.multiply(raw, 2.0 - p)
-            np.exp(kappa, out=kappa)
-            kappa /= 2.0 - p
-            dev_part += kappa  # D, the factor of 1/phi
-        bad = ~np.isfinite(dev_part) & used
-        if np.any(bad):
-            raise ValueError(f"tweedie: mu^(2-p) or y mu^(1-p) overflows float64 in {_checks.rows_text(bad, raw)} "
-                             "(raw scores), so the nll is infinite for every dispersion")
-        all_used = bool(used.all())
-        mean_d = float(np.dot(w, dev_part) if all_used else np.dot(w[used], dev_part[used]))
-        keep = pos if all_used else pos & used
-        bins = _TaylorBins(np.log(y[keep]), w[keep], p)
+        mean_d = 0.0
+        for s in range(0, y.size, _FIT_ROWS):
+            sl = slice(s, s + _FIT_ROWS)
+            with np.errstate(over="ignore", invalid="ignore"):
+                dev_part = np.multiply(raw[sl], 1.0 - p)
+                np.exp(dev_part, out=dev_part)
+                dev_part *= y[sl]
+                np.fmax(dev_part, 0.0, out=dev_part)  # y = 0 where mu^(1-p) overflows: the term is 0, not NaN
+                dev_part /= p - 1.0
+                kappa = np.multiply(raw[sl], 2.0 - p)
+                np.exp(kappa, out=kappa)
+                kappa /= 2.0 - p
+                dev_part += kappa  # D, the factor of 1/phi
+            bad = ~np.isfinite(dev_part) & used[sl]
+            if np.any(bad):
+                bad = np.zeros(y.shape, dtype=bool)
+                bad[sl] = ~np.isfinite(dev_part) & used[sl]
+                raise ValueError(f"tweedie: mu^(2-p) or y mu^(1-p) overflows float64 in "
+                                 f"{_checks.rows_text(bad, raw)} (raw scores), so the nll is infinite for every "
+                                 "dispersion")
+            dev_part[~used[sl]] = 0.0  # rows of weight 0 (their D may be inf)
+            dev_part *= w[sl]
+            mean_d += float(dev_part.sum())
+        bins = _TaylorBins(y, w, p)  # weight-0 rows add nothing
         sw = w.sum()
 
         def score(log_phi):
@@ -696,7 +720,7 @@ class Tweedie(Family):
         sub = slice(None, None, max(1, y.size >> 16))
         ys, rs, ws, us = y[sub], raw[sub], w[sub], used[sub]
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            pearson = float(np.dot(ws[us], ((ys - np.exp(rs)) ** 2 * np.exp(-p * rs))[us]) / ws.sum())
+            pearson = float((ws * ((ys - np.exp(rs)) ** 2 * np.exp(-p * rs)))[us].sum() / ws.sum())
         centre = float(np.log(pearson)) if 0 < pearson < np.inf else 0.0
         centre = min(max(centre, -600.0), 600.0)
         lo, hi, step = centre - 0.5, centre + 0.5, 1.0
