@@ -215,10 +215,9 @@ def _known(name, reason):
     pytest.param("poisson", {}, marks=pytest.mark.xfail(strict=False, reason=(
         "scipy.stats.poisson.ppf returns NaN for lower quantiles (q = 0.05, 1e-10) at means from about "
         "1e15, and for every q from about 1e30 (measured, scipy 1.17); it returns promptly"))),
-    pytest.param("tweedie", {}, marks=pytest.mark.xfail(run=False, reason=(
-        "TweedieLaw's cdf sums a Poisson window of width ~ sqrt(lam), lam = mu^(2-p) / (phi (2-p)): at "
-        "mu = 1e30 (p = 1.5) it does not return within 10 s, and from mu ~ 1e100 cdf/sf are NaN "
-        "(measured)"))),
+    ("tweedie", {}),
+    ("tweedie", {"power": 1.9}),
+    ("tweedie", {"power": 1.1, "dispersion": 1e-3}),
 ])
 def test_count_law_tails_and_quantiles_return_without_nan_at_huge_means(name, params):
     code = textwrap.dedent(_PATHS.format(name=name, params=params, timeout=50))

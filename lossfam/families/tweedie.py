@@ -105,6 +105,10 @@ _TABLE_MAX = 1 << 22
 #: bins per unit of z of the dispersion score's Taylor expansion, and its last order (_TaylorBins)
 _BIN_SCALE = 64.0
 _TAYLOR = 5
+#: Poisson means of the law's cdf beyond this are integrated over the count (TweedieLaw._mixture_integral)
+_LAW_LAM = 5.0e4
+#: gamma shapes from which the law's cdf uses Temme's expansion (_gamma_cdf_large) instead of scipy
+_TEMME_SHAPE = 1e12
 #: rows per block of the dispersion fit's passes
 _FIT_ROWS = 1 << 16
 #: trapezoid nodes of the integral form, in units of sigma_j around the maximiser
@@ -170,7 +174,8 @@ def _stirling_error(x):
     out = np.empty_like(x)
     big = x >= 15.0
     xb = x[big]
-    r = 1.0 / (xb * xb)
+    r = 1.0 / xb
+    r *= r
     out[big] = (1.0 / 12.0 - r * (1.0 / 360.0 - r * (1.0 / 1260.0 - r * (1.0 / 1680.0 - r / 1188.0)))) / xb
     xs = x[~big]
     out[~big] = special.gammaln(xs + 1.0) - (special.xlogy(xs, xs) - xs + 0.5 * np.log(2.0 * np.pi * xs))
@@ -190,6 +195,34 @@ def _bd(t):
     tb = t[~small]
     out[~small] = (1.0 + tb) * np.log1p(tb) - tb
     return out
+
+
+def _gamma_cdf_large(shape, excess, upper):
+    """Regularised incomplete gamma P(shape, x) (or Q when ``upper``) for shape >= _TEMME_SHAPE, from
+    the excess x - shape (given exactly: at shapes beyond ~1e30 x itself cannot carry it).
+
+    Temme's uniform asymptotic expansion (NIST DLMF 8.12.3-8.12.9, recalled from memory and
+    checked against scipy.special.gammainc where scipy is accurate, in the tests):
+    Q = erfc(eta sqrt(shape/2)) / 2 + R, P = erfc(-eta sqrt(shape/2)) / 2 - R with
+    u = excess / shape, eta = sign(u) sqrt(2 (u - log1p(u))) and
+    R = exp(-shape eta^2 / 2) / sqrt(2 pi shape) (c0(eta) + O(1/shape)),
+    c0 = 1/u - 1/eta (-1/3 + eta/12 - 2 eta^2/135 near eta = 0).  The O(1/shape) term is below
+    1e-24 of the leading one at shape >= 1e12.
+    """
+    u = np.maximum(excess / shape, -1.0)  # x >= 0: u >= -1 (below only by the rounding of the excess)
+    small = np.abs(u) < 1e-3
+    us = np.where(small, u, 0.0)
+    # u - log1p(u) = sum_(n>=2) (-1)^n u^n / n, its series where u is small
+    half_sq = np.where(small, us * us * (0.5 - us * (1.0 / 3.0 - us * (0.25 - us * (0.2 - us / 6.0)))),
+                       u - np.log1p(np.where(small, 0.0, u)))
+    eta = np.sign(u) * np.sqrt(2.0 * np.maximum(half_sq, 0.0))
+    tiny = np.abs(eta) < 1e-3
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        c0 = np.where(tiny, -1.0 / 3.0 + eta / 12.0 - 2.0 * eta * eta / 135.0, 1.0 / u - 1.0 / eta)
+        r = np.exp(-shape * half_sq) / np.sqrt(2.0 * np.pi * shape) * c0
+        r = np.where(np.isfinite(half_sq), r, 0.0)  # u = -1 or +inf: the exponential factor is 0
+    arg = eta * np.sqrt(0.5 * shape)
+    return special.erfc(arg) / 2.0 + r if upper else special.erfc(-arg) / 2.0 - r
 
 
 def _series_sums(z, a, order=0, log_jstar=None):
@@ -793,12 +826,17 @@ class TweedieLaw:
     # ------------------------------------------------------------------ distribution function
     def _mixture(self, y, upper):
         """sum_n Pois(n; lam) G_n, G_n the gamma(n a, theta) cdf (or sf when ``upper``) at y >= 0."""
-        y, _, lam, theta = self._broadcast(y)
-        flat_y, flat_lam, flat_theta = y.ravel(), lam.ravel(), theta.ravel()
+        y, mu, lam, theta = self._broadcast(y)
+        flat_y, flat_mu, flat_lam, flat_theta = y.ravel(), mu.ravel(), lam.ravel(), theta.ravel()
         out = np.empty(flat_y.size)
-        lo, hi = _poisson_window(flat_lam)
+        big = flat_lam > _LAW_LAM
+        if big.any():
+            idx = np.flatnonzero(big)
+            out[idx] = self._mixture_integral(flat_y[idx], flat_mu[idx], flat_lam[idx], flat_theta[idx], upper)
+        lo, hi = _poisson_window(np.where(big, 1.0, flat_lam))
         width = hi - lo + 1
         order = np.argsort(width, kind="stable")
+        order = order[~big[order]]
         start = 0
         while start < order.size:
             stop = min(order.size, start + 4096)
@@ -815,6 +853,55 @@ class TweedieLaw:
         out = out.reshape(y.shape)
         if not upper:
             out = out + np.exp(-lam)
+        return out
+
+    def _mixture_integral(self, y, mu, lam, theta, upper):
+        """The mixture of _mixture for Poisson means above _LAW_LAM (windows of over 4000 counts).
+
+        As a function of a real count n, the summand Pois(n; lam) G_n(y) is smooth on the scale
+        s = sqrt(lam / max(a, 1)) (the Poisson weight on sqrt(lam), the gamma(n a, theta) cdf on
+        sqrt(n / a), n near lam), so by the Poisson summation formula the sum over integers is
+        the integral over n up to a relative exp(-2 pi^2 s^2), and the integral is taken by the
+        trapezoidal rule with step s / 4 over the window (the same argument as the series' wide
+        rows).  The Poisson weight is written as exp(-lam bd((n - lam)/lam)) / sqrt(2 pi n) /
+        e^(Stirling error of n) (the saddle-point form of Loader, "Fast and accurate computation
+        of binomial probabilities", 2000; recalled from memory, checked against
+        scipy.stats.poisson in the tests), exact to rounding for any lam, where
+        n log lam - lam - lgamma(n+1) loses every digit beyond lam ~ 1e16.  Where s < 4
+        (p within about 16 / lam of 1) no such integral holds and the rows are refused.
+        """
+        a = self._shape
+        ok = lam >= 16.0 * max(a, 1.0)
+        if not ok.all():
+            bad = np.flatnonzero(~ok)
+            raise ValueError(f"tweedie: the law's distribution function cannot be evaluated at power {self.power!r} "
+                             f"for {bad.size} row(s): a Poisson mean of about {lam[bad[0]]:.3g} amounts with "
+                             f"power this close to 1 needs ~sqrt(mean) terms")
+        root = np.sqrt(lam)
+        step = 0.25 / np.sqrt(max(a, 1.0))  # in units of sqrt(lam)
+        # Chernoff: P(N - lam <= t sqrt(lam)) <= exp(-lam bd(t / sqrt(lam))) and the same above;
+        # lam bd(u) >= 40 at t = -9.5 and t = 10 once lam > _LAW_LAM (bd(u) >= u^2/2 (1 - u/3))
+        nodes = np.arange(np.floor(-9.5 / step), np.ceil(10.0 / step) + 1.0) * step
+        out = np.empty(y.size)
+        rows = max(1, _BLOCK // nodes.size)
+        for s in range(0, y.size, rows):
+            sl = slice(s, s + rows)
+            offset = np.multiply.outer(root[sl], nodes)  # n - lam
+            n = lam[sl, None] + offset
+            inside = n >= 1.0
+            n = np.where(inside, n, 1.0)
+            offset = np.where(inside, offset, 0.0)
+            log_pois = (-lam[sl, None] * _bd(offset / lam[sl, None]) - 0.5 * np.log(2.0 * np.pi * n)
+                        - _stirling_error(n))
+            shape = n * a
+            x = y[sl, None] / theta[sl, None]
+            g = special.gammaincc(shape, x) if upper else special.gammainc(shape, x)
+            large = shape >= _TEMME_SHAPE
+            if large.any():
+                # x - n a = (y - mu) / theta - (n - lam) a exactly, since lam a theta = mu
+                excess = (y[sl, None] - mu[sl, None]) / theta[sl, None] - offset * a
+                g = np.where(large, _gamma_cdf_large(np.where(large, shape, 1.0), excess, upper), g)
+            out[sl] = np.sum(np.where(inside, np.exp(log_pois) * g, 0.0), axis=1) * (step * root[sl])
         return out
 
     def cdf(self, y):
@@ -863,13 +950,17 @@ class TweedieLaw:
         """
         p, phi = self.power, self.dispersion
         p0 = np.exp(-mu ** (2.0 - p) / (phi * (2.0 - p)))
-        sd = np.sqrt(phi * mu**p)
+        log_mu = np.log(mu)
         lo = np.full_like(mu, np.log(np.finfo(float).tiny))
-        hi = np.log(mu + 60.0 * sd + 1.0) + 10.0
-        m_pos = mu / (1.0 - p0)  # mean and variance of Y given Y > 0
-        v_pos = np.maximum((phi * mu**p + mu * mu) / (1.0 - p0) - m_pos**2, 1e-300)
+        # log(mu + 60 sd + 1) + 10 in logs (sd = sqrt(phi mu^p) overflows from mu ~ 1e205)
+        hi = np.logaddexp(np.logaddexp(log_mu, np.log(60.0) + 0.5 * (np.log(phi) + p * log_mu)), 0.0) + 10.0
+        with np.errstate(over="ignore", invalid="ignore"):
+            m_pos = mu / (1.0 - p0)  # mean and variance of Y given Y > 0
+            v_pos = np.maximum((phi * mu**p + mu * mu) / (1.0 - p0) - m_pos**2, 1e-300)
         qc = np.clip((q - p0) / (1.0 - p0), 1e-12, 1.0 - 1e-12)
-        x = np.log(np.maximum(special.gammaincinv(m_pos**2 / v_pos, qc) * v_pos / m_pos, 1e-300))
+        with np.errstate(over="ignore", invalid="ignore"):  # a start only: non-finite starts are clipped
+            x = np.log(np.maximum(special.gammaincinv(m_pos / v_pos * m_pos, qc) * (v_pos / m_pos), 1e-300))
+        x = np.where(np.isfinite(x), x, np.log(mu))
         x = np.clip(x, lo, hi)
         active = np.arange(q.size)
         fam = Tweedie(power=p, dispersion=phi)
@@ -893,7 +984,47 @@ class TweedieLaw:
             active = active[~done]
             if active.size == 0:
                 break
-        return np.exp(x)
+        # x = log y resolves y only to ~|x| eps relative, coarse where sd / mu is tiny: two Newton
+        # steps on y itself (slope pdf(y)), each kept only where it shrinks the residual
+        y = np.exp(x)
+        law = TweedieLaw(mu, p, phi)
+        with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+            resid = law.cdf(y) - q
+            for _ in range(2):
+                new = y - resid / np.exp(-fam._nll(y, np.log(mu)))
+                ok = np.isfinite(new) & (new > 0)
+                new = np.where(ok, new, y)
+                new_resid = law.cdf(new) - q
+                better = ok & (np.abs(new_resid) < np.abs(resid))
+                y, resid = np.where(better, new, y), np.where(better, new_resid, resid)
+            # where the law is narrower than float64 resolves (a jump of cdf between neighbouring
+            # floats), bisect on the floats themselves: the smallest float with cdf >= q
+            coarse = np.flatnonzero(np.abs(resid) > 1e-12)
+            if coarse.size:
+                y[coarse] = self._float_bisection(law, q, np.exp(lo), np.exp(hi), coarse)
+        return y
+
+    @staticmethod
+    def _float_bisection(law, q, y_lo, y_hi, rows):
+        """Smallest float y in (y_lo, y_hi] with cdf(y) >= q, by bisection on the ordered bit
+        patterns of positive floats (at most 64 halvings); y_lo has cdf < q (or is 0)."""
+        sub = TweedieLaw(law.mu[rows], law.power, law.dispersion)
+        qs = q[rows]
+        lo_b = np.maximum(y_lo[rows], 0.0).view(np.int64).copy()
+        hi_b = np.minimum(y_hi[rows], np.finfo(float).max).view(np.int64).copy()
+        below = sub.cdf(lo_b.view(np.float64)) >= qs
+        lo_b[below] = 0  # 0.0: the zero mass is below q
+        above = sub.cdf(hi_b.view(np.float64)) < qs
+        hi_b[above] = np.array(np.finfo(float).max).view(np.int64)
+        for _ in range(64):
+            gap = hi_b - lo_b > 1
+            if not gap.any():
+                break
+            mid = lo_b + (hi_b - lo_b) // 2
+            ok = sub.cdf(mid.view(np.float64)) >= qs
+            hi_b = np.where(gap & ok, mid, hi_b)
+            lo_b = np.where(gap & ~ok, mid, lo_b)
+        return hi_b.view(np.float64)
 
     def isf(self, q):
         return self.ppf(1.0 - np.asarray(q, dtype=float))
