@@ -14,15 +14,19 @@ exponential-dispersion form, theta_c = mu^(1-p)/(1-p), kappa = mu^(2-p)/(2-p))
     nll      = e^((2-p) raw) / (phi (2-p))                                       (y = 0)
              = (y e^((1-p) raw) / (p-1) + e^((2-p) raw) / (2-p)) / phi
                + log y - log sum_j W_j                                            (y > 0)
+             = d / (2 phi) + log y - (log sum_j W_j - (1+a) j*)          (the same, as computed)
     gradient = (e^((2-p) raw) - y e^((1-p) raw)) / phi
     Hessian  = ((2-p) e^((2-p) raw) + (p-1) y e^((1-p) raw)) / phi          (exact; > 0)
-    deviance = 2 (y^(2-p)/((1-p)(2-p)) - y mu^(1-p)/(1-p) + mu^(2-p)/(2-p))
+    deviance = d = 2 (y^(2-p)/((1-p)(2-p)) - y mu^(1-p)/(1-p) + mu^(2-p)/(2-p))
+             = 2 y^(2-p) (expm1((1-p) r)/(p-1) + expm1((2-p) r)/(2-p)),  r = log(mu / y)
+               (as computed: _log_half_deviance)
     baseline = log(sum w y e^((1-p) o) / sum w e^((2-p) o))   (root of the summed gradient;
                log of the weighted mean of y without an offset)
     phi^     = root in log phi of the score of the weighted mean nll, sum w (-D / phi +
                [y > 0] E_W[j] / (p-1)) = 0 with D the factor of 1/phi above and E_W[j] the mean
                of j under the series' normalised terms (derivation in Tweedie._fit_nuisance;
-               scipy.optimize.brentq, bracketed around the Pearson estimate)
+               scipy.optimize.brentq, bracketed around the Pearson estimate; the series part
+               from one binned pass over the rows, _TaylorBins)
 
 The gradient and Hessian need no series: only the normalising term does.
 
@@ -37,7 +41,12 @@ A(y, phi) = (1/y) sum_{j>=1} W_j with, writing alpha = -a = (2-p)/(1-p),
 stripped of the exponential-family factor).  log W_j is concave in j (lgamma
 is convex); by Stirling its maximum is near j* = y^(2-p) / (phi (2-p)) and
 its curvature there is about (1+a)/j*, so the terms that matter lie within a
-few sigma_j = sqrt(j*/(1+a)) of j*.  Everything is done in log space:
+few sigma_j = sqrt(j*/(1+a)) of j*.  The saturated part (1+a) j* =
+y^(2-p) / ((p-1)(2-p) phi) of log sum_j W_j is taken out analytically: the
+nll subtracts it from D / phi in the deviance form above, which neither
+overflows nor cancels when phi is tiny or p is next to 1.  Everything is done
+in log space (_series_sums, the one windowed evaluation, which also returns
+the cumulants of j that the dispersion fit needs):
 
 * sigma_j <= 40 (most rows): the sum itself, with the constants
   c_j = -lgamma(j+1) - lgamma(a j) tabulated once per call (they do not depend
@@ -51,24 +60,32 @@ few sigma_j = sqrt(j*/(1+a)) of j*.  Everything is done in log space:
   z, a bound concave in j; the window ends at the first j where it falls below
   e^-``_DROP`` = e^-37 (relative 1e-16), and likewise on the left with the
   smallest z.  Concavity keeps every term outside below that.
+* sigma_j <= 40 but j* beyond 2^21 (p within ~1e-3 of 1): no table; each row's
+  window of j around j* in the reduced form of _reduced_log_terms,
+  log W_j - (1+a) j* = -(1+a) j* bd(j/j*) - log 2 pi + log(a)/2 - s(j) - s(a j)
+  (bd(r) = r log r - r + 1, s the Stirling error), exact to rounding for any a.
 * sigma_j > 40 (large y / phi): the terms vary smoothly on the integer grid, so
   by the Poisson summation formula the sum equals the integral of
   exp(log W_x) over real x up to a relative error below exp(-2 pi^2 sigma_j^2);
   that integral is computed by the trapezoidal rule with step sigma_j / 4 over
-  [x* - 14 sigma_j, x* + 24 sigma_j] around the maximiser x* (two Newton steps
-  with digamma/polygamma from the Stirling guess).  This keeps the cost
+  [j* - 14 sigma_j, j* + 24 sigma_j], with the terms in the same reduced form
+  (from j* > e^70, the Gaussian integral in closed form).  This keeps the cost
   bounded for any (y, phi, p), where the plain series needs O(sqrt(j*)) terms
   (the sum costs about as much as the integral's 153 nodes near sigma_j ~ 200;
   it is used up to 40, where it is still ~6 times cheaper).
 
-Every legal (y, mu, phi, p) gives a finite nll except where e^raw itself
-over- or underflows (|raw| beyond ~700 / (2-p)), where the nll is +inf (never NaN).
+Every legal (y, mu, phi, p) gives a finite nll except where the true value
+exceeds float64 (mu^(2-p) / phi or d / phi beyond ~1e308), where it is +inf
+(never NaN): tested down to phi = 1e-300 and p = 1 + 2^-52.
 
 The predictive law is :class:`TweedieLaw` (a law object of lossfam's own; scipy
 has no Tweedie law): mass exp(-lam) at 0, density above; cdf and sf by the
 Poisson mixture of regularised incomplete gamma functions (scipy.special.gammainc
-and gammaincc, so neither tail is formed by a subtraction); ppf by root
-finding on the cdf (safeguarded Newton in log y); rvs by simulating N
+and gammaincc, so neither tail is formed by a subtraction; for Poisson means
+beyond 5e4, the integral over the count, TweedieLaw._mixture_integral, and
+Temme's expansion for gamma shapes from 1e12); ppf by root finding on the cdf
+(safeguarded Newton in log y, polished in y, and bisection over the floats
+where the law is narrower than float64 resolves); rvs by simulating N
 and the gamma sum.  :func:`tweedie_power_profile` picks p by profile likelihood.
 """
 from __future__ import annotations
@@ -100,7 +117,7 @@ _MERGE_TERMS = 1 << 13
 #: exponents are raised to this floor before exp: such terms are below 1e-300 of a sum that is at
 #: least 1, and numpy's exp is several times slower on arguments whose result underflows
 _FLOOR = -700.0
-#: longest table of the series constants c_j built for the dispersion score (beyond: computed per term)
+#: central indices from half this use the reduced window instead of a table; most bins of the score's pass
 _TABLE_MAX = 1 << 22
 #: bins per unit of z of the dispersion score's Taylor expansion, and its last order (_TaylorBins)
 _BIN_SCALE = 64.0
@@ -313,7 +330,10 @@ def _cumulants(terms, x, total, cum, first=0):
     moments m_k (two passes, no cancellation of raw moments) turned into cumulants
     (k2 = m2, k3 = m3, k4 = m4 - 3 m2^2, k5 = m5 - 10 m3 m2, k6 = m6 - 15 m4 m2 - 10 m3^2 + 30 m2^3;
     Kendall and Stuart, The Advanced Theory of Statistics, vol. 1, section 3.14, recalled from
-    memory and checked against scipy.stats.kstat-free direct differentiation in the tests)."""
+    memory).  The mean is checked against differences of the series in the tests, the rest
+    through the dispersion score they expand (tests/test_tweedie_extremes.py)."""
+    if cum.shape[0] > 6:
+        raise ValueError("cumulants beyond the sixth are not implemented")
     order = cum.shape[0]
     rows = terms.shape[1]
     sl = slice(first, first + rows)
@@ -328,8 +348,6 @@ def _cumulants(terms, x, total, cum, first=0):
     for k in range(2, order + 1):
         dk *= d
         m.append((dk * terms).sum(axis=0) / total)
-    if order > 6:
-        raise ValueError("cumulants beyond the sixth are not implemented")
     conv = {2: lambda: m[2], 3: lambda: m[3], 4: lambda: m[4] - 3.0 * m[2] ** 2,
             5: lambda: m[5] - 10.0 * m[3] * m[2],
             6: lambda: m[6] - 15.0 * m[4] * m[2] - 10.0 * m[3] ** 2 + 30.0 * m[2] ** 3}
@@ -507,8 +525,9 @@ def _wide_integral(log_jstar, a, out, cum):
 def _series_mean_count(y, power, dispersion):
     """E_W[j] = sum_j j W_j / sum_j W_j for targets y > 0: the mean of j under the normalised
     terms of Dunn and Smyth's series (module docstring); the first cumulant of _series_sums."""
-    z, a = _series_z(np.asarray(y, dtype=float).ravel(), power, dispersion)
-    return _series_sums(z, a, order=1)[1][0]
+    log_y = np.log(np.asarray(y, dtype=float).ravel())
+    z, a = _series_z_of_log(log_y, power, dispersion)
+    return _series_sums(z, a, order=1, log_jstar=_log_jstar(log_y, power, dispersion))[1][0]
 
 
 def _log_half_deviance(log_y, raw, p):
