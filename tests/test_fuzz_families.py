@@ -26,20 +26,6 @@ import lossfam
 
 FAMILIES = lossfam.available()
 
-#: families whose pointwise math this fuzz still finds a defect in, with what it found; not run,
-#: since one of the draws exhausts the machine's memory
-POINTWISE_DEFECTS = {
-    "tweedie": "nll: at power 1 + 2**-52, dispersion 1.18, y = 1.29e16 the series window around j* ~ 1e16 "
-               "allocates without bound (MemoryError under a 5 GB limit; killed without one); nll is NaN at "
-               "dispersion 1e-300 for every y and at power 1 + 1e-6 for y = 1e300 (tweedie.log_series)",
-}
-
-
-def _with_pointwise_defects(names):
-    return [pytest.param(n, marks=pytest.mark.xfail(run=False, reason=POINTWISE_DEFECTS[n]))
-            if n in POINTWISE_DEFECTS else n for n in names]
-
-
 FAST = settings(max_examples=40, deadline=2000, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
 SLOW = settings(max_examples=400, deadline=2000, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
 
@@ -123,7 +109,7 @@ def _fits(fam, y, raw, w):
             assert all(np.isfinite(v) and v > 0 for v in new.params.values() if not isinstance(v, bool))
 
 
-@pytest.mark.parametrize("name", _with_pointwise_defects(FAMILIES))
+@pytest.mark.parametrize("name", FAMILIES)
 def test_pointwise_math_never_gives_nan(name):
     FAST(given(case(name))(lambda c: _pointwise(*c)))()
 
@@ -134,7 +120,7 @@ def test_baseline_and_nuisance_fits_are_finite_or_refused(name):
 
 
 @pytest.mark.slow
-@pytest.mark.parametrize("name", _with_pointwise_defects(FAMILIES))
+@pytest.mark.parametrize("name", FAMILIES)
 def test_pointwise_math_never_gives_nan_long(name):
     SLOW(given(case(name, 40))(lambda c: _pointwise(*c)))()
 
