@@ -22,6 +22,12 @@ r"""LightGBM adapter: a lossfam family as LightGBM objective, metric and trained
 
 lightgbm is imported on first use; ``import lossfam`` never imports it.
 
+On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
+grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
+``init_score``; lossfam's own steps run on the workers
+(``lossfam._boost.cluster``).  Native twins and the Python objective only (no
+refit path, no callbacks); ``valid_sets`` are scored after training.
+
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian
 ``regression``, laplace ``regression_l1``, asymmetric_laplace ``quantile`` at

@@ -40,6 +40,11 @@ lossfam's default guard plus the same tree parameter), gamma ``reg:gamma``.
 Built-in objectives hand a custom metric transformed predictions; the metric
 maps them back through the link.
 
+On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
+grown by ``xgboost.dask.train`` (base_margin = baseline + offset where there is
+an offset); lossfam's own steps run on the workers (``lossfam._boost.cluster``).
+Native twins and the Python objective only (no refit path).
+
 Refit path (families whose ``leaf_value`` rule is not ``"newton"``, on the
 Python objective).  lossfam runs the rounds itself: each tree is grown with
 ``Booster.boost`` on the rule's gradient (the pinball subgradient with a unit
@@ -329,7 +334,8 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     fam = _as_family(family)
     if isinstance(dtrain, cluster.ClusterData):
         return _train_cluster(fam, params, dtrain, num_boost_round, evals, step_limit, native, nuisance_set,
-                              metric_kind, early_stopping_rounds, prefit, client, engine_kwargs)
+                              metric_kind, early_stopping_rounds, prefit, client,
+                              dict(engine_kwargs, verbose_eval=verbose_eval, evals_result=evals_result))
     if not isinstance(dtrain, xgb.DMatrix):
         raise TypeError(f"train expects an xgboost.DMatrix, got {type(dtrain).__name__}")
     params = dict(params or {})
@@ -601,7 +607,7 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     out = dxgb.train(client, params, dtrain, int(num_boost_round), evals=dev, obj=obj,
                      custom_metric=_Metric(fam, metric_kind, from_output=twin is not None) if dev else None,
                      early_stopping_rounds=early_stopping_rounds,
-                     verbose_eval=engine_kwargs.get("verbose_eval", False))
+                     verbose_eval=engine_kwargs.get("verbose_eval", True))
     booster = out["booster"]
     if engine_kwargs.get("evals_result") is not None:
         engine_kwargs["evals_result"].update(out["history"])

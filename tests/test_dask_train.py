@@ -223,3 +223,25 @@ def test_bad_rows_are_named_and_refit_is_refused(client):
     with pytest.raises(ValueError, match="does not run on a Dask cluster"):
         lfl.train("laplace", PARAMS["lightgbm"], lossfam.ClusterData(_dask(Xd), _dask(yd)), 5, native=False,
                   client=client)
+
+
+@pytest.mark.slow
+def test_nuisance_set_evals_and_early_stopping(client):
+    """XGBoost on the cluster with an eval set: its metric adds the workers' sums, early stopping cuts
+    the model, and nuisance_set fits the scale on the eval rows (the family's own closed form there)."""
+    X, y, w, _ = _delays(21, 4000)
+    Xv, yv, wv, _ = _delays(22, 2000)
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    valid = lossfam.ClusterData(_dask(Xv), _dask(yv), weight=_dask(wv))
+    history = {}
+    fit = lfx.train(fam, dict(PARAMS["xgboost"], eta=0.5), lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w)),
+                    200, evals=[(valid, "valid")], early_stopping_rounds=5, nuisance_set=0, evals_result=history,
+                    verbose_eval=False, client=client)
+    logged = history["valid"][f"{fam.name}_nll"]
+    assert fit.best_iteration is not None and fit.best_iteration + 1 == fit.booster.num_boosted_rounds() < 200
+    raw_v = fit.predict_raw(Xv)
+    # the engine's metric at the best round is lossfam's nll of the cut model on all eval rows
+    expect = float(np.dot(wv, fam.nll(yv, raw_v)) / wv.sum())
+    assert logged[fit.best_iteration] == pytest.approx(expect, rel=1e-5)
+    assert fit.info["cluster"]["valid_metrics"]["valid"] == pytest.approx(expect, rel=1e-9)
+    assert fit.fitted_family.scale == pytest.approx(fam.fit_nuisance(yv, raw_v, wv).scale, rel=1e-7)

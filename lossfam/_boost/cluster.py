@@ -630,16 +630,20 @@ def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precisio
     import time
 
     t0 = time.perf_counter()
+    stats = {"passes": 0, "gathered": 0, "seconds": {}}
     X, y, w, o = data.aligned(client)
     sums = check_rows(client, fam, y, w, o, "data")
-    stats = {"passes": 0, "gathered": 0}
+    t1 = time.perf_counter()
     baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums)))
     if not math.isfinite(baseline):
         raise ValueError(f"{fam.name}: no finite constant raw score minimises the nll for these targets")
     start = client.persist(starts_of(y, o, baseline))
+    t2 = time.perf_counter()
     if prefit and fam.location_needs_nuisance and fam.params:
         fam = fit_nuisance(client, fam, y, w, start, stats)
-    stats["plan_seconds"] = time.perf_counter() - t0
+    t3 = time.perf_counter()
+    stats["seconds"].update(checks=t1 - t0, baseline=t2 - t1, prefit=t3 - t2)
+    stats["plan_seconds"] = t3 - t0
     return ClusterPlan(client, fam, baseline, X, y, w, o, start, stats)
 
 
@@ -724,6 +728,7 @@ def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kin
     client, fam, stats = plan.client, plan.family, plan.stats
     raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
     check_trained(client, fam, raw)
+    t1 = time.perf_counter()
     if not fam.params:
         fitted = fam
     elif nuisance_set is None:
@@ -732,15 +737,19 @@ def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kin
         X, y, w, o, _ = valids[int(nuisance_set)]
         fitted = fit_nuisance(client, fam, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]), stats)
     fit.fitted_family = fitted
+    t2 = time.perf_counter()
     metrics = {}
     for (X, y, w, o, _), name in zip(valids, valid_names):
         metrics[name] = mean_loss(client, fam, metric_kind, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]))
-    stats["finish_seconds"] = time.perf_counter() - t0
+    t3 = time.perf_counter()
+    stats["finish_seconds"] = t3 - t0
+    stats["seconds"].update(predict_and_check=t1 - t0, nuisance=t2 - t1, valid_metrics=t3 - t2)
     fit.info["cluster"] = {
         "partitions": int(plan.y.numblocks[0]), "workers": len(client.scheduler_info().get("workers", {})),
         "baseline_passes": int(stats.get("passes", 0)), "nuisance_passes": int(stats.get("nuisance_passes", 0)),
         "gathered_rows": int(stats.get("gathered", 0)), "valid_metrics": metrics,
         "lossfam_seconds": float(stats["plan_seconds"] + stats["finish_seconds"]),
+        "seconds": {k: round(float(v), 4) for k, v in stats["seconds"].items()},
     }
     return fit
 
