@@ -454,7 +454,7 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
         raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(valid_sets)} valid_sets")
 
     y, w = _label_weight(data, fam, "data")
-    plan = start_plan(fam, y, w, offset, prefit=prefit)
+    plan = start_plan(fam, y, w, offset, prefit=prefit, engine=_ENGINE)
     fam = plan.family
     guard = resolve_guard(fam, step_limit)
 
