@@ -610,7 +610,8 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     names = list(valid_names or [f"valid_{k}" for k in range(len(valid_sets))])
     if nuisance_set is not None and not (0 <= int(nuisance_set) < len(valid_sets)):
         raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(valid_sets)} valid_sets")
-    plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit)
+    plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, engine=_ENGINE,
+                                drop_unit_weights=True)
     fam = plan.family
     guard = resolve_guard(fam, step_limit)
     rule = facts.leaf_rule(fam)

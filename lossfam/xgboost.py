@@ -579,7 +579,8 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
         raise TypeError("on a Dask cluster evals must be a list of (ClusterData, name) pairs")
     if nuisance_set is not None and not (0 <= int(nuisance_set) < len(evals)):
         raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(evals)} evals")
-    plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, precision=np.float32)
+    plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, precision=np.float32,
+                                engine=_ENGINE)
     fam, baseline = plan.family, plan.baseline
     guard = resolve_guard(fam, step_limit)
     rule = facts.leaf_rule(fam)

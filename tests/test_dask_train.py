@@ -182,6 +182,34 @@ def test_weighted_quantile_is_exact_selection(client, monkeypatch, q):
 LEAN = ("gamma",)  # the default run; every other smooth family runs with -m slow
 
 
+@pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
+def test_engine_start_is_the_local_one(client, engine):
+    """Where each engine's built-in quantile objective starts (lossfam._boost.facts.engine_start: its
+    own sample quantile in single precision, HF 7 / HF 6 without weights, the inverted cdf or the
+    midpoint with them), computed on the cluster from exact order statistics: the local number, bit
+    for bit, on targets with ties, with and without weights and an offset."""
+    from lossfam._boost import facts
+
+    rng = np.random.default_rng(9)
+    n = 2400
+    y = np.round(rng.gamma(2.0, 1.5, n), 1)  # many ties
+    o = 0.1 * rng.integers(0, 3, n)
+    w = rng.uniform(0.5, 2.0, n)
+    for tau in (0.9, 0.23):
+        fam = lossfam.family("asymmetric_laplace", quantile=tau)
+        for weight, offset in ((None, None), (None, o), (w, o)):
+            local = facts.engine_start(fam, engine, y, weight, offset)
+            stats = {"passes": 0, "gathered": 0}
+            wd = _dask(weight)
+            yd, od = _dask(y), _dask(offset)
+            got = cluster.engine_start(client, fam, engine, yd, wd, od, stats, n)
+            if local is None:  # the engine falls back to the family's baseline: the exact midpoint quantile
+                assert got is None
+                local = fam.baseline(y, weight, offset=offset)
+                got = cluster.weighted_quantile(client, yd if od is None else yd - od, wd, tau)
+            assert got == local, (engine, tau, weight is None, offset is None)
+
+
 def _smooth_families():
     names = [n for n in lossfam.available() if lossfam.family(n).leaf_value == "newton"]
     return [n if n in LEAN else pytest.param(n, marks=pytest.mark.slow) for n in names]

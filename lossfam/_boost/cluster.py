@@ -23,9 +23,13 @@ baseline, smooth families (leaf rule ``"newton"``)
     equals ``family.baseline`` up to the order of the floating-point sums
     (measured: relative difference below 1e-14 for poisson with an offset).
 baseline, median / quantile families
-    The weighted tau-quantile of ``y - o`` by the midpoint definition of
-    ``lossfam._boost.quantiles`` (what ``family.baseline`` computes), by exact
-    selection (``weighted_quantile``): the same number as on one machine.
+    What local training starts from (``plan.start_plan``): the engine's own
+    start (``facts.engine_start``: its sample quantile of ``y - o`` in single
+    precision, from exact order statistics, ``engine_start``), or where the
+    engine falls back to the family's baseline, the weighted tau-quantile by
+    the midpoint definition of ``lossfam._boost.quantiles``
+    (``weighted_quantile``); both by exact selection: the same number as on
+    one machine.
 nuisance parameters
     The parameters the family's own fit returns (run on one partition on a
     worker, which also gives the start), at maximum likelihood over all rows:
@@ -63,7 +67,8 @@ import sys
 import numpy as np
 
 from .. import _checks
-from .quantiles import TIE_TOL
+from . import facts
+from .quantiles import TIE_TOL, single_precision_plan
 from .scoring import Scorer
 
 #: at most this many (value, weight) pairs come to the client in the selection's last step
@@ -236,18 +241,18 @@ def _check_block(y, w, o, start, fam, for_nll):
         if o is not None:
             _checks.check_raw(np.asarray(o, dtype=np.float64), y, f"{fam.name} offset")
     except ValueError as exc:
-        return f"rows {start}..{start + np.size(y) - 1} (rows below are counted from {start}): {exc}", np.zeros(4)
+        return f"rows {start}..{start + np.size(y) - 1} (rows below are counted from {start}): {exc}", np.zeros(5)
     wt = np.ones_like(y) if w is None else w
     pos = wt > 0
-    # sums that later steps start from: sum w, sum w y, sum w o (positive-weight rows), n
+    # sums that later steps start from: sum w, sum w y, sum w o (positive-weight rows), n, rows with w != 1
     return None, np.array([wt.sum(), np.dot(wt[pos], y[pos]), 0.0 if o is None else np.dot(wt[pos], np.asarray(o)[pos]),
-                           y.size])
+                           y.size, np.count_nonzero(wt != 1.0)])
 
 
 def check_rows(client, fam, y, w, o, what, for_nll=False):
     """Validate targets, weights and offsets on the workers, one pass (ValueError naming the rows).
 
-    Returns (sum w, sum w y, sum w o, n) over the rows (w = 1 without weights)."""
+    Returns (sum w, sum w y, sum w o, n, rows with w != 1) over the rows (w = 1 without weights)."""
     out = partition_results(client, _check_block, [y, w, o], fam, for_nll)
     msgs = [m for m, _ in out if m]
     if msgs:
@@ -398,6 +403,36 @@ def weighted_quantile(client, v, w, q, stats=None, total=None):
     if x_hi is None or math.isinf(x_hi):  # no value beyond: as on one machine, the largest value
         x_hi = x_lo
     return 0.5 * (x_lo + x_hi)
+
+
+def engine_start(client, fam, engine, y, w, o, stats, n):
+    """``facts.engine_start`` on the cluster: where ``engine``'s built-in median / quantile objective
+    starts (its sample quantile of ``y - o`` in single precision), from exact order statistics found
+    by selection; None where the engine falls back to the family's baseline (or for other families)."""
+    level = facts.leaf_level(fam)
+    if level is None or engine is None:
+        return None
+    definition = facts.renewal_definition(engine, weighted=w is not None)
+    if definition == "midpoint":
+        return None
+    v = (y if o is None else y - o).astype(np.float32)
+    inf = math.inf
+    if definition == "lower":
+        w32 = None if w is None else w.astype(np.float32).astype(np.float64)
+        total = float(partition_sums(client, lambda vb, wb, s: np.array([vb.size if wb is None else np.sum(wb[wb > 0])]),
+                                     [v, w32])[0])
+        stats["passes"] += 1
+        target = float(np.float32(level)) * total
+        return _select(client, v, w32, lambda f: f >= target, -inf, 0.0, inf, stats)[0]
+    ranks, combine = single_precision_plan(definition, n, level)
+    values, lo, f_lo = {}, -inf, 0.0
+    for r in sorted(set(ranks)):  # the (r + 1)-th smallest value: the first whose count reaches r + 1
+        if lo > -inf and f_lo >= r + 1:
+            values[r] = lo
+            continue
+        lo, f_lo = _select(client, v, None, lambda f, r=r: f >= r + 1, lo, f_lo, inf, stats)
+        values[r] = lo
+    return combine(*(np.float32(values[r]) for r in ranks))
 
 
 def cluster_baseline(client, fam, y, w, o, level, stats, sums=None):
@@ -625,16 +660,22 @@ def starts_of(y, o, baseline):
     return (y * 0.0 + baseline) if o is None else (o + baseline)
 
 
-def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precision=np.float64) -> ClusterPlan:
-    """Baseline given offset and weights, starting scores and the pre-fit, computed on the workers."""
+def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precision=np.float64, engine=None,
+                 drop_unit_weights=False) -> ClusterPlan:
+    """Baseline given offset and weights, starting scores and the pre-fit, computed on the workers
+    (as ``plan.start_plan``: with ``engine``, a median / quantile family starts where that engine's
+    built-in starts).  ``drop_unit_weights``: weights that are all 1 count as none (LightGBM's rule)."""
     import time
 
     t0 = time.perf_counter()
     stats = {"passes": 0, "gathered": 0, "seconds": {}}
     X, y, w, o = data.aligned(client)
     sums = check_rows(client, fam, y, w, o, "data")
+    if drop_unit_weights and w is not None and sums[4] == 0:
+        w = None
     t1 = time.perf_counter()
-    baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums)))
+    own = engine_start(client, fam, engine, y, w, o, stats, int(sums[3]))
+    baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums) if own is None else own))
     if not math.isfinite(baseline):
         raise ValueError(f"{fam.name}: no finite constant raw score minimises the nll for these targets")
     start = client.persist(starts_of(y, o, baseline))
