@@ -632,4 +632,23 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
             "step_limit": guard.limit, "hessian_damping": guard.damping}
     fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, None, info)
-    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind)
+    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, _tree_range(booster))
+
+
+def _tree_range(booster):
+    """None when the model has no trees to read (then every row is checked); else
+    (sum over trees of the smallest leaf value, sum of the largest): every raw output lies between."""
+    lo = hi = 0.0
+    trees = booster.dump_model().get("tree_info") or []
+    if not trees:
+        return None
+    for tree in trees:
+        values, stack = [], [tree["tree_structure"]]
+        while stack:
+            node = stack.pop()
+            if "leaf_value" in node:
+                values.append(float(node["leaf_value"]))
+            else:
+                stack += [node["left_child"], node["right_child"]]
+        lo, hi = lo + min(values), hi + max(values)
+    return lo, hi

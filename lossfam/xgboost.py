@@ -618,4 +618,21 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
             "step_limit": guard.limit, "hessian_damping": guard.damping}
     fit = BoostedFit(_ENGINE, booster, fam, baseline, fam, best, info)
-    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind)
+    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind,
+                          _tree_range(booster))
+
+
+def _tree_range(booster):
+    """None when the model has no trees to read (then every row is checked); else
+    (sum over trees of the smallest leaf value, sum of the largest), from the model's JSON: every
+    margin lies between these plus the base margin."""
+    doc = json.loads(bytes(booster.save_raw("json")))
+    trees = doc["learner"]["gradient_booster"].get("model", {}).get("trees")
+    if not trees:
+        return None
+    lo = hi = 0.0
+    for tree in trees:
+        left = np.asarray(tree["left_children"])
+        leaves = np.asarray(tree["split_conditions"], dtype=np.float64)[left == -1]
+        lo, hi = lo + float(leaves.min()), hi + float(leaves.max())
+    return lo, hi

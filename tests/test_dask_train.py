@@ -97,6 +97,8 @@ def test_cluster_train_matches_local(engine, case, client, tmp_path):
     fit = _cluster(engine, fam, X, y, w, o, client)
     assert type(fit) is type(local) is lossfam.BoostedFit
     assert fit.info["cluster"]["partitions"] >= 16 and fit.info["objective"] == local.info["objective"]
+    # without a nuisance fit the trained scores are checked from the trees' range, with one by predicting the rows
+    assert fit.info["cluster"]["trained_check"] == ("rows" if fam.params else "bounds")
 
     # the baseline: the quantile by exact selection is the local number; the poisson mean (the root of
     # the summed gradient) agrees to rounding: its partition sums are added in another order

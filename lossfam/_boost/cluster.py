@@ -241,18 +241,20 @@ def _check_block(y, w, o, start, fam, for_nll):
         if o is not None:
             _checks.check_raw(np.asarray(o, dtype=np.float64), y, f"{fam.name} offset")
     except ValueError as exc:
-        return f"rows {start}..{start + np.size(y) - 1} (rows below are counted from {start}): {exc}", np.zeros(5)
+        return f"rows {start}..{start + np.size(y) - 1} (rows below are counted from {start}): {exc}", np.zeros(7)
     wt = np.ones_like(y) if w is None else w
     pos = wt > 0
     # sums that later steps start from: sum w, sum w y, sum w o (positive-weight rows), n, rows with w != 1
     return None, np.array([wt.sum(), np.dot(wt[pos], y[pos]), 0.0 if o is None else np.dot(wt[pos], np.asarray(o)[pos]),
-                           y.size, np.count_nonzero(wt != 1.0)])
+                           y.size, np.count_nonzero(wt != 1.0),
+                           0.0 if o is None or not o.size else -np.min(o), 0.0 if o is None or not o.size else np.max(o)])
 
 
 def check_rows(client, fam, y, w, o, what, for_nll=False):
     """Validate targets, weights and offsets on the workers, one pass (ValueError naming the rows).
 
-    Returns (sum w, sum w y, sum w o, n, rows with w != 1) over the rows (w = 1 without weights)."""
+    Returns (sum w, sum w y, sum w o, n, rows with w != 1, -min o, max o) over the rows (w = 1
+    without weights, o = 0 without offsets)."""
     out = partition_results(client, _check_block, [y, w, o], fam, for_nll)
     msgs = [m for m, _ in out if m]
     if msgs:
@@ -260,7 +262,9 @@ def check_rows(client, fam, y, w, o, what, for_nll=False):
         raise ValueError(f"{what}: {msgs[0]}{more}")
     if int(y.shape[0]) == 0:
         raise ValueError(f"{fam.name}: y is empty; at least one row is needed")
-    sums = np.sum([t for _, t in out], axis=0)
+    parts = np.array([t for _, t in out])
+    sums = parts.sum(axis=0)
+    sums[5:7] = parts[:, 5:7].max(axis=0)  # the offsets' range: -min and max, not sums
     if not sums[0] > 0:
         raise ValueError(f"{fam.name}: the weights sum to {sums[0]}; at least one row needs a positive weight")
     return sums
@@ -645,6 +649,7 @@ class ClusterPlan:
     offset: object
     start: object  # Dask array: baseline + offset per row
     stats: dict
+    offset_range: tuple = (0.0, 0.0)
 
     def start_for(self, data: ClusterData, what):
         """(X, y, w, o, start) of a validation set: its start is baseline + its offset."""
@@ -685,7 +690,7 @@ def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precisio
     t3 = time.perf_counter()
     stats["seconds"].update(checks=t1 - t0, baseline=t2 - t1, prefit=t3 - t2)
     stats["plan_seconds"] = t3 - t0
-    return ClusterPlan(client, fam, baseline, X, y, w, o, start, stats)
+    return ClusterPlan(client, fam, baseline, X, y, w, o, start, stats, (-float(sums[5]), float(sums[6])))
 
 
 # --------------------------------------------------------------------------- lazy predictions
@@ -759,16 +764,39 @@ def inverse_link_lazy(fam, raw):
 
 
 # --------------------------------------------------------------------------- after the trees
-def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kind):
+def _range_is_fine(fam, plan, tree_range):
+    """True when every raw score the model can give the training rows (baseline + offset + the
+    trees' smallest to largest sums of leaves) is finite and inside the link's range."""
+    lo = plan.baseline + plan.offset_range[0] + tree_range[0]
+    hi = plan.baseline + plan.offset_range[1] + tree_range[1]
+    if not (math.isfinite(lo) and math.isfinite(hi)):
+        return False
+    link = fam.link_function
+    with np.errstate(over="ignore", invalid="ignore"):
+        return bool(np.all(link.prediction_domain.inside(link.inverse(np.array([lo, hi])))))
+
+
+def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kind, tree_range=None):
     """Check the trained scores, fit the nuisance parameters (training rows, or the valid set
     ``nuisance_set``) and score the valid sets, all on the workers; sets ``fit.fitted_family`` and
-    ``fit.info["cluster"]``.  ``valids``: list of ``ClusterPlan.start_for`` tuples."""
+    ``fit.info["cluster"]``.  ``valids``: list of ``ClusterPlan.start_for`` tuples.
+
+    ``tree_range``: the smallest and largest sum of leaf values the trees can give a row (the
+    engine adapter reads it from the model).  When no nuisance fit needs the training rows' raw
+    scores and that range, plus the baseline and the offsets' range, stays finite and inside the
+    link's range, no row can fail the check, and the pass that predicts every training row is
+    skipped (local training checks the engine's own training output, which costs nothing)."""
     import time
 
     t0 = time.perf_counter()
     client, fam, stats = plan.client, plan.family, plan.stats
-    raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
-    check_trained(client, fam, raw)
+    need_rows = bool(fam.params) and nuisance_set is None
+    if not need_rows and tree_range is not None and _range_is_fine(fam, plan, tree_range):
+        raw, stats["trained_check"] = None, "bounds"  # no row can be off: no pass over the rows needed
+    else:
+        raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
+        check_trained(client, fam, raw)
+        stats["trained_check"] = "rows"
     t1 = time.perf_counter()
     if not fam.params:
         fitted = fam
@@ -789,6 +817,7 @@ def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kin
         "partitions": int(plan.y.numblocks[0]), "workers": len(client.scheduler_info().get("workers", {})),
         "baseline_passes": int(stats.get("passes", 0)), "nuisance_passes": int(stats.get("nuisance_passes", 0)),
         "gathered_rows": int(stats.get("gathered", 0)), "valid_metrics": metrics,
+        "trained_check": stats.get("trained_check"),
         "lossfam_seconds": float(stats["plan_seconds"] + stats["finish_seconds"]),
         "seconds": {k: round(float(v), 4) for k, v in stats["seconds"].items()},
     }
