@@ -126,6 +126,7 @@ def test_cluster_train_matches_local(engine, case, client, tmp_path):
     fit.save(path)
     back = lossfam.load(path)
     np.testing.assert_array_equal(back.predict_raw(Xt, ot), raw_t)
+    np.testing.assert_array_equal(back.predict_raw(_dask(Xt), offset=_dask(ot)).compute(), raw_t)  # loaded, on Dask
     np.testing.assert_array_equal(back.predict(Xt, ot), fit.predict(_dask(Xt), offset=_dask(ot)).compute())
     assert back.baseline == fit.baseline and back.fitted_family == fit.fitted_family
 
@@ -138,7 +139,7 @@ def test_cluster_train_matches_local(engine, case, client, tmp_path):
         assert fit.fitted_family.scale == pytest.approx(own.scale, rel=1e-7)
 
 
-def test_dataframe_input_and_lazy_series(client):
+def test_dataframe_input_and_lazy_series(client, tmp_path):
     """Dask DataFrame features and Series targets/weights; predictions come back as a lazy Series."""
     pd = pytest.importorskip("pandas")
     dd = pytest.importorskip("dask.dataframe")
@@ -155,6 +156,11 @@ def test_dataframe_input_and_lazy_series(client):
     got = out.compute()
     np.testing.assert_array_equal(got.to_numpy(), fit.predict(df))
     assert list(got.index) == list(df.index)
+    path = tmp_path / "delays.json"
+    fit.save(path)
+    back = lossfam.load(path)  # the loaded model on pandas and on a Dask DataFrame
+    np.testing.assert_array_equal(back.predict(df), got.to_numpy())
+    np.testing.assert_array_equal(back.predict(ddf).compute().to_numpy(), got.to_numpy())
     with pytest.raises(TypeError, match="scipy law in memory"):
         fit.distribution(ddf)
 
