@@ -9,8 +9,10 @@ maximum-likelihood nuisance parameters and the predictive law.
 Engine adapters live in ``lossfam.lightgbm``, ``lossfam.xgboost`` and
 ``lossfam.sklearn``; they import their engine only when used.  Both engines'
 ``train`` return a :class:`BoostedFit`; ``lossfam.load(path)`` reads either
-engine's saved model.
+engine's saved model.  ``ClusterData`` (Dask collections) in place of a Dataset / DMatrix trains
+on a Dask cluster.
 """
+from ._boost.cluster import ClusterData
 from ._boost.model import BoostedFit, load
 from .families import Family
 from .registry import available, family, register, unregister
@@ -18,4 +20,4 @@ from .selection import rank_families  # numpy/scipy only at import; engines, pan
 
 __version__ = "0.1.0"
 
-__all__ = ["BoostedFit", "Family", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]
+__all__ = ["BoostedFit", "ClusterData", "Family", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]

@@ -22,6 +22,12 @@ r"""LightGBM adapter: a lossfam family as LightGBM objective, metric and trained
 
 lightgbm is imported on first use; ``import lossfam`` never imports it.
 
+On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
+grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
+``init_score``; lossfam's own steps run on the workers
+(``lossfam._boost.cluster``).  Native twins and the Python objective only (no
+refit path, no callbacks); ``valid_sets`` are scored after training.
+
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian
 ``regression``, laplace ``regression_l1``, asymmetric_laplace ``quantile`` at
@@ -67,7 +73,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import _checks
-from ._boost import facts
+from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
 from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
@@ -375,7 +381,7 @@ def _constant_booster(lgb, params, data):
 
 def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_names=None, offset=None,
           valid_offsets=None, step_limit=STEP_LIMIT_DEFAULT, native=True, nuisance_set=None, metric_kind="nll",
-          callbacks=None, prefit=True, **engine_kwargs) -> BoostedFit:
+          callbacks=None, prefit=True, client=None, **engine_kwargs) -> BoostedFit:
     """Train a LightGBM model with the family's nll as the loss; returns a :class:`lossfam.BoostedFit`.
 
     Parameters
@@ -384,8 +390,11 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
     params : dict
         LightGBM parameters; must not set the objective.  "metric" defaults
         to "None" (lossfam's metric is evaluated on ``valid_sets``).
-    data : lightgbm.Dataset
-        Training data with its label (and weights); no init_score.
+    data : lightgbm.Dataset or lossfam.ClusterData
+        Training data with its label (and weights); no init_score.  A
+        ``ClusterData`` (Dask collections) trains on a Dask cluster with
+        ``lightgbm.dask`` (``lossfam._boost.cluster``; ``valid_sets`` are then
+        ClusterData too and their offsets live in them).
     num_boost_round : int
     valid_sets, valid_names : as in ``lightgbm.train``
     offset : array of shape (n,), optional
@@ -415,6 +424,12 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
     """
     lgb = _lgb()
     fam = make_family(family)
+    if isinstance(data, cluster.ClusterData):
+        if offset is not None or valid_offsets is not None or callbacks or engine_kwargs:
+            raise ValueError("on a Dask cluster the offsets live in ClusterData(offset=...); callbacks and other "
+                             f"lightgbm.train arguments are not supported there (got {sorted(engine_kwargs)})")
+        return _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, step_limit, native,
+                              nuisance_set, metric_kind, prefit, client)
     if not isinstance(data, lgb.Dataset):
         raise ValueError(f"data must be a lightgbm.Dataset, got {type(data).__name__}")
     params = dict(params or {})
@@ -577,3 +592,63 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
     info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
             "step_limit": None if guard.limit is None else guard.limit, "hessian_damping": guard.damping}
     return BoostedFit(_ENGINE, booster, fam, plan.baseline, fitted, best - 1 if cut or 0 < best else None, info)
+
+
+def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, step_limit, native, nuisance_set,
+                   metric_kind, prefit, client):
+    """``train`` on ClusterData: lossfam's steps on the workers (``lossfam._boost.cluster``), the trees by
+    ``lightgbm.dask``, one model trained on all partitions."""
+    import lightgbm.dask as ldask
+
+    client = cluster.get_client(client)
+    params = dict(params or {})
+    if any(k in params for k in _OBJECTIVE_NAMES):
+        raise ValueError("params must not set the objective: the family is the objective")
+    valid_sets = [valid_sets] if isinstance(valid_sets, cluster.ClusterData) else list(valid_sets or [])
+    if not all(isinstance(v, cluster.ClusterData) for v in valid_sets):
+        raise ValueError("on a Dask cluster valid_sets must be ClusterData")
+    names = list(valid_names or [f"valid_{k}" for k in range(len(valid_sets))])
+    if nuisance_set is not None and not (0 <= int(nuisance_set) < len(valid_sets)):
+        raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(valid_sets)} valid_sets")
+    plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, engine=_ENGINE,
+                                drop_unit_weights=True)
+    fam = plan.family
+    guard = resolve_guard(fam, step_limit)
+    rule = facts.leaf_rule(fam)
+    twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native,
+                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
+    if twin is None and rule != "newton":
+        cluster.refuse_refit(fam, "LightGBM")
+    valids = [plan.start_for(v, f"valid_sets[{k}]") for k, v in enumerate(valid_sets)]
+    if twin is not None:
+        params.update(twin)
+    else:
+        params["objective"] = _Objective(fam, guard, check_start=False)
+    params.setdefault("metric", "None")
+    params.setdefault("verbosity", -1)
+    est = ldask.DaskLGBMRegressor(client=client, n_estimators=int(num_boost_round), **params)
+    est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
+    booster = _lgb().Booster(model_str=est.booster_.model_to_string())
+    info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
+            "step_limit": guard.limit, "hessian_damping": guard.damping}
+    fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, None, info)
+    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, _tree_range(booster))
+
+
+def _tree_range(booster):
+    """None when the model has no trees to read (then every row is checked); else
+    (sum over trees of the smallest leaf value, sum of the largest): every raw output lies between."""
+    lo = hi = 0.0
+    trees = booster.dump_model().get("tree_info") or []
+    if not trees:
+        return None
+    for tree in trees:
+        values, stack = [], [tree["tree_structure"]]
+        while stack:
+            node = stack.pop()
+            if "leaf_value" in node:
+                values.append(float(node["leaf_value"]))
+            else:
+                stack += [node["left_child"], node["right_child"]]
+        lo, hi = lo + min(values), hi + max(values)
+    return lo, hi

@@ -40,6 +40,11 @@ lossfam's default guard plus the same tree parameter), gamma ``reg:gamma``.
 Built-in objectives hand a custom metric transformed predictions; the metric
 maps them back through the link.
 
+On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
+grown by ``xgboost.dask.train`` (base_margin = baseline + offset where there is
+an offset); lossfam's own steps run on the workers (``lossfam._boost.cluster``).
+Native twins and the Python objective only (no refit path).
+
 Refit path (families whose ``leaf_value`` rule is not ``"newton"``, on the
 Python objective).  lossfam runs the rounds itself: each tree is grown with
 ``Booster.boost`` on the rule's gradient (the pinball subgradient with a unit
@@ -61,7 +66,7 @@ import math
 import numpy as np
 
 from . import _checks
-from ._boost import facts
+from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
 from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
@@ -291,7 +296,7 @@ def _offset_of(dmatrix, fam):
 
 def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=STEP_LIMIT_DEFAULT, native=True,
           nuisance_set=None, metric_kind="nll", early_stopping_rounds=None, evals_result=None, verbose_eval=True,
-          prefit=True, **engine_kwargs) -> BoostedFit:
+          prefit=True, client=None, **engine_kwargs) -> BoostedFit:
     """Train an XGBoost booster on the family's nll; returns a :class:`lossfam.BoostedFit`.
 
     Parameters
@@ -301,8 +306,11 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
         XGBoost parameters.  ``objective``, ``base_score`` and
         ``boost_from_average`` are set by lossfam; ``disable_default_eval_metric``
         is set to 1 unless given.
-    dtrain : xgboost.DMatrix
-        Training data with labels, optional weights and optional offset (as base_margin).
+    dtrain : xgboost.DMatrix or lossfam.ClusterData
+        Training data with labels, optional weights and optional offset (as
+        base_margin).  A ``ClusterData`` (Dask collections, offset inside)
+        trains on a Dask cluster with ``xgboost.dask`` (``lossfam._boost.cluster``);
+        ``evals`` are then (ClusterData, name) pairs.
     num_boost_round : int
     evals : list of (DMatrix, name)
     step_limit : "auto", None or a positive number
@@ -324,6 +332,10 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     """
     xgb = _xgb()
     fam = _as_family(family)
+    if isinstance(dtrain, cluster.ClusterData):
+        return _train_cluster(fam, params, dtrain, num_boost_round, evals, step_limit, native, nuisance_set,
+                              metric_kind, early_stopping_rounds, prefit, client,
+                              dict(engine_kwargs, verbose_eval=verbose_eval, evals_result=evals_result))
     if not isinstance(dtrain, xgb.DMatrix):
         raise TypeError(f"train expects an xgboost.DMatrix, got {type(dtrain).__name__}")
     params = dict(params or {})
@@ -545,3 +557,82 @@ def _write_leaf_values(xgb, booster, tables):
     out = xgb.Booster()
     out.load_model(bytearray(json.dumps(doc).encode("utf-8")))
     return out
+
+
+def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native, nuisance_set, metric_kind,
+                   early_stopping_rounds, prefit, client, engine_kwargs):
+    """``train`` on ClusterData: lossfam's steps on the workers (``lossfam._boost.cluster``), the trees by
+    ``xgboost.dask``; the metric's sums are added across workers (``_Metric.value``)."""
+    xgb = _xgb()
+    from xgboost import dask as dxgb
+
+    client = cluster.get_client(client)
+    params = dict(params or {})
+    owned = sorted(k for k in ("objective", "base_score", "boost_from_average", "obj") if k in params)
+    if owned:
+        raise ValueError(f"params {owned} are set by lossfam.xgboost.train (the family fixes the objective and the baseline)")
+    unknown = sorted(k for k in engine_kwargs if k not in ("verbose_eval", "evals_result"))
+    if unknown:
+        raise ValueError(f"on a Dask cluster lossfam.xgboost.train does not accept {unknown}")
+    evals = list(evals or [])
+    if not all(isinstance(p, (tuple, list)) and len(p) == 2 and isinstance(p[0], cluster.ClusterData) for p in evals):
+        raise TypeError("on a Dask cluster evals must be a list of (ClusterData, name) pairs")
+    if nuisance_set is not None and not (0 <= int(nuisance_set) < len(evals)):
+        raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(evals)} evals")
+    plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, precision=np.float32,
+                                engine=_ENGINE)
+    fam, baseline = plan.family, plan.baseline
+    guard = resolve_guard(fam, step_limit)
+    rule = facts.leaf_rule(fam)
+    twin = facts.chosen_twin(fam, _ENGINE, "XGBoost", native=native,
+                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
+    if twin is None and rule != "newton":
+        cluster.refuse_refit(fam, "XGBoost")
+    valids = [plan.start_for(d, f"evals[{k}]") for k, (d, _) in enumerate(evals)]
+    params.setdefault("disable_default_eval_metric", 1)
+    obj = None
+    if twin is not None:
+        params.update(twin)
+        params["base_score"] = float(_base_score_of(fam, baseline, True))
+    else:
+        params["base_score"] = baseline
+        if guard.damping is not None:  # as in local training: the damped objective also clips each leaf
+            params.setdefault("max_delta_step", guard.damping)
+        obj = _Objective(fam, guard, check_start=False)
+
+    def dmatrix(X, y, w, o, start):  # base_margin replaces base_score: baseline + offset where there is an offset
+        return dxgb.DaskDMatrix(client, X, y, weight=w, base_margin=None if o is None else start)
+
+    dtrain = dmatrix(plan.X, plan.y, plan.weight, plan.offset, plan.start)
+    dev = [(dmatrix(*v), name) for v, (_, name) in zip(valids, evals)]
+    out = dxgb.train(client, params, dtrain, int(num_boost_round), evals=dev, obj=obj,
+                     custom_metric=_Metric(fam, metric_kind, from_output=twin is not None) if dev else None,
+                     early_stopping_rounds=early_stopping_rounds,
+                     verbose_eval=engine_kwargs.get("verbose_eval", True))
+    booster = out["booster"]
+    if engine_kwargs.get("evals_result") is not None:
+        engine_kwargs["evals_result"].update(out["history"])
+    best = _best_iteration(booster) if early_stopping_rounds else None
+    if best is not None and best + 1 < booster.num_boosted_rounds():
+        booster = booster[: best + 1]
+    info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
+            "step_limit": guard.limit, "hessian_damping": guard.damping}
+    fit = BoostedFit(_ENGINE, booster, fam, baseline, fam, best, info)
+    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind,
+                          _tree_range(booster))
+
+
+def _tree_range(booster):
+    """None when the model has no trees to read (then every row is checked); else
+    (sum over trees of the smallest leaf value, sum of the largest), from the model's JSON: every
+    margin lies between these plus the base margin."""
+    doc = json.loads(bytes(booster.save_raw("json")))
+    trees = doc["learner"]["gradient_booster"].get("model", {}).get("trees")
+    if not trees:
+        return None
+    lo = hi = 0.0
+    for tree in trees:
+        left = np.asarray(tree["left_children"])
+        leaves = np.asarray(tree["split_conditions"], dtype=np.float64)[left == -1]
+        lo, hi = lo + float(leaves.min()), hi + float(leaves.max())
+    return lo, hi

@@ -22,6 +22,9 @@ module              holds
                     and lossfam's own row bagging for the refit path
 ``scoring``         the weighted metric (nll or unit deviance)
 ``model``           ``BoostedFit`` (the trained model of both engines) and ``load``
+``cluster``         training on a Dask cluster: ``ClusterData``, the checks,
+                    baseline (exact weighted quantile by selection), nuisance
+                    fit and metric as reductions over partitions, lazy predictions
 ==================  ==========================================================
 
 Nothing here imports an engine.

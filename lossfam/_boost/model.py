@@ -6,7 +6,10 @@ import math
 
 import numpy as np
 
+from .. import _checks
 from .._modelfile import read_model_file, write_model_file
+from . import cluster
+from .scoring import Scorer
 
 _ADAPTERS = {"lightgbm": "lossfam.lightgbm", "xgboost": "lossfam.xgboost"}
 
@@ -59,17 +62,49 @@ class BoostedFit:
 
         ``X``: numpy array, pandas DataFrame, scipy sparse matrix or the
         engine's own data object (an XGBoost DMatrix, whose ``base_margin``
-        is read as the offset when ``offset`` is None).
+        is read as the offset when ``offset`` is None).  A Dask array or
+        DataFrame (offset a Dask array / Series, or numpy for a Dask array)
+        gives a lazy Dask array / Series, computed partition by partition on
+        the workers.
         """
+        if cluster.is_dask_collection(X):
+            return cluster.predict_raw(self, X, offset)
         return np.asarray(_adapter(self.engine)._margin(self, X, offset), dtype=np.float64).reshape(-1)
 
     def predict(self, X, offset=None):
-        """Predictions on the response scale (``family.prediction_kind``): inverse link of predict_raw."""
-        return self.family.link_function.inverse(self.predict_raw(X, offset))
+        """Predictions on the response scale (``family.prediction_kind``): inverse link of predict_raw
+        (lazy on Dask input)."""
+        raw = self.predict_raw(X, offset)
+        if cluster.is_dask_collection(raw):
+            return cluster.inverse_link_lazy(self.family, raw)
+        return self.family.link_function.inverse(raw)
 
     def distribution(self, X, offset=None):
         """The predictive law per row, with the fitted nuisance parameters."""
+        if cluster.is_dask_collection(X):
+            raise TypeError("distribution() builds a scipy law in memory: pass numpy or pandas rows (e.g. a computed "
+                            "partition); predict() and predict_raw() stay lazy on Dask input")
         return self.fitted_family.distribution(self.predict_raw(X, offset))
+
+    def mean_loss(self, X, y, weight=None, offset=None, kind="nll", client=None):
+        """The weighted mean nll (``kind="nll"``, with the fitted nuisance parameters) or unit deviance
+        of the rows ``(X, y)``.
+
+        With Dask input (``X``, ``y`` and the optional ``weight`` / ``offset``
+        Dask collections) each partition's sums are computed on the workers and
+        only their totals come back (``client``: given, or the current one).
+        """
+        fam = self.fitted_family
+        if cluster.is_dask_collection(X):
+            client = cluster.get_client(client)
+            data = cluster.ClusterData(X, y, weight, offset)
+            X, y, w, o = data.aligned(client)
+            cluster.check_rows(client, fam, y, w, o, "mean_loss", for_nll=kind == "nll")
+            return cluster.mean_loss(client, fam, kind, y, w, cluster.predict_raw(self, X, o, lengths=y.chunks[0]))
+        y = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1), for_nll=kind == "nll")
+        w = None if weight is None else _checks.check_weight(np.asarray(weight, dtype=np.float64).reshape(-1), y, fam.name)
+        raw = _checks.check_raw(self.predict_raw(X, offset), y, fam.name)
+        return Scorer(fam, kind).value(y, raw, w)
 
     def save(self, path, key=None):
         """Write the model to ``path``: one JSON file (the engine's model, the family, the baseline)."""

@@ -160,21 +160,30 @@ def single_precision_quantile(x, w, q, definition) -> float:
     if w is not None and np.any(np.asarray(w) != 1.0):
         raise ValueError(f"the {definition!r} quantile is defined for unit weights only")
     s = np.sort(x)
-    n = s.size
-    if n == 0:
+    if s.size == 0:
         raise ValueError("no row")
+    ranks, combine = single_precision_plan(definition, s.size, q)
+    return combine(*(s[r] for r in ranks))
+
+
+def single_precision_plan(definition, n, q):
+    """For the unit-weight rules of ``single_precision_quantile`` on ``n`` values: the 0-based
+    ranks of the order statistics it reads, and the function of their float32 values that gives
+    the quantile (so that the order statistics can come from elsewhere, e.g. a selection over
+    the partitions of a cluster)."""
+    f32 = np.float32
+    p = float(f32(q))
     if definition == "linear":
         h = (n - 1) * (1.0 - p)
         pos = int(h)
-        upper, lower = s[n - 1 - pos], s[max(n - 2 - pos, 0)]
-        return float(f32(float(upper) - float(f32(upper - lower)) * (h - pos)))
+        return (n - 1 - pos, max(n - 2 - pos, 0)), (
+            lambda upper, lower: float(f32(float(upper) - float(f32(upper - lower)) * (h - pos))))
     if definition == "weibull":
         if p <= 1.0 / (n + 1):
-            return float(s[0])
+            return (0,), float
         if p >= n / (n + 1.0):
-            return float(s[-1])
+            return (n - 1,), float
         t = p * (n + 1.0)
         k = int(np.floor(t)) - 1
-        lo, hi = s[k], s[min(k + 1, n - 1)]
-        return float(f32(float(lo) + (t - 1.0 - k) * float(f32(hi - lo))))
+        return (k, min(k + 1, n - 1)), (lambda lo, hi: float(f32(float(lo) + (t - 1.0 - k) * float(f32(hi - lo)))))
     raise ValueError(f"no single-precision rule for the {definition!r} quantile")

@@ -1,0 +1,129 @@
+"""``train`` on a Dask LocalCluster against local ``train``, and the share of lossfam's own cluster steps.
+
+For each engine and family (poisson with an exposure offset; asymmetric_laplace at tau = 0.9 on
+weighted rows), alternately:
+
+* local: ``lossfam.<engine>.train`` on numpy arrays with ``--local-threads`` threads;
+* cluster: ``lossfam.<engine>.train`` on ``lossfam.ClusterData`` over a
+  ``LocalCluster(n_workers=2, threads_per_worker=1)`` (worker processes), the data already
+  persisted on the workers in ``--partitions`` partitions.
+
+Printed per cell (medians over ``--repeats``): local seconds, cluster seconds, their ratio; the
+seconds of lossfam's own cluster steps (checks, baseline, starting scores, the nuisance fit, the
+check of the trained scores: ``fit.info["cluster"]["lossfam_seconds"]``) and their share of the
+engine's training time on the cluster (cluster seconds minus lossfam's); the passes over the
+partitions; the held-out mean nll of the cluster model over the local model's.
+
+Usage::
+
+    python benchmarks/dask_train.py --rows 1e6 --rounds 100 --local-threads 2 --repeats 3
+
+The scenario (demo data of our own): 10 features, N(0, 1); claim counts with years at risk in
+[0.2, 3] as exposure; skewed delivery delays with weights in [0.5, 2].  Held-out: 20% extra rows.
+"""
+from __future__ import annotations
+
+import argparse
+import statistics
+import time
+
+import numpy as np
+
+
+def claims(rng, n):
+    X = rng.normal(size=(n, 10))
+    years = rng.uniform(0.2, 3.0, n)
+    y = rng.poisson(years * np.exp(-1.2 + 0.5 * np.sin(2 * X[:, 0]) + 0.4 * X[:, 1] - 0.2 * X[:, 2] * X[:, 3]))
+    return X, y.astype(float), None, np.log(years)
+
+
+def delays(rng, n):
+    X = rng.normal(size=(n, 10))
+    y = np.exp(0.3 * X[:, 0] - 0.2 * X[:, 1] + 0.1 * X[:, 2] * X[:, 3]) * rng.gamma(2.0, 1.5, n) + 0.5 * np.abs(X[:, 4])
+    return X, y, rng.uniform(0.5, 2.0, n), None
+
+
+CASES = {"poisson+exposure": ("poisson", {}, claims), "asymmetric_laplace(0.9)": ("asymmetric_laplace", {"quantile": 0.9}, delays)}
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--rows", type=float, default=1e6)
+    ap.add_argument("--rounds", type=int, default=100)
+    ap.add_argument("--partitions", type=int, default=16)
+    ap.add_argument("--local-threads", type=int, default=2)
+    ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--engines", nargs="+", default=["lightgbm", "xgboost"])
+    args = ap.parse_args()
+
+    import dask.array as da
+    import lightgbm as lgb
+    import xgboost as xgb
+    from dask.distributed import Client, LocalCluster
+
+    import lossfam
+    from lossfam import lightgbm as lfl
+    from lossfam import xgboost as lfx
+
+    n = int(args.rows)
+    rows = -(-n // args.partitions)
+    print(f"rows {n}, rounds {args.rounds}, partitions {args.partitions}, local threads {args.local_threads}, "
+          f"cluster 2 workers x 1 thread, repeats {args.repeats} (medians)")
+    print("| engine | family | local s | cluster s | cluster / local | lossfam steps s | share of engine time "
+          "| passes (baseline, nuisance) | held-out nll cluster / local |")
+    print("|---|---|---:|---:|---:|---:|---:|---|---:|")
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as lc, \
+            Client(lc) as client:
+        t0 = time.perf_counter()
+        client.run(lambda: __import__("lossfam.lightgbm") and __import__("lossfam.xgboost"))  # one-time import cost
+        print(f"(workers import lossfam and the engines once: {time.perf_counter() - t0:.1f} s, not counted below)")
+        for engine in args.engines:
+            for case, (name, params, make) in CASES.items():
+                fam = lossfam.family(name, **params)
+                rng = np.random.default_rng(2026)
+                X, y, w, o = make(rng, n)
+                Xt, yt, wt, ot = make(rng, n // 5)
+
+                def chunked(a):
+                    return None if a is None else client.persist(da.from_array(a, chunks=(rows,) + a.shape[1:]))
+                data = lossfam.ClusterData(chunked(X), chunked(y), weight=chunked(w), offset=chunked(o))
+                if engine == "lightgbm":
+                    p = {"num_leaves": 31, "learning_rate": 0.1, "verbosity": -1}
+
+                    def local():
+                        return lfl.train(fam, dict(p, num_threads=args.local_threads), lgb.Dataset(X, y, weight=w),
+                                         args.rounds, offset=o)
+
+                    def remote():
+                        return lfl.train(fam, p, data, args.rounds, client=client)
+                else:
+                    p = {"max_depth": 6, "eta": 0.1, "tree_method": "hist"}
+
+                    def local():
+                        return lfx.train(fam, dict(p, nthread=args.local_threads), xgb.DMatrix(X, y, weight=w, base_margin=o),
+                                         args.rounds, verbose_eval=False)
+
+                    def remote():
+                        return lfx.train(fam, dict(p, nthread=1), data, args.rounds, client=client)
+                t_loc, t_cl, t_own, share = [], [], [], []
+                for _ in range(args.repeats):
+                    t0 = time.perf_counter()
+                    fl = local()
+                    t_loc.append(time.perf_counter() - t0)
+                    t0 = time.perf_counter()
+                    fc = remote()
+                    t_cl.append(time.perf_counter() - t0)
+                    own = fc.info["cluster"]["lossfam_seconds"]
+                    t_own.append(own)
+                    share.append(own / (t_cl[-1] - own))
+                info = fc.info["cluster"]
+                held = fc.mean_loss(Xt, yt, weight=wt, offset=ot) / fl.mean_loss(Xt, yt, weight=wt, offset=ot)
+                med = statistics.median
+                print(f"| {engine} | {case} | {med(t_loc):.2f} | {med(t_cl):.2f} | {med(t_cl) / med(t_loc):.2f} | "
+                      f"{med(t_own):.2f} | {100 * med(share):.1f}% | {info['baseline_passes']}, "
+                      f"{info['nuisance_passes']} | {held:.4f} |", flush=True)
+                print(f"  lossfam steps, last repeat (s): {info['seconds']}", flush=True)
+
+
+if __name__ == "__main__":
+    main()

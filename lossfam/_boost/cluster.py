@@ -1,0 +1,831 @@
+r"""Training on a Dask cluster: lossfam's own steps as reductions over partitions.
+
+The engines (``lightgbm.dask``, ``xgboost.dask``) grow the trees on the
+workers; this module does everything lossfam adds around them, on the workers
+too, and brings to the client only sums of fixed size: O(1) per pass for the
+baseline, the metric and the nuisance fit, O(number of partitions) values for
+the quantile selection's pivots and at most ``SELECT_GATHER`` rows at its last
+step.  Nothing here imports an engine; dask is imported on first use.
+
+``ClusterData(X, y, weight=None, offset=None)``
+    The rows of one data set as Dask collections, aligned by row partition.
+    ``lossfam.lightgbm.train`` / ``lossfam.xgboost.train`` take it in place of
+    a Dataset / DMatrix.
+
+Passes (each one task per partition, then a tree of additions on the workers):
+
+baseline, smooth families (leaf rule ``"newton"``)
+    The root of ``G(c) = sum w g(y, c + o)`` (the family's gradient), by
+    Newton steps on the summed Hessian (or the family's surrogate) kept inside
+    a bracket where ``G`` changes sign (bisection when a step leaves it),
+    until a step is below 4 ulp of ``c``.  For a family whose nll is convex in
+    the raw score that root is the unique minimiser of the weighted nll, so it
+    equals ``family.baseline`` up to the order of the floating-point sums
+    (measured: relative difference below 1e-14 for poisson with an offset).
+baseline, median / quantile families
+    What local training starts from (``plan.start_plan``): the engine's own
+    start (``facts.engine_start``: its sample quantile of ``y - o`` in single
+    precision, from exact order statistics, ``engine_start``), or where the
+    engine falls back to the family's baseline, the weighted tau-quantile by
+    the midpoint definition of ``lossfam._boost.quantiles``
+    (``weighted_quantile``); both by exact selection: the same number as on
+    one machine.
+nuisance parameters
+    The parameters the family's own fit returns (run on one partition on a
+    worker, which also gives the start), at maximum likelihood over all rows:
+    Newton steps on their logs with central-difference derivatives of
+    ``sum w nll / sum w``, every evaluation of one step in one pass (a
+    difference step of 1e-2, then 1e-4; the O(h^2) error of the differences
+    puts the maximum within about 1e-8 relative; measured against the
+    families' own fits on 8000 rows: 2e-9 for asymmetric_laplace, gamma,
+    student_t, negative_binomial and tweedie, in 4 passes after the start).
+    Where the curvature is not positive, a derivative-free search (Brent,
+    Nelder-Mead) with one pass per evaluation.
+metric
+    ``Scorer.sums`` per partition, added.
+
+Exact weighted quantile by selection (``weighted_quantile``).  The value
+``x_lo`` is the smallest data value whose cumulative weight reaches ``q W``
+(``x_hi`` the smallest whose cumulative weight exceeds it; both within
+``TIE_TOL W``, as on one machine).  The search keeps an open bracket
+``(lo, hi)`` of candidate values, with the cumulative weight at ``lo`` known
+and ``hi`` known to qualify.  One pass asks each partition for its rows
+inside the bracket: all of them when they are few, else their count and
+``K`` evenly spaced order statistics.  If every partition sent its rows the
+answer is found on the client (sort, cumulative sum); otherwise a second
+pass counts the weight at or below each order statistic, and the bracket
+shrinks to two neighbouring ones: between them each partition holds at most
+about ``1/K`` of its bracket rows.  No approximation is involved; the
+result is the number ``sample_quantile`` returns on the collected rows.
+"""
+from __future__ import annotations
+
+import dataclasses
+import math
+import sys
+
+import numpy as np
+
+from .. import _checks
+from . import facts
+from .quantiles import TIE_TOL, single_precision_plan
+from .scoring import Scorer
+
+#: at most this many (value, weight) pairs come to the client in the selection's last step
+SELECT_GATHER = 4096
+#: order statistics per partition and pass in the selection (at least 8)
+SELECT_PIVOTS = 1024
+NEWTON_STEPS = 100
+
+
+def _dask():
+    try:
+        import dask
+        import dask.array as da
+        import distributed
+    except ImportError as exc:  # pragma: no cover - dask is an extra
+        raise ImportError('training on a Dask cluster needs dask: pip install "lossfam[dask]"') from exc
+    return dask, da, distributed
+
+
+def is_dask_collection(obj) -> bool:
+    """True for a Dask collection (without importing dask when nothing has: then nothing can be one)."""
+    dask = sys.modules.get("dask")
+    return dask is not None and dask.is_dask_collection(obj)
+
+
+def _is_frame(obj) -> bool:
+    return hasattr(obj, "map_partitions") and hasattr(obj, "npartitions") and hasattr(obj, "columns")
+
+
+def get_client(client=None):
+    """The given client, or the current ``dask.distributed`` client (with a clear error when none runs)."""
+    _, _, distributed = _dask()
+    if client is not None:
+        return client
+    try:
+        return distributed.get_client()
+    except ValueError:
+        raise ValueError("no dask.distributed Client: start one (Client(LocalCluster(...)) or Client('tcp://scheduler:8786')) "
+                         "or pass client=") from None
+
+
+class ClusterData:
+    """One data set as Dask collections: features ``X`` (array or DataFrame, partitioned by rows),
+    targets ``y`` and optional ``weight`` and ``offset`` (raw-scale, e.g. log exposure), each a Dask
+    array or Series (or a numpy array, split like X).
+
+    ``lossfam.lightgbm.train`` and ``lossfam.xgboost.train`` take it in place of
+    their engine's data object.  Nothing is computed on construction.
+    """
+
+    def __init__(self, X, y, weight=None, offset=None):
+        if not is_dask_collection(X):
+            raise TypeError(f"ClusterData: X must be a Dask array or DataFrame, got {type(X).__name__}")
+        self.X, self.y, self.weight, self.offset = X, y, weight, offset
+        self._aligned = None
+
+    def aligned(self, client):
+        """(X, y, w, o): X persisted, the others float64 Dask arrays chunked like X's row partitions."""
+        if self._aligned is not None:
+            return self._aligned
+        _, da, _ = _dask()
+        X = self.X
+        if _is_frame(X):
+            lengths = tuple(int(n) for n in client.compute(X.map_partitions(len)).result())
+        else:
+            if X.ndim != 2:
+                raise ValueError(f"ClusterData: X must be two-dimensional, got shape {X.shape}")
+            if X.numblocks[1] != 1:
+                X = X.rechunk({1: -1})
+            lengths = tuple(int(n) for n in X.chunks[0])
+            if any(math.isnan(n) for n in X.chunks[0]):
+                X = X.compute_chunk_sizes()
+                lengths = tuple(int(n) for n in X.chunks[0])
+        n = sum(lengths)
+
+        def column(v, what):
+            if v is None:
+                return None
+            if is_dask_collection(v):
+                if hasattr(v, "to_dask_array"):
+                    if getattr(v, "ndim", 1) != 1:
+                        raise ValueError(f"ClusterData: {what} must be one column")
+                    v = v.to_dask_array(lengths=True)
+                v = v.astype(np.float64)
+            else:
+                v = da.from_array(np.asarray(v, dtype=np.float64), chunks=(lengths,))
+            if v.ndim != 1 or v.shape[0] != n:
+                raise ValueError(f"ClusterData: {what} has shape {v.shape}, X has {n} rows; pass one value per row")
+            return v.rechunk((lengths,)) if tuple(v.chunks[0]) != lengths else v
+
+        y, w, o = column(self.y, "y"), column(self.weight, "weight"), column(self.offset, "offset")
+        parts = [v for v in (X, y, w, o) if v is not None]
+        done = iter(client.persist(parts))
+        self._aligned = tuple(None if v is None else next(done) for v in (X, y, w, o))
+        return self._aligned
+
+    @property
+    def nrows(self):
+        return None if self._aligned is None else int(self._aligned[1].shape[0])
+
+
+# --------------------------------------------------------------------------- reductions
+#: partial sums added per task in the reduction tree
+FAN_IN = 8
+
+
+def _add_all(*parts):
+    total = parts[0]
+    for p in parts[1:]:
+        total = total + p
+    return total
+
+
+def _tree_add(dask, parts):
+    """The sum of the per-partition vectors, by a tree of tasks on the workers (FAN_IN per task)."""
+    add = dask.delayed(_add_all, pure=True)
+    while len(parts) > 1:
+        parts = [add(*parts[i:i + FAN_IN]) for i in range(0, len(parts), FAN_IN)]
+    return parts[0]
+
+
+def _blocks(arr, k):
+    return [None] * k if arr is None else list(arr.to_delayed().ravel())
+
+
+def _quiet(fn):
+    """Run ``fn`` with dask's hint about computing graph- and expression-backed collections together
+    silenced (a performance note about how our per-partition tasks are built, not about the result)."""
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message="Computing mixed collections", category=UserWarning)
+        return fn()
+
+
+def partition_sums(client, fn, arrays, *extra):
+    """sum over partitions of ``fn(block_0, block_1, ..., start_row, *extra)`` (equal-shape float
+    vectors), added on the workers; only the sum comes back.  ``arrays``: Dask arrays (or None)
+    with the same row chunks."""
+    dask, _, _ = _dask()
+    first = next(a for a in arrays if a is not None)
+    k = first.numblocks[0]
+    starts = np.concatenate([[0], np.cumsum(first.chunks[0])[:-1]]).astype(int)
+    call = dask.delayed(fn, pure=True)
+    cols = [_blocks(a, k) for a in arrays]
+    parts = [call(*[c[i] for c in cols], int(starts[i]), *extra) for i in range(k)]
+    total = _tree_add(dask, parts)
+    return np.asarray(_quiet(lambda: client.compute(total).result()))
+
+
+def partition_results(client, fn, arrays, *extra):
+    """The list of ``fn(blocks..., start_row, *extra)`` per partition (small results only)."""
+    dask, _, _ = _dask()
+    first = next(a for a in arrays if a is not None)
+    k = first.numblocks[0]
+    starts = np.concatenate([[0], np.cumsum(first.chunks[0])[:-1]]).astype(int)
+    call = dask.delayed(fn, pure=True)
+    cols = [_blocks(a, k) for a in arrays]
+    parts = [call(*[c[i] for c in cols], int(starts[i]), *extra) for i in range(k)]
+    return _quiet(lambda: client.gather(client.compute(parts)))
+
+
+# --------------------------------------------------------------------------- checks
+def _check_block(y, w, o, start, fam, for_nll):
+    """Validate one partition: (a message naming global rows or None, its weight sum)."""
+    try:
+        y = fam.check_target(np.asarray(y, dtype=np.float64), for_nll=for_nll)
+        if w is not None:
+            w = _checks.check_weight(np.asarray(w, dtype=np.float64), y, fam.name)
+        if o is not None:
+            _checks.check_raw(np.asarray(o, dtype=np.float64), y, f"{fam.name} offset")
+    except ValueError as exc:
+        return f"rows {start}..{start + np.size(y) - 1} (rows below are counted from {start}): {exc}", np.zeros(7)
+    wt = np.ones_like(y) if w is None else w
+    pos = wt > 0
+    # sums that later steps start from: sum w, sum w y, sum w o (positive-weight rows), n, rows with w != 1
+    return None, np.array([wt.sum(), np.dot(wt[pos], y[pos]), 0.0 if o is None else np.dot(wt[pos], np.asarray(o)[pos]),
+                           y.size, np.count_nonzero(wt != 1.0),
+                           0.0 if o is None or not o.size else -np.min(o), 0.0 if o is None or not o.size else np.max(o)])
+
+
+def check_rows(client, fam, y, w, o, what, for_nll=False):
+    """Validate targets, weights and offsets on the workers, one pass (ValueError naming the rows).
+
+    Returns (sum w, sum w y, sum w o, n, rows with w != 1, -min o, max o) over the rows (w = 1
+    without weights, o = 0 without offsets)."""
+    out = partition_results(client, _check_block, [y, w, o], fam, for_nll)
+    msgs = [m for m, _ in out if m]
+    if msgs:
+        more = f" (and {len(msgs) - 1} more partitions)" if len(msgs) > 1 else ""
+        raise ValueError(f"{what}: {msgs[0]}{more}")
+    if int(y.shape[0]) == 0:
+        raise ValueError(f"{fam.name}: y is empty; at least one row is needed")
+    parts = np.array([t for _, t in out])
+    sums = parts.sum(axis=0)
+    sums[5:7] = parts[:, 5:7].max(axis=0)  # the offsets' range: -min and max, not sums
+    if not sums[0] > 0:
+        raise ValueError(f"{fam.name}: the weights sum to {sums[0]}; at least one row needs a positive weight")
+    return sums
+
+
+# --------------------------------------------------------------------------- baseline
+def _gh_block(y, w, o, start, fam, c):
+    raw = np.full(y.shape, c) if o is None else c + o
+    with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+        g, h = fam._grad_hess(np.asarray(y, dtype=np.float64), raw)
+    if w is not None:
+        g, h = g * w, h * w
+    return np.array([g.sum(), h.sum()])
+
+
+def _start_guess(client, fam, y, w, o, sums=None):
+    """A first raw score: the link of the weighted mean target, minus the weighted mean offset
+    (``sums``: ``check_rows``'s, else one pass)."""
+    if sums is None:
+        sums = check_rows(client, fam, y, w, o, "data")
+    sw, sy, so = sums[0], sums[1], sums[2]
+    with np.errstate(all="ignore"):
+        c = float(fam.link_function._forward(np.float64(sy / sw))) - so / sw
+    return c if math.isfinite(c) else 0.0
+
+
+def smooth_baseline(client, fam, y, w, o, stats=None, sums=None):
+    """The root of the summed gradient in the constant raw score (module docstring)."""
+    stats = {"passes": 0} if stats is None else stats
+    if sums is None:
+        stats["passes"] += 1
+    c = _start_guess(client, fam, y, w, o, sums)
+    lo, hi = -math.inf, math.inf  # G(lo) < 0 < G(hi)
+    for _ in range(NEWTON_STEPS):
+        G, H = partition_sums(client, _gh_block, [y, w, o], fam, c)
+        stats["passes"] += 1
+        if not math.isfinite(G):
+            raise ValueError(f"{fam.name}: the gradient is not finite at the raw score {c:g}; no baseline")
+        if G == 0:
+            return c
+        if G < 0:
+            lo = c
+        else:
+            hi = c
+        step = -G / H if H > 0 and math.isfinite(H) else -math.copysign(1.0, G)
+        if abs(step) <= 4 * np.spacing(max(abs(c), 1e-300)):
+            return c + step
+        new = c + step
+        if not (lo < new < hi):
+            if math.isinf(lo) or math.isinf(hi):  # expand towards the sign change
+                new = c + math.copysign(max(1.0, 2 * abs(step) if math.isfinite(step) else 1.0), -G)
+            else:
+                new = 0.5 * (lo + hi)
+        if abs(new - c) <= 4 * np.spacing(max(abs(c), 1e-300)) or (hi - lo) <= 4 * np.spacing(max(abs(lo), abs(hi))):
+            return new
+        c = new
+    raise ValueError(f"{fam.name}: the baseline search did not converge in {NEWTON_STEPS} passes")
+
+
+def _bracket_block(v, w, start, lo, hi, room, pivots):
+    """Rows of one partition with lo < v < hi (positive weight): all of them if at most ``room``,
+    else their count, their weight and ``pivots`` evenly spaced order statistics."""
+    v = np.asarray(v, dtype=np.float64)
+    keep = (v > lo) & (v < hi)
+    if w is not None:
+        keep &= w > 0
+    vals = v[keep]
+    wts = None if w is None else np.asarray(w)[keep]
+    if vals.size <= room:
+        return ("rows", vals, wts)
+    s = np.sort(vals)
+    idx = np.unique(np.linspace(0, s.size - 1, pivots).round().astype(int))
+    return ("sketch", s[idx], vals.size)
+
+
+def _below_block(v, w, start, points):
+    """Weight of the partition's rows at or below each point (positive-weight rows only)."""
+    v = np.asarray(v, dtype=np.float64)
+    if w is None:
+        s = np.sort(v)
+        return np.searchsorted(s, points, side="right").astype(np.float64)
+    keep = w > 0
+    order = np.argsort(v[keep], kind="stable")
+    s, cw = v[keep][order], np.concatenate([[0.0], np.cumsum(np.asarray(w)[keep][order])])
+    return cw[np.searchsorted(s, points, side="right")]
+
+
+def _select(client, v, w, pred, lo, f_lo, hi, stats):
+    """The smallest data value x in (lo, hi) whose cumulative weight F(x) satisfies ``pred``, or
+    ``hi`` when there is none (``hi`` qualifies; F(lo) = f_lo does not).  Returns (x, F(x))."""
+    k = v.numblocks[0]
+    f_hi = None
+    while True:
+        room = max(SELECT_GATHER // k, 1)
+        out = partition_results(client, _bracket_block, [v, w], lo, hi, room, max(SELECT_PIVOTS // k, 8))
+        stats["passes"] += 1
+        if all(r[0] == "rows" for r in out):
+            vals = np.concatenate([r[1] for r in out])
+            wts = np.ones(vals.size) if w is None else np.concatenate([r[2] for r in out])
+            stats["gathered"] = max(stats["gathered"], int(vals.size))
+            if vals.size == 0:
+                return hi, f_hi
+            order = np.argsort(vals, kind="stable")
+            vals, cw = vals[order], f_lo + np.cumsum(wts[order])
+            # F at a value counts all its tied rows: the last cumulative weight of each run
+            last = np.r_[vals[1:] != vals[:-1], True]
+            uv, fv = vals[last], cw[last]
+            ok = np.flatnonzero([pred(f) for f in fv])
+            if ok.size == 0:
+                return hi, f_hi
+            return float(uv[ok[0]]), float(fv[ok[0]])
+        points = np.unique(np.concatenate([r[1] for r in out]))
+        below = partition_sums(client, _below_block, [v, w], points)
+        stats["passes"] += 1
+        good = np.flatnonzero([pred(f) for f in below])
+        bad = np.flatnonzero([not pred(f) for f in below])
+        if good.size:
+            hi, f_hi = float(points[good[0]]), float(below[good[0]])
+        bad = bad[points[bad] < hi]
+        if bad.size:
+            lo, f_lo = float(points[bad[-1]]), float(below[bad[-1]])
+
+
+def weighted_quantile(client, v, w, q, stats=None, total=None):
+    """The weighted q-quantile of the Dask array ``v`` (weights ``w`` or None, same chunks) by the
+    midpoint definition of ``lossfam._boost.quantiles``, exactly (module docstring).  ``total``:
+    the weight of the positive-weight rows when known (else one pass)."""
+    stats = {"passes": 0, "gathered": 0} if stats is None else stats
+    if total is None:
+        total = float(partition_sums(client, lambda vb, wb, s: np.array([vb.size if wb is None else np.sum(wb[wb > 0])]),
+                                     [v, w])[0])
+        stats["passes"] += 1
+    if not total > 0:
+        raise ValueError("no row of positive weight")
+    target, tol = q * total, TIE_TOL * total
+    x_lo, f_lo = _select(client, v, w, lambda f: f >= target - tol, -math.inf, 0.0, math.inf, stats)
+    if f_lo is not None and f_lo > target + tol:
+        return x_lo
+    x_hi, _ = _select(client, v, w, lambda f: f > target + tol, x_lo, f_lo, math.inf, stats)
+    if x_hi is None or math.isinf(x_hi):  # no value beyond: as on one machine, the largest value
+        x_hi = x_lo
+    return 0.5 * (x_lo + x_hi)
+
+
+def engine_start(client, fam, engine, y, w, o, stats, n):
+    """``facts.engine_start`` on the cluster: where ``engine``'s built-in median / quantile objective
+    starts (its sample quantile of ``y - o`` in single precision), from exact order statistics found
+    by selection; None where the engine falls back to the family's baseline (or for other families)."""
+    level = facts.leaf_level(fam)
+    if level is None or engine is None:
+        return None
+    definition = facts.renewal_definition(engine, weighted=w is not None)
+    if definition == "midpoint":
+        return None
+    v = (y if o is None else y - o).astype(np.float32)
+    inf = math.inf
+    if definition == "lower":
+        w32 = None if w is None else w.astype(np.float32).astype(np.float64)
+        total = float(partition_sums(client, lambda vb, wb, s: np.array([vb.size if wb is None else np.sum(wb[wb > 0])]),
+                                     [v, w32])[0])
+        stats["passes"] += 1
+        target = float(np.float32(level)) * total
+        return _select(client, v, w32, lambda f: f >= target, -inf, 0.0, inf, stats)[0]
+    ranks, combine = single_precision_plan(definition, n, level)
+    values, lo, f_lo = {}, -inf, 0.0
+    for r in sorted(set(ranks)):  # the (r + 1)-th smallest value: the first whose count reaches r + 1
+        if lo > -inf and f_lo >= r + 1:
+            values[r] = lo
+            continue
+        lo, f_lo = _select(client, v, None, lambda f, r=r: f >= r + 1, lo, f_lo, inf, stats)
+        values[r] = lo
+    return combine(*(np.float32(values[r]) for r in ranks))
+
+
+def cluster_baseline(client, fam, y, w, o, level, stats, sums=None):
+    """``family.baseline(y, w, offset=o)`` on the cluster: quantile by selection, else Newton
+    (``sums``: ``check_rows``'s)."""
+    if level is not None:
+        v = y if o is None else y - o
+        return weighted_quantile(client, v, w, level, stats, None if sums is None else float(sums[0]))
+    return smooth_baseline(client, fam, y, w, o, stats, sums)
+
+
+# --------------------------------------------------------------------------- nuisance fit, metric
+def _local_fit_block(y, w, raw, start, fam):
+    """The family's own fit on one partition: which parameters it fits, and a starting point."""
+    y = np.asarray(y, dtype=np.float64)
+    try:
+        wt = np.ones_like(y) if w is None else np.asarray(w, dtype=np.float64)
+        with np.errstate(all="ignore"):
+            return dict(fam._fit_nuisance(y, np.asarray(raw, dtype=np.float64), wt))
+    except (ValueError, FloatingPointError, ZeroDivisionError):
+        return None
+
+
+def fit_nuisance(client, fam, y, w, raw, stats=None):
+    """Maximum-likelihood nuisance parameters at the raw scores ``raw`` (Dask array), on the cluster.
+
+    The parameters fitted are those the family's own fit returns (asymmetric
+    laplace fits its scale, not its quantile level): that fit is run on one
+    partition on a worker, which also gives the starting point.  Then the
+    weighted mean nll over all partitions is minimised over their logs, one
+    pass per evaluation.  Keeps the given parameters where no finite maximum
+    exists (as ``fit_nuisance_or_keep``)."""
+    if not fam.params:
+        return fam
+    dask, _, _ = _dask()
+    stats = {} if stats is None else stats
+    stats.setdefault("nuisance_passes", 0)
+    ys, ws, rs = y.to_delayed().ravel(), _blocks(w, y.numblocks[0]), raw.to_delayed().ravel()
+    local = None
+    for i in range(min(len(ys), 4)):  # the first partition where the family's own fit succeeds
+        local = client.compute(dask.delayed(_local_fit_block, pure=True)(ys[i], ws[i], rs[i], 0, fam)).result()
+        stats["nuisance_passes"] += 1
+        if local:
+            break
+    if not local:
+        return fam
+    names = sorted(local)
+    start = np.array([math.log(float(local[n])) if float(local[n]) > 0 else math.log(float(fam.params[n]))
+                      for n in names])
+
+    best = _newton_fd(client, fam, names, start, y, w, raw, stats)
+    if best is None:  # no convergence by Newton steps: a derivative-free search, one pass per evaluation
+        best = _search(client, fam, names, start, y, w, raw, stats)
+    if best is None or not np.all(np.isfinite(best)):
+        return fam
+    try:
+        return fam.with_params(**dict(zip(names, np.exp(best))))
+    except ValueError:
+        return fam
+
+
+def _nll_many_block(y, w, raw, start, fams):
+    """Weighted nll sums of one partition for several parameter values (one pass, several points)."""
+    y = np.asarray(y, dtype=np.float64)
+    raw = np.asarray(raw, dtype=np.float64)
+    keep = None if w is None else w > 0  # rows of weight 0 take no part (their term may be inf)
+    out = np.empty(len(fams) + 1)
+    for i, f in enumerate(fams):
+        if f is None:
+            out[i] = np.inf
+            continue
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            per = f._nll(y, raw)
+        out[i] = per.sum() if w is None else np.dot(w[keep], per[keep])
+    out[-1] = y.size if w is None else np.sum(w[keep])
+    return out
+
+
+def _mean_nll_at(client, fam, names, points, y, w, raw, stats):
+    """The weighted mean nll at several log-parameter points, in one pass."""
+    fams = []
+    for p in points:
+        try:
+            fams.append(fam.with_params(**dict(zip(names, np.exp(p)))))
+        except ValueError:
+            fams.append(None)
+    sums = partition_sums(client, _nll_many_block, [y, w, raw], fams)
+    stats["nuisance_passes"] += 1
+    with np.errstate(invalid="ignore"):
+        vals = sums[:-1] / sums[-1]
+    return np.where(np.isfinite(vals), vals, np.inf)
+
+
+#: finite-difference steps in the log-parameters: a first coarse one, then the fine one
+FD_STEPS = (1e-2, 1e-4)
+NUISANCE_TOL = 1e-9
+
+
+def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
+    """Newton steps on the log-parameters with central-difference derivatives of the mean nll; the
+    1 + 2d + 2d(d-1) evaluations of one step take one pass.  The central differences are off by
+    O(h^2) in the derivatives, so the fine step h = 1e-4 places the minimum to about 1e-8 in
+    the log-parameters (1e-8 relative); a step that does not lower the nll is halved.  None when
+    the curvature is not positive or it does not settle."""
+    d = len(names)
+    x = np.array(start, dtype=np.float64)
+    eye = np.eye(d)
+    f_x = None
+    h_i = 0
+    for _ in range(max_passes):
+        h = FD_STEPS[h_i]
+        pts = [x]
+        for i in range(d):
+            pts += [x + h * eye[i], x - h * eye[i]]
+        for i in range(d):
+            for j in range(i + 1, d):
+                for si, sj in ((1, 1), (1, -1), (-1, 1), (-1, -1)):
+                    pts.append(x + h * (si * eye[i] + sj * eye[j]))
+        v = _mean_nll_at(client, fam, names, pts, y, w, raw, stats)
+        if f_x is not None and v[0] > f_x:  # the last step went uphill: go back half-way
+            x = 0.5 * (x + x_prev)
+            continue
+        if not np.all(np.isfinite(v)):
+            return None
+        f_x = v[0]
+        g = np.array([(v[1 + 2 * i] - v[2 + 2 * i]) / (2 * h) for i in range(d)])
+        H = np.diag([(v[1 + 2 * i] - 2 * v[0] + v[2 + 2 * i]) / (h * h) for i in range(d)])
+        k = 1 + 2 * d
+        for i in range(d):
+            for j in range(i + 1, d):
+                pp, pm, mp, mm = v[k:k + 4]
+                H[i, j] = H[j, i] = (pp - pm - mp + mm) / (4 * h * h)
+                k += 4
+        try:
+            if np.linalg.eigvalsh(H).min() <= 0:
+                return None
+            step = -np.linalg.solve(H, g)
+        except np.linalg.LinAlgError:
+            return None
+        step = np.clip(step, -1.0, 1.0)
+        x_prev, x = x, x + step
+        size = float(np.max(np.abs(step)))
+        if h_i + 1 < len(FD_STEPS):
+            if size < 10 * h:
+                h_i += 1  # close: the fine difference step from here on
+        elif size <= NUISANCE_TOL:
+            return x
+    return None
+
+
+def _search(client, fam, names, start, y, w, raw, stats):
+    from scipy import optimize
+
+    def objective(logp):
+        return float(_mean_nll_at(client, fam, names, [np.atleast_1d(logp)], y, w, raw, stats)[0])
+
+    if len(names) == 1:
+        res = optimize.minimize_scalar(lambda t: objective(np.array([t])), bracket=(start[0] - 0.1, start[0] + 0.1),
+                                       method="brent", tol=1e-9)
+        return np.array([res.x])
+    res = optimize.minimize(objective, start, method="Nelder-Mead",
+                            options={"xatol": 1e-8, "fatol": 1e-14, "maxiter": 2000})
+    return res.x
+
+
+def _metric_block(y, w, raw, start, scorer):
+    return np.array(scorer.sums(np.asarray(y, dtype=np.float64), np.asarray(raw, dtype=np.float64),
+                                None if w is None else np.asarray(w, dtype=np.float64)))
+
+
+def mean_loss(client, fam, kind, y, w, raw):
+    """The weighted mean nll (or unit deviance) of Dask arrays, summed on the workers."""
+    num, den = partition_sums(client, _metric_block, [y, w, raw], Scorer(fam, kind))
+    return float(num / den) if den > 0 else float("nan")
+
+
+def _trained_block(raw, start, fam):
+    raw = np.asarray(raw, dtype=np.float64)
+    link = fam.link_function
+    with np.errstate(over="ignore", invalid="ignore"):
+        bad = ~np.isfinite(raw)
+        if not bad.any():
+            bad = ~link.prediction_domain.inside(link.inverse(raw))
+    idx = np.flatnonzero(bad)
+    return np.concatenate([[idx.size], (idx[:5] + start).astype(np.float64), np.full(5 - min(idx.size, 5), -1.0)])
+
+
+def check_trained(client, fam, raw):
+    """Refuse trained raw scores that are not finite or leave the link's range (rows named)."""
+    out = partition_results(client, _trained_block, [raw], fam)
+    count = int(sum(r[0] for r in out))
+    if count:
+        rows = [int(x) for r in out for x in r[1:] if x >= 0][:5]
+        raise ValueError(f"{fam.name}: training diverged: the trained model's raw scores at {count} training rows "
+                         f"(e.g. rows {rows}) are not finite or leave the {fam.link_function.name} link's range; "
+                         "use a smaller learning rate (or a step_limit)")
+
+
+# --------------------------------------------------------------------------- the plan
+@dataclasses.dataclass
+class ClusterPlan:
+    """The start of training on a cluster (the counterpart of ``plan.StartPlan``)."""
+
+    client: object
+    family: object
+    baseline: float
+    X: object
+    y: object
+    weight: object
+    offset: object
+    start: object  # Dask array: baseline + offset per row
+    stats: dict
+    offset_range: tuple = (0.0, 0.0)
+
+    def start_for(self, data: ClusterData, what):
+        """(X, y, w, o, start) of a validation set: its start is baseline + its offset."""
+        X, y, w, o = data.aligned(self.client)
+        check_rows(self.client, self.family, y, w, o, what)
+        if self.offset is not None and o is None:
+            raise ValueError(f"training used an offset but {what} has none: its metric would score the rows without "
+                             "their offset; give it one (zeros where there truly is none)")
+        return X, y, w, o, starts_of(y, o, self.baseline)
+
+
+def starts_of(y, o, baseline):
+    return (y * 0.0 + baseline) if o is None else (o + baseline)
+
+
+def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precision=np.float64, engine=None,
+                 drop_unit_weights=False) -> ClusterPlan:
+    """Baseline given offset and weights, starting scores and the pre-fit, computed on the workers
+    (as ``plan.start_plan``: with ``engine``, a median / quantile family starts where that engine's
+    built-in starts).  ``drop_unit_weights``: weights that are all 1 count as none (LightGBM's rule)."""
+    import time
+
+    t0 = time.perf_counter()
+    stats = {"passes": 0, "gathered": 0, "seconds": {}}
+    X, y, w, o = data.aligned(client)
+    sums = check_rows(client, fam, y, w, o, "data")
+    if drop_unit_weights and w is not None and sums[4] == 0:
+        w = None
+    t1 = time.perf_counter()
+    own = engine_start(client, fam, engine, y, w, o, stats, int(sums[3]))
+    baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums) if own is None else own))
+    if not math.isfinite(baseline):
+        raise ValueError(f"{fam.name}: no finite constant raw score minimises the nll for these targets")
+    start = client.persist(starts_of(y, o, baseline))
+    t2 = time.perf_counter()
+    if prefit and fam.location_needs_nuisance and fam.params:
+        fam = fit_nuisance(client, fam, y, w, start, stats)
+    t3 = time.perf_counter()
+    stats["seconds"].update(checks=t1 - t0, baseline=t2 - t1, prefit=t3 - t2)
+    stats["plan_seconds"] = t3 - t0
+    return ClusterPlan(client, fam, baseline, X, y, w, o, start, stats, (-float(sums[5]), float(sums[6])))
+
+
+# --------------------------------------------------------------------------- lazy predictions
+def _predict_block(fit, xb, ob):
+    return fit.predict_raw(xb, None if ob is None else np.asarray(ob, dtype=np.float64).reshape(-1))
+
+
+def _predict_part(fit, part, ob):
+    return _series(_predict_block(fit, part, ob), part.index)
+
+
+def predict_raw(fit, X, offset=None, lengths=None):
+    """Lazy raw scores of a Dask array (rows chunked) or DataFrame: the model goes to the workers
+    once (one task every partition reads), each partition predicts its rows there.
+
+    A Dask array gives a Dask array; a DataFrame a Dask Series (or, given the
+    partition ``lengths``, a Dask array).  ``offset``: a Dask array or Series
+    with one block per partition of X, or (for a Dask array X) numpy."""
+    dask, da, _ = _dask()
+    fitd = dask.delayed(fit, pure=True, traverse=False)
+    frame = _is_frame(X)
+    if frame:
+        xs = list(X.to_delayed())
+        sizes = lengths
+    else:
+        if X.ndim != 2:
+            raise ValueError(f"X must be two-dimensional, got shape {X.shape}")
+        if X.numblocks[1] != 1:
+            X = X.rechunk({1: -1})
+        xs = list(X.to_delayed().ravel())
+        sizes = X.chunks[0]
+    os_ = [None] * len(xs)
+    if offset is not None:
+        if not is_dask_collection(offset):
+            if frame:
+                raise TypeError("with a Dask DataFrame, give the offset as a Dask Series or array partitioned like it")
+            offset = da.from_array(np.asarray(offset, dtype=np.float64).reshape(-1), chunks=(X.chunks[0],))
+        if hasattr(offset, "to_dask_array") and not frame:
+            offset = offset.to_dask_array(lengths=True)
+        if not frame:
+            if offset.shape[0] != X.shape[0]:
+                raise ValueError(f"offset has {offset.shape[0]} rows but X has {X.shape[0]}")
+            offset = offset.rechunk((X.chunks[0],))
+        os_ = list(offset.to_delayed()) if hasattr(offset, "map_partitions") else list(offset.to_delayed().ravel())
+        if len(os_) != len(xs):
+            raise ValueError(f"the offset has {len(os_)} partitions, X has {len(xs)}: partition them alike")
+    if frame and sizes is None:
+        import dask.dataframe as dd
+
+        call = dask.delayed(_predict_part, pure=True)
+        return dd.from_delayed([call(fitd, xb, ob) for xb, ob in zip(xs, os_)], meta=_series(np.empty(0), None))
+    call = dask.delayed(_predict_block, pure=True)
+    parts = [da.from_delayed(call(fitd, xb, ob), shape=(int(n),), dtype=np.float64)
+             for xb, ob, n in zip(xs, os_, sizes)]
+    return da.concatenate(parts)
+
+
+def _series(values, index):
+    import pandas as pd
+
+    return pd.Series(np.asarray(values, dtype=np.float64), index=index, name="raw")
+
+
+def inverse_link_lazy(fam, raw):
+    """The inverse link applied partition by partition (a Dask array or Series stays lazy)."""
+    inv = fam.link_function.inverse
+    if hasattr(raw, "map_partitions"):
+        return raw.map_partitions(lambda s: s.__class__(inv(s.to_numpy()), index=s.index, name=s.name),
+                                  meta=raw._meta)
+    return raw.map_blocks(inv, dtype=np.float64)
+
+
+# --------------------------------------------------------------------------- after the trees
+def _range_is_fine(fam, plan, tree_range):
+    """True when every raw score the model can give the training rows (baseline + offset + the
+    trees' smallest to largest sums of leaves) is finite and inside the link's range."""
+    lo = plan.baseline + plan.offset_range[0] + tree_range[0]
+    hi = plan.baseline + plan.offset_range[1] + tree_range[1]
+    if not (math.isfinite(lo) and math.isfinite(hi)):
+        return False
+    link = fam.link_function
+    with np.errstate(over="ignore", invalid="ignore"):
+        return bool(np.all(link.prediction_domain.inside(link.inverse(np.array([lo, hi])))))
+
+
+def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kind, tree_range=None):
+    """Check the trained scores, fit the nuisance parameters (training rows, or the valid set
+    ``nuisance_set``) and score the valid sets, all on the workers; sets ``fit.fitted_family`` and
+    ``fit.info["cluster"]``.  ``valids``: list of ``ClusterPlan.start_for`` tuples.
+
+    ``tree_range``: the smallest and largest sum of leaf values the trees can give a row (the
+    engine adapter reads it from the model).  When no nuisance fit needs the training rows' raw
+    scores and that range, plus the baseline and the offsets' range, stays finite and inside the
+    link's range, no row can fail the check, and the pass that predicts every training row is
+    skipped (local training checks the engine's own training output, which costs nothing)."""
+    import time
+
+    t0 = time.perf_counter()
+    client, fam, stats = plan.client, plan.family, plan.stats
+    need_rows = bool(fam.params) and nuisance_set is None
+    if not need_rows and tree_range is not None and _range_is_fine(fam, plan, tree_range):
+        raw, stats["trained_check"] = None, "bounds"  # no row can be off: no pass over the rows needed
+    else:
+        raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
+        check_trained(client, fam, raw)
+        stats["trained_check"] = "rows"
+    t1 = time.perf_counter()
+    if not fam.params:
+        fitted = fam
+    elif nuisance_set is None:
+        fitted = fit_nuisance(client, fam, plan.y, plan.weight, raw, stats)
+    else:
+        X, y, w, o, _ = valids[int(nuisance_set)]
+        fitted = fit_nuisance(client, fam, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]), stats)
+    fit.fitted_family = fitted
+    t2 = time.perf_counter()
+    metrics = {}
+    for (X, y, w, o, _), name in zip(valids, valid_names):
+        metrics[name] = mean_loss(client, fam, metric_kind, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]))
+    t3 = time.perf_counter()
+    stats["finish_seconds"] = t3 - t0
+    stats["seconds"].update(predict_and_check=t1 - t0, nuisance=t2 - t1, valid_metrics=t3 - t2)
+    fit.info["cluster"] = {
+        "partitions": int(plan.y.numblocks[0]), "workers": len(client.scheduler_info().get("workers", {})),
+        "baseline_passes": int(stats.get("passes", 0)), "nuisance_passes": int(stats.get("nuisance_passes", 0)),
+        "gathered_rows": int(stats.get("gathered", 0)), "valid_metrics": metrics,
+        "trained_check": stats.get("trained_check"),
+        "lossfam_seconds": float(stats["plan_seconds"] + stats["finish_seconds"]),
+        "seconds": {k: round(float(v), 4) for k, v in stats["seconds"].items()},
+    }
+    return fit
+
+
+def refuse_refit(fam, engine_name):
+    raise ValueError(
+        f"{fam.name} would refit leaves in Python (native=False or a non-default step_limit), which lossfam does "
+        f"not run on a Dask cluster; train with native=True and the default step_limit ({engine_name}'s built-in "
+        "twin renews the leaves on the workers)")

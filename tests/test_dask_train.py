@@ -1,0 +1,283 @@
+"""``train`` on a Dask cluster (``lossfam.ClusterData``), both engines, on a two-worker LocalCluster.
+
+Scenarios (demo data of our own, numpy Generator seeded):
+  * claim counts per policy, Poisson with the policy's years at risk as exposure
+    (offset log years), mean e^(-1.2 + 0.5 sin(2 x0) + 0.4 x1);
+  * delivery delays, skewed (a gamma-distributed delay around a log-linear
+    effect), modelled at the 0.9 quantile with asymmetric_laplace.
+Each is trained on one machine and on the cluster from the same rows in 16
+partitions; the checks are the held-out metric (within 1%), the baseline (to
+rounding for the poisson mean, exactly for the quantile), the nuisance fit, the
+cluster-side metric, and save on the cluster -> load locally -> identical
+predictions.
+"""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import lossfam
+
+lgb = pytest.importorskip("lightgbm")
+xgb = pytest.importorskip("xgboost")
+da = pytest.importorskip("dask.array")
+distributed = pytest.importorskip("dask.distributed")
+pytest.importorskip("xgboost.dask")
+pytest.importorskip("lightgbm.dask")
+
+from lossfam import lightgbm as lfl  # noqa: E402
+from lossfam import xgboost as lfx  # noqa: E402
+from lossfam._boost import cluster  # noqa: E402
+from lossfam._boost.quantiles import sample_quantile  # noqa: E402
+
+PARTS = 16
+N_TRAIN, N_TEST = 8000, 4000
+ROUNDS = 40
+PARAMS = {
+    "lightgbm": {"num_leaves": 15, "learning_rate": 0.1, "min_data_in_leaf": 20, "seed": 1},
+    "xgboost": {"max_depth": 4, "eta": 0.1, "tree_method": "hist", "nthread": 1, "seed": 1},
+}
+
+
+@pytest.fixture(scope="module")
+def client():
+    # real worker processes: the model, the families and lossfam's per-partition tasks are pickled to them
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as lc, \
+            distributed.Client(lc) as c:
+        yield c
+
+
+def _claims(seed, n):
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(n, 4))
+    years = rng.uniform(0.2, 3.0, n)
+    y = rng.poisson(years * np.exp(-1.2 + 0.5 * np.sin(2 * X[:, 0]) + 0.4 * X[:, 1])).astype(float)
+    return X, y, None, np.log(years)
+
+
+def _delays(seed, n):
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(n, 4))
+    y = np.exp(0.3 * X[:, 0] - 0.2 * X[:, 1]) * rng.gamma(2.0, 1.5, n) + 0.5 * np.abs(X[:, 2])
+    w = rng.uniform(0.5, 2.0, n)  # weighted rows: the quantile selection must use the weights
+    return X, y, w, None
+
+
+CASES = {"poisson_exposure": ("poisson", {}, _claims), "asymmetric_laplace_0.9": ("asymmetric_laplace", {"quantile": 0.9}, _delays)}
+
+
+def _dask(a, parts=PARTS):
+    if a is None:
+        return None
+    rows = -(-a.shape[0] // parts)
+    return da.from_array(a, chunks=(rows,) + a.shape[1:])
+
+
+def _local(engine, fam, X, y, w, o):
+    if engine == "lightgbm":
+        return lfl.train(fam, dict(PARAMS[engine], num_threads=1, verbosity=-1), lgb.Dataset(X, y, weight=w), ROUNDS,
+                         offset=o)
+    return lfx.train(fam, PARAMS[engine], xgb.DMatrix(X, y, weight=w, base_margin=o), ROUNDS, verbose_eval=False)
+
+
+def _cluster(engine, fam, X, y, w, o, client):
+    data = lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w), offset=_dask(o))
+    mod = lfl if engine == "lightgbm" else lfx
+    return mod.train(fam, PARAMS[engine], data, ROUNDS, client=client)
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+@pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
+def test_cluster_train_matches_local(engine, case, client, tmp_path):
+    name, params, make = CASES[case]
+    fam = lossfam.family(name, **params)
+    X, y, w, o = make(11, N_TRAIN)
+    Xt, yt, wt, ot = make(12, N_TEST)
+    local = _local(engine, fam, X, y, w, o)
+    fit = _cluster(engine, fam, X, y, w, o, client)
+    assert type(fit) is type(local) is lossfam.BoostedFit
+    assert fit.info["cluster"]["partitions"] >= 16 and fit.info["objective"] == local.info["objective"]
+    # without a nuisance fit the trained scores are checked from the trees' range, with one by predicting the rows
+    assert fit.info["cluster"]["trained_check"] == ("rows" if fam.params else "bounds")
+
+    # the baseline: the quantile by exact selection is the local number; the poisson mean (the root of
+    # the summed gradient) agrees to rounding: its partition sums are added in another order
+    if name == "asymmetric_laplace":
+        assert fit.baseline == local.baseline
+    else:
+        assert fit.baseline == pytest.approx(local.baseline, rel=1e-12, abs=0)
+
+    # held-out metric: the cluster's trees differ a little (each worker bins its own rows), the loss not
+    held_local = local.mean_loss(Xt, yt, weight=wt, offset=ot)
+    held_cluster = fit.mean_loss(Xt, yt, weight=wt, offset=ot)
+    assert abs(held_cluster - held_local) <= 0.01 * abs(held_local), (held_cluster, held_local)
+    # the same metric computed on the workers from Dask collections is the local number
+    on_workers = fit.mean_loss(_dask(Xt), _dask(yt), weight=_dask(wt), offset=_dask(ot), client=client)
+    assert on_workers == pytest.approx(held_cluster, rel=1e-12)
+
+    # predictions on Dask input are lazy and equal the in-memory ones
+    lazy = fit.predict_raw(_dask(Xt), offset=_dask(ot))
+    assert isinstance(lazy, da.Array)
+    raw_t = lazy.compute()
+    np.testing.assert_array_equal(raw_t, fit.predict_raw(Xt, ot))
+
+    # save on the cluster -> load locally -> identical predictions (and the same family and fit)
+    path = tmp_path / f"{engine}_{case}.json"
+    fit.save(path)
+    back = lossfam.load(path)
+    np.testing.assert_array_equal(back.predict_raw(Xt, ot), raw_t)
+    np.testing.assert_array_equal(back.predict_raw(_dask(Xt), offset=_dask(ot)).compute(), raw_t)  # loaded, on Dask
+    np.testing.assert_array_equal(back.predict(Xt, ot), fit.predict(_dask(Xt), offset=_dask(ot)).compute())
+    assert back.baseline == fit.baseline and back.fitted_family == fit.fitted_family
+
+    # the nuisance fit on the workers: asymmetric_laplace's scale is the family's own closed form
+    # (the weighted mean pinball loss) at the trained raw scores, to the optimiser's tolerance
+    if fam.params:
+        train_raw = fit.predict_raw(X, o)
+        own = fit.family.fit_nuisance(y, train_raw, w)
+        assert fit.fitted_family.quantile == fam.quantile
+        assert fit.fitted_family.scale == pytest.approx(own.scale, rel=1e-7)
+
+
+def test_dataframe_input_and_lazy_series(client, tmp_path):
+    """Dask DataFrame features and Series targets/weights; predictions come back as a lazy Series."""
+    pd = pytest.importorskip("pandas")
+    dd = pytest.importorskip("dask.dataframe")
+    X, y, w, _ = _delays(13, 4000)
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    df = pd.DataFrame(X, columns=["distance", "load", "hour", "weekday"])
+    ddf = dd.from_pandas(df, npartitions=PARTS)
+    fit = lfl.train(fam, PARAMS["lightgbm"], lossfam.ClusterData(ddf, dd.from_pandas(pd.Series(y), npartitions=PARTS),
+                                                                  weight=dd.from_pandas(pd.Series(w), npartitions=PARTS)),
+                    20, client=client)
+    assert fit.baseline == fam.baseline(y, w)
+    out = fit.predict(ddf)
+    assert isinstance(out, dd.Series)
+    got = out.compute()
+    np.testing.assert_array_equal(got.to_numpy(), fit.predict(df))
+    assert list(got.index) == list(df.index)
+    path = tmp_path / "delays.json"
+    fit.save(path)
+    back = lossfam.load(path)  # the loaded model on pandas and on a Dask DataFrame
+    np.testing.assert_array_equal(back.predict(df), got.to_numpy())
+    np.testing.assert_array_equal(back.predict(ddf).compute().to_numpy(), got.to_numpy())
+    with pytest.raises(TypeError, match="scipy law in memory"):
+        fit.distribution(ddf)
+
+
+# ----------------------------------------------------------------------------- the reductions alone
+@pytest.mark.parametrize("q", [pytest.param(0.1, marks=pytest.mark.slow), pytest.param(0.5, marks=pytest.mark.slow), 0.9])
+def test_weighted_quantile_is_exact_selection(client, monkeypatch, q):
+    """Against lossfam._boost.quantiles.sample_quantile (the local baseline's definition) on targets with
+    many ties and with cumulative weights that hit q W exactly; a tiny gather limit forces several
+    narrowing rounds."""
+    monkeypatch.setattr(cluster, "SELECT_GATHER", 64)
+    monkeypatch.setattr(cluster, "SELECT_PIVOTS", 8 * PARTS)
+    rng = np.random.default_rng(5)
+    n = 3000
+    x = rng.integers(0, 40, n).astype(float) + np.where(rng.random(n) < 0.5, rng.normal(size=n), 0.0)
+    w = rng.integers(0, 4, n).astype(float)  # zeros take no part
+    for weight in (None, w):
+        stats = {"passes": 0, "gathered": 0}
+        got = cluster.weighted_quantile(client, _dask(x), _dask(weight), q, stats)
+        assert got == sample_quantile(x, weight, q), (q, weight is None)
+        assert stats["gathered"] <= 64 * PARTS
+    # ties of the cumulative weight with q W: 10 rows of weight 1, q = 0.5 -> midpoint of rows 5 and 6
+    x10 = np.arange(10.0)[::-1].copy()
+    assert cluster.weighted_quantile(client, _dask(x10, 4), None, 0.5) == sample_quantile(x10, None, 0.5) == 4.5
+
+
+LEAN = ("gamma",)  # the default run; every other smooth family runs with -m slow
+
+
+@pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
+def test_engine_start_is_the_local_one(client, engine):
+    """Where each engine's built-in quantile objective starts (lossfam._boost.facts.engine_start: its
+    own sample quantile in single precision, HF 7 / HF 6 without weights, the inverted cdf or the
+    midpoint with them), computed on the cluster from exact order statistics: the local number, bit
+    for bit, on targets with ties, with and without weights and an offset."""
+    from lossfam._boost import facts
+
+    rng = np.random.default_rng(9)
+    n = 2400
+    y = np.round(rng.gamma(2.0, 1.5, n), 1)  # many ties
+    o = 0.1 * rng.integers(0, 3, n)
+    w = rng.uniform(0.5, 2.0, n)
+    for tau in (0.9, 0.23):
+        fam = lossfam.family("asymmetric_laplace", quantile=tau)
+        for weight, offset in ((None, None), (None, o), (w, o)):
+            local = facts.engine_start(fam, engine, y, weight, offset)
+            stats = {"passes": 0, "gathered": 0}
+            wd = _dask(weight)
+            yd, od = _dask(y), _dask(offset)
+            got = cluster.engine_start(client, fam, engine, yd, wd, od, stats, n)
+            if local is None:  # the engine falls back to the family's baseline: the exact midpoint quantile
+                assert got is None
+                local = fam.baseline(y, weight, offset=offset)
+                got = cluster.weighted_quantile(client, yd if od is None else yd - od, wd, tau)
+            assert got == local, (engine, tau, weight is None, offset is None)
+
+
+def _smooth_families():
+    names = [n for n in lossfam.available() if lossfam.family(n).leaf_value == "newton"]
+    return [n if n in LEAN else pytest.param(n, marks=pytest.mark.slow) for n in names]
+
+
+@pytest.mark.parametrize("name", _smooth_families())
+def test_cluster_baseline_equals_local(client, name):
+    """The root of the summed gradient, found by passes over 16 partitions, is family.baseline: at least
+    as good a minimiser of the weighted nll (to rounding) and within 1e-6 of it (some families' own
+    baseline stops at scipy.optimize.minimize_scalar's default tolerance, 1.5e-8 relative in the raw
+    score; the closed forms agree to 1e-12, checked for poisson in test_cluster_train_matches_local)."""
+    fam = lossfam.family(name)
+    rng = np.random.default_rng(7)
+    n = 3200
+    X = rng.normal(size=(n, 2))
+    shift = 1.0 if fam.link_function.name == "identity" else 0.0
+    y = fam.check_target(np.asarray(fam.distribution(0.3 * X[:, 0] + shift).rvs(random_state=rng), dtype=float),
+                         for_nll=False)
+    w = rng.uniform(0.5, 2.0, n)
+    o = 0.2 * X[:, 1]
+    stats = {"passes": 0}
+    got = cluster.smooth_baseline(client, fam, _dask(y), _dask(w), _dask(o), stats)
+    local = fam.baseline(y, w, offset=o)
+    assert got == pytest.approx(local, rel=1e-6, abs=1e-9), name
+
+    def mean_nll(c):
+        return float(np.dot(w, fam.nll(y, c + o)) / w.sum())
+    assert mean_nll(got) <= mean_nll(local) + 1e-13 * abs(mean_nll(local)), name
+    assert stats["passes"] <= 40
+
+
+def test_bad_rows_are_named_and_refit_is_refused(client):
+    X, y, _, o = _claims(3, 1600)
+    y[1234] = -1.0
+    with pytest.raises(ValueError, match="rows 1200..1299"):
+        lfx.train("poisson", PARAMS["xgboost"], lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 5,
+                  client=client)
+    Xd, yd, wd, _ = _delays(3, 1600)
+    with pytest.raises(ValueError, match="does not run on a Dask cluster"):
+        lfl.train("laplace", PARAMS["lightgbm"], lossfam.ClusterData(_dask(Xd), _dask(yd)), 5, native=False,
+                  client=client)
+
+
+@pytest.mark.slow
+def test_nuisance_set_evals_and_early_stopping(client):
+    """XGBoost on the cluster with an eval set: its metric adds the workers' sums, early stopping cuts
+    the model, and nuisance_set fits the scale on the eval rows (the family's own closed form there)."""
+    X, y, w, _ = _delays(21, 4000)
+    Xv, yv, wv, _ = _delays(22, 2000)
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    valid = lossfam.ClusterData(_dask(Xv), _dask(yv), weight=_dask(wv))
+    history = {}
+    fit = lfx.train(fam, dict(PARAMS["xgboost"], eta=0.5), lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w)),
+                    200, evals=[(valid, "valid")], early_stopping_rounds=5, nuisance_set=0, evals_result=history,
+                    verbose_eval=False, client=client)
+    logged = history["valid"][f"{fam.name}_nll"]
+    assert fit.best_iteration is not None and fit.best_iteration + 1 == fit.booster.num_boosted_rounds() < 200
+    raw_v = fit.predict_raw(Xv)
+    # the engine's metric at the best round is lossfam's nll of the cut model on all eval rows
+    expect = float(np.dot(wv, fam.nll(yv, raw_v)) / wv.sum())
+    assert logged[fit.best_iteration] == pytest.approx(expect, rel=1e-5)
+    assert fit.info["cluster"]["valid_metrics"]["valid"] == pytest.approx(expect, rel=1e-9)
+    assert fit.fitted_family.scale == pytest.approx(fam.fit_nuisance(yv, raw_v, wv).scale, rel=1e-7)
