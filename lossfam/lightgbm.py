@@ -109,9 +109,9 @@ def _call_style(a, b, c):
 class _Objective:
     """The family's gradient and Hessian as a LightGBM custom objective (see ``objective``)."""
 
-    def __init__(self, fam, guard, check_start=True):
+    def __init__(self, fam, guard, check_start=True, engine_buffers=False):
         self.family = fam
-        self.grads = Gradients(fam, guard)
+        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers)
         self.check_start = check_start
         self._cache = TargetCache()
 
@@ -325,7 +325,7 @@ class _Refit:
         self.level = facts.leaf_level(fam)
         # LightGBM's own renewal definition, so that the custom path grows the native twin's model
         self.definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
-        self.grads = Gradients(fam, guard)
+        self.grads = Gradients(fam, guard, engine_buffers=True)
         self.lr = lr
         self.y, self.w = y, w
         self.X, self.raw, self.datasets = [X_train], [start.copy()], []
@@ -539,7 +539,7 @@ def _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid):
     elif twin is not None:
         params.update(twin)
     else:
-        params["objective"] = _Objective(fam, guard, check_start=False)
+        params["objective"] = _Objective(fam, guard, check_start=False, engine_buffers=True)
     params.setdefault("metric", "None")
     return refit
 
