@@ -267,6 +267,15 @@ def _label_weight(data, fam, what):
     return y, w
 
 
+def _label_is_a_copy(data, y):
+    """True when ``y`` was converted from the constructed Dataset's own (float32) label: reading it
+    again gives the same values, and nobody else holds the float64 copy."""
+    if data._handle is None:
+        return False
+    label = data.get_label()
+    return label is not None and np.asarray(label).dtype == np.float32 and not np.shares_memory(label, y)
+
+
 def _check_no_user_init_score(data, what):
     if _field(data, "init_score") is not None:
         raise ValueError(
@@ -440,8 +449,12 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
     twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native,
                              guard_is_default=guard == resolve_guard(fam, "auto"), params=call.params)
     refit = _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid)
+    if refit is None and _label_is_a_copy(data, y):
+        y = w = None  # a float64 copy of LightGBM's float32 label: read again after training, not held during it
 
     run = _run(lgb, call, num_boost_round, plan, valid, refit, twin)
+    if y is None:
+        y, w = _label_weight(data, fam, "data")
 
     # the trained model: its training scores checked, its nuisance parameters fitted
     fitted = _finish(call, fam, y, w, run, valid)
@@ -611,7 +624,8 @@ def _run(lgb, call, num_boost_round, plan, valid, refit, twin):
         elif refit is not None:
             run.train_raw = np.asarray(booster.predict(refit.X[0], raw_score=True), dtype=np.float64) + plan.start
         else:
-            _clear_start(data)  # the booster's score cache holds the start now: free the Dataset's copy
+            _clear_start(data)  # the booster's score cache holds the start now
+            plan.start = None  # nor is lossfam's array needed any more: free it before the output's buffer
             out = _training_output(booster, copy=call.keep_training)
             if twin is not None:
                 run.train_pred = out
