@@ -440,7 +440,7 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
 
     # the start: targets, baseline given offset and weights, nuisance pre-fit, starting scores
     y, w = _label_weight(data, fam, "data")
-    plan = start_plan(fam, y, w, offset, prefit=prefit)
+    plan = start_plan(fam, y, w, offset, prefit=prefit, engine=_ENGINE)
     fam = plan.family
     guard = resolve_guard(fam, step_limit)
     valid = _ValidStarts(lgb, call, plan, fam)

@@ -7,6 +7,7 @@ import dataclasses
 import numpy as np
 
 from .. import _checks
+from . import facts
 
 
 @dataclasses.dataclass
@@ -19,7 +20,9 @@ class StartPlan:
         ``location_needs_nuisance`` (and ``prefit`` is on).
     baseline
         The constant raw score minimising the weighted nll given the offset
-        (``family.baseline(y, w, offset=o)``), rounded to ``precision``.
+        (``family.baseline(y, w, offset=o)``), rounded to ``precision``; for
+        a median / quantile family the engine's own start, a sample quantile
+        of the targets by the engine's definition (``facts.engine_start``).
     start
         Starting raw scores of the training rows: ``baseline + offset``.
     """
@@ -37,11 +40,15 @@ class StartPlan:
         return s
 
 
-def start_plan(fam, y, w, offset=None, *, prefit=True, precision=np.float64) -> StartPlan:
-    """Baseline given offset and weights, starting scores and the pre-fit (see StartPlan)."""
+def start_plan(fam, y, w, offset=None, *, prefit=True, precision=np.float64, engine=None) -> StartPlan:
+    """Baseline given offset and weights, starting scores and the pre-fit (see StartPlan).
+
+    With ``engine``, a median / quantile family starts where that engine's
+    built-in objective starts (``facts.engine_start``)."""
     o = None if offset is None else _checks.check_raw(np.asarray(offset, dtype=np.float64).reshape(-1), y,
                                                       f"{fam.name} offset")
-    baseline = float(precision(fam.baseline(y, w, offset=o)))
+    own = None if engine is None else facts.engine_start(fam, engine, y, w, o)
+    baseline = float(precision(fam.baseline(y, w, offset=o) if own is None else own))
     start = np.full(y.shape, baseline) if o is None else baseline + o
     if prefit and fam.location_needs_nuisance and fam.params:
         fam = fit_nuisance_or_keep(fam, y, start, w)
