@@ -117,11 +117,12 @@ class _Objective:
 
     def __call__(self, a, b, c=None, d=None):
         raw, y, w, data = _call_style(a, b, c)
+        narrow = self.grads.engine_buffers
         if data is not None:
             y64, w64 = self._cache.get(self.family, (data,), lambda: (data.get_label(), data.get_weight()),
-                                       for_nll=False)
+                                       for_nll=False, narrow=narrow)
         else:
-            y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=False)
+            y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=False, narrow=narrow)
         raw = np.asarray(raw, dtype=np.float64)
         if raw.shape != y64.shape:
             raise ValueError(

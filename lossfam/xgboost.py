@@ -115,10 +115,12 @@ class _Objective:
     def __call__(self, first, second, sample_weight=None):
         fam = self.family
         if isinstance(second, self._dmatrix_type):  # xgb.train: (preds, dtrain)
-            y, w = self._cache.get(fam, (second,), lambda: _dmatrix_targets(second), for_nll=False)
+            y, w = self._cache.get(fam, (second,), lambda: _dmatrix_targets(second), for_nll=False,
+                                   narrow=self.engine_buffers)
             raw = first
         else:  # scikit-learn classes: (y_true, y_pred[, sample_weight])
-            y, w = self._cache.get(fam, (first, sample_weight), lambda: (first, sample_weight), for_nll=False)
+            y, w = self._cache.get(fam, (first, sample_weight), lambda: (first, sample_weight), for_nll=False,
+                                   narrow=self.engine_buffers)
             raw = second
         raw = np.asarray(raw).reshape(-1)
         if raw.shape != y.shape:

@@ -101,7 +101,8 @@ class Gradients:
         self._out = None
 
     def __call__(self, y, raw, w):
-        """(g, h) at validated float64 ``y``, ``raw`` (float64) and ``w`` (or None)."""
+        """(g, h) at validated float64 ``y`` (float32 with ``engine_buffers``), ``raw`` (float64) and
+        ``w`` (or None)."""
         if self.engine_buffers and y.ndim == 1 and y.size > 0:
             return self._into_buffers(y, raw, w)
         g, h = self._assemble(y, raw, w)
@@ -140,11 +141,11 @@ class Gradients:
         g32, h32 = self._out
         for i in range(0, n, self._BLOCK):
             rows = slice(i, i + self._BLOCK)
-            g, h = self._assemble(y[rows], raw[rows], None if w is None else w[rows])
+            g, h = self._assemble(y[rows].astype(np.float64, copy=False), raw[rows], None if w is None else w[rows])
             if not _plausible(g, h):
                 if _invalid(g, h).any():
                     # the error names rows of the whole set: let the whole-array path raise it
-                    whole_g, whole_h = self._assemble(y, raw, w)
+                    whole_g, whole_h = self._assemble(np.asarray(y, dtype=np.float64), raw, w)
                     self._repair(whole_g, whole_h, raw)
                 self._repair(g, h, raw[rows])  # rows with h = 0 only
             g32[rows] = g
@@ -223,12 +224,17 @@ class TargetCache:
         self._refs = None
         self._y = self._w = None
 
-    def get(self, fam, keys, read, *, for_nll):
+    def get(self, fam, keys, read, *, for_nll, narrow=False):
+        """``narrow=True``: float32 targets are validated in float64 but kept in float32 (half the
+        memory; widening them again is exact), for ``Gradients(engine_buffers=True)``."""
         if self._refs is not None and len(self._refs) == len(keys) and all(
                 r() is k for r, k in zip(self._refs, keys)):
             return self._y, self._w
         y, w = read()
+        single = np.asarray(y).reshape(-1) if narrow else None
         y = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1), for_nll=for_nll)
+        if single is not None and single.dtype == np.float32 and single.shape == y.shape:
+            y = single
         w = None if w is None or np.size(w) == 0 else _checks.check_weight(np.asarray(w).reshape(-1), y, fam.name)
         try:
             self._refs = [_ref(k) for k in keys]
