@@ -127,7 +127,14 @@ NONNEGATIVE_INTEGER = Domain(
     lambda a: _quick_nonneg(a) and bool(np.array_equal(np.floor(a), a)),
 )
 BINARY = Domain("0 or 1", lambda a: (a == 0) | (a == 1))
-OPEN_UNIT = Domain("strictly between 0 and 1", lambda a: (a > 0) & (a < 1))
+
+
+def _quick_open_unit(arr):
+    lo, hi = _bounds(arr)
+    return lo > 0 and hi < 1  # False for NaN
+
+
+OPEN_UNIT = Domain("strictly between 0 and 1", lambda a: (a > 0) & (a < 1), _quick_open_unit)
 
 
 def check_target(y, domain: Domain, owner: str) -> np.ndarray:
@@ -190,6 +197,8 @@ def unit_weight(weight, y: np.ndarray, owner: str) -> np.ndarray:
 
 def finite_residuals(r: np.ndarray, owner: str) -> np.ndarray:
     """Residuals y - raw, refused (rows named) where the subtraction overflowed."""
+    if _finite_sum(r):  # one pass, no mask: every entry is finite
+        return r
     bad = ~np.isfinite(r)
     if np.any(bad):
         raise ValueError(f"{owner}: y - raw overflows float64 in {rows_text(bad, r)}; the nuisance parameters cannot be fitted")

@@ -115,19 +115,20 @@ def _call_style(a, b, c):
 class _Objective:
     """The family's gradient and Hessian as a LightGBM custom objective (see ``objective``)."""
 
-    def __init__(self, fam, guard, check_start=True):
+    def __init__(self, fam, guard, check_start=True, engine_buffers=False):
         self.family = fam
-        self.grads = Gradients(fam, guard)
+        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers)
         self.check_start = check_start
         self._cache = TargetCache()
 
     def __call__(self, a, b, c=None, d=None):
         raw, y, w, data = _call_style(a, b, c)
+        narrow = self.grads.engine_buffers
         if data is not None:
             y64, w64 = self._cache.get(self.family, (data,), lambda: (data.get_label(), data.get_weight()),
-                                       for_nll=False)
+                                       for_nll=False, narrow=narrow)
         else:
-            y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=False)
+            y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=False, narrow=narrow)
         raw = np.asarray(raw, dtype=np.float64)
         if raw.shape != y64.shape:
             raise ValueError(
@@ -273,12 +274,33 @@ def _label_weight(data, fam, what):
     return y, w
 
 
+def _label_is_a_copy(data, y):
+    """True when ``y`` was converted from the constructed Dataset's own (float32) label: reading it
+    again gives the same values, and nobody else holds the float64 copy."""
+    if data._handle is None:
+        return False
+    label = data.get_label()
+    return label is not None and np.asarray(label).dtype == np.float32 and not np.shares_memory(label, y)
+
+
 def _check_no_user_init_score(data, what):
     if _field(data, "init_score") is not None:
         raise ValueError(
             f"{what} already has an init_score; lossfam.lightgbm.train sets the starting score "
             "itself (baseline + offset): pass a per-row raw-scale term as offset=/valid_offsets= instead"
         )
+
+
+def _set_start(data, start):
+    """Set the starting scores as the Dataset's init_score.
+
+    On a constructed Dataset through ``set_field``, which copies them into LightGBM once
+    (``set_init_score`` would also read a second copy back into Python)."""
+    if data._handle is None:
+        data.set_init_score(start)
+    else:
+        data.set_field("init_score", start)
+        data.init_score = start
 
 
 def _clear_start(data):
@@ -319,7 +341,7 @@ class _Refit:
         self.level = facts.leaf_level(fam)
         # LightGBM's own renewal definition, so that the custom path grows the native twin's model
         self.definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
-        self.grads = Gradients(fam, guard)
+        self.grads = Gradients(fam, guard, engine_buffers=True)
         self.lr = lr
         self.y, self.w = y, w
         self.X, self.raw, self.datasets = [X_train], [start.copy()], []
@@ -430,168 +452,252 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
                              f"lightgbm.train arguments are not supported there (got {sorted(engine_kwargs)})")
         return _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, step_limit, native,
                               nuisance_set, metric_kind, prefit, client)
-    if not isinstance(data, lgb.Dataset):
-        raise ValueError(f"data must be a lightgbm.Dataset, got {type(data).__name__}")
-    params = dict(params or {})
-    if any(k in params for k in _OBJECTIVE_NAMES):
-        raise ValueError("params must not set the objective: the family is the objective")
-    if "init_model" in engine_kwargs:
-        raise ValueError("init_model is not supported by lossfam.lightgbm.train (the baseline would be added twice)")
-    if isinstance(valid_sets, lgb.Dataset):
-        valid_sets = [valid_sets]
-    valid_sets = list(valid_sets or [])
-    user_feval = engine_kwargs.pop("feval", None)
-    user_feval = [] if user_feval is None else (list(user_feval) if isinstance(user_feval, (list, tuple)) else [user_feval])
-    callbacks = list(callbacks or [])
-    keep_training = bool(engine_kwargs.pop("keep_training_booster", False))
-    if valid_offsets is not None:
-        valid_offsets = list(valid_offsets)
-        if len(valid_offsets) != len(valid_sets):
-            raise ValueError(f"valid_offsets has {len(valid_offsets)} entries for {len(valid_sets)} valid_sets")
-    else:
-        valid_offsets = [None] * len(valid_sets)
-    if nuisance_set is not None and not (0 <= int(nuisance_set) < len(valid_sets)):
-        raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(valid_sets)} valid_sets")
+    call = _Call(lgb, params, data, valid_sets, valid_names, valid_offsets, nuisance_set, callbacks, engine_kwargs)
 
+    # the start: targets, baseline given offset and weights, nuisance pre-fit, starting scores
     y, w = _label_weight(data, fam, "data")
     plan = start_plan(fam, y, w, offset, prefit=prefit, engine=_ENGINE)
     fam = plan.family
     guard = resolve_guard(fam, step_limit)
+    valid = _ValidStarts(lgb, call, plan, fam)
 
-    _check_no_user_init_score(data, "data")
-    starts, vdata = {}, {}
-    for k, (vs, vo) in enumerate(zip(valid_sets, valid_offsets)):
-        if vs is data:
-            if vo is not None:
-                raise ValueError(f"valid_sets[{k}] is the training set: its offset is offset=, not valid_offsets")
-            continue
-        if not isinstance(vs, lgb.Dataset):
-            raise ValueError(f"valid_sets[{k}] must be a lightgbm.Dataset, got {type(vs).__name__}")
-        _check_no_user_init_score(vs, f"valid_sets[{k}]")
-        if plan.offset is not None and vo is None:
-            raise ValueError(
-                f"training used an offset but valid_sets[{k}] has none: its metric would score the rows without "
-                "their offset (and mislead early stopping); pass valid_offsets (zeros where there truly is none)"
-            )
-        vy, vw = _label_weight(vs, fam, f"valid_sets[{k}]")
-        vdata[k] = (vy, vw)
-        starts[k] = plan.start_for(vy.size, vo, f"valid_offsets[{k}]")
-
-    rule = facts.leaf_rule(fam)
+    # the engine's objective: the native twin, the Python objective, or the Python objective with leaf refit
     twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native,
-                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
-    refit = None
-    if twin is None and rule != "newton":
-        if str(params.get("metric", "None")).lower() not in ("none", "na", "null", "custom", ""):
-            raise ValueError(f"{fam.name} refits leaves and keeps its own scores; LightGBM's built-in metrics "
-                             "would see the unedited ones: drop params['metric']")
-        bag = None
-        fraction = float(_param(params, ("bagging_fraction", "sub_row", "subsample", "bagging"), 1.0))
-        freq = int(_param(params, ("bagging_freq", "subsample_freq"), 0))
-        if fraction < 1.0 and freq > 0:
-            bag = RowBag(y.size, fraction, freq, int(_param(params, ("bagging_seed", "seed"), 3)))
-            for k in ("bagging_fraction", "sub_row", "subsample", "bagging", "bagging_freq", "subsample_freq"):
-                params.pop(k, None)
-        threads = _param(params, _THREAD_NAMES, None)
-        refit = _Refit(fam, guard, float(_param(params, _LR_NAMES, 0.1)), y, w, _feature_data(data, "data"),
-                       plan.start, bag, {} if threads is None else {"num_threads": int(threads)})
-        for k, vs in enumerate(valid_sets):
-            if k in starts:
-                refit.track(vs, _feature_data(vs, f"valid_sets[{k}]"), starts[k])
+                             guard_is_default=guard == resolve_guard(fam, "auto"), params=call.params)
+    refit = _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid)
+    if refit is None and _label_is_a_copy(data, y):
+        y = w = None  # a float64 copy of LightGBM's float32 label: read again after training, not held during it
 
+    run = _run(lgb, call, num_boost_round, plan, valid, refit, twin)
+    if y is None:
+        y, w = _label_weight(data, fam, "data")
+
+    # the trained model: its training scores checked, its nuisance parameters fitted
+    fitted = _finish(call, fam, y, w, run, valid)
+    info = {"objective": run.twin["objective"] if run.twin else "custom",
+            "leaf_value": facts.leaf_rule(fam) if run.twin is None else "engine",
+            "step_limit": None if guard.limit is None else guard.limit, "hessian_damping": guard.damping}
+    best = run.best - 1 if run.best > 0 else None
+    return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, best, info)
+
+
+class _Call:
+    """The arguments of one ``train`` call, checked, with lossfam's own keywords taken out."""
+
+    def __init__(self, lgb, params, data, valid_sets, valid_names, valid_offsets, nuisance_set, callbacks,
+                 engine_kwargs):
+        if not isinstance(data, lgb.Dataset):
+            raise ValueError(f"data must be a lightgbm.Dataset, got {type(data).__name__}")
+        params = dict(params or {})
+        if any(k in params for k in _OBJECTIVE_NAMES):
+            raise ValueError("params must not set the objective: the family is the objective")
+        if "init_model" in engine_kwargs:
+            raise ValueError("init_model is not supported by lossfam.lightgbm.train (the baseline would be added twice)")
+        if isinstance(valid_sets, lgb.Dataset):
+            valid_sets = [valid_sets]
+        valid_sets = list(valid_sets or [])
+        engine_kwargs = dict(engine_kwargs)
+        feval = engine_kwargs.pop("feval", None)
+        self.user_feval = [] if feval is None else (list(feval) if isinstance(feval, (list, tuple)) else [feval])
+        self.keep_training = bool(engine_kwargs.pop("keep_training_booster", False))
+        if valid_offsets is not None:
+            valid_offsets = list(valid_offsets)
+            if len(valid_offsets) != len(valid_sets):
+                raise ValueError(f"valid_offsets has {len(valid_offsets)} entries for {len(valid_sets)} valid_sets")
+        else:
+            valid_offsets = [None] * len(valid_sets)
+        if nuisance_set is not None and not (0 <= int(nuisance_set) < len(valid_sets)):
+            raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(valid_sets)} valid_sets")
+        self.params, self.data, self.valid_sets, self.valid_offsets = params, data, valid_sets, valid_offsets
+        self.valid_names = valid_names
+        self.nuisance_set = None if nuisance_set is None else int(nuisance_set)
+        self.callbacks = list(callbacks or [])
+        self.fevals = []
+        self.engine_kwargs = engine_kwargs
+
+
+class _ValidStarts:
+    """Targets and starting scores of the validation sets other than the training set (by index)."""
+
+    def __init__(self, lgb, call, plan, fam):
+        _check_no_user_init_score(call.data, "data")
+        self.starts, self.targets = {}, {}
+        for k, (vs, vo) in enumerate(zip(call.valid_sets, call.valid_offsets)):
+            if vs is call.data:
+                if vo is not None:
+                    raise ValueError(f"valid_sets[{k}] is the training set: its offset is offset=, not valid_offsets")
+                continue
+            if not isinstance(vs, lgb.Dataset):
+                raise ValueError(f"valid_sets[{k}] must be a lightgbm.Dataset, got {type(vs).__name__}")
+            _check_no_user_init_score(vs, f"valid_sets[{k}]")
+            if plan.offset is not None and vo is None:
+                raise ValueError(
+                    f"training used an offset but valid_sets[{k}] has none: its metric would score the rows without "
+                    "their offset (and mislead early stopping); pass valid_offsets (zeros where there truly is none)"
+                )
+            self.targets[k] = _label_weight(vs, fam, f"valid_sets[{k}]")
+            self.starts[k] = plan.start_for(self.targets[k][0].size, vo, f"valid_offsets[{k}]")
+
+
+def _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid):
+    """Set the engine objective, metrics and callbacks of the chosen path; the refit state (or None)."""
+    params = call.params
+    refit = None
+    if twin is None and facts.leaf_rule(fam) != "newton":
+        refit = _refit_state(call, fam, guard, y, w, plan, valid)
     own_metric = _Metric(fam, metric_kind, from_output=twin is not None)
-    fevals = [own_metric] + user_feval
+    call.fevals = [own_metric] + call.user_feval
     if refit is not None:
         def wrap(fn):
             def feval(preds, eval_data):
                 refit.catch_up()
-                raw = refit.raw[0] if eval_data is data else refit.raw_for(eval_data)
+                raw = refit.raw[0] if eval_data is call.data else refit.raw_for(eval_data)
                 return fn(preds if raw is None else raw, eval_data)
             return feval
-        fevals = [wrap(fn) for fn in fevals]
+        call.fevals = [wrap(fn) for fn in call.fevals]
 
         def before_round(env):
             refit.catch_up(env.model)
         before_round.before_iteration = True
         before_round.order = -1000
-        callbacks.append(before_round)
+        call.callbacks.append(before_round)
+
         def grow(preds, train_data):  # a plain function: lightgbm deep-copies params, and would copy a bound method's object
             return refit.grow(preds, train_data)
         params["objective"] = grow
     elif twin is not None:
         params.update(twin)
     else:
-        params["objective"] = _Objective(fam, guard, check_start=False)
+        params["objective"] = _Objective(fam, guard, check_start=False, engine_buffers=True)
     params.setdefault("metric", "None")
+    return refit
 
-    touched = [data] + [valid_sets[k] for k in starts]
-    constant = False
+
+def _refit_state(call, fam, guard, y, w, plan, valid):
+    params = call.params
+    if str(params.get("metric", "None")).lower() not in ("none", "na", "null", "custom", ""):
+        raise ValueError(f"{fam.name} refits leaves and keeps its own scores; LightGBM's built-in metrics "
+                         "would see the unedited ones: drop params['metric']")
+    bag = None
+    fraction = float(_param(params, ("bagging_fraction", "sub_row", "subsample", "bagging"), 1.0))
+    freq = int(_param(params, ("bagging_freq", "subsample_freq"), 0))
+    if fraction < 1.0 and freq > 0:
+        bag = RowBag(y.size, fraction, freq, int(_param(params, ("bagging_seed", "seed"), 3)))
+        for k in ("bagging_fraction", "sub_row", "subsample", "bagging", "bagging_freq", "subsample_freq"):
+            params.pop(k, None)
+    threads = _param(params, _THREAD_NAMES, None)
+    refit = _Refit(fam, guard, float(_param(params, _LR_NAMES, 0.1)), y, w, _feature_data(call.data, "data"),
+                   plan.start, bag, {} if threads is None else {"num_threads": int(threads)})
+    for k, vs in enumerate(call.valid_sets):
+        if k in valid.starts:
+            refit.track(vs, _feature_data(vs, f"valid_sets[{k}]"), valid.starts[k])
+    return refit
+
+
+class _Run:
+    """What training produced: the booster (cut to its best round), the best round (0: none), the
+    path actually taken, and the training rows' raw scores or (native twin) predictions."""
+
+    booster = None
+    best = 0
+    twin = None
+    train_raw = None
+    train_pred = None
+
+
+def _run(lgb, call, num_boost_round, plan, valid, refit, twin):
+    """Train with the starting scores set as init scores (removed again afterwards, also on failure)."""
+    data, valid_sets = call.data, call.valid_sets
+    touched = [data] + [valid_sets[k] for k in valid.starts]
+    run = _Run()
+    run.twin = twin
     try:
-        data.set_init_score(plan.start)
-        for k, s in starts.items():
-            valid_sets[k].set_init_score(s)
+        _set_start(data, plan.start)
+        for k, s in valid.starts.items():
+            _set_start(valid_sets[k], s)
         try:
-            booster = lgb.train(params, data, num_boost_round=num_boost_round, valid_sets=valid_sets or None,
-                                valid_names=valid_names, feval=fevals if valid_sets else None, callbacks=callbacks,
-                                keep_training_booster=True, **engine_kwargs)
+            booster = lgb.train(call.params, data, num_boost_round=num_boost_round, valid_sets=valid_sets or None,
+                                valid_names=call.valid_names,
+                                feval=call.fevals if valid_sets else None, callbacks=call.callbacks,
+                                keep_training_booster=True, **call.engine_kwargs)
         except lgb.basic.LightGBMError as exc:
             if "num_features()) > (0)" not in str(exc):
                 raise
             # no feature can split (too few rows for min_data_in_leaf): a custom objective makes
             # LightGBM fail where its built-ins return a constant model; return that constant
-            booster = _constant_booster(lgb, params, data)
-            refit, twin = None, None
-            constant = True
+            run.booster = _constant_booster(lgb, call.params, data)
+            run.twin = None
+            run.train_raw = plan.start.copy()
+            return _release(call, run, touched)
         if refit is not None:
             refit.catch_up(booster)
-        best = booster.best_iteration
-        cut = 0 < best < booster.current_iteration()
-        while 0 < best < booster.current_iteration():
+        run.best = booster.best_iteration
+        cut = 0 < run.best < booster.current_iteration()
+        while 0 < run.best < booster.current_iteration():
             booster.rollback_one_iter()
-        pred = None
-        if constant:
-            train_raw = plan.start.copy()
-        elif refit is not None and not cut:
-            train_raw = refit.raw[0]
+        if refit is not None and not cut:
+            run.train_raw = refit.raw[0]
         elif refit is not None:
-            train_raw = np.asarray(booster.predict(refit.X[0], raw_score=True), dtype=np.float64) + plan.start
+            run.train_raw = np.asarray(booster.predict(refit.X[0], raw_score=True), dtype=np.float64) + plan.start
         else:
-            captured = {}
-
-            def grab(preds, _data):
-                captured["out"] = np.array(preds, dtype=np.float64)
-                return "out", 0.0, False
-            booster.eval_train(feval=grab)
+            _clear_start(data)  # the booster's score cache holds the start now
+            plan.start = None  # nor is lossfam's array needed any more: free it before the output's buffer
+            out = _training_output(booster, copy=call.keep_training)
             if twin is not None:
-                pred = captured["out"]
-                train_raw = raw_from_output(fam, pred)
+                run.train_pred = out
             else:
-                train_raw = captured["out"]
-        if not keep_training:
-            booster = lgb.Booster(model_str=booster.model_to_string())
+                run.train_raw = out
+        run.booster = booster
+        return _release(call, run, touched)
     finally:
         for ds in touched:
             _clear_start(ds)
-    if pred is not None:
-        check_trained(fam, pred=pred)
+
+
+def _release(call, run, touched):
+    """Drop the training booster (and its training memory) unless the caller keeps it."""
+    if not call.keep_training:
+        run.booster = _lgb().Booster(model_str=run.booster.model_to_string())
+    for ds in touched:
+        _clear_start(ds)
+    return run
+
+
+def _training_output(booster, copy):
+    """The booster's output on its training rows (raw scores, or the twin's transformed predictions).
+
+    LightGBM computes it into a buffer of the booster's; without ``copy`` that buffer is taken as
+    is (the booster must not evaluate its training rows again while the result is in use).
+    """
+    captured = {}
+
+    def grab(preds, _data):
+        captured["out"] = np.array(preds, dtype=np.float64) if copy else preds
+        return "out", 0.0, False
+    booster.eval_train(feval=grab)
+    out = captured["out"]
+    return out if out.dtype == np.float64 else out.astype(np.float64)
+
+
+def _finish(call, fam, y, w, run, valid):
+    """Check the trained scores of the training rows; the family with its nuisance parameters fitted."""
+    if run.train_pred is not None:
+        check_trained(fam, pred=run.train_pred)
+        if fam.params:
+            run.train_raw = raw_from_output(fam, run.train_pred, overwrite=True)
+        run.train_pred = None
     else:
-        check_trained(fam, raw=train_raw)
-    if fam.params:
-        if nuisance_set is None:
-            fitted = fit_nuisance_or_keep(fam, y, train_raw, w)
-        else:
-            k = int(nuisance_set)
-            if k not in starts:
-                fitted = fit_nuisance_or_keep(fam, y, train_raw, w)
-            else:
-                vraw = np.asarray(booster.predict(_feature_data(valid_sets[k], f"valid_sets[{k}]"), raw_score=True),
-                                  dtype=np.float64) + starts[k]
-                fitted = fit_nuisance_or_keep(fam, vdata[k][0], vraw, vdata[k][1])
-    else:
-        fitted = fam
-    info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
-            "step_limit": None if guard.limit is None else guard.limit, "hessian_damping": guard.damping}
-    return BoostedFit(_ENGINE, booster, fam, plan.baseline, fitted, best - 1 if cut or 0 < best else None, info)
+        check_trained(fam, raw=run.train_raw)
+    if not fam.params:
+        return fam
+    k = call.nuisance_set
+    if k is None or k not in valid.starts:
+        return fit_nuisance_or_keep(fam, y, run.train_raw, w)
+    run.train_raw = None
+    vraw = np.asarray(run.booster.predict(_feature_data(call.valid_sets[k], f"valid_sets[{k}]"), raw_score=True),
+                      dtype=np.float64) + valid.starts[k]
+    vy, vw = valid.targets[k]
+    return fit_nuisance_or_keep(fam, vy, vraw, vw)
 
 
 def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, step_limit, native, nuisance_set,

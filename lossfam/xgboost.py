@@ -99,10 +99,11 @@ def _dmatrix_targets(dm):
 class _Objective:
     """Gradient and Hessian of a family's nll for XGBoost (see ``objective``)."""
 
-    def __init__(self, fam, guard, check_start=True):
+    def __init__(self, fam, guard, check_start=True, engine_buffers=False):
         self.family = fam
         self.guard = guard
-        self.grads = Gradients(fam, guard)
+        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers)
+        self.engine_buffers = engine_buffers
         self.check_start = check_start
         self.__name__ = f"{fam.name}_objective"
         self._dmatrix_type = _xgb().DMatrix
@@ -110,18 +111,21 @@ class _Objective:
         self._raw_buf = None
 
     def __getstate__(self):  # picklable for xgboost.dask: drop the engine class and the cache
-        return {"family": self.family, "guard": self.guard, "check_start": self.check_start}
+        return {"family": self.family, "guard": self.guard, "check_start": self.check_start,
+                "engine_buffers": self.engine_buffers}
 
     def __setstate__(self, state):
-        self.__init__(state["family"], state["guard"], state["check_start"])
+        self.__init__(state["family"], state["guard"], state["check_start"], state.get("engine_buffers", False))
 
     def __call__(self, first, second, sample_weight=None):
         fam = self.family
         if isinstance(second, self._dmatrix_type):  # xgb.train: (preds, dtrain)
-            y, w = self._cache.get(fam, (second,), lambda: _dmatrix_targets(second), for_nll=False)
+            y, w = self._cache.get(fam, (second,), lambda: _dmatrix_targets(second), for_nll=False,
+                                   narrow=self.engine_buffers)
             raw = first
         else:  # scikit-learn classes: (y_true, y_pred[, sample_weight])
-            y, w = self._cache.get(fam, (first, sample_weight), lambda: (first, sample_weight), for_nll=False)
+            y, w = self._cache.get(fam, (first, sample_weight), lambda: (first, sample_weight), for_nll=False,
+                                   narrow=self.engine_buffers)
             raw = second
         raw = np.asarray(raw).reshape(-1)
         if raw.shape != y.shape:
@@ -403,7 +407,7 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
             params["base_score"] = baseline
             if guard.damping is not None:  # XGBoost's damped objective also clips each leaf at the same step
                 params.setdefault("max_delta_step", guard.damping)
-            obj = _Objective(fam, guard, check_start=False)
+            obj = _Objective(fam, guard, check_start=False, engine_buffers=True)
             feval = user_metric or _Metric(fam, metric_kind)
             booster, best, out = _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval, kw)
         else:
@@ -421,7 +425,7 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
 
     if pred is not None:
         check_trained(fam, pred=train_out)
-        train_raw = raw_from_output(fam, train_out) if fam.params else None
+        train_raw = raw_from_output(fam, train_out, overwrite=True) if fam.params else None
     else:
         check_trained(fam, raw=train_out)
         train_raw = train_out
@@ -486,7 +490,7 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
     rule, level = facts.leaf_rule(fam), facts.leaf_level(fam)
     # XGBoost's own renewal definition, so that the custom path grows the native twin's model
     definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
-    grads = Gradients(fam, guard)
+    grads = Gradients(fam, guard, engine_buffers=True)
     bag = None
     fraction = float(params.get("subsample", 1.0))
     if fraction < 1.0:

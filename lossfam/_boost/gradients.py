@@ -80,19 +80,38 @@ def resolve_guard(fam, step_limit) -> Guard:
 
 
 class Gradients:
-    """Assembles the weighted, unit-scaled, guarded and checked gradient and Hessian of a family."""
+    """Assembles the weighted, unit-scaled, guarded and checked gradient and Hessian of a family.
 
-    _BLOCK = 1 << 16  # rows per block of the cap's scratch array
+    ``engine_buffers=True`` (for the engines' training loops): the result goes, row block by
+    row block, into two float32 arrays that are reused from call to call (LightGBM and
+    XGBoost take float32 gradients; the values are those of the float64 result rounded as the
+    engines round them, so nothing changes but the time and the memory).  The caller must
+    hand them to the engine before the next call.
+    """
 
-    def __init__(self, fam, guard: Guard):
+    _BLOCK = 1 << 16  # rows per block of the cap's scratch array, and of the engine buffers
+
+    def __init__(self, fam, guard: Guard, *, engine_buffers=False):
         self.family = fam
         self.guard = guard
         self.unit = facts.dispersion_unit(fam)
         self.factor = math.exp(guard.damping) if guard.damping is not None else 1.0
+        self.engine_buffers = engine_buffers
         self._tmp = None
+        self._out = None
 
     def __call__(self, y, raw, w):
-        """(g, h) at validated float64 ``y``, ``raw`` (float64) and ``w`` (or None)."""
+        """(g, h) at validated float64 ``y`` (float32 with ``engine_buffers``), ``raw`` (float64) and
+        ``w`` (or None)."""
+        if self.engine_buffers and y.ndim == 1 and y.size > 0:
+            return self._into_buffers(y, raw, w)
+        g, h = self._assemble(y, raw, w)
+        if not _plausible(g, h):
+            self._repair(g, h, raw)
+        return g, h
+
+    def _assemble(self, y, raw, w):
+        """float64 (g, h) with unit, guard and weights applied, not yet checked."""
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             g, h = self.family._grad_hess(y, raw)
         if self.unit != 1.0:
@@ -113,13 +132,28 @@ class Gradients:
         if w is not None:
             g *= w
             h *= w
-        if not (h.min() > 0 and np.isfinite(h.max()) and np.isfinite(g.sum())):
-            self._repair(g, h, raw)
         return g, h
 
+    def _into_buffers(self, y, raw, w):
+        n = y.size
+        if self._out is None or self._out[0].size != n:
+            self._out = (np.empty(n, dtype=np.float32), np.empty(n, dtype=np.float32))
+        g32, h32 = self._out
+        for i in range(0, n, self._BLOCK):
+            rows = slice(i, i + self._BLOCK)
+            g, h = self._assemble(y[rows].astype(np.float64, copy=False), raw[rows], None if w is None else w[rows])
+            if not _plausible(g, h):
+                if _invalid(g, h).any():
+                    # the error names rows of the whole set: let the whole-array path raise it
+                    whole_g, whole_h = self._assemble(np.asarray(y, dtype=np.float64), raw, w)
+                    self._repair(whole_g, whole_h, raw)
+                self._repair(g, h, raw[rows])  # rows with h = 0 only
+            g32[rows] = g
+            h32[rows] = h
+        return g32, h32
+
     def _repair(self, g, h, raw):
-        with np.errstate(invalid="ignore"):
-            bad = ~(np.isfinite(g) & np.isfinite(h)) | (h < 0)
+        bad = _invalid(g, h)
         if bad.any():
             raise ValueError(
                 f"{self.family.name}: the gradient or Hessian is NaN, infinite or negative at "
@@ -131,10 +165,21 @@ class Gradients:
             h[dead] = np.abs(g[dead])
 
     def __getstate__(self):
-        return {"family": self.family, "guard": self.guard}
+        return {"family": self.family, "guard": self.guard, "engine_buffers": self.engine_buffers}
 
     def __setstate__(self, state):
-        self.__init__(state["family"], state["guard"])
+        self.__init__(state["family"], state["guard"], engine_buffers=state.get("engine_buffers", False))
+
+
+def _plausible(g, h):
+    """One pass each, no masks: True when every h > 0 and every g, h finite (a finite sum proves it)."""
+    return bool(h.min() > 0 and np.isfinite(h.max()) and np.isfinite(g.sum()))
+
+
+def _invalid(g, h):
+    """Rows whose gradient or Hessian is NaN, infinite or negative."""
+    with np.errstate(invalid="ignore"):
+        return ~(np.isfinite(g) & np.isfinite(h)) | (h < 0)
 
 
 def growth_gradients(rule, level, y, raw, w):
@@ -179,12 +224,17 @@ class TargetCache:
         self._refs = None
         self._y = self._w = None
 
-    def get(self, fam, keys, read, *, for_nll):
+    def get(self, fam, keys, read, *, for_nll, narrow=False):
+        """``narrow=True``: float32 targets are validated in float64 but kept in float32 (half the
+        memory; widening them again is exact), for ``Gradients(engine_buffers=True)``."""
         if self._refs is not None and len(self._refs) == len(keys) and all(
                 r() is k for r, k in zip(self._refs, keys)):
             return self._y, self._w
         y, w = read()
+        single = np.asarray(y).reshape(-1) if narrow else None
         y = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1), for_nll=for_nll)
+        if single is not None and single.dtype == np.float32 and single.shape == y.shape:
+            y = single
         w = None if w is None or np.size(w) == 0 else _checks.check_weight(np.asarray(w).reshape(-1), y, fam.name)
         try:
             self._refs = [_ref(k) for k in keys]

@@ -75,6 +75,8 @@ def check_trained(fam, raw=None, pred=None, what="the training rows"):
     inf; none of that is a model.  Raises ValueError naming the rows.
     """
     link = fam.link_function
+    if _inside_quickly(link, raw, pred):
+        return
     with np.errstate(over="ignore", invalid="ignore"):
         if raw is not None:
             values = np.asarray(raw, dtype=np.float64).reshape(-1)
@@ -92,3 +94,23 @@ def check_trained(fam, raw=None, pred=None, what="the training rows"):
             f"leave the {link.name} link's range at {_checks._describe_rows(bad, values).replace(' outside', '')} "
             f"({kind}); use a smaller learning rate (or a step_limit)"
         )
+
+
+def _inside_quickly(link, raw, pred) -> bool:
+    """True when one pass over the scores proves every prediction inside the link's range.
+
+    The inverse link is monotone and its range an interval, so the predictions of all
+    rows lie inside when those of the smallest and largest raw score do.  False means
+    "not proven" (the caller then checks row by row and names the rows).
+    """
+    values = np.asarray(raw if raw is not None else pred).reshape(-1)
+    if values.dtype != np.float64 or values.size == 0:
+        return False
+    lo, hi = _checks._bounds(values)
+    if not (np.isfinite(lo) and np.isfinite(hi)):
+        return False
+    ends = np.array([lo, hi])
+    with np.errstate(over="ignore", invalid="ignore"):
+        if raw is not None:
+            ends = link.inverse(ends)
+        return bool(np.all(link.prediction_domain.inside(ends)))

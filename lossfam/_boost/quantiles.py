@@ -74,6 +74,8 @@ def grouped_quantile(group, x, w, q, n_groups, definition="midpoint"):
             if np.any(w != 1.0):
                 raise ValueError(f"the {definition!r} quantile is defined for unit weights only")
             w = None
+    if n_groups == 1 and x.size > 2 and (w is None or np.all(w == 1.0)) and np.all(group == 0):
+        return _one_group_unit_weights(x, q, definition)
     order = np.lexsort((x, group))
     gs = group[order]
     xs = x[order]
@@ -110,6 +112,49 @@ def grouped_quantile(group, x, w, q, n_groups, definition="midpoint"):
     i_hi = np.clip(np.searchsorted(cw, target + tol, side="right"), starts, last)
     b = xs[np.minimum(i_hi, xs.size - 1)]
     return np.where(has, 0.5 * (a + b), 0.0), has
+
+
+def _one_group_unit_weights(x, q, definition):
+    """``grouped_quantile`` of one group of unit-weight rows, from a partial sort (O(n)): the same
+    order statistics, picked by the same arithmetic as the general path."""
+    n = x.size
+    last = n - 1
+    if definition in UNWEIGHTED_ONLY:
+        h = (n - 1.0) * q if definition == "linear" else (n + 1.0) * q - 1.0
+        h = min(max(h, 0.0), float(max(n - 1.0, 0.0)))
+        lo = np.floor(h)
+        frac = h - lo
+        i0 = min(int(lo), last)
+        i1 = min(i0 + 1, last)
+        a, b = _order_statistics(x, (i0, i1))
+        value = a + (b - a) * frac if frac < 0.5 else b - (b - a) * (1.0 - frac)
+        return np.array([value]), np.array([True])
+    total = float(n)  # the cumulative weights are exactly 1, 2, ..., n
+    target = q * total
+    tol = TIE_TOL * total
+    # np.searchsorted(cw, v, "left") = #{k in 1..n: k < v}; "right" = #{k: k <= v}
+    i_lo = min(max(_count_below(target - tol, n), 0), last)
+    if definition == "lower":
+        return np.array([_order_statistics(x, (i_lo,))[0]]), np.array([True])
+    i_hi = min(max(_count_at_most(target + tol, n), 0), last)
+    a, b = _order_statistics(x, (i_lo, i_hi))
+    return np.array([0.5 * (a + b)]), np.array([True])
+
+
+def _count_below(v, n):
+    """#{k in 1..n: k < v} (v a float)."""
+    return int(min(max(np.ceil(v) - 1.0, 0.0), n))
+
+
+def _count_at_most(v, n):
+    """#{k in 1..n: k <= v} (v a float)."""
+    return int(min(max(np.floor(v), 0.0), n))
+
+
+def _order_statistics(x, ks):
+    """The k-th smallest values of x (0-based), by a partial sort."""
+    part = np.partition(x, sorted(set(ks)))
+    return [float(part[k]) for k in ks]
 
 
 def sample_quantile(x, w, q, definition="midpoint") -> float:

@@ -26,7 +26,7 @@ class Scorer:
         return num / den if den > 0 else float("nan")
 
 
-def raw_from_output(fam, preds):
+def raw_from_output(fam, preds, *, overwrite=False):
     """Raw scores from an engine's transformed predictions (built-in objectives hand metrics the
     inverse link of the raw score: a probability, a mean).
 
@@ -35,14 +35,28 @@ def raw_from_output(fam, preds):
     prediction inside is used, so the raw score is finite: exact wherever the
     engine's precision resolves the prediction (|raw| below about 36 for a
     logit in float64, 16 in float32).
+
+    Row blocks at a time, so the temporaries stay small; the result is a fresh
+    float64 array, or ``preds`` itself when ``overwrite`` is True and ``preds``
+    is a float64 array the caller no longer needs.
     """
     p = np.asarray(preds)
     dtype = p.dtype if p.dtype in (np.float32, np.float64) else np.float64
     p = p.astype(dtype, copy=False).reshape(-1)
+    out = p if overwrite and p.dtype == np.float64 and p.flags.writeable else np.empty(p.shape)
+    for i in range(0, p.size, _BLOCK):
+        out[i:i + _BLOCK] = _raw_block(fam.link_function, p[i:i + _BLOCK], dtype)
+    return out
+
+
+_BLOCK = 1 << 16  # rows per block of raw_from_output
+
+
+def _raw_block(link, p, dtype):
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        raw = fam.link_function._forward(p.astype(np.float64))
+        raw = link._forward(p.astype(np.float64))
         hi, lo = raw == np.inf, raw == -np.inf
         if hi.any() or lo.any():
             nudged = np.where(hi, np.nextafter(p, dtype.type(-np.inf)), np.where(lo, np.nextafter(p, dtype.type(np.inf)), p))
-            raw = fam.link_function._forward(nudged.astype(np.float64))
+            raw = link._forward(nudged.astype(np.float64))
     return raw

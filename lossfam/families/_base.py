@@ -83,24 +83,32 @@ from .._checks import Domain
 from ..links import Link
 
 
-def scaled_mean(a: np.ndarray, w: np.ndarray) -> float:
+def scaled_mean(a: np.ndarray, w: np.ndarray, *, overwrite: bool = False) -> float:
     """sum w a / sum w for a >= 0, without overflowing the sum (a is divided by its largest value first).
 
-    Rows of weight 0 take no part (not even in the largest value): their ``a`` may be inf."""
-    pos = w > 0
-    if not pos.all():
+    Rows of weight 0 take no part (not even in the largest value): their ``a`` may be inf.
+    ``overwrite=True`` lets the division reuse ``a`` (no temporary array of a's size)."""
+    if not np.min(w) > 0:
+        pos = w > 0
         a, w = a[pos], w[pos]
     m = float(np.max(a))
     if not m > 0 or not np.isfinite(m):
         return m
-    return m * float(np.dot(w, a / m) / w.sum())
+    scaled = np.divide(a, m, out=a) if overwrite and isinstance(a, np.ndarray) else a / m
+    return m * float(np.dot(w, scaled) / w.sum())
+
+
+def residuals(y, raw) -> np.ndarray:
+    """y - raw as a fresh float64 array that the caller may overwrite (0-d for scalar rows)."""
+    r = np.subtract(y, raw)
+    return r if isinstance(r, np.ndarray) else np.array(r)
 
 
 #: rows per block in :func:`by_row_blocks`: a few block-sized float64 arrays (256 KiB each) fit in L2
 BLOCK_ROWS = 1 << 15
 
 
-def by_row_blocks(fill, inputs, n_out, n_scratch=0, rows=BLOCK_ROWS):
+def by_row_blocks(fill, inputs, n_out, n_scratch=0, rows=BLOCK_ROWS, out=None):
     """The outputs of an elementwise kernel, evaluated block by block so its intermediates stay in cache.
 
     ``fill(*in_blocks, *out_blocks, *scratch_blocks)`` computes each output row from the same
@@ -114,7 +122,8 @@ def by_row_blocks(fill, inputs, n_out, n_scratch=0, rows=BLOCK_ROWS):
 
     Inputs that are not equally long one-dimensional float64 arrays get one call on the whole
     arrays (outputs and scratch of the broadcast shape and result type).  Returns the list of
-    ``n_out`` fresh output arrays.
+    ``n_out`` fresh output arrays, or fills and returns ``out`` (a list of ``n_out`` float64
+    arrays of the inputs' length, e.g. buffers reused across calls) when given.
     """
     first = inputs[0]
     same = all(isinstance(a, np.ndarray) and a.ndim == 1 and a.dtype == np.float64
@@ -122,11 +131,12 @@ def by_row_blocks(fill, inputs, n_out, n_scratch=0, rows=BLOCK_ROWS):
     if not same:
         shape = np.broadcast_shapes(*(np.shape(a) for a in inputs))
         dtype = np.result_type(*inputs, 1.0)
-        outs = [np.empty(shape, dtype) for _ in range(n_out + n_scratch)]
+        outs = [np.empty(shape, dtype) for _ in range(n_out + n_scratch)] if out is None else (
+            list(out) + [np.empty(shape, dtype) for _ in range(n_scratch)])
         fill(*inputs, *outs)
         return outs[:n_out]
     n = first.shape[0]
-    outs = [np.empty(n) for _ in range(n_out)]
+    outs = [np.empty(n) for _ in range(n_out)] if out is None else list(out)
     if n <= rows:
         fill(*inputs, *outs, *(np.empty(n) for _ in range(n_scratch)))
         return outs

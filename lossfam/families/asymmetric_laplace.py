@@ -34,14 +34,18 @@ from scipy import stats
 from .. import _checks
 from .._checks import OPEN_UNIT, POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family, FromParam, scaled_mean
+from ._base import Family, FromParam, residuals, scaled_mean
 from .._boost.quantiles import sample_quantile
 from .laplace import FLOOR
 
 
-def pinball(r, tau):
-    """rho_tau(r) = r (tau - 1[r < 0]) = max(tau r, (tau - 1) r)."""
-    return np.maximum(tau * r, (tau - 1.0) * r)
+def pinball(r, tau, out=None):
+    """rho_tau(r) = r (tau - 1[r < 0]) = max(tau r, (tau - 1) r); ``out=r`` overwrites r."""
+    if out is None:
+        return np.maximum(tau * r, (tau - 1.0) * r)
+    below = (tau - 1.0) * r
+    np.multiply(r, tau, out=out)
+    return np.maximum(out, below, out=out)
 
 
 @dataclass(frozen=True)
@@ -92,7 +96,8 @@ class AsymmetricLaplace(Family):
         return sample_quantile(target, w, self.quantile, "midpoint")
 
     def _fit_nuisance(self, y, raw, w):
-        b = scaled_mean(pinball(_checks.finite_residuals(y - raw, self.name), self.quantile), w)
+        r = _checks.finite_residuals(residuals(y, raw), self.name)
+        b = scaled_mean(pinball(r, self.quantile, out=r), w, overwrite=True)
         if not b > 0:
             raise ValueError(
                 "asymmetric_laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)"

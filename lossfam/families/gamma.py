@@ -88,15 +88,17 @@ class Gamma(Family):
         return logsumexp(t, b=w) - np.log(w.sum())
 
     def _fit_nuisance(self, y, raw, w):
-        lr = np.log(y) - raw
+        lr = np.log(y)
+        lr = np.subtract(lr, raw, out=lr) if isinstance(lr, np.ndarray) else lr - raw
         excess_per_row = _expm1_minus(lr)  # y/mu - 1 - log(y/mu) >= 0
-        over = (w > 0) & ~np.isfinite(excess_per_row)
-        if np.any(over):
+        del lr
+        over = None if _checks._finite_sum(excess_per_row) else (w > 0) & ~np.isfinite(excess_per_row)
+        if over is not None and np.any(over):
             raise ValueError(
                 f"gamma: the shape cannot be fitted because y / mu = y e^-raw overflows in "
                 f"{_checks.rows_text(over, raw)} (raw scores)"
             )
-        target = scaled_mean(excess_per_row, w)
+        target = scaled_mean(excess_per_row, w, overwrite=True)
         if not target > 0:
             raise ValueError(
                 "gamma: every target equals its predicted mean, so the maximum-likelihood shape is infinite"
@@ -141,8 +143,9 @@ def _log_minus_digamma(k):
 def _expm1_minus(x):
     """e^x - 1 - x >= 0 without cancellation near 0 (Taylor series for |x| < 1e-2, to x^7/5040)."""
     with np.errstate(over="ignore"):
-        out = np.expm1(x) - x
-    small = np.abs(x) < 1e-2
+        out = np.expm1(x)
+        out = np.subtract(out, x, out=out) if isinstance(out, np.ndarray) else out - x
+    small = (x > -1e-2) & (x < 1e-2)  # |x| < 1e-2
     if np.any(small):
         s = x[small]
         out[small] = s * s * (0.5 + s * (1 / 6 + s * (1 / 24 + s * (1 / 120 + s * (1 / 720 + s / 5040)))))

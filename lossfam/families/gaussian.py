@@ -23,7 +23,7 @@ from scipy import stats
 from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family
+from ._base import Family, residuals
 
 _HALF_LOG_2PI = 0.5 * np.log(2.0 * np.pi)
 
@@ -62,12 +62,13 @@ class Gaussian(Family):
         return np.average(target, weights=w)
 
     def _fit_nuisance(self, y, raw, w):
-        r = _checks.finite_residuals(y - raw, self.name)
-        m = float(np.max(np.abs(r)))
-        if not m > 0 or not np.any(r[w > 0] != 0):
+        r = _checks.finite_residuals(residuals(y, raw), self.name)
+        lo, hi = _checks._bounds(r)
+        m = max(hi, -lo)  # max |r|, without an array of absolute values
+        if not m > 0 or not (w.min() > 0 or np.any(r[w > 0] != 0)):
             raise ValueError("gaussian: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
-        u = r / m  # residuals relative to the largest: their squares neither overflow nor all underflow
-        return {"scale": float(m * np.sqrt(np.dot(w, u * u) / w.sum()))}
+        u = np.divide(r, m, out=r)  # residuals relative to the largest: their squares neither overflow nor all underflow
+        return {"scale": float(m * np.sqrt(np.dot(w, np.multiply(u, u, out=u)) / w.sum()))}
 
     def _distribution(self, raw):
         return stats.norm(loc=raw, scale=self.scale)

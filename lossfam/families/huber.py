@@ -35,7 +35,7 @@ from scipy import optimize, special
 from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family, by_row_blocks
+from ._base import Family, by_row_blocks, residuals
 
 
 def huber_rho(u, delta):
@@ -172,7 +172,8 @@ class Huber(Family):
         s, d = np.float64(self.scale), self.delta
         r = np.subtract(raw, y, out=h)
         np.divide(r, s, out=g)
-        np.clip(g, -d, d, out=g)
+        np.maximum(g, -d, out=g)  # clip to [-d, d] with two ufunc calls (np.clip's wrapper costs more on small blocks)
+        np.minimum(g, d, out=g)
         g /= s
         # min(1, d / |u|) / s^2 = d / (s max(|r|, d s)): finite even where |u| = |r| / s overflows
         a = np.abs(r, out=r)
@@ -194,9 +195,20 @@ class Huber(Family):
     def _baseline(self, y, w, offset):
         t = y if offset is None else y - offset
         s, d = self.scale, self.delta
+        psi = None  # psi((t - c) / s) per row, rewritten at every evaluation (no fresh arrays)
 
-        def score(c):
-            return float(np.dot(w, np.clip((t - c) / s, -d, d)))
+        def fill(t, out):
+            np.subtract(t, c, out=out)
+            out /= s
+            np.clip(out, -d, d, out=out)
+
+        def score(x):
+            nonlocal psi, c
+            c = x
+            (psi,) = by_row_blocks(fill, (t,), n_out=1, out=None if psi is None else (psi,))
+            return float(np.dot(w, psi))
+
+        c = None
 
         lo, hi = float(t.min()), float(t.max())
         if lo == hi:
@@ -209,18 +221,31 @@ class Huber(Family):
             raise ValueError("huber: the targets span too wide a range to locate the baseline in float64") from None
 
     def _fit_nuisance(self, y, raw, w):
-        keep = w > 0
-        r, w = (y - raw)[keep], w[keep]
+        r = residuals(y, raw)
+        if not np.min(w) > 0:
+            keep = w > 0
+            r, w = r[keep], w[keep]
         d = self.delta
         sw = w.sum()
-        if not np.any(r != 0):
+        lo, hi = _checks._bounds(_checks.finite_residuals(r, self.name))
+        amax = max(hi, -lo)  # max |r|
+        if not amax > 0:
             raise ValueError("huber: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
-        amax = float(np.max(np.abs(_checks.finite_residuals(r, self.name))))
-        r = r / amax  # solve for t = s / max|r|: residuals in [-1, 1], so u = r / t stays finite below
+        r = np.divide(r, amax, out=r)  # solve for t = s / max|r|: residuals in [-1, 1], so u = r / t stays finite below
+        terms = None  # psi(u) u per row, rewritten at every evaluation (no fresh arrays)
+
+        def fill(r, out, u):
+            np.divide(r, e, out=u)
+            np.clip(u, -d, d, out=out)
+            out *= u
 
         def excess(log_t):
-            u = r / np.exp(log_t)
-            return float(np.dot(w, np.clip(u, -d, d) * u) / sw) - 1.0
+            nonlocal terms, e
+            e = np.exp(log_t)
+            (terms,) = by_row_blocks(fill, (r,), n_out=1, n_scratch=1, out=None if terms is None else (terms,))
+            return float(np.dot(w, terms) / sw) - 1.0
+
+        e = None
 
         # psi(u) u <= u^2, so excess(0) <= mean r^2 - 1 <= 0; below, the tails grow like delta |r| / t
         lo, hi = -50.0, 1.0

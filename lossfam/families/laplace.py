@@ -37,7 +37,7 @@ from .. import _checks
 from .._boost.quantiles import sample_quantile
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family, scaled_mean
+from ._base import Family, residuals, scaled_mean
 
 #: residuals below FLOOR * scale get the curvature of a residual of that size
 FLOOR = 1e-3
@@ -138,7 +138,8 @@ class Laplace(Family):
         return sample_quantile(target, w, 0.5, "midpoint")
 
     def _fit_nuisance(self, y, raw, w):
-        b = scaled_mean(np.abs(_checks.finite_residuals(y - raw, self.name)), w)
+        r = _checks.finite_residuals(residuals(y, raw), self.name)
+        b = scaled_mean(np.abs(r, out=r), w, overwrite=True)
         if not b > 0:
             raise ValueError("laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
         return {"scale": float(b)}
