@@ -75,7 +75,7 @@ class IntervalTarget:
         bad = lo > hi
         if bad.any():
             idx = np.flatnonzero(bad)[:5]
-            pairs = ", ".join(f"({lo[i]!r}, {hi[i]!r})" for i in idx)
+            pairs = ", ".join(f"({float(lo[i])!r}, {float(hi[i])!r})" for i in idx)
             noun = "row" if bad.sum() == 1 else "rows"
             raise ValueError(f"{owner}: lower > upper in {int(bad.sum())} {noun}, e.g. {noun} "
                              f"{[int(i) for i in idx]} = [{pairs}]")

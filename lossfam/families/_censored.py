@@ -164,10 +164,16 @@ def censored_baseline(fam, target, w, offset):
     r"""The constant c minimising sum w nll(target, c + o): Newton steps on the (surrogate) Hessian,
     halved until the weighted nll falls, from the family's exact-row baseline of a stand-in target.
 
-    Returns inf when the nll keeps falling (every row censored on the same side: no finite minimiser).
+    Returns inf when no finite minimiser exists: no row (of positive weight) bounded above, or
+    none bounded below (e.g. every row right-censored).
     """
     o = np.zeros(target.size) if offset is None else offset
     sw = w.sum()
+    has_lo, has_hi = open_sides(fam, target.lower, target.upper)
+    used = w > 0
+    if not np.any(has_hi[used]) or not np.any(has_lo[used]):
+        # every row open above (or every row open below): the nll falls forever as c grows (falls)
+        return np.inf
 
     def mean_nll(c):
         return float(np.dot(w, censored_nll(fam, target, c + o)) / sw)
