@@ -44,6 +44,8 @@ import weakref
 import numpy as np
 
 from .. import _checks
+from ..censoring import IntervalTarget
+from ..families._censored import censored_grad_hess
 from . import facts
 
 #: the default of ``step_limit`` in both engines
@@ -94,7 +96,10 @@ class Gradients:
     def __call__(self, y, raw, w):
         """(g, h) at validated float64 ``y``, ``raw`` (float64) and ``w`` (or None)."""
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            g, h = self.family._grad_hess(y, raw)
+            if isinstance(y, IntervalTarget):  # censored rows (lossfam.censoring): the interval likelihood
+                g, h = censored_grad_hess(self.family, y, raw)
+            else:
+                g, h = self.family._grad_hess(y, raw)
         if self.unit != 1.0:
             g *= self.unit
             h *= self.unit
@@ -184,8 +189,12 @@ class TargetCache:
                 r() is k for r, k in zip(self._refs, keys)):
             return self._y, self._w
         y, w = read()
-        y = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1), for_nll=for_nll)
-        w = None if w is None or np.size(w) == 0 else _checks.check_weight(np.asarray(w).reshape(-1), y, fam.name)
+        if isinstance(y, IntervalTarget):
+            y = fam.check_target(y)
+            rows = y.lower
+        else:
+            y = rows = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1), for_nll=for_nll)
+        w = None if w is None or np.size(w) == 0 else _checks.check_weight(np.asarray(w).reshape(-1), rows, fam.name)
         try:
             self._refs = [_ref(k) for k in keys]
         except TypeError:  # lists and the like cannot be weakly referenced: no caching
@@ -225,7 +234,7 @@ def warn_if_far_from_baseline(fam, y, w, raw, engine):
     gradient signs, the first trees spend themselves moving the constant (or,
     with a constant Hessian floor, find no gain and stop).
     """
-    if raw.size == 0 or not np.all(raw == raw[0]):
+    if raw.size == 0 or not np.all(raw == raw[0]) or isinstance(y, IntervalTarget):
         return
     try:
         base = fam.baseline(y, w)

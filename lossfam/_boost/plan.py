@@ -7,6 +7,12 @@ import dataclasses
 import numpy as np
 
 from .. import _checks
+from ..censoring import IntervalTarget
+
+#: training passes on a censored target whose family fits nuisance parameters (see censored_passes)
+CENSORED_PASSES = 2
+#: ``prefit`` of the first pass: pre-fit at the baseline, no further passes
+PREFIT_ONCE = "once"
 
 
 @dataclasses.dataclass
@@ -43,7 +49,8 @@ def start_plan(fam, y, w, offset=None, *, prefit=True, precision=np.float64) -> 
                                                       f"{fam.name} offset")
     baseline = float(precision(fam.baseline(y, w, offset=o)))
     start = np.full(y.shape, baseline) if o is None else baseline + o
-    if prefit and fam.location_needs_nuisance and fam.params:
+    censored = isinstance(y, IntervalTarget) and not y.exact.all()
+    if prefit and (fam.location_needs_nuisance or (censored and fam.censored_fit)) and fam.params:
         fam = fit_nuisance_or_keep(fam, y, start, w)
     return StartPlan(fam, baseline, start, o)
 
@@ -85,3 +92,27 @@ def check_trained(fam, raw=None, pred=None, what="the training rows"):
             f"leave the {link.name} link's range at {_checks._describe_rows(bad, values).replace(' outside', '')} "
             f"({kind}); use a smaller learning rate (or a step_limit)"
         )
+
+
+def censored_passes(fam, y, prefit) -> bool:
+    """True when training should run in passes: a censored target (some row not exact) and a family
+    that fits nuisance parameters under censoring.
+
+    With censored rows the location minimiser depends on the nuisance parameters (a right-censored
+    row pushes the location up by an amount that grows with the assumed scale), so trees grown under
+    wrong ones are biased; the parameters fitted at the baseline are the marginal ones, too wide
+    where the features explain part of the spread.  Pass 1 pre-fits them at the baseline and trains;
+    each further pass trains afresh with the parameters fitted to the previous pass's raw scores
+    (``CENSORED_PASSES`` in all).  ``prefit=False`` trains once with the parameters as given.
+    """
+    return (prefit is True and isinstance(y, IntervalTarget) and not y.exact.all()
+            and bool(fam.censored_fit) and bool(fam.params))
+
+
+def train_in_passes(train, fam, **call):
+    """``train(fam, prefit=PREFIT_ONCE, **call)``, then CENSORED_PASSES - 1 more passes, each started
+    from the previous fit's fitted family (``censored_passes``)."""
+    fit = train(fam, prefit=PREFIT_ONCE, **call)
+    for _ in range(CENSORED_PASSES - 1):
+        fit = train(fit.fitted_family, prefit=False, **call)
+    return fit
