@@ -162,7 +162,8 @@ def censored_grad_hess(fam, target, raw):
 
 def censored_baseline(fam, target, w, offset):
     r"""The constant c minimising sum w nll(target, c + o): Newton steps on the (surrogate) Hessian,
-    halved until the weighted nll falls, from the family's exact-row baseline of a stand-in target.
+    halved until the weighted nll does not rise beyond its rounding, from the family's exact-row
+    baseline of a stand-in target; stops at a step below 1e-12 relative.
 
     Returns inf when no finite minimiser exists: no row (of positive weight) bounded above, or
     none bounded below (e.g. every row right-censored).
@@ -180,22 +181,23 @@ def censored_baseline(fam, target, w, offset):
 
     c = _start(fam, target, w, offset)
     f = mean_nll(c)
-    for _ in range(200):
+    for _ in range(100):
         g, h = censored_grad_hess(fam, target, c + o)
         gs, hs = float(np.dot(w, g)), float(np.dot(w, h))
         if not (np.isfinite(gs) and np.isfinite(hs) and hs > 0):
             break
         step = -gs / hs
-        if abs(step) <= 1e-13 * max(1.0, abs(c)):
-            return c
+        if abs(step) <= 1e-12 * max(1.0, abs(c)):
+            return c + step
+        slack = 64 * np.finfo(float).eps * max(abs(f), 1.0)  # rounding of the mean nll
         for _ in range(60):
             fn = mean_nll(c + step)
-            if fn <= f:
+            if fn <= f + slack:
                 break
             step *= 0.5
         else:
             return c
-        c, f = c + step, fn
+        c, f = c + step, min(f, fn)
         if abs(c) > 1e300:
             return np.inf
     # not converged by Newton: a bracketing scalar search from the last point
