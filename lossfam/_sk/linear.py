@@ -211,6 +211,11 @@ def _fit_censored(est, fam, X, target, sample_weight, offset, owner):
     time for lognormal and weibull): Newton's method on the censored nll from the censored
     baseline, alternated with the nuisance fit (``fam.censored_fit``) until the parameters settle,
     since under censoring the coefficients depend on them."""
+    if not fam.exact_hessian and not target.exact.all():
+        raise ValueError(f"{owner}: {fam.name} has a surrogate Hessian, and the linear solvers' "
+                         "majorise-minimise steps on a censored likelihood with a fitted scale converge too "
+                         "slowly to be offered; fit censored targets with a smooth family (gaussian, "
+                         "lognormal, weibull, gamma) or with a boosting engine")
     w = _check_sample_weight(sample_weight, target.lower, owner)
     v = w / w.sum()
     intercept = fam.baseline(target, w, offset=offset) if est.fit_intercept else 0.0
