@@ -48,7 +48,7 @@ class IntervalTarget:
     exact : bool ndarray, True where ``lower == upper``
     """
 
-    __slots__ = ("lower", "upper", "exact")
+    __slots__ = ("lower", "upper", "exact", "_split")
 
     def __init__(self, lower, upper, *, owner="interval target"):
         lo = _checks.as_float_array(lower, "lower", owner)
@@ -79,9 +79,13 @@ class IntervalTarget:
             noun = "row" if bad.sum() == 1 else "rows"
             raise ValueError(f"{owner}: lower > upper in {int(bad.sum())} {noun}, e.g. {noun} "
                              f"{[int(i) for i in idx]} = [{pairs}]")
+        lo, hi = lo.copy(), hi.copy()  # own read-only copies: the row split cached below stays true
+        lo.flags.writeable = False
+        hi.flags.writeable = False
         self.lower = lo
         self.upper = hi
         self.exact = lo == hi
+        self._split = None  # row indices by kind, filled on first use (lossfam.families._censored)
 
     # ------------------------------------------------------------------ array-like basics
     def __len__(self):
@@ -128,7 +132,7 @@ class IntervalTarget:
 
 def _from_valid(lo, hi) -> IntervalTarget:
     t = IntervalTarget.__new__(IntervalTarget)
-    t.lower, t.upper, t.exact = lo, hi, lo == hi
+    t.lower, t.upper, t.exact, t._split = lo, hi, lo == hi, None
     return t
 
 

@@ -70,8 +70,15 @@ _LOG2 = float(np.log(2.0))
 def log1mexp(x):
     """log(1 - e^x) for x <= 0 (-inf at 0, 0 at -inf), accurate on both sides of -log 2."""
     x = np.asarray(x, dtype=float)
+    near = x > -_LOG2
+    out = np.empty(x.shape)
     with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(x > -_LOG2, np.log(-np.expm1(x)), np.log1p(-np.exp(x)))
+        if near.all():
+            return np.log(-np.expm1(x))
+        out[near] = np.log(-np.expm1(x[near]))
+        far = ~near
+        out[far] = np.log1p(-np.exp(x[far]))
+    return out
 
 
 def location_scale_pieces(z, s, log_cdf, log_sf, log_pdf, score):
@@ -115,10 +122,11 @@ def interval_terms(fam, lo, hi, raw, derivatives=True):
     f_hi, s_hi, d_hi, e_hi = _pieces_at(fam, hi, raw, has_hi, False)
     with np.errstate(invalid="ignore", over="ignore", divide="ignore"):
         lower_side = f_hi <= s_lo
-        diff_f = np.where(np.isneginf(f_lo), -np.inf, f_lo - f_hi)
-        diff_s = np.where(np.isneginf(s_hi), -np.inf, s_hi - s_lo)
-        log_p = np.where(lower_side, f_hi + log1mexp(np.minimum(diff_f, 0.0)),
-                         s_lo + log1mexp(np.minimum(diff_s, 0.0)))
+        # the chosen side's larger term and the difference of logs (-inf where the other term is 0)
+        top = np.where(lower_side, f_hi, s_lo)
+        diff = np.where(lower_side, np.where(np.isneginf(f_lo), -np.inf, f_lo - f_hi),
+                        np.where(np.isneginf(s_hi), -np.inf, s_hi - s_lo))
+        log_p = top + log1mexp(np.minimum(diff, 0.0))
         nll = -log_p
         if not derivatives:
             return nll, None, None
@@ -134,29 +142,39 @@ def interval_terms(fam, lo, hi, raw, derivatives=True):
     return nll, g, h
 
 
+def _split(target):
+    """(exact rows, censored rows, y of exact rows, lower and upper of censored rows), computed once
+    per target and kept on it (the engines call every round with the same target)."""
+    cached = target._split
+    if cached is None:
+        ex = np.flatnonzero(target.exact)
+        ce = np.flatnonzero(~target.exact)
+        cached = (ex, ce, target.lower[ex], target.lower[ce], target.upper[ce])
+        target._split = cached
+    return cached
+
+
 def censored_nll(fam, target, raw):
-    ex = target.exact
+    ex, ce, y_ex, lo, hi = _split(target)
     out = np.empty(target.size)
-    if ex.any():
-        out[ex] = fam._nll(target.lower[ex], raw[ex])
-    c = ~ex
-    if c.any():
-        out[c] = interval_terms(fam, target.lower[c], target.upper[c], raw[c], derivatives=False)[0]
+    if ex.size:
+        out[ex] = fam._nll(y_ex, raw[ex])
+    if ce.size:
+        out[ce] = interval_terms(fam, lo, hi, raw[ce], derivatives=False)[0]
     return out
 
 
 def censored_grad_hess(fam, target, raw):
-    ex = target.exact
-    if ex.all():
+    ex, ce, y_ex, lo, hi = _split(target)
+    if not ce.size:
         return fam._grad_hess(target.lower, raw)
     g = np.empty(target.size)
     h = np.empty(target.size)
-    if ex.any():
-        ge, he = fam._grad_hess(target.lower[ex], raw[ex])
+    if ex.size:
+        ge, he = fam._grad_hess(y_ex, raw[ex])
         g[ex], h[ex] = ge, he
-    c = ~ex
-    _, gc, hc = interval_terms(fam, target.lower[c], target.upper[c], raw[c])
-    g[c], h[c] = gc, hc
+    _, gc, hc = interval_terms(fam, lo, hi, raw[ce])
+    g[ce], h[ce] = gc, hc
     return g, h
 
 
