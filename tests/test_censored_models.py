@@ -227,7 +227,7 @@ def _log_median(name, theta):
 
 @pytest.mark.parametrize("name", ["lognormal", "weibull"])
 @pytest.mark.parametrize("censored", [0.3, 0.6])
-def test_censored_likelihood_recovers_the_median_and_dropping_does_not(name, censored):
+def test_censored_likelihood_recovers_the_median_and_dropping_or_plugging_in_does_not(name, censored):
     rng = np.random.default_rng(int(censored * 100) + len(name))
     n = 3000
     if name == "lognormal":
@@ -251,6 +251,11 @@ def test_censored_likelihood_recovers_the_median_and_dropping_does_not(name, cen
     _, theta_d, cov_d = _joint_fit(lossfam.family(name), kept)
     m_d, grad_d = _log_median(name, theta_d)
     assert true_log_median - m_d > 5 * max(se, float(np.sqrt(grad_d @ cov_d @ grad_d)))
+    # plugging in the censoring time as if the event had happened then: also far too low
+    plugged = right_censored(np.minimum(T, C), np.ones(n))
+    _, theta_p, cov_p = _joint_fit(lossfam.family(name), plugged)
+    m_p, grad_p = _log_median(name, theta_p)
+    assert true_log_median - m_p > 5 * max(se, float(np.sqrt(grad_p @ cov_p @ grad_p)))
 
 
 # ---------------------------------------------------------------------------- ranking and command line
