@@ -9,13 +9,15 @@ maximum-likelihood nuisance parameters and the predictive law.
 Engine adapters live in ``lossfam.lightgbm``, ``lossfam.xgboost`` and
 ``lossfam.sklearn``; they import their engine only when used.  Both engines'
 ``train`` return a :class:`BoostedFit`; ``lossfam.load(path)`` reads either
-engine's saved model.
+engine's saved model.  ``lossfam.interval_target`` / ``lossfam.right_censored`` build censored
+and interval targets (``lossfam.censoring``), accepted wherever a target goes.
 """
 from ._boost.model import BoostedFit, load
+from .censoring import IntervalTarget, interval_target, right_censored
 from .families import Family
 from .registry import available, family, register, unregister
 from .selection import rank_families  # numpy/scipy only at import; engines, pandas load on use
 
 __version__ = "0.1.0"
 
-__all__ = ["BoostedFit", "Family", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]
+__all__ = ["BoostedFit", "Family", "IntervalTarget", "interval_target", "right_censored", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]

@@ -322,3 +322,29 @@ def test_survival_aft_matches_the_censored_lognormal_in_the_bulk_but_clips_far_r
     for lo, hi in [(2.0, 2.0), (2.0, np.inf), (0.0, 0.05), (1.0, 1.5)]:
         assert xgb_step(lo, hi) == pytest.approx(ours(lo, hi), rel=1e-6)
     assert xgb_step(1e4, 1e4) < 0.5 * ours(1e4, 1e4)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_weibull_default_guard_keeps_deep_trees_finite(engine):
+    # default engine settings (XGBoost: depth 6, eta 0.3) on 300 rows: the in-sample shape of pass 1
+    # is large, and without the family's auto step cap the second pass's first tree stepped to -31
+    # on the log scale and the raw scores overflowed (seen before auto_step_limit was declared)
+    mod = _adapter(engine)
+    rng = np.random.default_rng(0)
+    X = rng.normal(size=(300, 2))
+    T = np.exp(X[:, 0] + 0.5 * rng.normal(size=300))
+    C = rng.exponential(3.0, 300)
+    t = right_censored(np.minimum(T, C), T <= C)
+    if engine == "xgboost":
+        fit = mod.train("weibull", {"nthread": 1}, mod.censored_dmatrix(X, t), 10, verbose_eval=False)
+    else:
+        fit = mod.train("weibull", {"num_threads": 1, "verbose": -1}, mod.censored_dataset(X, t), 10)
+    assert fit.info["step_limit"] == 1.0
+    assert np.all(np.isfinite(fit.predict_raw(X)))
+    # the fitted model, saved and loaded, predicts the same
+    import os
+    import tempfile
+    path = os.path.join(tempfile.mkdtemp(), "model")
+    fit.save(path)
+    again = lossfam.load(path)
+    assert np.allclose(again.predict_raw(X), fit.predict_raw(X)) and again.fitted_family == fit.fitted_family

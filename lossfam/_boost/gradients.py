@@ -22,7 +22,9 @@ One parameter, one default, the same in both engines:
 ``"auto"`` (default)
     The family's ``hessian_damping`` when it declares one: every Hessian times
     e^damping (poisson: e^0.7, exactly what both engines' built-in poisson
-    objective does, so the default trains on the built-in), otherwise off.
+    objective does, so the default trains on the built-in), and its
+    ``auto_step_limit`` when it declares one (the per-row cap below;
+    weibull), otherwise off.
 ``None``
     Off: the family's Hessian as is.
 a positive number ``s``
@@ -69,7 +71,7 @@ def resolve_guard(fam, step_limit) -> Guard:
     if isinstance(step_limit, str):
         if step_limit != "auto":
             raise ValueError(f"step_limit must be 'auto', None or a positive number, got {step_limit!r}")
-        return Guard(damping=fam.hessian_damping)
+        return Guard(limit=getattr(fam, "auto_step_limit", None), damping=fam.hessian_damping)
     if step_limit is None:
         return Guard()
     try:

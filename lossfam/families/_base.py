@@ -62,6 +62,11 @@ Hessian, so a user family needs none of them unless it wants the treatment:
 ``hessian_damping``   log of a factor applied to every Hessian by the default
                       step guard, or None (poisson: 0.7, the damping of both
                       engines' built-in poisson objective).
+``auto_step_limit``   a per-row step cap (as ``step_limit=s``) that the default
+                      guard ``"auto"`` applies, or None: for families whose
+                      Hessian vanishes faster than their gradient in a tail,
+                      so that one leaf of such rows would take an unbounded
+                      Newton step (weibull: 1.0).  The fixed point is unchanged.
 ``native_twins``      ``{engine: {parameter: value}}``: the engine's built-in
                       objective whose loss, gradient, Hessian and leaf rule are
                       exactly this family's (in dispersion units, under the
@@ -184,6 +189,8 @@ class Family:
     leaf_value: ClassVar[str] = "newton"
     #: log of the factor the default step guard applies to every Hessian, or None
     hessian_damping: ClassVar[float | None] = None
+    #: per-row step cap applied by the default step guard "auto", or None
+    auto_step_limit: ClassVar[float | None] = None
     #: {engine: {engine parameter: value or FromParam(name)}}: built-in objectives equal to this loss
     native_twins: ClassVar[dict] = {}
 

@@ -18,6 +18,13 @@ With u = log y - raw and w = k u (so e^w = (y / lambda)^k):
                rises with k (its derivative mean_w(u^2 e^(ku)) > 0) and the right side falls, so
                the root is unique when some u != 0; scipy.optimize.brentq on log k)
 
+Step guard.  Where y is far below lambda, e^w -> 0: the gradient tends to k while the Hessian
+k^2 e^w vanishes, so a leaf of such rows alone takes a Newton step of about -1 / (k e^w), without
+bound (seen in boosting with an in-sample shape: a first tree step of -31 on the log scale).
+``auto_step_limit = 1.0`` makes the engines' default guard cap each row's step at 1 on the raw
+(log) scale: the Hessian is raised to |g| where it is below, the gradient untouched, so the fixed
+point is the same.
+
 The median is lambda (log 2)^(1/k); the mean lambda Gamma(1 + 1/k).  The predictive law is
 scipy.stats.weibull_min(c = k, scale = e^raw).
 
@@ -56,6 +63,7 @@ class Weibull(Family):
     prediction_kind = "scale"
     support_edges = (0.0, np.inf)
     censored_fit = ("shape",)
+    auto_step_limit = 1.0
 
     @property
     def prediction_level(self):
