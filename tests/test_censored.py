@@ -335,3 +335,41 @@ def test_weibull_fits_match_scipy_fit(rng):
     assert k == pytest.approx(k_ref, rel=1e-7)
     with pytest.raises(ValueError, match="every log residual is zero"):
         fam.fit_nuisance(np.array([2.0, 2.0]), np.log([2.0, 2.0]))
+
+
+# ---------------------------------------------------------------------------- a user family
+def test_a_user_family_gets_the_censored_likelihood_from_its_tail_pieces(rng):
+    # the generic censored math needs only the declared pieces: logistic errors, whose log tails
+    # are log_expit(+-z) (outside reference: scipy.stats.logistic logcdf / logsf)
+    from dataclasses import dataclass
+
+    from scipy.special import expit, log_expit
+    from user_families import LogisticErrors
+
+    from lossfam.families._censored import location_scale_pieces
+
+    @dataclass(frozen=True)
+    class CensoredLogistic(LogisticErrors):
+        name = "censored_logistic_test"
+        support_edges = (-np.inf, np.inf)
+        censored_fit = ("scale",)
+
+        def _tail_pieces(self, v, raw):
+            return location_scale_pieces((v - raw) / self.scale, self.scale, log_expit, lambda z: log_expit(-z),
+                                         lambda z: log_expit(z) + log_expit(-z), lambda z: 1.0 - 2.0 * expit(z))
+
+    fam = CensoredLogistic(scale=1.5)
+    raw = rng.normal(size=30)
+    y = stats.logistic(raw, 1.5).rvs(random_state=rng)
+    kind = np.arange(30) % 3                               # 0 exact, 1 left-, 2 right-censored at y
+    lo = np.where(kind == 1, -np.inf, y)
+    hi = np.where(kind == 2, np.inf, y)
+    t = interval_target(lo, hi)
+    law = stats.logistic(raw, 1.5)
+    ref = np.where(t.exact, -law.logpdf(y), np.where(np.isinf(hi), -law.logsf(np.where(np.isinf(lo), 0.0, lo)),
+                                                     -law.logcdf(hi)))
+    assert np.allclose(fam.nll(t, raw), ref, rtol=1e-12)
+    g, h = fam.grad_hess(t, raw)
+    assert np.allclose(g, finite_difference(lambda r: fam.nll(t, r), raw, 1e-4), rtol=1e-6, atol=1e-9)
+    assert np.allclose(h, finite_difference(lambda r: fam.grad_hess(t, r)[0], raw, 1e-4), rtol=1e-5, atol=1e-9)
+    assert np.isfinite(fam.baseline(t)) and fam.fit_nuisance(t, raw).scale > 0
