@@ -52,7 +52,7 @@ import tempfile
 import warnings
 from importlib import resources
 
-from . import selection
+from . import report, selection
 
 EXIT_BAD_INPUT = 2
 DEMO_FILE = "orchard_bruises.csv"
@@ -239,27 +239,27 @@ def read_csv(path, target, weight=None, *, offset=None, exposure=None, features=
 
 
 # ---------------------------------------------------------------------- output
-#: the plain-text table's columns: (row key, header, format)
+#: the plain-text table's columns: (row key, header, decimals)
 TEXT_COLUMNS = (
     ("place", "place", None),
     ("family", "family", None),
-    ("nll_per_row", "nll/row", ".4f"),
-    ("nll_uncertainty", "+/- folds", ".4f"),
-    ("behind_best", "behind best", ".4f"),
-    ("behind_best_uncertainty", "+/- paired", ".4f"),
-    ("calibration90", "PIT 5-95%", ".3f"),
-    ("plain_interval90", "plain 90% (extra)", ".3f"),
-    ("residual_ks", "KS dist", ".3f"),
-    ("rounds_used", "rounds", ".1f"),
+    ("nll_per_row", "nll/row", 4),
+    ("nll_uncertainty", "+/- folds", 4),
+    ("behind_best", "behind best", 4),
+    ("behind_best_uncertainty", "+/- paired", 4),
+    ("calibration90", "PIT 5-95%", 3),
+    ("plain_interval90", "plain 90% (extra)", 3),
+    ("residual_ks", "KS dist", 3),
+    ("rounds_used", "rounds", 1),
     ("nuisance", "nuisance parameters", None),
     ("scored_by", "scored by", None),
 )
 
 
-def _num(v, fmt):
+def _num(v, decimals):
     if v is None or (isinstance(v, float) and not math.isfinite(v)):
         return "-"
-    return format(v, fmt)
+    return report.number_text(v, decimals)
 
 
 def _params(p):

@@ -481,7 +481,7 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
                                native=native, nuisance_set=nuisance_set, metric_kind=metric_kind,
                                callbacks=callbacks, keep_training_booster=keep_training,
                                **({} if not user_feval else {"feval": user_feval}), **engine_kwargs)
-    plan = start_plan(fam, y, w, offset, prefit=prefit)
+    plan = start_plan(fam, y, w, offset, prefit=prefit, engine=_ENGINE)
     fam = plan.family
     guard = resolve_guard(fam, step_limit)
 

@@ -56,17 +56,30 @@ p.note { font-size: 0.9em; max-width: 60em; }
 """
 
 
+#: from this magnitude on a table number is written in exponent form (a fixed-point nll of 1e299
+#: would take 300 digits)
+LARGE = 1e9
+
+
+def number_text(value, decimals):
+    """``value`` with ``decimals`` decimals, or in exponent form (as many significant digits) when
+    it is ``LARGE`` or more in size."""
+    if abs(value) >= LARGE:
+        return f"{value:.{decimals}e}"
+    return f"{value:.{decimals}f}"
+
+
 def _cell(key, value):
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return "-"
     if key == "nuisance":
         return ", ".join(f"{k}={v:.4g}" for k, v in value.items()) or "-"
     if key == "rounds_used":
-        return f"{value:.1f}"
+        return number_text(value, 1)
     if key in ("calibration90", "plain_interval90", "residual_ks"):
-        return f"{value:.3f}"
+        return number_text(value, 3)
     if isinstance(value, float):
-        return f"{value:.4f}"
+        return number_text(value, 4)
     return str(value)
 
 

@@ -383,7 +383,7 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     w_raw = dtrain.get_weight()
     w = None if w_raw.size == 0 else _checks.check_weight(w_raw, y, fam.name, need_positive_sum=True)
     offset, _ = _offset_of(dtrain, fam)
-    plan = start_plan(fam, y, w, offset, prefit=prefit, precision=np.float32)
+    plan = start_plan(fam, y, w, offset, prefit=prefit, precision=np.float32, engine=_ENGINE)
     fam = plan.family
     baseline = plan.baseline
     for k, (dm, name) in enumerate(evals):

@@ -426,3 +426,15 @@ def test_report_is_one_self_contained_file(tmp_path):
     for fact in ("rows", "300", "germinated", "warmth (number)", "folds", "linear", "seed", "4",
                  "lossfam version", lossfam.__version__, "nll per row", "+/- paired"):
         assert fact in body, fact
+
+
+def test_text_and_html_tables_write_huge_numbers_in_exponent_form():
+    """An nll near 1e299 (counts near the float64 limit) is a short cell, not 300 digits."""
+    from lossfam import cli, report, selection
+
+    row = {"status": selection.STATUS_OK, "place": 1, "family": "poisson", "nll_per_row": 1.234e299,
+           "nll_uncertainty": 2.5e297, "behind_best": 0.0, "nuisance": {}, "scored_by": "log probability"}
+    text = cli.format_table([row])
+    assert "1.2340e+299" in text and "2.5000e+297" in text and max(map(len, text.split())) < 20
+    assert "0.0000" in text  # ordinary sizes keep their fixed decimals
+    assert "1.2340e+299" in report.table_html([row])

@@ -85,6 +85,23 @@ def test_sparse_many_columns_agrees_with_the_dense_fit_with_offset_and_penalty(a
     np.testing.assert_allclose(params(sp), params(dense), rtol=1e-7, atol=1e-9)
 
 
+@pytest.mark.parametrize("family", ["poisson", "gamma"])
+def test_sparse_many_columns_at_default_tolerance_agrees_with_the_dense_fit_to_1e8(family, monkeypatch):
+    # the truncated Newton path stops its conjugate gradients early; its refinement at the gradient
+    # test must bring the coefficients to the dense fit's (exact Newton matrix, Cholesky) at the
+    # default tol.  Reference: the dense fit of the same matrix, also at the default tol.
+    X, rng = onehot_design(6000, 4, 60, seed=12)  # 237 columns: above CHORD_MIN_COLUMNS
+    raw = 0.3 + X @ rng.normal(0.0, 0.3, X.shape[1])
+    y = targets(family, raw, rng)
+    refined = []
+    real = _solvers._refine_cg
+    monkeypatch.setattr(_solvers, "_refine_cg", lambda *a, **k: refined.append(1) or real(*a, **k))
+    sp = LikelihoodRegressor(family=family).fit(X, y)
+    assert refined, "the sparse fit did not refine"
+    dense = LikelihoodRegressor(family=family).fit(X.toarray(), y)
+    np.testing.assert_allclose(params(sp), params(dense), rtol=1e-8, atol=1e-10, err_msg=family)
+
+
 def test_sparse_many_columns_classifier_matches_sklearn():
     X, rng = onehot_design(8000, 3, 80, seed=9)
     raw = -0.2 + X @ rng.normal(0.0, 0.3, X.shape[1])

@@ -1,7 +1,10 @@
 """A family's engine facts (declared on the family class) turned into the numbers the engines use."""
 from __future__ import annotations
 
+import numpy as np
+
 from ..families._base import LEAF_VALUE_RULES, FromParam
+from .quantiles import single_precision_quantile
 
 ENGINES = ("lightgbm", "xgboost")
 
@@ -78,3 +81,40 @@ def renewal_definition(engine: str, weighted: bool) -> str:
     unweighted_rule, weighted_rule = _RENEWAL[engine]
     rule = weighted_rule if weighted else unweighted_rule
     return rule or "midpoint"
+
+
+def engine_start(fam, engine: str, y, w, offset=None) -> float | None:
+    """Where ``engine`` starts a median / quantile family: its built-in objective's own start.
+
+    The engines start their median and quantile objectives at a sample quantile
+    of the targets by their renewal definition, in single precision
+    (``quantiles.single_precision_quantile``).  lossfam starts a family whose
+    leaves take a residual quantile (``leaf_level``) there too, on the native
+    and on the custom path, so that both grow exactly the built-in's trees:
+    the first trees of a quantile model depend on the start, and on targets
+    with ties one float32 ulp moves the held-out loss by percents.  With an
+    offset the same rule applies to ``y - offset`` (the built-ins have no
+    start of their own there).  The family's ``baseline`` (the midpoint of
+    the minimisers of the pinball loss) is what the engines fall back to
+    where lossfam cannot reproduce the engine (LightGBM with weights), and
+    what the linear models and the diagnostics use; every rule here is a
+    minimiser or lies between the two order statistics around it.
+
+    Returns None for the other families (their baseline is the unique
+    minimiser of the nll, the same in every engine).
+    """
+    level = leaf_level(fam)
+    if level is None:
+        return None
+    weighted = w is not None
+    definition = renewal_definition(engine, weighted)
+    if definition == "midpoint":
+        return None
+    x = np.asarray(y, dtype=np.float64).reshape(-1)
+    if offset is not None:
+        x = x - np.asarray(offset, dtype=np.float64).reshape(-1)
+    if weighted:
+        w = np.asarray(w, dtype=np.float64).reshape(-1)
+        keep = w > 0
+        x, w = x[keep], w[keep]
+    return single_precision_quantile(x, w, level, definition)

@@ -8,6 +8,7 @@ import numpy as np
 
 from .. import _checks
 from ..censoring import IntervalTarget
+from . import facts
 
 #: training passes on a censored target whose family fits nuisance parameters (see censored_passes)
 CENSORED_PASSES = 2
@@ -25,7 +26,9 @@ class StartPlan:
         ``location_needs_nuisance`` (and ``prefit`` is on).
     baseline
         The constant raw score minimising the weighted nll given the offset
-        (``family.baseline(y, w, offset=o)``), rounded to ``precision``.
+        (``family.baseline(y, w, offset=o)``), rounded to ``precision``; for
+        a median / quantile family the engine's own start, a sample quantile
+        of the targets by the engine's definition (``facts.engine_start``).
     start
         Starting raw scores of the training rows: ``baseline + offset``.
     """
@@ -43,11 +46,16 @@ class StartPlan:
         return s
 
 
-def start_plan(fam, y, w, offset=None, *, prefit=True, precision=np.float64) -> StartPlan:
-    """Baseline given offset and weights, starting scores and the pre-fit (see StartPlan)."""
+def start_plan(fam, y, w, offset=None, *, prefit=True, precision=np.float64, engine=None) -> StartPlan:
+    """Baseline given offset and weights, starting scores and the pre-fit (see StartPlan).
+
+    With ``engine``, a median / quantile family starts where that engine's
+    built-in objective starts (``facts.engine_start``)."""
     o = None if offset is None else _checks.check_raw(np.asarray(offset, dtype=np.float64).reshape(-1), y,
                                                       f"{fam.name} offset")
-    baseline = float(precision(fam.baseline(y, w, offset=o)))
+    # censored rows: lossfam's censored baseline (the engines' own starts read plain targets only)
+    own = None if engine is None or isinstance(y, IntervalTarget) else facts.engine_start(fam, engine, y, w, o)
+    baseline = float(precision(fam.baseline(y, w, offset=o) if own is None else own))
     start = np.full(y.shape, baseline) if o is None else baseline + o
     censored = isinstance(y, IntervalTarget) and not y.exact.all()
     if prefit and (fam.location_needs_nuisance or (censored and fam.censored_fit)) and fam.params:
