@@ -10,14 +10,16 @@ Engine adapters live in ``lossfam.lightgbm``, ``lossfam.xgboost`` and
 ``lossfam.sklearn``; they import their engine only when used.  Both engines'
 ``train`` return a :class:`BoostedFit`; ``lossfam.load(path)`` reads either
 engine's saved model.  ``ClusterData`` (Dask collections) in place of a Dataset / DMatrix trains
-on a Dask cluster.
+on a Dask cluster.  ``lossfam.interval_target`` / ``lossfam.right_censored`` build censored
+and interval targets (``lossfam.censoring``), accepted wherever a target goes.
 """
 from ._boost.cluster import ClusterData
 from ._boost.model import BoostedFit, load
+from .censoring import IntervalTarget, interval_target, right_censored
 from .families import Family
 from .registry import available, family, register, unregister
 from .selection import rank_families  # numpy/scipy only at import; engines, pandas load on use
 
 __version__ = "0.1.0"
 
-__all__ = ["BoostedFit", "ClusterData", "Family", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]
+__all__ = ["BoostedFit", "ClusterData", "Family", "IntervalTarget", "interval_target", "right_censored", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]

@@ -94,13 +94,19 @@ def _split_names(text, option):
     return names
 
 
-def read_csv(path, target, weight=None, *, offset=None, exposure=None, features=None, drop=None):
+def read_csv(path, target, weight=None, *, offset=None, exposure=None, features=None, drop=None,
+             lower=None, upper=None, event=None):
     """Read a CSV with the csv module.
 
     Returns a dict: ``X`` (a float array, or a pandas DataFrame when there are
     text or date features), ``y``, ``weight``, ``offset``, ``exposure`` (arrays
     or None), ``features`` (names), ``notes``.  Raises DataError with the
     file's line numbers for anything unusable.
+
+    Censored targets: ``lower`` and ``upper`` name two columns of bounds per row
+    (equal for an exact row; -inf / inf for an open side), or ``event`` names a
+    0/1 column beside the ``target`` durations (0: still running at that time);
+    ``y`` is then a :class:`lossfam.censoring.IntervalTarget`.
     """
     import numpy as np
 
@@ -123,7 +129,8 @@ def read_csv(path, target, weight=None, *, offset=None, exposure=None, features=
     dup = sorted({h for h in header if header.count(h) > 1})
     if dup:
         raise DataError(f"{path}: duplicate column name(s) {dup}")
-    roles = {"target": target, "weight": weight, "offset": offset, "exposure": exposure}
+    roles = {"target": target, "weight": weight, "offset": offset, "exposure": exposure,
+             "lower": lower, "upper": upper, "event": event}
     for what, col in roles.items():
         if col is not None and col not in header:
             raise DataError(f"{path}: no {what} column named {col!r}; the columns are {header}")
@@ -168,7 +175,7 @@ def read_csv(path, target, weight=None, *, offset=None, exposure=None, features=
             ln = [lines[i] for i in missing]
             raise DataError(f"{path}: {what} column {col!r} has {len(ln)} missing/NaN value(s), e.g. line(s) {_show(ln)}")
         infinite = np.flatnonzero(np.isinf(columns[col]))
-        if infinite.size:
+        if infinite.size and what not in ("lower", "upper"):  # an open side of a censored row is +-inf
             ln = [lines[i] for i in infinite]
             raise DataError(f"{path}: {what} column {col!r} has {len(ln)} infinite value(s), e.g. line(s) {_show(ln)}")
     if exposure is not None:
@@ -213,9 +220,21 @@ def read_csv(path, target, weight=None, *, offset=None, exposure=None, features=
         X = pd.DataFrame({h: (kept_text[h] if h in kept_text else columns[h]) for h in features})
     else:
         X = np.column_stack([columns[h] for h in features])
+    from .censoring import IntervalTarget, right_censored
+
+    try:
+        if lower is not None:
+            y = IntervalTarget(columns[lower], columns[upper], owner=f"{path}: --lower/--upper")
+        elif event is not None:
+            y = right_censored(columns[target], columns[event])
+        else:
+            y = columns[target]
+    except ValueError as exc:
+        raise DataError(f"{exc} (rows counted from 0 below the header)") from None
+    extra = ("target", "lower", "upper", "event")
     return {
-        "X": X, "y": columns[target], "features": features, "notes": notes,
-        **{what: (columns[col] if col is not None else None) for what, col in roles.items() if what != "target"},
+        "X": X, "y": y, "features": features, "notes": notes,
+        **{what: (columns[col] if col is not None else None) for what, col in roles.items() if what not in extra},
     }
 
 
@@ -393,6 +412,10 @@ def _parser():
     cmd.add_argument("--rounds", type=int, default=selection.DEFAULT_ROUNDS,
                      help="maximum boosting rounds; each family stops early on its own held-back nll "
                           f"(default: {selection.DEFAULT_ROUNDS})")
+    cmd.add_argument("--lower", metavar="COL", help="censored targets: column of lower bounds (-inf: open); with --upper")
+    cmd.add_argument("--upper", metavar="COL", help="censored targets: column of upper bounds (inf: open); with --lower")
+    cmd.add_argument("--event", metavar="COL", help="right-censored durations: 0/1 column beside --target "
+                     "(1: observed at that time, 0: still running then)")
     cmd.add_argument("--weight", metavar="COL", help="name of a column of row weights")
     cmd.add_argument("--offset", metavar="COL", help="name of a column added to the raw score (link scale)")
     cmd.add_argument("--exposure", metavar="COL", help="name of a column of exposures (> 0); its log is the offset")
@@ -449,13 +472,22 @@ def _rank(args):
     else:
         if not args.data:
             return _fail("rank needs a CSV file (or --demo)")
-        if not args.target:
+        if (args.lower is None) != (args.upper is None):
+            return _fail("give --lower and --upper together (the two bounds of each row)")
+        if args.lower is not None and (args.target or args.event):
+            return _fail("give either --lower/--upper or --target (with --event), not both")
+        if args.event is not None and not args.target:
+            return _fail("--event needs --target COL, the durations it marks as observed or still running")
+        if not args.target and args.lower is None:
             return _fail("rank needs --target COL, the name of the target column")
         path, target = args.data, args.target
     for option in ("folds", "rounds", "threads"):
         value = getattr(args, option)
         if value is not None and value < (2 if option == "folds" else 1):
             return _fail(f"--{option} must be at least {2 if option == 'folds' else 1}, got {value}")
+    censored = getattr(args, "lower", None) is not None or getattr(args, "event", None) is not None
+    if censored and (args.plots is not None or args.report is not None):
+        return _fail("--plots and --report are not available for censored targets yet")
     if args.plots is not None or args.report is not None:
         try:
             import matplotlib  # noqa: F401
@@ -463,7 +495,8 @@ def _rank(args):
             return _fail('--plots and --report need matplotlib: pip install "lossfam[plot]"')
     try:
         data = read_csv(path, target, args.weight, offset=args.offset, exposure=args.exposure,
-                        features=args.features, drop=args.drop)
+                        features=args.features, drop=args.drop, lower=getattr(args, "lower", None),
+                        upper=getattr(args, "upper", None), event=getattr(args, "event", None))
     except DataError as exc:
         return _fail(str(exc))
     try:
@@ -507,6 +540,7 @@ def _run(args, data, target, families):
     for note in data["notes"]:
         print(f"lossfam: note: {note}", file=sys.stderr)
     y = data["y"]
+    target = target if target is not None else f"[{args.lower}, {args.upper}]"
     log(f"{y.size} rows, target {target!r}, features: {', '.join(data['features'])}; "
         f"engine {args.engine}, {args.folds} folds")
     if args.engine == "lightgbm":

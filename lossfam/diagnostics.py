@@ -24,6 +24,11 @@ randomisation at the atoms, u = F(y-) + V P(Y = y), and u = F(y) elsewhere.  ``u
 the same idea to a continuous law scored on integer targets (a continuous
 law for a value that was rounded): u = F(y - 1/2) + V (F(y + 1/2) - F(y - 1/2)).
 
+Censored and interval targets (a :class:`lossfam.censoring.IntervalTarget`) get the same
+randomisation over the censoring interval: u = F(lo) + V (F(hi) - F(lo)) for a censored row
+(exact rows as above), uniform under the model given the interval; F and its complement come
+from the family's own log tails (``Family._tail_pieces``).
+
 Numerics.  u and 1 - u are carried as logarithms: log u from ``logcdf`` (and
 log P(Y = y) from ``logpmf``), log(1 - u) from ``logsf``, combined with
 ``logaddexp`` so that neither tail cancels (1 - F(y) is never formed by a
@@ -43,6 +48,7 @@ from scipy import stats
 from scipy.special import ndtri_exp
 
 from . import _checks
+from .censoring import IntervalTarget
 from .registry import family as _make_family
 
 #: smallest u (and 1 - u) fed to the normal transform: the smallest normal float64
@@ -67,6 +73,8 @@ def _inputs(family, y, raw, *, for_nll=True):
     fam = _make_family(family)
     y = fam.check_target(y, for_nll=for_nll)
     raw = _checks.check_raw(raw, y, fam.name)
+    if isinstance(y, IntervalTarget):
+        return fam, y, raw
     if y.ndim != 1:
         raise ValueError(f"{fam.name}: y must be one-dimensional, got shape {y.shape}")
     return fam, y, raw
@@ -132,6 +140,8 @@ def log_interval_probability(family, y, raw, half_width=0.5):
 
 def _log_pit(fam, y, raw, seed, unit_interval):
     """(log u, log(1 - u)) of the (randomized) probability integral transform."""
+    if isinstance(y, IntervalTarget):
+        return _log_pit_censored(fam, y, raw, seed)
     law = fam.distribution(raw)
     if fam.discrete or unit_interval:
         if fam.discrete:
@@ -174,6 +184,26 @@ def _log_pit_with_atoms(law, y, seed):
         log_u = np.logaddexp(below, np.log(v) + log_mass)
         log_1mu = np.logaddexp(ls, np.log1p(-v) + log_mass)
     return np.where(atom, log_u, lc), np.where(atom, log_1mu, ls)
+
+
+def _log_pit_censored(fam, t, raw, seed):
+    """(log u, log(1 - u)) for an IntervalTarget: F(y) on exact rows, F(lo) + V (F(hi) - F(lo))
+    on censored rows, from the family's tail pieces (module docstring)."""
+    from .families._censored import _pieces_at, censored_nll, open_sides
+
+    has_lo, has_hi = open_sides(fam, t.lower, t.upper)
+    lf_lo, _, _, _ = _pieces_at(fam, t.lower, raw, has_lo & ~t.exact, True)
+    _, ls_hi, _, _ = _pieces_at(fam, t.upper, raw, has_hi & ~t.exact, False)
+    v = _rng(seed).random(t.size)
+    log_mass = np.where(t.exact, 0.0, -censored_nll(fam, t, raw))
+    with np.errstate(divide="ignore"):
+        log_u = np.logaddexp(lf_lo, np.log(v) + log_mass)
+        log_1mu = np.logaddexp(ls_hi, np.log1p(-v) + log_mass)
+    if t.exact.any():
+        ex = t.exact
+        lc, ls = _log_tails(fam.distribution(raw[ex]), t.lower[ex])
+        log_u[ex], log_1mu[ex] = lc, ls
+    return log_u, log_1mu
 
 
 # ---------------------------------------------------------------------- public

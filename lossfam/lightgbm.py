@@ -79,11 +79,42 @@ from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
 from ._boost.model import BoostedFit
 from ._boost.model import load as _load
-from ._boost.plan import check_trained, fit_nuisance_or_keep, start_plan
+from ._boost.plan import censored_passes, check_trained, fit_nuisance_or_keep, start_plan, train_in_passes
 from ._boost.scoring import Scorer, raw_from_output
+from .censoring import IntervalTarget
 from .registry import family as make_family
 
-__all__ = ["objective", "metric", "train", "load", "BoostedFit"]
+__all__ = ["objective", "metric", "train", "load", "BoostedFit", "censored_dataset"]
+
+#: the attribute of a lightgbm.Dataset that carries its censoring bounds (see censored_dataset)
+BOUNDS_ATTRIBUTE = "lossfam_bounds"
+
+
+def censored_dataset(data, target, **kwargs):
+    """A ``lightgbm.Dataset`` whose rows are censored or interval targets (lossfam's convention).
+
+    LightGBM has no field for a second label, so the bounds of ``target`` (a
+    :class:`lossfam.censoring.IntervalTarget`) travel with the Dataset object itself, as its
+    attribute ``lossfam_bounds``; the LightGBM label is set to a finite stand-in per row
+    (``target.midpoint()``: y for exact rows, the finite bound of one-sided rows) that LightGBM
+    requires and lossfam never reads.  Every lossfam objective, metric and ``train`` reads the
+    bounds from that attribute when it is present.  ``kwargs`` go to ``lightgbm.Dataset``
+    (weight, reference, params...; not ``label``).  A Dataset built by LightGBM itself (a
+    ``subset``, a file) does not carry the attribute: build each with this function.
+    """
+    if not isinstance(target, IntervalTarget):
+        raise TypeError(f"censored_dataset expects a lossfam.censoring.IntervalTarget, got {type(target).__name__}")
+    if "label" in kwargs:
+        raise ValueError("censored_dataset sets the label itself (a stand-in); the bounds are the target")
+    ds = _lgb().Dataset(data, label=target.midpoint(), **kwargs)
+    setattr(ds, BOUNDS_ATTRIBUTE, target)
+    return ds
+
+
+def _target_of(data):
+    """The Dataset's censoring bounds (censored_dataset) or else its label."""
+    bounds = getattr(data, BOUNDS_ATTRIBUTE, None)
+    return bounds if bounds is not None else data.get_label()
 
 _INSTALL = 'lossfam.lightgbm needs lightgbm: install it with pip install "lossfam[lightgbm]"'
 _ENGINE = "lightgbm"
@@ -125,7 +156,7 @@ class _Objective:
         raw, y, w, data = _call_style(a, b, c)
         narrow = self.grads.engine_buffers
         if data is not None:
-            y64, w64 = self._cache.get(self.family, (data,), lambda: (data.get_label(), data.get_weight()),
+            y64, w64 = self._cache.get(self.family, (data,), lambda: (_target_of(data), data.get_weight()),
                                        for_nll=False, narrow=narrow)
         else:
             y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=False, narrow=narrow)
@@ -182,7 +213,7 @@ class _Metric:
         raw, y, w, data = _call_style(a, b, c)
         nll = self.scorer.kind == "nll"
         if data is not None:
-            y64, w64 = self._cache.get(self.family, (data,), lambda: (data.get_label(), data.get_weight()),
+            y64, w64 = self._cache.get(self.family, (data,), lambda: (_target_of(data), data.get_weight()),
                                        for_nll=nll)
         else:
             y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=nll)
@@ -258,13 +289,17 @@ def _field(data, name):
 
 
 def _label_weight(data, fam, what):
-    y = _field(data, "label")
+    bounds = getattr(data, BOUNDS_ATTRIBUTE, None)
+    y = _field(data, "label") if bounds is None else bounds
     if y is None and (isinstance(data.data, (str, bytes)) or hasattr(data.data, "__fspath__")):
         data.construct()  # a Dataset file: its label is inside; construction reads it
         y = data.get_label()
     if y is None:
         raise ValueError(f"{what}: the Dataset has no label; build it with lightgbm.Dataset(X, label=y)")
-    y = fam.check_target(np.asarray(y, dtype=np.float64).ravel(), for_nll=False)
+    if bounds is not None:
+        y = fam.check_target(bounds)
+    else:
+        y = fam.check_target(np.asarray(y, dtype=np.float64).ravel(), for_nll=False)
     _checks.check_nonempty(y, fam.name)
     w = _field(data, "weight")
     w = None if w is None else _checks.check_weight(np.asarray(w, dtype=np.float64).ravel(), y, fam.name,
@@ -456,6 +491,12 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
 
     # the start: targets, baseline given offset and weights, nuisance pre-fit, starting scores
     y, w = _label_weight(data, fam, "data")
+    if censored_passes(fam, y, prefit):
+        return train_in_passes(train, fam, params=params, data=data, num_boost_round=num_boost_round,
+                               valid_sets=valid_sets, valid_names=valid_names, offset=offset,
+                               valid_offsets=None if offset is None else valid_offsets, step_limit=step_limit,
+                               native=native, nuisance_set=nuisance_set, metric_kind=metric_kind,
+                               callbacks=callbacks, **engine_kwargs)
     plan = start_plan(fam, y, w, offset, prefit=prefit, engine=_ENGINE)
     fam = plan.family
     guard = resolve_guard(fam, step_limit)
@@ -464,8 +505,11 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
     # the engine's objective: the native twin, the Python objective, or the Python objective with leaf refit
     twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native,
                              guard_is_default=guard == resolve_guard(fam, "auto"), params=call.params)
-    refit = _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid)
-    if refit is None and _label_is_a_copy(data, y):
+    censored = isinstance(y, IntervalTarget)
+    if censored:  # the censored likelihood: lossfam's gradients, Newton leaves
+        twin = None
+    refit = _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid, newton_leaves=censored)
+    if refit is None and not censored and _label_is_a_copy(data, y):
         y = w = None  # a float64 copy of LightGBM's float32 label: read again after training, not held during it
 
     run = _run(lgb, call, num_boost_round, plan, valid, refit, twin)
@@ -475,7 +519,7 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
     # the trained model: its training scores checked, its nuisance parameters fitted
     fitted = _finish(call, fam, y, w, run, valid)
     info = {"objective": run.twin["objective"] if run.twin else "custom",
-            "leaf_value": facts.leaf_rule(fam) if run.twin is None else "engine",
+            "leaf_value": ("newton" if censored else facts.leaf_rule(fam)) if run.twin is None else "engine",
             "step_limit": None if guard.limit is None else guard.limit, "hessian_damping": guard.damping}
     best = run.best - 1 if run.best > 0 else None
     return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, best, info)
@@ -539,11 +583,12 @@ class _ValidStarts:
             self.starts[k] = plan.start_for(self.targets[k][0].size, vo, f"valid_offsets[{k}]")
 
 
-def _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid):
-    """Set the engine objective, metrics and callbacks of the chosen path; the refit state (or None)."""
+def _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid, newton_leaves=False):
+    """Set the engine objective, metrics and callbacks of the chosen path; the refit state (or None).
+    ``newton_leaves``: keep the engine's Newton leaves whatever the family's rule (censored targets)."""
     params = call.params
     refit = None
-    if twin is None and facts.leaf_rule(fam) != "newton":
+    if twin is None and not newton_leaves and facts.leaf_rule(fam) != "newton":
         refit = _refit_state(call, fam, guard, y, w, plan, valid)
     own_metric = _Metric(fam, metric_kind, from_output=twin is not None)
     call.fevals = [own_metric] + call.user_feval

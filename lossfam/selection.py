@@ -102,6 +102,7 @@ import warnings
 import numpy as np
 
 from . import _checks, diagnostics
+from .censoring import IntervalTarget
 from .registry import available, family as make_family
 
 ENGINES = ("linear", "lightgbm", "xgboost")
@@ -127,6 +128,7 @@ DEFAULT_ROUNDS = 300
 SCORED_DENSITY = "log density"
 SCORED_MASS = "log probability"
 SCORED_INTERVAL = "log probability of [y-1/2, y+1/2]"
+SCORED_CENSORED = "log density (exact rows), log probability of [lower, upper] (censored rows)"
 
 STATUS_OK = "ok"
 STATUS_NA = "not applicable"
@@ -170,11 +172,16 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
             raise ValueError(f"too few rows to grow trees: {len(y)} training rows in a fold, fewer than "
                              f"2 x min_data_in_leaf = {2 * leaf}; use more rows, fewer folds or a smaller "
                              "min_data_in_leaf")
+        from .lightgbm import censored_dataset
+
+        def dataset(Xa, ya, wa):  # censored targets: lossfam's Dataset convention
+            return censored_dataset(Xa, ya, weight=wa) if isinstance(ya, IntervalTarget) else lgb.Dataset(Xa, ya, weight=wa)
+
         kw = {}
         if hold is not None:
-            kw = {"valid_sets": [lgb.Dataset(hold[0], hold[1], weight=hold[2])], "valid_offsets": [hold[3]],
+            kw = {"valid_sets": [dataset(hold[0], hold[1], hold[2])], "valid_offsets": [hold[3]],
                   "callbacks": [lgb.early_stopping(STOP_PATIENCE, first_metric_only=True, verbose=False)]}
-        model = train(fam, params, lgb.Dataset(X, y, weight=w), num_boost_round=rounds, offset=offset,
+        model = train(fam, params, dataset(X, y, w), num_boost_round=rounds, offset=offset,
                       prefit=not keep_params, **kw)
     elif engine == "xgboost":
         import xgboost as xgb
@@ -183,12 +190,18 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
 
         params = {**BOOST_DEFAULTS["xgboost"], "seed": seed, **options}
         cat = _has_categories(X)
+
+        def dmatrix(Xa, ya, wa, oa):  # censored targets: XGBoost's label_lower_bound / label_upper_bound
+            if isinstance(ya, IntervalTarget):
+                from .xgboost import censored_dmatrix
+                return censored_dmatrix(Xa, ya, weight=wa, base_margin=oa, enable_categorical=cat)
+            return xgb.DMatrix(Xa, ya, weight=wa, base_margin=oa, enable_categorical=cat)
+
         kw = {}
         if hold is not None:
-            dh = xgb.DMatrix(hold[0], hold[1], weight=hold[2], base_margin=hold[3], enable_categorical=cat)
+            dh = dmatrix(*hold)
             kw = {"evals": [(dh, "held_back")], "early_stopping_rounds": STOP_PATIENCE, "verbose_eval": False}
-        model = train(fam, params, xgb.DMatrix(X, y, weight=w, base_margin=offset, enable_categorical=cat),
-                      num_boost_round=rounds, prefit=not keep_params, **kw)
+        model = train(fam, params, dmatrix(X, y, w, offset), num_boost_round=rounds, prefit=not keep_params, **kw)
     else:
         raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
     # with early stopping the model keeps rounds 0..best_iteration
@@ -301,6 +314,8 @@ def _fit_family(fit, engine, fam, X, y, w, off, hold):
 # ---------------------------------------------------------------------- scoring
 def _score_fold(fam, y, raw, integer_footing, rng):
     """Per-row held-out nll, quantile residuals, PIT, interval indicators, P(y=1)."""
+    if isinstance(y, IntervalTarget):
+        return _score_censored_fold(fam, y, raw, rng)
     unit = integer_footing and not fam.discrete
     if unit:
         nll = -diagnostics.log_interval_probability(fam, y, raw)
@@ -320,6 +335,19 @@ def _score_fold(fam, y, raw, integer_footing, rng):
     if np.all((y == 0) | (y == 1)):
         p1 = np.asarray(law.sf(0.5), dtype=float)
     return nll, z, u, inside, p1
+
+
+def _score_censored_fold(fam, t, raw, rng):
+    """_score_fold for censored targets: the censored nll, and residuals from the PIT randomized over
+    each row's censoring interval (lossfam.diagnostics); a row counts as inside the central interval
+    at a level when its PIT does (for an exact row, the same as y lying in the law's interval)."""
+    nll = fam.nll(t, raw)
+    z = diagnostics.quantile_residuals(fam, t, raw, seed=rng)
+    from scipy.special import ndtr
+
+    u = ndtr(z)
+    inside = {level: (u >= (1 - level) / 2) & (u <= (1 + level) / 2) for level in PLOT_LEVELS}
+    return nll, z, u, inside, None
 
 
 def _folds(n, k, seed):
@@ -463,6 +491,8 @@ def _offsets(offset, exposure, n):
 
 
 def _as_inputs(X, y, weight, engine):
+    if isinstance(y, IntervalTarget):
+        return _as_censored_inputs(X, y, weight, engine)
     y = _checks.as_float_array(y, "y", "rank_families")
     if y.ndim != 1:
         y = y.ravel() if y.ndim == 2 and 1 in y.shape else y
@@ -482,6 +512,22 @@ def _as_inputs(X, y, weight, engine):
     w = _checks.check_weight(weight, y, "rank_families", need_positive_sum=True)
     w = np.ones_like(y) if w is None else np.ascontiguousarray(w, dtype=float)
     return X, y, w, names, kinds
+
+
+def _as_censored_inputs(X, t, weight, engine):
+    """_as_inputs for an IntervalTarget (censored rows): the same feature checks, weights per row."""
+    X, names, kinds = _features(X)
+    if X.ndim != 2 or X.shape[0] != t.size:
+        raise ValueError(f"rank_families: X must be 2-D with one row per target; X has shape {X.shape}, "
+                         f"the target has {t.size} rows")
+    if X.shape[1] == 0:
+        raise ValueError("rank_families: X has no feature columns")
+    numeric = X if isinstance(X, np.ndarray) else X[[c for c in X.columns if kinds[c] != "category"]].to_numpy(float)
+    if engine == "linear":
+        _checks.REAL.check(numeric, "X (the linear engine needs finite features)", "rank_families")
+    w = _checks.check_weight(weight, t.lower, "rank_families", need_positive_sum=True)
+    w = np.ones(t.size) if w is None else np.ascontiguousarray(w, dtype=float)
+    return X, t, w, names, kinds
 
 
 def _engine_errors(engine):
@@ -527,7 +573,8 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
         if engine in THREAD_PARAM:
             options[THREAD_PARAM[engine]] = int(threads)
     boosting = engine in BOOSTING
-    integer_footing = bool(np.all(np.floor(y) == y))
+    censored = isinstance(y, IntervalTarget)
+    integer_footing = not censored and bool(np.all(np.floor(y) == y))
     say = progress if callable(progress) else (
         (lambda msg: print(f"[lossfam rank] {msg}", file=sys.stderr, flush=True)) if progress else (lambda msg: None))
 
@@ -552,7 +599,7 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
         nll_rows = np.empty(n)
         z_all, u_all, mean_all = np.empty(n), np.empty(n), np.empty(n)
         inside = {lv: np.zeros(n, dtype=bool) for lv in PLOT_LEVELS}
-        p1 = np.empty(n) if np.all((y == 0) | (y == 1)) else None
+        p1 = np.empty(n) if not censored and np.all((y == 0) | (y == 1)) else None
         fold_means, params, used, penalty_notes = [], [], [], []
         label = fam0.name
         try:
@@ -598,6 +645,8 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
         mean_params = {key: (params[0][key] if isinstance(params[0][key], (bool, np.bool_))
                              else float(np.mean([p[key] for p in params]))) for key in params[0]}
         scored = SCORED_MASS if fam0.discrete else (SCORED_INTERVAL if integer_footing else SCORED_DENSITY)
+        if censored:
+            scored = SCORED_CENSORED
         notes = []
         if scored == SCORED_INTERVAL:
             notes.append("continuous law scored on integer targets by the probability of the unit interval around y")
@@ -694,9 +743,12 @@ def rank_families(X, y, families=None, engine="linear", folds=5, weight=None, se
         Features (NaN allowed as missing for the boosting engines).  In a
         DataFrame, text and categorical columns are categories and datetime
         columns become days since 1970-01-01 (module docstring).
-    y : array-like (n,)
+    y : array-like (n,) or lossfam.censoring.IntervalTarget
         Targets.  Integer-valued targets put continuous families on the
-        interval-probability footing (module docstring).
+        interval-probability footing (module docstring).  An IntervalTarget
+        (censored and interval rows) ranks the families that have a censored
+        likelihood (the others are "not applicable"), scored by the censored
+        nll, with residuals from the PIT randomized over each censoring interval.
     families : list of names or family objects, optional
         Default: every registered family applicable to y except asymmetric_laplace.
     engine : {"linear", "lightgbm", "xgboost"}

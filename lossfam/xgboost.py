@@ -72,11 +72,12 @@ from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
 from ._boost.model import BoostedFit
 from ._boost.model import load as _load
-from ._boost.plan import check_trained, fit_nuisance_or_keep, start_plan
+from ._boost.plan import censored_passes, check_trained, fit_nuisance_or_keep, start_plan, train_in_passes
 from ._boost.scoring import Scorer, raw_from_output
+from .censoring import IntervalTarget
 from .registry import family as _as_family
 
-__all__ = ["objective", "metric", "train", "load", "BoostedFit"]
+__all__ = ["censored_dmatrix", "objective", "metric", "train", "load", "BoostedFit"]
 
 _INSTALL_HINT = 'lossfam.xgboost needs the xgboost package; install it with: pip install "lossfam[xgboost]"'
 _ENGINE = "xgboost"
@@ -93,7 +94,33 @@ def _xgb():
 
 def _dmatrix_targets(dm):
     w = dm.get_weight()
-    return dm.get_label(), (None if w.size == 0 else w)
+    return _dmatrix_y(dm), (None if w.size == 0 else w)
+
+
+def _dmatrix_y(dm):
+    """The labels, or an IntervalTarget when the DMatrix carries XGBoost's censoring bounds
+    (``label_lower_bound`` / ``label_upper_bound``, as for ``survival:aft``)."""
+    lo = dm.get_float_info("label_lower_bound")
+    if lo.size == 0:
+        return dm.get_label()
+    hi = dm.get_float_info("label_upper_bound")
+    if hi.size != lo.size:
+        raise ValueError(f"the DMatrix has {lo.size} label_lower_bound values but {hi.size} label_upper_bound "
+                         "values; set both, one per row")
+    return IntervalTarget(lo.astype(np.float64), hi.astype(np.float64), owner="DMatrix bounds")
+
+
+def censored_dmatrix(data, target, **kwargs):
+    """An ``xgboost.DMatrix`` of ``data`` whose rows carry the bounds of ``target`` (a
+    :class:`lossfam.censoring.IntervalTarget`) as ``label_lower_bound`` / ``label_upper_bound``,
+    XGBoost's own fields for censored labels; ``kwargs`` go to the DMatrix (weight, base_margin...).
+    lossfam reads the bounds back from any DMatrix that has them, however it was built."""
+    if not isinstance(target, IntervalTarget):
+        raise TypeError(f"censored_dmatrix expects a lossfam.censoring.IntervalTarget, got {type(target).__name__}")
+    dm = _xgb().DMatrix(data, **kwargs)
+    dm.set_float_info("label_lower_bound", target.lower)
+    dm.set_float_info("label_upper_bound", target.upper)
+    return dm
 
 
 class _Objective:
@@ -359,8 +386,14 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     if nuisance_set is not None and not (0 <= int(nuisance_set) < len(evals)):
         raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(evals)} evals")
 
-    y = fam.check_target(dtrain.get_label(), for_nll=False)
+    y = fam.check_target(_dmatrix_y(dtrain), for_nll=False)
     _checks.check_nonempty(y, fam.name)
+    censored = isinstance(y, IntervalTarget)
+    if censored_passes(fam, y, prefit):
+        return train_in_passes(train, fam, params=params, dtrain=dtrain, num_boost_round=num_boost_round,
+                               evals=evals, step_limit=step_limit, native=native, nuisance_set=nuisance_set,
+                               metric_kind=metric_kind, early_stopping_rounds=early_stopping_rounds,
+                               evals_result=evals_result, verbose_eval=verbose_eval, **engine_kwargs)
     if y.ndim != 1:
         raise ValueError(f"{fam.name}: expected one label per row, got labels of shape {y.shape}")
     w_raw = dtrain.get_weight()
@@ -381,6 +414,8 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     rule = facts.leaf_rule(fam)
     twin = facts.chosen_twin(fam, _ENGINE, "XGBoost", native=native,
                              guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
+    if censored:  # the censored likelihood: lossfam's gradients, Newton leaves (twins and leaf renewal see only y)
+        twin, rule = None, "newton"
     params.setdefault("disable_default_eval_metric", 1)
     user_metric = engine_kwargs.pop("custom_metric", None)
     kw = dict(engine_kwargs, early_stopping_rounds=early_stopping_rounds, evals_result=evals_result,
@@ -434,7 +469,8 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     elif vraw is not None:
         vy, vw = _dmatrix_targets(evals[int(nuisance_set)][0])
         vy = fam.check_target(vy, for_nll=False)
-        fitted = fit_nuisance_or_keep(fam, vy, vraw, None if vw is None else _checks.check_weight(vw, vy, fam.name))
+        vrows = vy.lower if isinstance(vy, IntervalTarget) else vy
+        fitted = fit_nuisance_or_keep(fam, vy, vraw, None if vw is None else _checks.check_weight(vw, vrows, fam.name))
     else:
         fitted = fit_nuisance_or_keep(fam, y, train_raw, w)
     info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",

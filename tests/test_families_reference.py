@@ -332,5 +332,4 @@ def test_distribution_matches_nll_and_has_interval(rng, name):
     if f.prediction_kind == "mean":
         assert_rel(law.mean(), pred, 1e-12)
     else:
-        level = f.params.get("quantile", 0.5)
-        assert_rel(law.cdf(pred), np.full(50, level), 1e-10)
+        assert_rel(law.cdf(pred), np.full(50, f.prediction_level), 1e-10)

@@ -88,6 +88,12 @@ def test_notebook_runs(path):
         assert float(nb_line[-1]) > 0.01 > float(pois_line[-1])
         first = [line for line in text.splitlines() if line.strip().startswith("0 ")][0]
         assert "negative_binomial" in first
+    if path.stem == "parcel_delivery_censored":
+        medians = {ln.split()[0]: float(ln.split("typical parcel ")[1].split()[0])
+                   for ln in text.splitlines() if "median for a typical parcel" in ln}
+        truth = medians["truth"]
+        assert abs(medians["censored"] - truth) < 0.05 * truth     # the censored likelihood recovers it
+        assert medians["dropped"] < 0.85 * truth and medians["plugged"] < 0.85 * truth  # both biased low
     if path.stem == "kiln_quantile_intervals":
         line = [ln for ln in text.splitlines() if ln.startswith("two quantile models")][0]
         assert abs(float(line.split("covers ")[1].split(" ")[0]) - 0.8) < 0.08

@@ -22,7 +22,9 @@ One parameter, one default, the same in both engines:
 ``"auto"`` (default)
     The family's ``hessian_damping`` when it declares one: every Hessian times
     e^damping (poisson: e^0.7, exactly what both engines' built-in poisson
-    objective does, so the default trains on the built-in), otherwise off.
+    objective does, so the default trains on the built-in), and its
+    ``auto_step_limit`` when it declares one (the per-row cap below;
+    weibull), otherwise off.
 ``None``
     Off: the family's Hessian as is.
 a positive number ``s``
@@ -44,6 +46,8 @@ import weakref
 import numpy as np
 
 from .. import _checks
+from ..censoring import IntervalTarget
+from ..families._censored import censored_grad_hess
 from . import facts
 
 #: the default of ``step_limit`` in both engines
@@ -67,7 +71,7 @@ def resolve_guard(fam, step_limit) -> Guard:
     if isinstance(step_limit, str):
         if step_limit != "auto":
             raise ValueError(f"step_limit must be 'auto', None or a positive number, got {step_limit!r}")
-        return Guard(damping=fam.hessian_damping)
+        return Guard(limit=getattr(fam, "auto_step_limit", None), damping=fam.hessian_damping)
     if step_limit is None:
         return Guard()
     try:
@@ -103,7 +107,7 @@ class Gradients:
     def __call__(self, y, raw, w):
         """(g, h) at validated float64 ``y`` (float32 with ``engine_buffers``), ``raw`` (float64) and
         ``w`` (or None)."""
-        if self.engine_buffers and y.ndim == 1 and y.size > 0:
+        if self.engine_buffers and not isinstance(y, IntervalTarget) and y.ndim == 1 and y.size > 0:
             return self._into_buffers(y, raw, w)
         g, h = self._assemble(y, raw, w)
         if not _plausible(g, h):
@@ -113,7 +117,10 @@ class Gradients:
     def _assemble(self, y, raw, w):
         """float64 (g, h) with unit, guard and weights applied, not yet checked."""
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-            g, h = self.family._grad_hess(y, raw)
+            if isinstance(y, IntervalTarget):  # censored rows (lossfam.censoring): the interval likelihood
+                g, h = censored_grad_hess(self.family, y, raw)
+            else:
+                g, h = self.family._grad_hess(y, raw)
         if self.unit != 1.0:
             g *= self.unit
             h *= self.unit
@@ -231,11 +238,15 @@ class TargetCache:
                 r() is k for r, k in zip(self._refs, keys)):
             return self._y, self._w
         y, w = read()
-        single = np.asarray(y).reshape(-1) if narrow else None
-        y = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1), for_nll=for_nll)
-        if single is not None and single.dtype == np.float32 and single.shape == y.shape:
-            y = single
-        w = None if w is None or np.size(w) == 0 else _checks.check_weight(np.asarray(w).reshape(-1), y, fam.name)
+        if isinstance(y, IntervalTarget):
+            y = fam.check_target(y)
+            rows = y.lower
+        else:
+            single = np.asarray(y).reshape(-1) if narrow else None
+            y = rows = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1), for_nll=for_nll)
+            if single is not None and single.dtype == np.float32 and single.shape == y.shape:
+                y = rows = single
+        w = None if w is None or np.size(w) == 0 else _checks.check_weight(np.asarray(w).reshape(-1), rows, fam.name)
         try:
             self._refs = [_ref(k) for k in keys]
         except TypeError:  # lists and the like cannot be weakly referenced: no caching
@@ -275,7 +286,7 @@ def warn_if_far_from_baseline(fam, y, w, raw, engine):
     gradient signs, the first trees spend themselves moving the constant (or,
     with a constant Hessian floor, find no gain and stop).
     """
-    if raw.size == 0 or not np.all(raw == raw[0]):
+    if raw.size == 0 or not np.all(raw == raw[0]) or isinstance(y, IntervalTarget):
         return
     try:
         base = fam.baseline(y, w)

@@ -17,6 +17,8 @@ from sklearn.utils.validation import check_is_fitted, validate_data
 
 from .. import _checks
 from ..families import AsymmetricLaplace, Bernoulli, Gamma, Gaussian, Huber, Laplace, Poisson
+from ..censoring import IntervalTarget
+from ..families._censored import censored_grad_hess, censored_nll
 from ..registry import family as make_family
 from . import _solvers
 from .metrics import d2_score
@@ -181,6 +183,52 @@ def _fit_linear(est, fam, X, y, w, offset):
     # built-in families with an nll convex in raw: the cheaper gradient-norm line search
     merit = "gradient" if type(fam) in (Gaussian, Poisson, Gamma, Bernoulli) else "objective"
     return _solvers.newton(fam, *args, merit=merit)
+
+
+class _CensoredView:
+    """A family seen through an IntervalTarget: the hooks the solvers call on (y, raw) evaluate the
+    censored likelihood (lossfam.families._censored), so the same Newton iteration (and its
+    alternation with the nuisance fit) maximises it.  Not a family: used only inside a fit."""
+
+    def __init__(self, fam):
+        self.family = fam
+        self.name = fam.name
+        self.params = fam.params
+        self.exact_hessian = fam.exact_hessian
+
+    def _nll(self, t, raw):
+        return censored_nll(self.family, t, raw)
+
+    def _grad_hess(self, t, raw):
+        return censored_grad_hess(self.family, t, raw)
+
+    def fit_nuisance(self, t, raw, w):
+        return _CensoredView(self.family.fit_nuisance(t, raw, w))
+
+
+def _fit_censored(est, fam, X, target, sample_weight, offset, owner):
+    """Penalised maximum likelihood of a censored target (Tobit for gaussian, accelerated failure
+    time for lognormal and weibull): Newton's method on the censored nll from the censored
+    baseline, alternated with the nuisance fit (``fam.censored_fit``) until the parameters settle,
+    since under censoring the coefficients depend on them."""
+    if not fam.exact_hessian and not target.exact.all():
+        raise ValueError(f"{owner}: {fam.name} has a surrogate Hessian, and the linear solvers' "
+                         "majorise-minimise steps on a censored likelihood with a fitted scale converge too "
+                         "slowly to be offered; fit censored targets with a smooth family (gaussian, "
+                         "lognormal, weibull, gamma) or with a boosting engine")
+    w = _check_sample_weight(sample_weight, target.lower, owner)
+    v = w / w.sum()
+    intercept = fam.baseline(target, w, offset=offset) if est.fit_intercept else 0.0
+    args = (X, target, w, v, offset, float(est.alpha), est.fit_intercept, est.max_iter, est.tol,
+            np.zeros(X.shape[1]), intercept)
+    view = _CensoredView(fam)
+    if fam.censored_fit and fam.params:
+        fit = _solvers.nuisance_joint(view, *args)
+    else:
+        fit = _solvers.newton(view, args[0], args[1], *args[3:])
+        fit.family = view
+    fit.family = fit.family.family if isinstance(fit.family, _CensoredView) else fam
+    return fit
 
 
 def _joint_nuisance(fam):
@@ -392,6 +440,8 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         _check_hyper(self)
         fam = self._make_family()
         owner = type(self).__name__
+        if isinstance(y, IntervalTarget):
+            return self._fit_censored(fam, X, y, sample_weight, offset, owner)
         if y is not None:
             _prevalidate_y(fam, y)
         X, y = _validate_X_y(self, X, y, owner, y_numeric=True)
@@ -402,6 +452,31 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         fit = _fit_linear(self, fam, X, y, w, offset)
         _finish(self, fam, fit, y, w)
         _warn_if_unbounded(self, fam, X, y, w, fit.raw)
+        return self
+
+    def _fit_censored(self, fam, X, target, sample_weight, offset, owner):
+        """fit() for a :class:`lossfam.censoring.IntervalTarget` (censored and interval rows)."""
+        _check_numeric_columns(X, owner)
+        X = validate_data(self, X, dtype=np.float64, order="C", accept_sparse=("csr", "csc"),
+                          ensure_all_finite=False)
+        if sparse.issparse(X):
+            X = X.tocsr()
+            X.sort_indices()
+        _check_finite_rows(X, owner)
+        if X.shape[0] != target.size:
+            raise ValueError(f"{owner}: X has {X.shape[0]} rows but the target has {target.size}")
+        target = fam.check_target(target)
+        offset = _check_offset(offset, X.shape[0], owner)
+        self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
+        fit = _fit_censored(self, fam, X, target, sample_weight, offset, owner)
+        self.coef_ = fit.coef
+        self.intercept_ = float(fit.intercept)
+        self.n_iter_ = int(fit.n_iter)
+        self.family_ = fit.family
+        if not fit.converged:
+            warnings.warn(f"{owner} ({fam.name}, censored): Newton's method stopped after {fit.n_iter} "
+                          f"iterations with max |gradient| = {fit.grad_norm:.3g} > tol = {self.tol}",
+                          ConvergenceWarning, stacklevel=2)
         return self
 
     def _raw_score(self, X, offset):

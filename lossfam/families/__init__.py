@@ -12,8 +12,9 @@ from .negative_binomial import NegativeBinomial
 from .poisson import Poisson
 from .student_t import StudentT
 from .tweedie import Tweedie, TweedieLaw, tweedie_power_profile
+from .weibull import Weibull
 
 BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma,
-            Tweedie, NegativeBinomial, StudentT, Lognormal, Beta)
+            Tweedie, NegativeBinomial, StudentT, Lognormal, Beta, Weibull)
 
 __all__ = ["Family", "FromParam", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN]

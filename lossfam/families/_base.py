@@ -62,6 +62,11 @@ Hessian, so a user family needs none of them unless it wants the treatment:
 ``hessian_damping``   log of a factor applied to every Hessian by the default
                       step guard, or None (poisson: 0.7, the damping of both
                       engines' built-in poisson objective).
+``auto_step_limit``   a per-row step cap (as ``step_limit=s``) that the default
+                      guard ``"auto"`` applies, or None: for families whose
+                      Hessian vanishes faster than their gradient in a tail,
+                      so that one leaf of such rows would take an unbounded
+                      Newton step (weibull: 1.0).  The fixed point is unchanged.
 ``native_twins``      ``{engine: {parameter: value}}``: the engine's built-in
                       objective whose loss, gradient, Hessian and leaf rule are
                       exactly this family's (in dispersion units, under the
@@ -80,6 +85,8 @@ from scipy import optimize
 
 from .. import _checks
 from .._checks import Domain
+from ..censoring import IntervalTarget
+from . import _censored
 from ..links import Link
 
 
@@ -148,6 +155,11 @@ def by_row_blocks(fill, inputs, n_out, n_scratch=0, rows=BLOCK_ROWS, out=None):
     return outs
 
 
+def _rows(y):
+    """An array with one entry per row of y (the lower bounds of an IntervalTarget)."""
+    return y.lower if isinstance(y, IntervalTarget) else y
+
+
 @dataclasses.dataclass(frozen=True)
 class FromParam:
     """In ``Family.native_twins``: the value of the family's parameter ``name``."""
@@ -187,8 +199,16 @@ class Family:
     leaf_value: ClassVar[str] = "newton"
     #: log of the factor the default step guard applies to every Hessian, or None
     hessian_damping: ClassVar[float | None] = None
+    #: per-row step cap applied by the default step guard "auto", or None
+    auto_step_limit: ClassVar[float | None] = None
     #: {engine: {engine parameter: value or FromParam(name)}}: built-in objectives equal to this loss
     native_twins: ClassVar[dict] = {}
+
+    # censored and interval targets (lossfam.censoring; math in lossfam.families._censored)
+    #: (a, b): the closure of the support, for the bounds of censored rows; None: no censored likelihood
+    support_edges: ClassVar[tuple | None] = None
+    #: nuisance parameters fitted by maximum likelihood when the target has censored rows
+    censored_fit: ClassVar[tuple] = ()
 
     def __post_init__(self):
         for f in dataclasses.fields(self):
@@ -202,6 +222,16 @@ class Family:
     def params(self) -> dict:
         """The nuisance parameters as a plain dict (empty when there are none)."""
         return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+
+    @property
+    def prediction_level(self):
+        """The cdf level at which the prediction ``inverse_link(raw)`` lies when it is a quantile of
+        the predictive law, None for a mean: the ``quantile`` parameter where the family has one,
+        else 0.5 (a median, or the centre of a symmetric law); families whose prediction is another
+        quantile override this."""
+        if self.prediction_kind == "mean":
+            return None
+        return float(self.params.get("quantile", 0.5))
 
     def with_params(self, **params) -> "Family":
         """A copy with some nuisance parameters replaced (validated)."""
@@ -225,7 +255,13 @@ class Family:
 
     # ------------------------------------------------------------------ checks
     def check_target(self, y, *, for_nll: bool = True) -> np.ndarray:
-        """Validate targets; ``for_nll`` applies the stricter support of the nll."""
+        """Validate targets; ``for_nll`` applies the stricter support of the nll.
+
+        An :class:`lossfam.censoring.IntervalTarget` is checked against the
+        family's support (bounds, exact rows) and returned as is."""
+        if isinstance(y, IntervalTarget):
+            _censored.check_interval_support(self, y, self.name)
+            return y
         dom = (self.nll_domain or self.target_domain) if for_nll else self.target_domain
         return _checks.check_target(y, dom, self.name)
 
@@ -238,6 +274,9 @@ class Family:
     def nll(self, y, raw) -> np.ndarray:
         """Per-row negative log-likelihood in nats, every constant included."""
         y, raw = self._inputs(y, raw, for_nll=True)
+        if isinstance(y, IntervalTarget):
+            with np.errstate(over="ignore"):
+                return _censored.censored_nll(self, y, raw)
         scalar = y.ndim == 0
         if scalar:  # kernels may index or assign rows: give them one row
             y, raw = y.reshape(1), raw.reshape(1)
@@ -252,7 +291,11 @@ class Family:
         is the family's documented positive surrogate.
         """
         y, raw = self._inputs(y, raw, for_nll=False)
-        w = _checks.check_weight(weight, y, self.name)
+        w = _checks.check_weight(weight, _rows(y), self.name)
+        if isinstance(y, IntervalTarget):
+            with np.errstate(over="ignore", divide="ignore"):
+                g, h = _censored.censored_grad_hess(self, y, raw)
+            return (g, h) if w is None else (g * w, h * w)
         scalar = y.ndim == 0
         if scalar:  # the kernels work in place on arrays: give them one row
             y, raw = y.reshape(1), raw.reshape(1)
@@ -269,6 +312,11 @@ class Family:
     def deviance(self, y, raw) -> np.ndarray:
         """Per-row unit deviance: >= 0, and 0 where the prediction equals y."""
         y, raw = self._inputs(y, raw, for_nll=False)
+        if isinstance(y, IntervalTarget):
+            if not y.exact.all():
+                raise ValueError(f"{self.name}: the unit deviance is not defined for censored rows "
+                                 f"({int((~y.exact).sum())} here); score them by the nll")
+            y = y.lower
         with np.errstate(over="ignore"):
             return self._deviance(y, raw)
 
@@ -283,10 +331,14 @@ class Family:
         """
         y = self.check_target(y, for_nll=False)
         _checks.check_nonempty(y, self.name)
-        w = _checks.unit_weight(weight, y, self.name)
+        w = _checks.unit_weight(weight, _rows(y), self.name)
         o = None if offset is None else _checks.check_raw(offset, y, self.name + " offset")
         with np.errstate(over="ignore"):
-            c = float(self._baseline(y, w, o))
+            if isinstance(y, IntervalTarget):
+                c = float(self._baseline(y.lower, w, o) if y.exact.all()
+                          else _censored.censored_baseline(self, y, w, o))
+            else:
+                c = float(self._baseline(y, w, o))
         if not np.isfinite(c):
             raise ValueError(f"{self.name}: no finite constant raw score minimises the nll for these targets")
         return c
@@ -297,9 +349,13 @@ class Family:
             return self
         y, raw = self._inputs(y, raw, for_nll=False)
         _checks.check_nonempty(y, self.name)
-        w = _checks.unit_weight(weight, y, self.name)
+        w = _checks.unit_weight(weight, _rows(y), self.name)
         with np.errstate(over="ignore"):
-            new = self._fit_nuisance(y, raw, w)
+            if isinstance(y, IntervalTarget):
+                new = (self._fit_nuisance(y.lower, raw, w) if y.exact.all()
+                       else _censored.censored_fit_nuisance(self, y, raw, w))
+            else:
+                new = self._fit_nuisance(y, raw, w)
         return dataclasses.replace(self, **new)
 
     def distribution(self, raw):
@@ -342,6 +398,10 @@ class Family:
 
         res = optimize.minimize(objective, start, method="Nelder-Mead")
         return dict(zip(names, np.exp(res.x)))
+
+    def _tail_pieces(self, v, raw):  # pragma: no cover - abstract
+        """(log F, log S, log D, E) at finite bounds v inside the support (lossfam.families._censored)."""
+        raise NotImplementedError(f"{type(self).__name__} has no censored likelihood")
 
     def _distribution(self, raw):  # pragma: no cover - abstract
         raise NotImplementedError(f"{type(self).__name__} has no predictive distribution")

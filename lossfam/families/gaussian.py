@@ -12,6 +12,10 @@ Density, with mean mu = raw (identity link) and scale sigma > 0:
     sigma^   = sqrt(sum w (y - raw)^2 / sum w)   (maximum likelihood)
 
 Domains: y real, raw real.
+
+Censored rows (lossfam.families._censored): the normal law of z = (y - raw) / sigma,
+log F = log_ndtr(z), log S = log_ndtr(-z), log D = log phi(z) - log sigma, E = z / sigma;
+a gaussian with left-censoring at a detection limit is the Tobit model.
 """
 from __future__ import annotations
 
@@ -23,6 +27,7 @@ from scipy import stats
 from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
+from . import _censored
 from ._base import Family, residuals
 
 _HALF_LOG_2PI = 0.5 * np.log(2.0 * np.pi)
@@ -39,6 +44,8 @@ class Gaussian(Family):
     # engine facts: in scale**2 units the gradient and Hessian are raw - y and 1, the built-ins' own
     dispersion_unit = ("scale", 2.0)
     native_twins = {"lightgbm": {"objective": "regression"}, "xgboost": {"objective": "reg:squarederror"}}
+    support_edges = (-np.inf, np.inf)
+    censored_fit = ("scale",)
 
     def _nll(self, y, raw):
         z = (y - raw) / self.scale
@@ -69,6 +76,9 @@ class Gaussian(Family):
             raise ValueError("gaussian: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
         u = np.divide(r, m, out=r)  # residuals relative to the largest: their squares neither overflow nor all underflow
         return {"scale": float(m * np.sqrt(np.dot(w, np.multiply(u, u, out=u)) / w.sum()))}
+
+    def _tail_pieces(self, v, raw):
+        return _censored.normal_pieces((v - raw) / self.scale, self.scale)
 
     def _distribution(self, raw):
         return stats.norm(loc=raw, scale=self.scale)

@@ -25,6 +25,10 @@ the target (the iteratively reweighted least-squares step for the median),
 unlike a unit Hessian whose step is bounded by 1 whatever the units of y.
 The floor keeps rows that already fit exactly from getting infinite weight;
 it is relative to b, so fit b first (``fit_nuisance``) for best behaviour.
+
+Censored rows (lossfam.families._censored): the standard Laplace law of z = (y - raw) / b with
+the closed-form log tails of ``_LaplaceLaw`` and score psi = -sign(z); the censored Hessian is
+0 on the linear tails, where the surrogate g^2 = 1 / b^2 takes over.
 """
 from __future__ import annotations
 
@@ -38,6 +42,7 @@ from .._boost.quantiles import sample_quantile
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family, residuals, scaled_mean
+from ._censored import location_scale_pieces
 
 #: residuals below FLOOR * scale get the curvature of a residual of that size
 FLOOR = 1e-3
@@ -116,6 +121,8 @@ class Laplace(Family):
     dispersion_unit = ("scale", 2.0)
     leaf_value = "median"
     native_twins = {"lightgbm": {"objective": "regression_l1"}, "xgboost": {"objective": "reg:absoluteerror"}}
+    support_edges = (-np.inf, np.inf)
+    censored_fit = ("scale",)
 
     def _nll(self, y, raw):
         return np.abs(y - raw) / self.scale + np.log(2.0 * self.scale)
@@ -143,6 +150,11 @@ class Laplace(Family):
         if not b > 0:
             raise ValueError("laplace: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
         return {"scale": float(b)}
+
+    def _tail_pieces(self, v, raw):
+        law = laplace_law
+        return location_scale_pieces((v - raw) / self.scale, self.scale, law._logcdf, law._logsf,
+                                     law._logpdf, lambda z: -np.sign(z))
 
     def _distribution(self, raw):
         return laplace_law(loc=raw, scale=self.scale)

@@ -17,6 +17,9 @@ For y > 0, with l = log y - raw:
     sigma^   = sqrt(sum w (log y - raw)^2 / sum w)      (maximum likelihood)
 
 The predictive law is scipy.stats.lognorm(s = sigma, scale = e^raw).
+
+Censored rows (lossfam.families._censored): the normal law of z = (log y - raw) / sigma, as
+gaussian's on log y (the accelerated-failure-time model with normal errors on log time).
 """
 from __future__ import annotations
 
@@ -28,6 +31,7 @@ from scipy import stats
 from .. import _checks
 from .._checks import POSITIVE
 from ..links import LOG
+from . import _censored
 from ._base import Family
 
 _HALF_LOG_2PI = 0.5 * np.log(2.0 * np.pi)
@@ -43,6 +47,8 @@ class Lognormal(Family):
     param_domains = {"scale": POSITIVE}
     prediction_kind = "median"
     dispersion_unit = ("scale", 2.0)
+    support_edges = (0.0, np.inf)
+    censored_fit = ("scale",)
 
     def _nll(self, y, raw):
         ly = np.log(y)
@@ -75,6 +81,9 @@ class Lognormal(Family):
                              "(not a valid scale)")
         u = r / m  # relative to the largest: squares neither overflow nor all underflow (as in gaussian)
         return {"scale": float(m * np.sqrt(np.dot(w, u * u) / w.sum()))}
+
+    def _tail_pieces(self, v, raw):
+        return _censored.normal_pieces((np.log(v) - raw) / self.scale, self.scale)
 
     def _distribution(self, raw):
         with np.errstate(over="ignore"):

@@ -39,6 +39,10 @@ weighted mean of the residuals: it has the units of y, and outlying rows get
 small weights (the robustness of the t model).  No floor is needed (unlike
 laplace's), since h is bounded by (nu+1)/(nu s^2).  Fit s first (``fit_nuisance``)
 for the best steps.
+
+Censored rows (lossfam.families._censored): the standard t law of z = (y - raw) / s, log tails
+from scipy.stats.t.logcdf / logsf, score psi = -(nu+1) z / (nu + z^2).  The censored Hessian is
+negative for some rows (the t density is not log-concave); there the surrogate g^2 is used.
 """
 from __future__ import annotations
 
@@ -51,6 +55,7 @@ from scipy.special import expit, gammaln
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family
+from ._censored import location_scale_pieces
 from .laplace import weighted_quantile
 
 #: range of the degrees of freedom searched when estimate_df=True
@@ -109,6 +114,8 @@ class StudentT(Family):
     prediction_kind = "median"
     dispersion_unit = ("scale", 2.0)
     location_needs_nuisance = True
+    support_edges = (-np.inf, np.inf)
+    censored_fit = ("scale",)
 
     def __post_init__(self):
         super().__post_init__()
@@ -273,6 +280,13 @@ class StudentT(Family):
                              "no maximum-likelihood df; fix df")
         nu = float(np.exp(res.x))
         return {"df": nu, "scale": self._fit_scale(nu, log_r, w)}
+
+    def _tail_pieces(self, v, raw):
+        nu, s = self.df, self.scale
+        return location_scale_pieces(
+            (v - raw) / s, s, lambda z: stats.t.logcdf(z, nu), lambda z: stats.t.logsf(z, nu),
+            lambda z: -0.5 * (nu + 1.0) * np.log1p(z * z / nu) - _log_norm(nu),
+            lambda z: -(nu + 1.0) * z / (nu + z * z))
 
     def _distribution(self, raw):
         return stats.t(df=self.df, loc=raw, scale=self.scale)
