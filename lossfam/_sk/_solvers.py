@@ -53,7 +53,8 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
       when needed;
     * sparse X with more coefficients (``newton_cg``): truncated Newton, the
       direction from conjugate gradients on Hessian-vector products (the
-      matrix is never formed), preconditioned by its diagonal and BFGS pairs
+      matrix is never formed), preconditioned by its diagonal (two-level, with
+      a coarse space of the one-hot blocks found in X) and BFGS pairs
       from earlier solves, started from the fit of a row subsample, and
       refined at the end by one accurately solved Newton step.
 
@@ -117,6 +118,8 @@ CHORD_MIN_COLUMNS = 200  # ... used for sparse X or more coefficients than this
 SUBSAMPLE_START_TOL = 1e-4  # large data (fast paths): tolerance of the subsample's fit that gives the start
 REFINE_CG_RTOL = 1e-4  # sparse X, many columns: the refinement's conjugate gradients shrink the residual by this factor
 CG_MEMORY = 40  # sparse X with more coefficients than CHORD_MIN_COLUMNS: pairs kept by the quasi-Newton preconditioner
+COARSE_MIN_COVER = 0.5  # ... a one-hot block enters the coarse space if it has a non-zero on this share of rows
+COARSE_MAX_BLOCKS = 64  # ... and at most this many blocks (the coarse matrix is (blocks + 1) x (blocks + 1))
 SCALE_COLLAPSE = 1e-6  # huber: a fitted scale below this times the scale at the baseline means interpolation
 
 
@@ -828,10 +831,6 @@ def _refine_dense(solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit
 
 
 
-COARSE_MIN_COVER = 0.5  # sparse X: a one-hot block enters the coarse space if it has a non-zero on this share of rows
-COARSE_MAX_BLOCKS = 64  # ... and at most this many blocks (the coarse matrix is (blocks + 1) x (blocks + 1))
-
-
 def _positions(ind, table, test, step=1 << 20):
     """Positions k of ``ind`` with test(table[ind[k]], table[ind[k + 1]]), in chunks (bounded temporaries)."""
     out = []
@@ -938,6 +937,7 @@ class _CoarseSpace:
     def __init__(self, Xc, block_of, k, member, fit_intercept, sel=None, weight=1.0):
         self.Xc, self.block_of, self.k, self.member = Xc, block_of, k, member
         self.fit_intercept, self.sel, self.weight = fit_intercept, sel, weight
+        self.frozen = None
         p = block_of.size
         kz = k + int(fit_intercept)
         Z = np.zeros((p + int(fit_intercept), kz))
@@ -983,8 +983,14 @@ class _CoarseSpace:
         (pseudo-inverse: a singular design makes it singular).  Built on a row subsample, A in
         these two places is the subsample's d2F: P stays symmetric positive definite for any
         positive definite matrix there (a preconditioner, not the system; the solves use the exact
-        products), and the product costs a fraction of one with all rows.
+        products), and the product costs a fraction of one with all rows.  A space serving a
+        larger fit (``lifted``) computes A Z and (Z^T A Z)^+ once, at its first call (the full
+        fit's start, where the subsample's fit ended), keeps them for later calls (a fixed A there
+        keeps P positive definite; only the diagonal is renewed) and releases the subsample's rows.
         """
+        if self.frozen is not None:
+            AZ, Einv = self.frozen
+            return self._apply(AZ, Einv, diag)
         X = self.Xc
         if self.sel is not None:
             hv = hv[self.sel] * self.weight
@@ -1006,6 +1012,13 @@ class _CoarseSpace:
         lam, U = np.linalg.eigh(0.5 * (E + E.T))
         good = lam > kz * _EPS * max(float(np.max(np.abs(lam), initial=0.0)), np.finfo(float).tiny)
         Einv = (U[:, good] / lam[good]) @ U[:, good].T
+        if self.sel is not None:
+            self.frozen = (AZ, Einv)
+            self.Xc = self.member = None
+        return self._apply(AZ, Einv, diag)
+
+    def _apply(self, AZ, Einv, diag):
+        Z = self.Z
 
         def apply(r):
             c = Einv @ (Z.T @ r)
@@ -1113,10 +1126,16 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
     updating, SIAM J. Optim. 10, 2000 -- recalled from memory).  For one-hot
     designs the Jacobi-scaled matrix has about one outlying eigenvalue per
     categorical factor (each factor's columns nearly add up to the intercept)
-    around a tight cluster near 1; the pairs of one solve carry those
-    directions into the next, which then needs a few iterations instead of a
-    few tens.  Jacobi preconditioning makes the iterates independent of the
-    columns' units, as the equilibrated Cholesky solve of the dense path.
+    around a tight cluster near 1.  Those directions are known: the vectors
+    1_f (1 on the columns of factor f) and the intercept.  When X has such
+    blocks (``onehot_blocks``: runs of adjacent 0/1 columns that never share
+    a row and cover at least COARSE_MIN_COVER of the rows) the Jacobi step
+    becomes the balancing two-level preconditioner with the coarse space
+    Z = [1_f ..., e_intercept] (``_CoarseSpace.preconditioner``), built on
+    the start's row subsample; the full-row solves then take a few products
+    instead of ten to twenty.  Without blocks (general sparse data) it is
+    Jacobi alone.  Jacobi preconditioning makes the iterates independent of
+    the columns' units, as the equilibrated Cholesky solve of the dense path.
 
     Start: with n >= SUBSAMPLE_MIN_ROWS the same iteration first fits one
     row in SUBSAMPLE_FRACTION (weights rescaled to the same total) to
@@ -1176,6 +1195,7 @@ def newton_cg(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef, i
                                   mem=mem, warm=False, unit=unit, refine=False, coarse=sub or False)
             except (FloatingPointError, ValueError, np.linalg.LinAlgError):
                 start = None
+            del Xsub, sub  # the full fit's coarse space keeps the subsample's rows only while it needs them
             if start is not None and np.all(np.isfinite(start.coef)) and np.isfinite(start.intercept):
                 coef, intercept, start_iter = start.coef, float(start.intercept), start.n_iter
             else:
