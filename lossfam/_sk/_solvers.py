@@ -875,7 +875,8 @@ def onehot_blocks(X):
 
     Returns block_of (length p: the block of each column, -1 for none) and the number of blocks.
     Only columns whose every stored entry is 1 take part, and blocks have >= 2 columns and
-    non-zeros on >= COARSE_MIN_COVER of the rows (at most COARSE_MAX_BLOCKS, the most covering).
+    non-zeros on >= COARSE_MIN_COVER of the rows (at most COARSE_MAX_BLOCKS, the most covering,
+    and at most n / (p + 1) - 1).
     Two columns j1 < j2 that are consecutive non-zeros of some row cannot share a block: a block
     boundary must lie in (j1, j2].  Found in rounds, each O(nnz): first the boundaries between
     adjacent columns that share a row, then the candidate blocks are checked on every row and
@@ -918,7 +919,12 @@ def onehot_blocks(X):
     if not keep.size:
         return none
     cover = np.bincount(block_of[block_of >= 0], weights=counts[block_of >= 0], minlength=k)
-    keep = keep[np.argsort(-cover[keep], kind="stable")[:COARSE_MAX_BLOCKS]]
+    # at most COARSE_MAX_BLOCKS, and (blocks + 1) (p + 1) <= n: the coarse space's dense p x blocks
+    # products stay within the size of one length-n vector
+    most = min(COARSE_MAX_BLOCKS, n // (p + 1) - 1)
+    if most < 1:
+        return none
+    keep = keep[np.argsort(-cover[keep], kind="stable")[:most]]
     remap = np.full(k, -1, dtype=np.int32)
     remap[np.sort(keep)] = np.arange(keep.size, dtype=np.int32)
     out = np.where(block_of >= 0, remap[np.maximum(block_of, 0)], -1).astype(np.int32)
