@@ -886,7 +886,10 @@ def onehot_blocks(X):
     """
     n, p = X.shape
     none = (np.full(p, -1, dtype=np.int32), 0)
-    if n == 0 or p < 2 or not X.has_sorted_indices:
+    # at most COARSE_MAX_BLOCKS, and (blocks + 1) (p + 1) <= n: the coarse space's dense p x blocks
+    # products stay within the size of one length-n vector
+    most = min(COARSE_MAX_BLOCKS, n // (p + 1) - 1)
+    if most < 1 or p < 2 or not X.has_sorted_indices:
         return none
     counts = np.bincount(X.indices, minlength=p)
     unit = np.bincount(X.indices[X.data != 1.0], minlength=p) == 0
@@ -919,11 +922,6 @@ def onehot_blocks(X):
     if not keep.size:
         return none
     cover = np.bincount(block_of[block_of >= 0], weights=counts[block_of >= 0], minlength=k)
-    # at most COARSE_MAX_BLOCKS, and (blocks + 1) (p + 1) <= n: the coarse space's dense p x blocks
-    # products stay within the size of one length-n vector
-    most = min(COARSE_MAX_BLOCKS, n // (p + 1) - 1)
-    if most < 1:
-        return none
     keep = keep[np.argsort(-cover[keep], kind="stable")[:most]]
     remap = np.full(k, -1, dtype=np.int32)
     remap[np.sort(keep)] = np.arange(keep.size, dtype=np.int32)
