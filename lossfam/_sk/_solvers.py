@@ -847,7 +847,7 @@ def _in_row(X, pos):
 
 
 def _blocks_from_cuts(lim, unit):
-    """Fewest runs of unit columns [s, e) with no e' = lim[j] <= ... inside: greedy interval stabbing.
+    """Fewest runs of unit columns [s, e) with lim[j] >= e for every j in the run: greedy interval stabbing.
 
     Every unit column j needs a block boundary in (j, lim[j]]; the sweep cuts at the smallest
     right end among the open intervals (the optimal rule for stabbing intervals with points,
