@@ -205,3 +205,90 @@ def test_large_dense_badly_scaled_fit_matches_its_standardised_twin_and_sklearn(
     np.testing.assert_allclose(ours.intercept_, twin.intercept_ - mean @ coef, rtol=1e-7)
     ref = GammaRegressor(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=200).fit(Xs, y)
     np.testing.assert_allclose(twin.coef_, ref.coef_, rtol=1e-7)
+
+
+def test_onehot_blocks_finds_the_factors_and_nothing_in_general_sparse_data():
+    X, rng = onehot_design(5000, 3, 40, seed=21)  # factors in columns 0-38, 39-77, 78-116; a numeric column 117
+    block_of, k = _solvers.onehot_blocks(X)
+    assert k == 3
+    np.testing.assert_array_equal(block_of, np.r_[np.repeat([0, 1, 2], 39), -1])
+    # the definition, checked by brute force: a block's columns never share a row
+    for f in range(k):
+        assert X[:, block_of == f].sum(axis=1).max() <= 1
+    # 0/1 entries without factor structure (columns share rows at random): no block, Jacobi alone
+    R = sparse.random(5000, 300, density=0.02, format="csr", random_state=3, data_rvs=np.ones)
+    assert _solvers.onehot_blocks(R)[1] == 0
+    assert _solvers._CoarseSpace.of(R, True) is None
+    # non-unit entries take no part
+    Xs = X.multiply(rng.uniform(0.5, 2.0, X.shape[0])[:, None]).tocsr()
+    assert _solvers._CoarseSpace.of(Xs, True) is None
+
+
+def test_onehot_blocks_splits_a_run_whose_columns_share_a_row_further_apart():
+    # columns 0..5 never share a row except 1 and 4 (one row, not adjacent): a boundary is needed in
+    # (1, 4]; the fewest blocks are two, e.g. [0, 4) and [4, 6), each covering >= half of the rows
+    n = 400
+    rng = np.random.default_rng(4)
+    first = rng.integers(0, 4, n)  # columns 0-3
+    second = 4 + rng.integers(0, 2, n)  # columns 4-5
+    rows = np.r_[np.arange(n), np.arange(n)]
+    cols = np.r_[first, second]
+    X = sparse.csr_matrix((np.ones(rows.size), (rows, cols)), shape=(n, 6))
+    block_of, k = _solvers.onehot_blocks(X)
+    assert k == 2
+    for f in range(k):
+        assert X[:, block_of == f].sum(axis=1).max() <= 1
+    assert np.all(block_of >= 0)
+
+
+@pytest.mark.parametrize("fit_intercept", [True, False])
+def test_two_level_preconditioner_is_symmetric_positive_definite_and_deflates_the_factor_directions(fit_intercept):
+    # balancing two-level preconditioner P = (I - Q A) D^-1 (I - A Q) + Q, Q = Z (Z^T A Z)^-1 Z^T
+    # (Tang, Nabben, Vuik & Erlangga, J. Sci. Comput. 39, 2009 -- recalled from memory): P is
+    # symmetric positive definite and P A Z = Z; A is the Newton matrix written out with numpy
+    X, rng = onehot_design(3000, 3, 30, seed=8)
+    n, p = X.shape
+    hv = rng.uniform(0.5, 2.0, n) / n
+    alpha = 1e-4
+    Xd = X.toarray()
+    if fit_intercept:
+        Xd = np.c_[Xd, np.ones(n)]
+    A = Xd.T @ (hv[:, None] * Xd)
+    A[np.arange(p), np.arange(p)] += alpha
+    diag = _solvers._cg_diagonal(X, hv, np.full(n, 1.0 / n), np.ones(p), alpha, fit_intercept, _solvers._is_unit(X))
+    np.testing.assert_allclose(diag, np.diag(A), rtol=1e-12)
+    coarse = _solvers._CoarseSpace.of(X, fit_intercept)
+    assert coarse.k == 3
+    apply = coarse.preconditioner(hv, alpha, diag)
+    P = np.column_stack([apply(e) for e in np.eye(A.shape[0])])
+    np.testing.assert_allclose(P, P.T, atol=1e-10 * np.abs(P).max())
+    assert np.linalg.eigvalsh(0.5 * (P + P.T)).min() > 0
+    np.testing.assert_allclose(P @ A @ coarse.Z, coarse.Z, atol=1e-9)
+    # the point of it: the spread of the preconditioned spectrum shrinks against Jacobi alone
+    jac = np.sort(np.linalg.eigvals(A / diag[:, None]).real)
+    two = np.sort(np.linalg.eigvals(P @ A).real)
+    assert two[-1] / two[0] < 0.2 * jac[-1] / jac[0]
+
+
+@pytest.mark.parametrize("n", [6000, pytest.param(_solvers.SUBSAMPLE_MIN_ROWS, marks=pytest.mark.slow)])  # the second:
+# the coarse space built on the start's row subsample
+def test_sparse_fit_with_the_coarse_space_needs_fewer_products_and_matches_without(n, monkeypatch):
+    X, rng = onehot_design(n, 4, 60, seed=12)
+    y = rng.poisson(np.exp(0.3 + X @ rng.normal(0.0, 0.3, X.shape[1]))).astype(float)
+    counts = {}
+    real = _solvers._conjugate_gradients
+
+    def counting(*a, **k):
+        d, pairs = real(*a, **k)
+        counts[mode] = counts.get(mode, 0) + len(pairs)
+        return d, pairs
+    monkeypatch.setattr(_solvers, "_conjugate_gradients", counting)
+    mode = "two-level"
+    with_coarse = LikelihoodRegressor(family="poisson").fit(X, y)
+    mode = "jacobi"
+    monkeypatch.setattr(_solvers._CoarseSpace, "of", classmethod(lambda cls, X, fit_intercept: None))
+    without = LikelihoodRegressor(family="poisson").fit(X, y)
+    assert counts["two-level"] < counts["jacobi"]
+    ref = SK_REFERENCE["poisson"]().fit(X.toarray(), y)  # scikit-learn newton-cholesky, tol=1e-12
+    for est in (with_coarse, without):
+        np.testing.assert_allclose(params(est), params(ref), rtol=1e-8, atol=1e-10)
