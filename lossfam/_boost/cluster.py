@@ -204,30 +204,29 @@ def _quiet(fn):
         return fn()
 
 
-def partition_sums(client, fn, arrays, *extra):
-    """sum over partitions of ``fn(block_0, block_1, ..., start_row, *extra)`` (equal-shape float
-    vectors), added on the workers; only the sum comes back.  ``arrays``: Dask arrays (or None)
-    with the same row chunks."""
+def _partition_calls(fn, arrays, extra):
+    """(dask, one delayed ``fn(blocks..., start_row, *extra)`` per partition)."""
     dask, _, _ = _dask()
     first = next(a for a in arrays if a is not None)
     k = first.numblocks[0]
     starts = np.concatenate([[0], np.cumsum(first.chunks[0])[:-1]]).astype(int)
     call = dask.delayed(fn, pure=True)
     cols = [_blocks(a, k) for a in arrays]
-    parts = [call(*[c[i] for c in cols], int(starts[i]), *extra) for i in range(k)]
+    return dask, [call(*[c[i] for c in cols], int(starts[i]), *extra) for i in range(k)]
+
+
+def partition_sums(client, fn, arrays, *extra):
+    """sum over partitions of ``fn(block_0, block_1, ..., start_row, *extra)`` (equal-shape float
+    vectors), added on the workers; only the sum comes back.  ``arrays``: Dask arrays (or None)
+    with the same row chunks."""
+    dask, parts = _partition_calls(fn, arrays, extra)
     total = _tree_add(dask, parts)
     return np.asarray(_quiet(lambda: client.compute(total).result()))
 
 
 def partition_results(client, fn, arrays, *extra):
     """The list of ``fn(blocks..., start_row, *extra)`` per partition (small results only)."""
-    dask, _, _ = _dask()
-    first = next(a for a in arrays if a is not None)
-    k = first.numblocks[0]
-    starts = np.concatenate([[0], np.cumsum(first.chunks[0])[:-1]]).astype(int)
-    call = dask.delayed(fn, pure=True)
-    cols = [_blocks(a, k) for a in arrays]
-    parts = [call(*[c[i] for c in cols], int(starts[i]), *extra) for i in range(k)]
+    _, parts = _partition_calls(fn, arrays, extra)
     return _quiet(lambda: client.gather(client.compute(parts)))
 
 
