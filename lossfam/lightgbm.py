@@ -764,12 +764,8 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, engine=_ENGINE,
                                 drop_unit_weights=True)
     fam = plan.family
-    guard = resolve_guard(fam, step_limit)
+    guard, twin = cluster.cluster_path(fam, _ENGINE, "LightGBM", step_limit, native, params)
     rule = facts.leaf_rule(fam)
-    twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native,
-                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
-    if twin is None and rule != "newton":
-        cluster.refuse_refit(fam, "LightGBM")
     valids = [plan.start_for(v, f"valid_sets[{k}]") for k, v in enumerate(valid_sets)]
     if twin is not None:
         params.update(twin)

@@ -622,12 +622,8 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, precision=np.float32,
                                 engine=_ENGINE)
     fam, baseline = plan.family, plan.baseline
-    guard = resolve_guard(fam, step_limit)
+    guard, twin = cluster.cluster_path(fam, _ENGINE, "XGBoost", step_limit, native, params)
     rule = facts.leaf_rule(fam)
-    twin = facts.chosen_twin(fam, _ENGINE, "XGBoost", native=native,
-                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
-    if twin is None and rule != "newton":
-        cluster.refuse_refit(fam, "XGBoost")
     valids = [plan.start_for(d, f"evals[{k}]") for k, (d, _) in enumerate(evals)]
     params.setdefault("disable_default_eval_metric", 1)
     obj = None

@@ -664,6 +664,19 @@ def starts_of(y, o, baseline):
     return (y * 0.0 + baseline) if o is None else (o + baseline)
 
 
+def cluster_path(fam, engine, engine_name, step_limit, native, params):
+    """(guard, twin) of a cluster training: the step guard, and the native twin's parameters or None;
+    a family whose leaves need lossfam's refit (no twin used) is refused (``refuse_refit``)."""
+    from .gradients import resolve_guard
+
+    guard = resolve_guard(fam, step_limit)
+    twin = facts.chosen_twin(fam, engine, engine_name, native=native,
+                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
+    if twin is None and facts.leaf_rule(fam) != "newton":
+        refuse_refit(fam, engine_name)
+    return guard, twin
+
+
 def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precision=np.float64, engine=None,
                  drop_unit_weights=False) -> ClusterPlan:
     """Baseline given offset and weights, starting scores and the pre-fit, computed on the workers
