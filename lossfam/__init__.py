@@ -16,10 +16,10 @@ and interval targets (``lossfam.censoring``), accepted wherever a target goes.
 from ._boost.cluster import ClusterData
 from ._boost.model import BoostedFit, load
 from .censoring import IntervalTarget, interval_target, right_censored
-from .families import Family
+from .families import Family, SeveralScoreFamily
 from .registry import available, family, register, unregister
 from .selection import rank_families  # numpy/scipy only at import; engines, pandas load on use
 
 __version__ = "0.1.0"
 
-__all__ = ["BoostedFit", "ClusterData", "Family", "IntervalTarget", "interval_target", "right_censored", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]
+__all__ = ["BoostedFit", "ClusterData", "Family", "SeveralScoreFamily", "IntervalTarget", "interval_target", "right_censored", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]

@@ -386,7 +386,7 @@ def _constructible(cls):
 def _candidates(families, y):
     """[(family or None, label, reason, given_as_object)] for the requested or default families."""
     if families is None:
-        families = [n for n in available() if n not in NOT_BY_DEFAULT]
+        families = [n for n in available(scores="one") if n not in NOT_BY_DEFAULT]
     elif isinstance(families, str):
         families = [s.strip() for s in families.split(",") if s.strip()]
     out = []

@@ -113,7 +113,7 @@ def main(engine, start, stop, seed, mode, folder):
     from user_families import LogisticErrors
 
     lossfam.register(LogisticErrors, replace=True)  # a user-registered family is saved and loaded too
-    fams = lossfam.available()
+    fams = lossfam.available(scores="one")
     models, originals, preds = {}, {}, {}
     for name in fams:
         model, X = train(engine, name)

@@ -219,7 +219,7 @@ def test_engine_start_is_the_local_one(client, engine):
 
 
 def _smooth_families():
-    names = [n for n in lossfam.available() if lossfam.family(n).leaf_value == "newton"]
+    names = [n for n in lossfam.available(scores="one") if lossfam.family(n).leaf_value == "newton"]
     return [n if n in LEAN else pytest.param(n, marks=pytest.mark.slow) for n in names]
 
 

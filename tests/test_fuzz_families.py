@@ -24,7 +24,7 @@ from hypothesis import strategies as st
 
 import lossfam
 
-FAMILIES = lossfam.available()
+FAMILIES = lossfam.available(scores="one")
 
 FAST = settings(max_examples=40, deadline=2000, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
 SLOW = settings(max_examples=400, deadline=2000, suppress_health_check=[HealthCheck.too_slow], derandomize=True)

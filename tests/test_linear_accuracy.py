@@ -112,7 +112,7 @@ def _family_targets(fam, raw, seed):
     return draws
 
 
-FAMILIES = [*lossfam.available(), LogisticErrors()]
+FAMILIES = [*lossfam.available(scores="one"), LogisticErrors()]
 # families whose mean lies strictly between 0 and 1: a mean of 1 is outside their support, so
 # their designs are centred on raw 0 (mean 1/2) instead
 UNIT_MEAN = ("bernoulli", "beta")

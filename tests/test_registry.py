@@ -11,12 +11,18 @@ from user_families import LogisticErrors
 
 
 def test_available_is_sorted_and_complete():
-    names = lossfam.available()
+    names = lossfam.available(scores="one")
     assert names == sorted(names)
     assert set(names) >= {"gaussian", "laplace", "asymmetric_laplace", "huber", "bernoulli", "poisson", "gamma"}
+    several = lossfam.available(scores="several")
+    assert "gaussian_spread" in several and not set(several) & set(names)
+    assert lossfam.available() == sorted(names + several)
+    assert all(isinstance(lossfam.family(n), lossfam.SeveralScoreFamily) for n in several)
+    with pytest.raises(ValueError, match="scores must be"):
+        lossfam.available(scores="two")
 
 
-@pytest.mark.parametrize("name", lossfam.available())
+@pytest.mark.parametrize("name", lossfam.available(scores="one"))
 def test_family_objects(name):
     f = lossfam.family(name)
     assert f.name == name
@@ -30,7 +36,7 @@ def test_family_objects(name):
 def test_register_a_user_family(rng):
     lossfam.register(LogisticErrors)
     try:
-        assert "logistic_errors_test" in lossfam.available()
+        assert "logistic_errors_test" in lossfam.available(scores="one")
         f = lossfam.family("logistic_errors_test", scale=2.0)
         y = rng.logistic(1.0, 2.0, size=400)
         raw = np.full_like(y, 0.8)
@@ -48,7 +54,7 @@ def test_register_a_user_family(rng):
             lossfam.family("logistic_errors_test", shape=1.0)
     finally:
         lossfam.unregister("logistic_errors_test")
-    assert "logistic_errors_test" not in lossfam.available()
+    assert "logistic_errors_test" not in lossfam.available(scores="one")
 
 
 def test_verify_family_catches_a_wrong_gradient(rng):

@@ -1,10 +1,12 @@
 """The built-in noise models, one per module."""
 from ._base import Family, FromParam
+from ._several import SeveralScoreFamily
 from .asymmetric_laplace import AsymmetricLaplace
 from .bernoulli import Bernoulli
 from .beta import Beta
 from .gamma import Gamma
 from .gaussian import Gaussian
+from .gaussian_spread import GaussianSpread
 from .huber import Huber, HuberLaw
 from .laplace import Laplace
 from .lognormal import Lognormal
@@ -16,5 +18,7 @@ from .weibull import Weibull
 
 BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma,
             Tweedie, NegativeBinomial, StudentT, Lognormal, Beta, Weibull)
+#: the built-in families with several raw scores per row (lossfam.families._several)
+BUILT_IN_SEVERAL = (GaussianSpread,)
 
-__all__ = ["Family", "FromParam", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN]
+__all__ = ["Family", "FromParam", "SeveralScoreFamily", "BUILT_IN_SEVERAL", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN + BUILT_IN_SEVERAL]

@@ -1,0 +1,285 @@
+r"""Families with several raw scores per row: a location and its own scale (or shape), or K classes.
+
+A :class:`SeveralScoreFamily` gives each of its ``k`` distribution parameters its own raw score
+and link, so a row's raw score is a k-vector and ``raw`` has shape (n, k).  Column 0 is always
+the location (the mean, the median or the tau-quantile); the other columns are the parameters
+that a one-score family holds constant for the whole data set (sigma, b, shape, alpha, s), each
+through a log link, so that they may vary with the features.  The multinomial family instead has
+one raw score per class (its module docstring gives its identifiability choice).
+
+Shapes and conventions
+----------------------
+=========================  ====================================================================
+method                     returns
+=========================  ====================================================================
+``nll(y, raw)``            (n,) per-row negative log-likelihood in nats, every constant kept
+``gradient(y, raw, w)``    (n, k): d nll / d raw_j (times the row weight)
+``hessian(y, raw, w)``     (n, k, k): the exact second derivatives d^2 nll / d raw_i d raw_j
+``fisher(raw, w)``         (n, k, k): the expected information E_y[hessian] at raw (closed form)
+``grad_hess(y, raw, w,     (gradient (n, k), diagonal curvature (n, k)) for the engines, see below
+  curvature=...)``
+``baseline(y, w, offset)`` (k,) the constant raw-score vector minimising the weighted mean nll
+``parameters(raw)``        (n, k) the distribution parameters g_j^{-1}(raw_j)
+``location(raw)``          (n,) the response-scale prediction (column 0 through its link)
+``distribution(raw)``      the predictive law per row (a frozen scipy.stats law with per-row
+                           arguments)
+``constant_scale()``       the one-score family with the same law and constant nuisance
+                           parameters (for the ranking), or None
+=========================  ====================================================================
+
+The engines' curvature
+----------------------
+The engines grow one tree per raw score and round (LightGBM's and XGBoost's multi-output custom
+objectives take one gradient and one Hessian value per row and output), so they need a diagonal.
+``grad_hess(..., curvature=)`` chooses it, the same way in every engine:
+
+``"newton"`` (default)  the diagonal of the exact Hessian where it is positive; where a diagonal
+                        entry is not positive (e.g. gaussian log sigma at a zero residual, where
+                        d^2 nll / d log sigma^2 = 2 z^2 = 0), the family's positive surrogate,
+                        the diagonal of the Fisher information (documented per family in
+                        ``_newton_diagonal``).
+``"fisher"``            the diagonal of the expected information (Fisher scoring): positive, and
+                        free of the row's noise.
+``"natural"``           the natural gradient (Amari 1998, "Natural gradient works efficiently in
+                        learning", Neural Computation 10, 251-276): the gradient premultiplied by
+                        the inverse Fisher matrix per row, F^{-1} g, with a unit curvature, so a
+                        tree leaf takes the mean natural gradient of its rows.
+
+Families with one raw score keep their own interface (:class:`lossfam.Family`); the two kinds
+share the registry (``lossfam.available(scores="several")`` lists these).
+"""
+from __future__ import annotations
+
+import dataclasses
+from typing import ClassVar
+
+import numpy as np
+from scipy import optimize
+
+from .. import _checks
+from .._checks import Domain
+from ..links import Link
+
+CURVATURES = ("newton", "fisher", "natural")
+
+
+@dataclasses.dataclass(frozen=True)
+class SeveralScoreFamily:
+    """Base class of the noise models with k raw scores per row.
+
+    Subclasses are frozen dataclasses whose fields are the parameters held fixed (e.g. the
+    quantile level tau, Student's degrees of freedom, the number of classes), validated on
+    construction through ``param_domains``."""
+
+    name: ClassVar[str] = "several_score_family"
+    #: one name per raw score, column order (column 0: the location)
+    score_names: ClassVar[tuple] = ()
+    #: one link per raw score, column order
+    links: ClassVar[tuple] = ()
+    target_domain: ClassVar[Domain]
+    #: admissible targets for nll (stricter for count laws); None: target_domain
+    nll_domain: ClassVar[Domain | None] = None
+    param_domains: ClassVar[dict] = {}
+    discrete: ClassVar[bool] = False
+    #: what location(raw) is: "mean", "median" or "quantile"
+    prediction_kind: ClassVar[str] = "mean"
+    #: {engine: {engine parameter: value}}: built-in objectives equal to this loss (e.g. softmax)
+    native_twins: ClassVar[dict] = {}
+
+    def __post_init__(self):
+        for f in dataclasses.fields(self):
+            dom = self.param_domains.get(f.name)
+            if dom is not None:
+                v = _checks.check_param(f.name, getattr(self, f.name), dom, self.name)
+                object.__setattr__(self, f.name, v)
+
+    # ------------------------------------------------------------------ info
+    @property
+    def n_scores(self) -> int:
+        """k, the number of raw scores per row."""
+        return len(self.score_names)
+
+    @property
+    def params(self) -> dict:
+        """The fixed parameters as a plain dict (empty when there are none)."""
+        return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
+
+    def with_params(self, **params) -> "SeveralScoreFamily":
+        """A copy with some fixed parameters replaced (validated)."""
+        unknown = set(params) - set(self.params)
+        if unknown:
+            raise ValueError(f"{self.name}: unknown parameter(s) {sorted(unknown)}; "
+                             f"valid parameters: {sorted(self.params) or 'none'}")
+        return dataclasses.replace(self, **params)
+
+    def constant_scale(self):
+        """The one-score family of the same law with constant nuisance parameters, or None."""
+        return None
+
+    # ------------------------------------------------------------------ checks
+    def check_target(self, y, *, for_nll: bool = True) -> np.ndarray:
+        dom = (self.nll_domain or self.target_domain) if for_nll else self.target_domain
+        return _checks.check_target(y, dom, self.name)
+
+    def check_raw(self, raw, y=None) -> np.ndarray:
+        """raw as a finite float64 (n, k) array with one row per target row."""
+        raw = _checks.as_float_array(raw, "raw", self.name)
+        k = self.n_scores
+        if raw.ndim != 2 or raw.shape[1] != k:
+            raise ValueError(f"{self.name}: raw must have shape (n, {k}), one column per raw score "
+                             f"{self.score_names}; got shape {raw.shape}")
+        if y is not None and raw.shape[0] != np.shape(y)[0]:
+            raise ValueError(f"{self.name}: raw has {raw.shape[0]} rows but y has {np.shape(y)[0]}")
+        bad = ~np.isfinite(raw).all(axis=1)
+        if bad.any():
+            rows = np.flatnonzero(bad)
+            raise ValueError(f"{self.name}: raw scores must be finite; {bad.sum()} row(s) are not "
+                             f"(rows {rows[:10].tolist()}{' ...' if rows.size > 10 else ''})")
+        return raw
+
+    def _inputs(self, y, raw, weight=None, *, for_nll: bool):
+        y = self.check_target(y, for_nll=for_nll)
+        if y.ndim != 1:
+            raise ValueError(f"{self.name}: y must be one-dimensional, got shape {y.shape}")
+        raw = self.check_raw(raw, y)
+        w = _checks.check_weight(weight, y, self.name)
+        return y, raw, w
+
+    # ------------------------------------------------------------------ public math
+    def nll(self, y, raw) -> np.ndarray:
+        """(n,) per-row negative log-likelihood in nats."""
+        y, raw, _ = self._inputs(y, raw, for_nll=True)
+        with np.errstate(over="ignore"):
+            return self._nll(y, raw)
+
+    def gradient(self, y, raw, weight=None) -> np.ndarray:
+        """(n, k): d (weight * nll) / d raw."""
+        y, raw, w = self._inputs(y, raw, weight, for_nll=False)
+        with np.errstate(over="ignore"):
+            g = self._gradient(y, raw)
+        return g if w is None else g * w[:, None]
+
+    def hessian(self, y, raw, weight=None) -> np.ndarray:
+        """(n, k, k): the exact matrix of second derivatives of weight * nll in raw."""
+        y, raw, w = self._inputs(y, raw, weight, for_nll=False)
+        with np.errstate(over="ignore"):
+            h = self._hessian(y, raw)
+        return h if w is None else h * w[:, None, None]
+
+    def fisher(self, raw, weight=None) -> np.ndarray:
+        """(n, k, k): the expected information E_y[d^2 nll / d raw d raw^T] at raw."""
+        raw = self.check_raw(raw)
+        w = None if weight is None else _checks.check_weight(weight, raw[:, 0], self.name)
+        with np.errstate(over="ignore"):
+            f = self._fisher(raw)
+        return f if w is None else f * w[:, None, None]
+
+    def grad_hess(self, y, raw, weight=None, *, curvature: str = "newton"):
+        """(gradient (n, k), diagonal curvature (n, k)) of weight * nll, as the engines use them.
+
+        ``curvature`` is "newton", "fisher" or "natural" (module docstring)."""
+        if curvature not in CURVATURES:
+            raise ValueError(f"{self.name}: curvature must be one of {CURVATURES}, got {curvature!r}")
+        y, raw, w = self._inputs(y, raw, weight, for_nll=False)
+        with np.errstate(over="ignore", divide="ignore"):
+            g = self._gradient(y, raw)
+            if curvature == "newton":
+                d = self._newton_diagonal(y, raw)
+            elif curvature == "fisher":
+                d = np.diagonal(self._fisher(raw), axis1=1, axis2=2).copy()
+            else:
+                g = np.linalg.solve(self._fisher(raw), g[:, :, None])[:, :, 0]
+                d = np.ones_like(g)
+        if w is not None:
+            g = g * w[:, None]
+            d = d * w[:, None]
+        return g, d
+
+    def baseline(self, y, weight=None, *, offset=None) -> np.ndarray:
+        """(k,) the constant raw-score vector c minimising sum_i w_i nll(y_i, c + offset_i).
+
+        ``offset``: None, (n,) added to the location column, or (n, k)."""
+        y = self.check_target(y, for_nll=False)
+        _checks.check_nonempty(y, self.name)
+        w = _checks.unit_weight(weight, y, self.name)
+        o = self._offset_matrix(offset, y.shape[0])
+        with np.errstate(over="ignore"):
+            c = np.asarray(self._baseline(y, w, o), dtype=float)
+        if c.shape != (self.n_scores,) or not np.isfinite(c).all():
+            raise ValueError(f"{self.name}: no finite constant raw scores minimise the nll for these targets")
+        return c
+
+    def _offset_matrix(self, offset, n):
+        if offset is None:
+            return None
+        o = _checks.as_float_array(offset, "offset", self.name)
+        if o.ndim == 1:
+            if o.shape[0] != n:
+                raise ValueError(f"{self.name}: offset has {o.shape[0]} rows but y has {n}")
+            full = np.zeros((n, self.n_scores))
+            full[:, 0] = o
+            o = full
+        return self.check_raw(o, np.empty(n))
+
+    def parameters(self, raw) -> np.ndarray:
+        """(n, k): the distribution parameters, each raw score through its own inverse link."""
+        raw = self.check_raw(raw)
+        out = np.empty_like(raw)
+        for j, link in enumerate(self.links):
+            out[:, j] = link.inverse(raw[:, j])
+        return out
+
+    def location(self, raw) -> np.ndarray:
+        """(n,) the response-scale prediction: the location column through its inverse link."""
+        raw = self.check_raw(raw)
+        return self.links[0].inverse(raw[:, 0])
+
+    def distribution(self, raw):
+        """The predictive law per row (a frozen scipy.stats law with per-row arguments)."""
+        return self._distribution(self.check_raw(raw))
+
+    # ------------------------------------------------------------------ hooks
+    def _nll(self, y, raw):  # pragma: no cover - abstract
+        raise NotImplementedError(f"{type(self).__name__} must implement _nll")
+
+    def _gradient(self, y, raw):  # pragma: no cover - abstract
+        raise NotImplementedError(f"{type(self).__name__} must implement _gradient")
+
+    def _hessian(self, y, raw):  # pragma: no cover - abstract
+        raise NotImplementedError(f"{type(self).__name__} must implement _hessian")
+
+    def _fisher(self, raw):  # pragma: no cover - abstract
+        raise NotImplementedError(f"{type(self).__name__} must implement _fisher")
+
+    def _newton_diagonal(self, y, raw):
+        """The exact Hessian's diagonal where positive, else the Fisher information's diagonal."""
+        d = np.diagonal(self._hessian(y, raw), axis1=1, axis2=2).copy()
+        bad = ~(d > 0)
+        if bad.any():
+            f = np.diagonal(self._fisher(raw), axis1=1, axis2=2)
+            d[bad] = f[bad]
+        return d
+
+    def _start(self, y, w, offset):
+        """A starting raw-score vector for the baseline search (subclasses give a closed form)."""
+        return np.zeros(self.n_scores)
+
+    def _baseline(self, y, w, offset):
+        """Generic: minimise the weighted mean nll over a constant k-vector (scipy's BFGS with the
+        analytic gradient), from ``_start``; subclasses with a closed form override this."""
+        o = 0.0 if offset is None else offset
+        sw = w.sum()
+        n = y.shape[0]
+
+        def value_grad(c):
+            raw = np.broadcast_to(c, (n, self.n_scores)) + o
+            f = float(np.dot(w, self._nll(y, raw)) / sw)
+            g = (w @ self._gradient(y, np.ascontiguousarray(raw))) / sw
+            return f, g
+
+        res = optimize.minimize(value_grad, self._start(y, w, offset), jac=True, method="BFGS",
+                                options={"gtol": 1e-10})
+        return res.x
+
+    def _distribution(self, raw):  # pragma: no cover - abstract
+        raise NotImplementedError(f"{type(self).__name__} has no predictive distribution")
