@@ -6,6 +6,9 @@
   ridge penalty a certified active-set solve of the optimality conditions;
   semismooth Newton with a jointly fitted scale for huber).
 * :class:`LikelihoodClassifier` -- the bernoulli family as a binary classifier.
+* :class:`JointLikelihoodRegressor` -- a linear model for each raw score of a
+  several-score family (location and scale, e.g. ``gaussian_spread``), fitted by
+  joint maximum likelihood (varying dispersion).
 * :class:`BoostedLikelihoodRegressor`, :class:`BoostedLikelihoodClassifier` -- wrap an
   ``LGBMRegressor`` / ``XGBRegressor`` (or classifier) so that it trains on a
   family's nll with the matching starting score, metric and inverse link.
@@ -23,11 +26,13 @@ except ImportError as exc:  # pragma: no cover - exercised only without scikit-l
 
 from ._sk.boosted import BoostedLikelihoodClassifier, BoostedLikelihoodRegressor
 from ._sk.linear import LikelihoodClassifier, LikelihoodRegressor, UnboundedLikelihoodWarning
+from ._sk.several import JointLikelihoodRegressor
 from ._sk.metrics import LikelihoodScorer, d2_score, mean_deviance, mean_nll, scorer
 
 __all__ = [
     "LikelihoodRegressor",
     "LikelihoodClassifier",
+    "JointLikelihoodRegressor",
     "BoostedLikelihoodRegressor",
     "BoostedLikelihoodClassifier",
     "UnboundedLikelihoodWarning",
