@@ -9,6 +9,8 @@
 * :class:`JointLikelihoodRegressor` -- a linear model for each raw score of a
   several-score family (location and scale, e.g. ``gaussian_spread``), fitted by
   joint maximum likelihood (varying dispersion).
+* :class:`MultinomialLikelihoodClassifier` -- multinomial logit regression (K classes,
+  the ``multinomial`` family with class ``classes_[0]`` as reference).
 * :class:`BoostedLikelihoodRegressor`, :class:`BoostedLikelihoodClassifier` -- wrap an
   ``LGBMRegressor`` / ``XGBRegressor`` (or classifier) so that it trains on a
   family's nll with the matching starting score, metric and inverse link.
@@ -26,13 +28,14 @@ except ImportError as exc:  # pragma: no cover - exercised only without scikit-l
 
 from ._sk.boosted import BoostedLikelihoodClassifier, BoostedLikelihoodRegressor
 from ._sk.linear import LikelihoodClassifier, LikelihoodRegressor, UnboundedLikelihoodWarning
-from ._sk.several import JointLikelihoodRegressor
+from ._sk.several import JointLikelihoodRegressor, MultinomialLikelihoodClassifier
 from ._sk.metrics import LikelihoodScorer, d2_score, mean_deviance, mean_nll, scorer
 
 __all__ = [
     "LikelihoodRegressor",
     "LikelihoodClassifier",
     "JointLikelihoodRegressor",
+    "MultinomialLikelihoodClassifier",
     "BoostedLikelihoodRegressor",
     "BoostedLikelihoodClassifier",
     "UnboundedLikelihoodWarning",

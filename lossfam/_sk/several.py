@@ -8,15 +8,18 @@ import numbers
 import warnings
 
 import numpy as np
-from sklearn.base import BaseEstimator, RegressorMixin
+from scipy import optimize, sparse, special
+from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin
 from sklearn.exceptions import ConvergenceWarning
+from sklearn.utils.multiclass import check_classification_targets
 from sklearn.utils.validation import check_is_fitted, validate_data
 
 from .. import _checks
 from ..families._several import SeveralScoreFamily
 from ..registry import family as make_family
 from . import _joint
-from .linear import (_check_finite_rows, _check_hyper, _check_numeric_columns, _check_sample_weight,
+from ._solvers import _lp_columns
+from .linear import (UnboundedLikelihoodWarning, _check_finite_rows, _check_hyper, _check_numeric_columns, _check_sample_weight,
                      _prevalidate_y)
 
 
@@ -222,3 +225,199 @@ def _several_names():
     from ..registry import available
 
     return available(scores="several")
+
+
+class _ReferenceClassView:
+    """The multinomial family with the raw score of class 0 fixed at 0: the K - 1 free raw scores
+    (log-odds against class 0) are the columns of ``r``; the hooks the joint solver calls return
+    the nll and the derivatives in those columns (the full ones with row and column 0 dropped).
+    Not a family: used only inside a fit."""
+
+    def __init__(self, fam):
+        self.family = fam
+
+    @staticmethod
+    def _full(r):
+        return np.column_stack([np.zeros(r.shape[0]), r])
+
+    def _nll(self, y, r):
+        return self.family._nll(y, self._full(r))
+
+    def _gradient(self, y, r):
+        return self.family._gradient(y, self._full(r))[:, 1:]
+
+    def _hessian(self, y, r):
+        return self.family._hessian(y, self._full(r))[:, 1:, 1:]
+
+    def _fisher(self, r):
+        return self.family._fisher(self._full(r))[:, 1:, 1:]
+
+
+class MultinomialLikelihoodClassifier(ClassifierMixin, BaseEstimator):
+    """Multinomial logit regression: the ``multinomial`` family's linear classifier.
+
+    K classes (``classes_``, sorted labels; class ``classes_[0]`` the reference).  The raw score of
+    the reference class is fixed at 0 and each other class j has raw_j = x . coef_[j] +
+    intercept_[j], the log-odds of class j against the reference (the identifiability choice of the
+    multinomial family for linear models); P(class j | x) = softmax(raw)_j.  The coefficients
+    maximise the penalised likelihood
+
+        (1 / sum w) sum_i w_i log p_{y_i}(x_i) - alpha / 2 sum_{j >= 1} ||coef_[j]||^2
+
+    by Newton's method on the joint (K - 1)(p + 1) system (``lossfam._sk._joint``; the multinomial
+    Hessian is free of y, so its Newton and Fisher-scoring steps coincide).  With alpha = 0 this is
+    the maximum-likelihood multinomial logit; on classes that a linear score separates it has no
+    finite maximiser (ConvergenceWarning); alpha > 0 keeps it finite.  The penalty acts on the
+    log-odds against the reference class, so with alpha > 0 the fit depends on which class is the
+    reference.
+
+    Parameters
+    ----------
+    alpha : float >= 0, default=1e-4
+    fit_intercept : bool, default=True
+    max_iter : int, default=100
+    tol : float, default=1e-8
+
+    Attributes
+    ----------
+    classes_, coef_ ((K, p), row 0 zero), intercept_ ((K,), entry 0 zero), family_
+    (``multinomial`` with n_classes = K), n_iter_, n_features_in_, feature_names_in_.
+    """
+
+    def __init__(self, alpha=1e-4, fit_intercept=True, max_iter=100, tol=1e-8):
+        self.alpha = alpha
+        self.fit_intercept = fit_intercept
+        self.max_iter = max_iter
+        self.tol = tol
+
+    def fit(self, X, y, sample_weight=None):
+        _check_hyper(self)
+        owner = type(self).__name__
+        _check_numeric_columns(X, owner)
+        X, y = validate_data(self, X, y, dtype=np.float64, order="C", ensure_all_finite=False)
+        _check_finite_rows(X, owner)
+        check_classification_targets(y)
+        self.classes_, codes = np.unique(y, return_inverse=True)
+        K = self.classes_.size
+        if K < 2:
+            raise ValueError(f"{owner} needs at least two classes to fit; only one class "
+                             f"({self.classes_[0]!r}) is present")
+        codes = codes.astype(np.float64)
+        w = _check_sample_weight(sample_weight, codes, owner)
+        present = np.unique(codes[w > 0]).astype(int)
+        if present.size < K:
+            missing = sorted(set(range(K)) - set(present.tolist()))
+            raise ValueError(f"{owner}: class(es) {[self.classes_[i] for i in missing]} have no row with "
+                             "positive sample weight")
+        fam = make_family("multinomial", n_classes=K)
+        n, p = X.shape
+        if self.fit_intercept:
+            c = fam.baseline(codes, w)
+            start = c[1:] - c[0]
+        else:
+            start = np.zeros(K - 1)
+        masks = [np.ones(p, dtype=bool)] * (K - 1)
+        fit = _joint.joint_newton(_ReferenceClassView(fam), X, codes, w / w.sum(), None, masks,
+                                  float(self.alpha), self.fit_intercept, self.max_iter, self.tol, start)
+        self.coef_ = np.vstack([np.zeros(p)] + [c for c in fit.coefs])
+        self.intercept_ = np.concatenate([[0.0], fit.intercepts])
+        self.family_ = fam
+        self.n_iter_ = int(fit.n_iter)
+        if self.alpha == 0 and fit.raw.size:
+            full = np.column_stack([np.zeros(n), fit.raw])
+            logp = full[np.arange(n), codes.astype(np.intp)] - special.logsumexp(full, axis=1)
+            # a fitted probability within 1e-6 of its label: check for separation
+            if np.any((logp > -1e-6) & (w > 0)) and separation_margin(X, codes.astype(np.intp), w, K,
+                                                                         self.fit_intercept) > 1e-9:
+                warnings.warn(
+                    f"{owner}: the classes are (quasi-)separated by linear scores, so the unpenalised "
+                    "maximum-likelihood estimate does not exist: coefficients diverge and fitted "
+                    "probabilities reach 0 or 1. The returned coefficients are where Newton's method "
+                    "stopped; use alpha > 0 for a finite estimate.",
+                    UnboundedLikelihoodWarning, stacklevel=2)
+                return self
+        if not fit.converged:
+            warnings.warn(
+                f"{owner}: Newton's method stopped after {fit.n_iter} steps with max |gradient| = "
+                f"{fit.grad_norm:.3g} > tol = {self.tol}; with alpha = 0 the classes may be separated by "
+                "a linear score (no finite maximum-likelihood estimate): use alpha > 0",
+                ConvergenceWarning, stacklevel=2)
+        return self
+
+    def predict_raw(self, X):
+        """(n, K): the raw scores (log-odds of each class against ``classes_[0]``; column 0 zero)."""
+        check_is_fitted(self)
+        owner = type(self).__name__
+        _check_numeric_columns(X, owner)
+        X = validate_data(self, X, reset=False, dtype=np.float64, ensure_all_finite=False)
+        _check_finite_rows(X, owner)
+        return X @ self.coef_.T + self.intercept_
+
+    def decision_function(self, X):
+        """scikit-learn's convention: (n, K) raw scores, or for two classes the (n,) log-odds of
+        ``classes_[1]`` (then ``predict_raw``'s column 1)."""
+        raw = self.predict_raw(X)
+        return raw[:, 1] if raw.shape[1] == 2 else raw
+
+    def predict_proba(self, X):
+        raw = self.predict_raw(X)
+        return self.family_.parameters(raw)
+
+    def predict_log_proba(self, X):
+        from scipy.special import log_softmax
+
+        return log_softmax(self.predict_raw(X), axis=1)
+
+    def predict(self, X):
+        raw = self.predict_raw(X)
+        return self.classes_[np.argmax(raw, axis=1)]
+
+    def predict_distribution(self, X):
+        """The predictive law of each row: a one-trial scipy.stats multinomial over the class codes."""
+        raw = self.predict_raw(X)
+        return self.family_.distribution(raw)
+
+
+def separation_margin(X, codes, w, K, fit_intercept) -> float:
+    """Detect (quasi-)separated classes for multinomial logit by linear programming.
+
+    With z_i = [x_i, 1] and a direction D = (d_1, ..., d_{K-1}) of the coefficients (d_0 = 0 for
+    the reference class), row i's nll falls along D, towards a finite limit, when its own class's
+    raw score gains on every other: m_il = (d_{y_i} - d_l) . z_i >= 0 for all l != y_i.  The
+    maximum-likelihood estimate is infinite exactly when some D has every m_il >= 0 and one > 0
+    (the multi-class form of the detection programme for binary separation; the same construction
+    as ``_solvers.unbounded_margin``).  The linear programme
+
+        maximise sum_il m_il   subject to  m_il >= 0,  -1 <= D <= 1
+
+    has optimum 0 when the estimate is finite.  Returns that optimum over the sum of the absolute
+    entries of the constraint matrix (0: finite).
+    """
+    keep = w > 0
+    Xk, yk = X[keep], codes[keep]
+    if Xk.shape[1]:
+        Xk, _, _ = _lp_columns(Xk, w[keep], False)
+    Z = np.column_stack([Xk, np.ones(Xk.shape[0])]) if fit_intercept else Xk
+    n, q = Z.shape
+    if q == 0:
+        return 0.0
+    blocks, rows = [], []
+    for l in range(K):
+        idx = np.flatnonzero(yk != l)
+        # m_il = d_{y_i} . z_i - d_l . z_i over the free classes 1..K-1
+        A = sparse.lil_matrix((idx.size, (K - 1) * q))
+        for c in range(1, K):
+            sel = idx[yk[idx] == c]
+            if sel.size:
+                pos = np.searchsorted(idx, sel)
+                A[pos, (c - 1) * q:c * q] = Z[sel]
+        if l >= 1:
+            A[:, (l - 1) * q:l * q] = A[:, (l - 1) * q:l * q] - Z[idx]
+        blocks.append(A.tocsr())
+    M = sparse.vstack(blocks, format="csr")
+    total = np.asarray(M.sum(axis=0)).ravel()
+    res = optimize.linprog(-total, A_ub=-M, b_ub=np.zeros(M.shape[0]), bounds=[(-1.0, 1.0)] * M.shape[1],
+                           method="highs")
+    if res.status != 0:
+        return 0.0
+    return max(0.0, -float(res.fun)) / max(float(abs(M).sum()), 1e-300)
