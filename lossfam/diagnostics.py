@@ -29,6 +29,12 @@ randomisation over the censoring interval: u = F(lo) + V (F(hi) - F(lo)) for a c
 (exact rows as above), uniform under the model given the interval; F and its complement come
 from the family's own log tails (``Family._tail_pieces``).
 
+Several raw scores per row.  Every function here also takes a
+:class:`lossfam.SeveralScoreFamily` with its (n, k) raw scores (a scale that varies by row):
+the predictive law is again ``family.distribution(raw)``.  :func:`coverage_by_spread`
+checks the central intervals within groups of rows of similar predicted spread (conditional
+coverage), the check that a scale varying with the features must pass.
+
 Numerics.  u and 1 - u are carried as logarithms: log u from ``logcdf`` (and
 log P(Y = y) from ``logpmf``), log(1 - u) from ``logsf``, combined with
 ``logaddexp`` so that neither tail cancels (1 - F(y) is never formed by a
@@ -49,6 +55,7 @@ from scipy.special import ndtri_exp
 
 from . import _checks
 from .censoring import IntervalTarget
+from .families._several import SeveralScoreFamily
 from .registry import family as _make_family
 
 #: smallest u (and 1 - u) fed to the normal transform: the smallest normal float64
@@ -64,6 +71,8 @@ __all__ = [
     "calibration_table",
     "binned_calibration",
     "interval_coverage",
+    "coverage_by_spread",
+    "SPREADS",
     "log_interval_probability",
 ]
 
@@ -72,7 +81,10 @@ __all__ = [
 def _inputs(family, y, raw, *, for_nll=True):
     fam = _make_family(family)
     y = fam.check_target(y, for_nll=for_nll)
-    raw = _checks.check_raw(raw, y, fam.name)
+    if isinstance(fam, SeveralScoreFamily):
+        raw = fam.check_raw(raw, y)  # (n, k): one row of raw scores per target
+    else:
+        raw = _checks.check_raw(raw, y, fam.name)
     if isinstance(y, IntervalTarget):
         return fam, y, raw
     if y.ndim != 1:
@@ -357,3 +369,133 @@ def interval_coverage(family, y, raw, levels=(0.5, 0.8, 0.9, 0.95), *, weight=No
         "mean_width": np.asarray(width),
         "count": np.full(levels.shape, y.size),
     }
+
+
+#: how :func:`coverage_by_spread` measures a row's predicted spread
+SPREADS = ("std", "iqr", "width")
+
+
+def _law_spread(law, how, level):
+    with np.errstate(invalid="ignore", over="ignore"):
+        if how == "std":
+            return np.asarray(law.std(), dtype=float)
+        if how == "iqr":
+            return np.asarray(law.ppf(0.75), dtype=float) - np.asarray(law.ppf(0.25), dtype=float)
+        lo, hi = law.interval(level)
+        return np.asarray(hi, dtype=float) - np.asarray(lo, dtype=float)
+
+
+def coverage_by_spread(law, y, *, level=0.9, groups=10, spread="std", by=None, weight=None,
+                       as_frame=False):
+    """Coverage of the central ``level`` interval within groups of rows of similar predicted spread.
+
+    A predictive law can cover 90% of all rows while covering 99% of the easy rows and 75% of the
+    hard ones (a constant scale on heteroscedastic data).  This table checks the coverage per
+    group: rows are cut into ``groups`` groups of about equal weight at the weighted sample
+    quantiles of their predicted spread (deciles by default), and each group's coverage is reported beside the
+    nominal level.  A right law gives ``level`` in every group, up to the binomial standard error
+    ``se`` = sqrt(level (1 - level) / n_eff), n_eff = (sum w)^2 / sum w^2 of the group.
+
+    Parameters
+    ----------
+    law : a frozen predictive law with per-row parameters (``family.distribution(raw)``, or an
+        estimator's ``predict_distribution(X)``), with ``interval`` and, for the spread, ``std``
+        or ``ppf``.
+    y : (n,) targets.
+    level : the interval's probability, strictly between 0 and 1.
+    groups : number of groups (ties of the spread stay together, so fewer groups may come out;
+        rows that all share one spread form one group).
+    spread : what a row's predicted spread is, read from its law:
+        ``"std"`` -- the law's standard deviation (gaussian / gaussian_spread: sigma; laplace:
+        sqrt(2) b; gamma: mean / sqrt(shape); poisson: sqrt(mean); not finite for a Student t
+        with df <= 2, use "iqr" there);
+        ``"iqr"`` -- the interquartile range ppf(0.75) - ppf(0.25) (any law with a quantile
+        function);
+        ``"width"`` -- the width of the central ``level`` interval itself.
+        For a one-score family with a constant scale, the spread still varies where it depends on
+        the location (poisson, gamma, ...); for gaussian it is the same on every row, so the table
+        has one group.  Pass ``by`` to group such a model's rows like another model's.
+    by : (n,) array, optional
+        Group by these values instead of the law's own spread (e.g. the predicted scale of a
+        scale-varying model, to show a constant-scale model's coverage on the same groups).
+    weight : (n,) row weights, optional.
+    as_frame : return a pandas DataFrame instead of a dict of arrays.
+
+    Returns
+    -------
+    A dict of equal-length arrays, one entry per group in increasing spread (``pandas.DataFrame``
+    takes it as it is): ``group`` (0, 1, ...), ``lower`` and ``upper`` (the range of the grouping
+    values in the group), ``spread`` (mean grouping value), ``count`` (rows), ``weight`` (their
+    total weight), ``level``, ``coverage`` (weighted share of rows with lo <= y <= hi), ``se``
+    and ``mean_width`` (mean interval width).  For a discrete law the interval's end points are
+    values that carry mass, so coverage at or above the level is expected.
+    """
+    owner = "coverage_by_spread"
+    y = _checks.as_float_array(y, "y", owner)
+    if y.ndim != 1 or y.size == 0:
+        raise ValueError(f"{owner}: y must be a non-empty one-dimensional array, got shape {y.shape}")
+    level = float(level)
+    if not 0.0 < level < 1.0:
+        raise ValueError(f"{owner}: level must be strictly between 0 and 1, got {level!r}")
+    if isinstance(groups, bool) or int(groups) != groups or int(groups) < 1:
+        raise ValueError(f"{owner}: groups must be an integer >= 1, got {groups!r}")
+    if spread not in SPREADS:
+        raise ValueError(f"{owner}: spread must be one of {', '.join(map(repr, SPREADS))}, got {spread!r}")
+    w = _checks.check_weight(weight, y, owner, need_positive_sum=True)
+    w = np.ones_like(y) if w is None else np.asarray(w, dtype=float)
+    lo, hi = law.interval(level)
+    lo = np.broadcast_to(np.asarray(lo, dtype=float), y.shape)
+    hi = np.broadcast_to(np.asarray(hi, dtype=float), y.shape)
+    if by is None:
+        key = np.broadcast_to(_law_spread(law, spread, level), y.shape)
+        what = f"the law's {spread}"
+    else:
+        key = _checks.as_float_array(by, "by", owner)
+        if key.shape != y.shape:
+            raise ValueError(f"{owner}: by has shape {key.shape} but y has shape {y.shape}")
+        what = "by"
+    bad = ~np.isfinite(key)
+    if bad.any():
+        rows = np.flatnonzero(bad)
+        raise ValueError(f"{owner}: {what} is not finite on {rows.size} row(s), e.g. rows {rows[:5].tolist()}"
+                         + (" (a law without a finite standard deviation: use spread='iqr')"
+                            if by is None and spread == "std" else ""))
+    # weighted quantiles (the inverse of the weighted empirical cdf), so weights act as repeated rows
+    order = np.argsort(key, kind="stable")
+    cum = np.cumsum(w[order])
+    q = np.linspace(0.0, 1.0, int(groups) + 1)[1:-1] * cum[-1]
+    inner = key[order][np.minimum(np.searchsorted(cum, q, side="left"), key.size - 1)]
+    edges = np.unique(np.concatenate([[key.min()], inner, [key.max()]]))
+    # group g holds edges[g] <= key < edges[g + 1] (the last group closed above)
+    idx = np.clip(np.searchsorted(edges, key, side="right") - 1, 0, max(edges.size - 2, 0))
+    _, idx = np.unique(idx, return_inverse=True)  # number the non-empty groups 0, 1, ...
+    ng = int(idx.max()) + 1
+    inside = (lo <= y) & (y <= hi)
+    wsum = np.bincount(idx, weights=w, minlength=ng)
+    w2 = np.bincount(idx, weights=w * w, minlength=ng)
+    count = np.bincount(idx, minlength=ng)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cover = np.bincount(idx, weights=w * inside, minlength=ng) / wsum
+        n_eff = wsum * wsum / w2
+        mean_key = np.bincount(idx, weights=w * key, minlength=ng) / wsum
+    width = np.bincount(idx, weights=hi - lo, minlength=ng) / count
+    low = np.array([key[idx == g].min() for g in range(ng)])
+    high = np.array([key[idx == g].max() for g in range(ng)])
+    keep = wsum > 0  # a group of zero-weight rows has no coverage to report
+    table = {
+        "group": np.arange(int(keep.sum())),
+        "lower": low[keep],
+        "upper": high[keep],
+        "spread": mean_key[keep],
+        "count": count[keep],
+        "weight": wsum[keep],
+        "level": np.full(int(keep.sum()), level),
+        "coverage": cover[keep],
+        "se": np.sqrt(level * (1.0 - level) / n_eff[keep]),
+        "mean_width": width[keep],
+    }
+    if as_frame:
+        import pandas as pd
+
+        return pd.DataFrame(table)
+    return table

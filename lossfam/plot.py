@@ -8,7 +8,7 @@ function returns the Figure; pass ``ax=`` to draw into an existing Axes
 instead (its figure is returned).
 
 The inputs are the outputs of :mod:`lossfam.diagnostics`: quantile
-residuals, PIT values, a calibration table or a coverage table.
+residuals, PIT values, a calibration table or a coverage table (overall or by predicted spread).
 """
 from __future__ import annotations
 
@@ -16,7 +16,7 @@ import numpy as np
 
 from . import diagnostics
 
-__all__ = ["qq_plot", "pit_histogram", "calibration_plot", "coverage_plot"]
+__all__ = ["qq_plot", "pit_histogram", "calibration_plot", "coverage_plot", "coverage_by_spread_plot"]
 
 
 def _figure(ax, figsize=(4.5, 4.0)):
@@ -109,4 +109,36 @@ def coverage_plot(table, *, ax=None, title=None):
     ax.set_xlabel("probability the interval should hold")
     ax.set_ylabel("share of targets inside it")
     ax.set_title(title or "Prediction-interval coverage")
+    return fig
+
+
+def coverage_by_spread_plot(tables, *, ax=None, title=None):
+    """Coverage of the central interval per group of predicted spread (conditional coverage).
+
+    ``tables`` is :func:`lossfam.diagnostics.coverage_by_spread`'s output, or a dict
+    {label: table} to draw several models on one set of axes (e.g. a scale-varying and a
+    constant-scale model grouped by the same ``by``).  Each group is drawn at its mean spread with
+    a bar of +/- 2 binomial standard errors; the dashed line is the nominal level.  Points below
+    the line on the right and above it on the left: the intervals do not widen with the spread
+    as the data do (a scale that should vary is held constant).
+    """
+    if isinstance(tables, dict) and "coverage" in tables:
+        tables = {None: tables}
+    if not tables:
+        raise ValueError("coverage_by_spread_plot: no table to draw")
+    fig, ax = _figure(ax, figsize=(5.5, 4.0))
+    levels = set()
+    for i, (label, table) in enumerate(tables.items()):
+        x = np.asarray(table["spread"], dtype=float)
+        cov = np.asarray(table["coverage"], dtype=float)
+        se = np.asarray(table["se"], dtype=float)
+        levels.update(np.asarray(table["level"], dtype=float).tolist())
+        ax.errorbar(x, cov, yerr=2.0 * se, fmt="o-", color=f"C{i}", ms=4, lw=1, capsize=2, label=label)
+    for lv in sorted(levels):
+        ax.axhline(lv, color="0.3", lw=1, ls="--")
+    ax.set_xlabel("predicted spread (group mean)")
+    ax.set_ylabel("share of targets inside the central interval")
+    ax.set_title(title or "Interval coverage by predicted spread")
+    if any(label is not None for label in tables):
+        ax.legend(loc="lower left")
     return fig

@@ -179,3 +179,21 @@ def test_heteroscedastic_fit_beats_constant_scale_on_held_out_rows(rng):
 @parametrize_with_checks([JointLikelihoodRegressor(), JointLikelihoodRegressor(alpha=0.5, scale_features=[0])])
 def test_sklearn_estimator_checks(estimator, check):
     check(estimator)
+
+
+def test_held_out_coverage_per_decile_of_predicted_scale(rng):
+    # sigma x10 across the feature's range: the scale-varying fit covers 0.88-0.92 in every decile
+    # of its predicted scale; the constant-scale fit, grouped by the same deciles, does not
+    from lossfam.diagnostics import coverage_by_spread
+
+    n = 100_000
+    X = rng.uniform(0.0, 1.0, size=(n, 2))
+    y = 1.0 + 2.0 * X[:, 1] + np.exp(np.log(10.0) * X[:, 0]) * rng.normal(size=n)
+    tr, te = slice(0, n // 2), slice(n // 2, None)
+    spread = JointLikelihoodRegressor().fit(X[tr], y[tr])
+    const = JointLikelihoodRegressor(scale_features=[]).fit(X[tr], y[tr])
+    scale = spread.predict_parameters(X[te])[:, 1]
+    a = coverage_by_spread(spread.predict_distribution(X[te]), y[te], level=0.9, by=scale)
+    b = coverage_by_spread(const.predict_distribution(X[te]), y[te], level=0.9, by=scale)
+    assert a["group"].size == 10 and np.all((a["coverage"] >= 0.88) & (a["coverage"] <= 0.92))
+    assert b["coverage"][0] > 0.99 and b["coverage"][-1] < 0.8
