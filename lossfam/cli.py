@@ -2,7 +2,7 @@
 
 Usage::
 
-    lossfam rank DATA.csv --target COL [--families a,b:param=value,...] [--engine linear|lightgbm|xgboost]
+    lossfam rank DATA.csv --target COL [--families a,b:param=value,...] [--spread] [--engine linear|lightgbm|xgboost]
                     [--folds 5] [--seed 0] [--rounds 300] [--weight COL] [--offset COL] [--exposure COL]
                     [--features A,B,...] [--drop A,B,...] [--threads N]
                     [--plots DIR] [--report FILE.html] [--json] [--quiet]
@@ -406,6 +406,9 @@ def _parser():
     cmd.add_argument("--demo", action="store_true", help=f"use the built-in demo data ({DEMO_FILE})")
     cmd.add_argument("--families", help="comma-separated family names, parameters as name:param=value "
                      "(e.g. gaussian,asymmetric_laplace:quantile=0.9; default: every applicable family)")
+    cmd.add_argument("--spread", action="store_true",
+                     help="add each family's scale-varying version (e.g. gaussian_spread after gaussian) where one "
+                          "is registered, so both compete on the same folds")
     cmd.add_argument("--engine", default="linear", choices=selection.ENGINES, help="model fitted per family (default: linear)")
     cmd.add_argument("--folds", type=int, default=5, help="cross-validation folds (default: 5)")
     cmd.add_argument("--seed", type=int, default=0, help="seed of the folds, engines and randomized residuals")
@@ -551,7 +554,7 @@ def _run(args, data, target, families):
             rows, details, summary = selection._rank_detailed(
                 data["X"], y, families=families, engine=args.engine, folds=args.folds, weight=data["weight"],
                 seed=args.seed, offset=data["offset"], exposure=data["exposure"], rounds=args.rounds,
-                threads=args.threads, progress=log,
+                threads=args.threads, progress=log, spread=args.spread,
             )
     except ValueError as exc:
         return _fail(str(exc))

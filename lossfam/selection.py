@@ -36,6 +36,17 @@ reparametrised (scale 2b), so it would only duplicate the laplace row.  Pass it
 explicitly (e.g. ``lossfam.family("asymmetric_laplace", quantile=0.9)``) to
 compare a quantile model.
 
+Scale-varying families
+----------------------
+A family with several raw scores per row (:class:`lossfam.SeveralScoreFamily`, e.g.
+``gaussian_spread``) models its scale (or shape) per row, with its own linear model (linear
+engine: ``lossfam.sklearn.JointLikelihoodRegressor``, every raw score fitted jointly on the
+training fold); it has no constant nuisance parameters to fit afterwards.  ``spread=True`` adds
+the spread version of each candidate after it, so the constant-scale and the scale-varying model
+of one law are scored on the same held-out rows: the ``behind_best`` distance between the two,
+with its paired standard error, says whether the varying scale is worth modelling.  The boosting
+engines list such families as failed for now (the linear engine fits them).
+
 Nuisance parameters: fitted on rows the model did not train on
 --------------------------------------------------------------
 A boosted model fits its training rows more closely than new ones, so a scale
@@ -103,6 +114,7 @@ import numpy as np
 
 from . import _checks, diagnostics
 from .censoring import IntervalTarget
+from .families._several import SeveralScoreFamily
 from .registry import available, family as make_family
 
 ENGINES = ("linear", "lightgbm", "xgboost")
@@ -147,7 +159,7 @@ COLUMNS = ("place", "family", "nll_per_row", "nll_uncertainty", "behind_best", "
            "calibration90", "plain_interval90", "residual_ks", "rounds_used", "nuisance", "scored_by",
            "status", "note")
 
-__all__ = ["rank_families", "ENGINES", "NOT_BY_DEFAULT", "COLUMNS", "Ranking"]
+__all__ = ["rank_families", "spread_versions", "ENGINES", "NOT_BY_DEFAULT", "COLUMNS", "Ranking"]
 
 
 # ---------------------------------------------------------------------- engines
@@ -161,6 +173,9 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
     """
     if engine == "linear":
         return _fit_linear(fam, X, y, w, offset, options, seed), None
+    if isinstance(fam, SeveralScoreFamily):
+        raise ValueError(f"the {engine} engine does not train families with several raw scores per row "
+                         "here yet; rank them with engine='linear'")
     if engine == "lightgbm":
         import lightgbm as lgb
 
@@ -214,7 +229,8 @@ RIDGE_FALLBACK = (1e-4, 1e-3, 1e-2, 1e-1)
 
 
 def _fit_linear(fam, X, y, w, offset, options, seed):
-    """The linear engine: LikelihoodRegressor on the (one-hot encoded, centred) features.
+    """The linear engine: LikelihoodRegressor on the (one-hot encoded, centred) features
+    (JointLikelihoodRegressor, a linear model for every raw score, for several-score families).
 
     The unpenalised MLE, or a small ridge penalty where that MLE is unbounded:
     when the fit warns that the likelihood has no finite maximiser (separated
@@ -225,8 +241,16 @@ def _fit_linear(fam, X, y, w, offset, options, seed):
     family).  The returned predictor carries ``note`` saying so (shown in the
     table).  A penalty given in ``options`` (alpha) is used as it is.
     """
-    from .sklearn import LikelihoodRegressor, UnboundedLikelihoodWarning
+    from .sklearn import JointLikelihoodRegressor, LikelihoodRegressor, UnboundedLikelihoodWarning
 
+    if isinstance(fam, SeveralScoreFamily):
+        # a linear model for every raw score, fitted jointly; an unbounded likelihood (a scale
+        # shrinking to 0 on rows fitted exactly) shows as a fit that does not converge
+        from sklearn.exceptions import ConvergenceWarning
+
+        Estimator, Unbounded = JointLikelihoodRegressor, ConvergenceWarning
+    else:
+        Estimator, Unbounded = LikelihoodRegressor, UnboundedLikelihoodWarning
     onehot = _OneHot(X) if _has_categories(X) else None
     Xe = X if onehot is None else onehot(X)
     # centre the columns at the training fold's means: the same model (the intercept absorbs the
@@ -235,9 +259,9 @@ def _fit_linear(fam, X, y, w, offset, options, seed):
     centre = Xe.mean(axis=0)
     Xc = Xe - centre
     with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", UnboundedLikelihoodWarning)
-        est = LikelihoodRegressor(family=fam, **options).fit(Xc, y, sample_weight=w, offset=offset)
-    unbounded = [c for c in caught if issubclass(c.category, UnboundedLikelihoodWarning)]
+        warnings.simplefilter("always", Unbounded)
+        est = Estimator(family=fam, **options).fit(Xc, y, sample_weight=w, offset=offset)
+    unbounded = [c for c in caught if issubclass(c.category, Unbounded)]
     for c in caught:
         if c not in unbounded:
             warnings.warn_explicit(c.message, c.category, c.filename, c.lineno)
@@ -256,12 +280,12 @@ def _fit_linear(fam, X, y, w, offset, options, seed):
                 train[test] = False
                 o_tr = None if offset is None else offset[train]
                 o_te = None if offset is None else offset[test]
-                m = LikelihoodRegressor(family=fam, alpha=alpha, **options).fit(
+                m = Estimator(family=fam, alpha=alpha, **options).fit(
                     Xs[train], y[train], sample_weight=w[train], offset=o_tr)
                 total += float(np.dot(w[test], m.family_.nll(y[test], m.predict_raw(Xs[test], offset=o_te))))
             if total < best:
                 best, best_alpha = total, alpha
-        est = LikelihoodRegressor(family=fam, alpha=best_alpha, **options).fit(Xs, y, sample_weight=w, offset=offset)
+        est = Estimator(family=fam, alpha=best_alpha, **options).fit(Xs, y, sample_weight=w, offset=offset)
         note = (f"unpenalised MLE unbounded; ridge alpha={best_alpha:g} on standardised columns, "
                 "chosen by 3-fold CV within the training fold")
 
@@ -303,6 +327,8 @@ def _has_categories(X):
 def _fit_family(fit, engine, fam, X, y, w, off, hold):
     """Location, then nuisance parameters from held-back rows (boosting) or the training fold (linear)."""
     predict, used = fit(fam, X, y, w, off, hold, False)
+    if isinstance(fam, SeveralScoreFamily):
+        return fam, predict, used  # every parameter has its own raw score, fitted with the location
     Xn, yn, wn, on = hold if hold is not None else (X, y, w, off)
     fam = fam.fit_nuisance(yn, predict(Xn, on), wn)
     if engine in _REFIT_ENGINES and fam.location_needs_nuisance and fam.params:
@@ -383,12 +409,51 @@ def _constructible(cls):
     return True
 
 
-def _candidates(families, y):
+def spread_versions() -> dict:
+    """{one-score family name: name of the registered several-score family that gives the same law
+    a scale (or shape) of its own per row}, read from each several-score family's
+    ``constant_scale()``."""
+    out = {}
+    for name in available(scores="several"):
+        try:
+            base = make_family(name).constant_scale()
+        except (TypeError, ValueError):  # a registered class without usable defaults
+            continue
+        if base is not None and base.name not in out:
+            out[base.name] = name
+    return out
+
+
+def _with_spread(families):
+    """The candidates, each one-score family followed by its spread version (when one is registered
+    and not already listed); a family object passes its shared fixed parameters (e.g. quantile) on."""
+    table = spread_versions()
+    listed = {f if isinstance(f, str) else f.name for f in families}
+    out = []
+    for spec in families:
+        out.append(spec)
+        name = spec if isinstance(spec, str) else spec.name
+        twin = table.get(name)
+        if twin is None or twin in listed:
+            continue
+        if isinstance(spec, str):
+            out.append(twin)
+        else:
+            fam = make_family(twin)
+            shared = {k: v for k, v in spec.params.items() if k in fam.params}
+            out.append(fam.with_params(**shared) if shared else fam)
+        listed.add(twin)
+    return out
+
+
+def _candidates(families, y, spread=False):
     """[(family or None, label, reason, given_as_object)] for the requested or default families."""
     if families is None:
         families = [n for n in available(scores="one") if n not in NOT_BY_DEFAULT]
     elif isinstance(families, str):
         families = [s.strip() for s in families.split(",") if s.strip()]
+    if spread:
+        families = _with_spread(list(families))
     out = []
     for spec in families:
         obj = not isinstance(spec, str)
@@ -555,7 +620,7 @@ def _split_hold(idx, seed, k):
 
 def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, *,
                    offset=None, exposure=None, rounds=DEFAULT_ROUNDS, engine_params=None, threads=None,
-                   progress=None):
+                   progress=None, spread=False):
     """The machinery behind :func:`rank_families`: returns (rows, details by label, summary)."""
     if engine not in ENGINES:
         raise ValueError(f"rank_families: engine must be one of {', '.join(ENGINES)}, got {engine!r}")
@@ -591,7 +656,7 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
         fold_of[test] = k
     failures = _engine_errors(engine)
     rows, details = [], {}
-    cands = _candidates(families, y)
+    cands = _candidates(families, y, spread)
     for ci, (fam0, na_label, reason, obj) in enumerate(cands):
         if reason is not None:
             rows.append({"family": na_label, "status": STATUS_NA, "note": reason})
@@ -650,8 +715,12 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
         notes = []
         if scored == SCORED_INTERVAL:
             notes.append("continuous law scored on integer targets by the probability of the unit interval around y")
-        if exposure is not None and fam0.link_function.name != "log":
-            notes.append(f"log(exposure) shifts this family's raw score on its {fam0.link_function.name} "
+        several = isinstance(fam0, SeveralScoreFamily)
+        link_name = fam0.links[0].name if several else fam0.link_function.name
+        if several:
+            notes.append(f"{', '.join(fam0.score_names[1:])} modelled per row (a raw score of its own)")
+        if exposure is not None and link_name != "log":
+            notes.append(f"log(exposure) shifts this family's raw score on its {link_name} "
                          "link; exposure scales the mean only under a log link")
         penalised = [t for t in penalty_notes if t]
         if penalised:
@@ -734,7 +803,7 @@ def _table_notes(rows):
 
 def rank_families(X, y, families=None, engine="linear", folds=5, weight=None, seed=0, *,
                   offset=None, exposure=None, rounds=DEFAULT_ROUNDS, engine_params=None, threads=None,
-                  progress=False, as_frame=None):
+                  progress=False, as_frame=None, spread=False):
     """Put noise models in order by cross-validated held-out negative log-likelihood.
 
     Parameters
@@ -750,7 +819,9 @@ def rank_families(X, y, families=None, engine="linear", folds=5, weight=None, se
         likelihood (the others are "not applicable"), scored by the censored
         nll, with residuals from the PIT randomized over each censoring interval.
     families : list of names or family objects, optional
-        Default: every registered family applicable to y except asymmetric_laplace.
+        Default: every registered family with one raw score per row that is applicable to y,
+        except asymmetric_laplace.  Families with several raw scores per row (a scale of their
+        own per row, e.g. ``gaussian_spread``) may be listed too.
     engine : {"linear", "lightgbm", "xgboost"}
         "linear": ``lossfam.sklearn.LikelihoodRegressor``; the others boost
         trees with ``lossfam.lightgbm.train`` / ``lossfam.xgboost.train``.
@@ -775,6 +846,10 @@ def rank_families(X, y, families=None, engine="linear", folds=5, weight=None, se
         Threads per boosting engine (default 2).
     progress : bool or callable
         Report progress (on stderr when True, or to the callable).
+    spread : bool
+        Add, after each candidate, its spread version where one is registered (the same law with
+        its scale or shape modelled per row: ``spread_versions()``), so both compete on the same
+        folds and the table says whether a varying scale is worth modelling.  Default False.
     as_frame : bool, optional
         Return a pandas DataFrame (default when pandas is installed) or a
         :class:`Ranking` (a list of dicts that renders as HTML in notebooks).
@@ -804,7 +879,8 @@ def rank_families(X, y, families=None, engine="linear", folds=5, weight=None, se
       or the footing).
     """
     rows, _, _ = _rank_detailed(X, y, families, engine, folds, weight, seed, offset=offset, exposure=exposure,
-                                rounds=rounds, engine_params=engine_params, threads=threads, progress=progress)
+                                rounds=rounds, engine_params=engine_params, threads=threads, progress=progress,
+                                spread=spread)
     notes = _table_notes(rows)
     if as_frame is False:
         out = Ranking(rows)

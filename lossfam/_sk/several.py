@@ -110,6 +110,9 @@ class JointLikelihoodRegressor(RegressorMixin, BaseEstimator):
             raise ValueError(f"{type(self).__name__}: {fam.name} has one raw score per row; use "
                              "LikelihoodRegressor for it, or a family with several raw scores "
                              f"({', '.join(_several_names())})")
+        if getattr(fam, "raw_shift_invariant", False):
+            raise ValueError(f"{type(self).__name__}: {fam.name}'s raw scores are identified only up to a "
+                             "common shift; fit it with MultinomialLikelihoodClassifier (one class as reference)")
         return fam
 
     def __sklearn_tags__(self):

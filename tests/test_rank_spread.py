@@ -1,0 +1,80 @@
+"""rank_families with several-score families: scale-varying against constant-scale on the same folds."""
+import csv
+import json
+
+import numpy as np
+import pytest
+
+import lossfam
+from lossfam import cli, selection
+
+
+def _hetero(rng, n, factor):
+    # invented: delivery delay (hours) against route length; its spread grows by `factor` across
+    # the range of route length (factor 1: the same spread everywhere)
+    X = rng.uniform(0.0, 1.0, size=(n, 2))
+    y = 2.0 + 1.5 * X[:, 1] + np.exp(np.log(factor) * X[:, 0]) * rng.normal(size=n)
+    return X, y
+
+
+def test_default_candidates_are_unchanged_and_spread_adds_the_twins():
+    y = np.linspace(0.1, 0.9, 20)
+    plain = [c[0].name for c in selection._candidates(None, y)]
+    assert plain == [n for n in lossfam.available(scores="one") if n not in selection.NOT_BY_DEFAULT]
+    assert selection.spread_versions()["gaussian"] == "gaussian_spread"
+    both = [c[0].name for c in selection._candidates(None, y, spread=True)]
+    for one, several in selection.spread_versions().items():
+        if one in plain:
+            assert both.index(several) == both.index(one) + 1
+    assert [n for n in both if n not in plain] == [n for n in both if n in lossfam.available(scores="several")]
+    # listed already: not added twice
+    assert [c[0].name for c in selection._candidates(["gaussian_spread", "gaussian"], y, spread=True)] == \
+        ["gaussian_spread", "gaussian"]
+
+
+def test_heteroscedastic_data_the_spread_model_wins_clearly(rng):
+    X, y = _hetero(rng, 3000, 10.0)
+    rows = lossfam.rank_families(X, y, families=["gaussian"], spread=True, folds=3, as_frame=False)
+    by = {r["family"]: r for r in rows}
+    assert rows[0]["family"] == "gaussian_spread"
+    far = by["gaussian"]
+    assert far["behind_best"] > 0.2 and far["behind_best"] > 10 * far["behind_best_uncertainty"]
+    assert abs(by["gaussian_spread"]["calibration90"] - 0.9) < 0.02
+    assert "modelled per row" in by["gaussian_spread"]["note"]
+
+
+def test_homoscedastic_data_the_spread_model_does_not_overfit(rng):
+    X, y = _hetero(rng, 3000, 1.0)
+    rows = lossfam.rank_families(X, y, families=["gaussian", "gaussian_spread"], folds=3, as_frame=False)
+    by = {r["family"]: r["nll_per_row"] for r in rows}
+    assert abs(by["gaussian_spread"] - by["gaussian"]) < 0.005 * by["gaussian"]
+
+
+def test_boosting_engines_list_several_score_families_as_failed(rng):
+    pytest.importorskip("lightgbm")
+    X, y = _hetero(rng, 300, 10.0)
+    rows = lossfam.rank_families(X, y, families=["gaussian", "gaussian_spread"], engine="lightgbm", folds=2,
+                                 rounds=5, as_frame=False)
+    by = {r["family"]: r for r in rows}
+    assert by["gaussian"]["status"] == "ok"
+    assert by["gaussian_spread"]["status"] == "failed" and "engine='linear'" in by["gaussian_spread"]["note"]
+
+
+def test_multinomial_in_the_ranking_is_refused_with_a_reason(rng):
+    X = rng.normal(size=(60, 2))
+    y = rng.integers(0, 3, size=60).astype(float)
+    rows = lossfam.rank_families(X, y, families=["multinomial"], folds=2, as_frame=False)
+    assert rows[0]["status"] == "failed" and "MultinomialLikelihoodClassifier" in rows[0]["note"]
+
+
+def test_cli_spread_flag(tmp_path, capsys, rng):
+    X, y = _hetero(rng, 600, 10.0)
+    path = tmp_path / "delays.csv"
+    with open(path, "w", newline="") as fh:
+        out = csv.writer(fh)
+        out.writerow(["route", "load", "delay"])
+        out.writerows([[f"{a:.5f}", f"{b:.5f}", f"{c:.5f}"] for (a, b), c in zip(X, y)])
+    assert cli.main(["rank", str(path), "--target", "delay", "--families", "gaussian", "--spread", "--json",
+                     "--quiet", "--folds", "2"]) == 0
+    rows = json.loads(capsys.readouterr().out)
+    assert [r["family"] for r in rows] == ["gaussian_spread", "gaussian"]
