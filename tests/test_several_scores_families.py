@@ -8,7 +8,12 @@ from scipy import stats
 
 import lossfam
 
-SPREAD_FAMILIES = ["laplace_spread", "asymmetric_laplace_spread"]
+#: each family and the words of its refusal of a constant target (no finite maximum-likelihood scale)
+SPREAD_FAMILIES = {
+    "laplace_spread": "scale is 0",
+    "asymmetric_laplace_spread": "scale is 0",
+    "student_t_spread": "too many residuals are exactly zero",
+}
 
 
 def _engel_foodexp():
@@ -100,6 +105,54 @@ def test_asymmetric_laplace_spread_quantile_is_checked():
         lossfam.family("asymmetric_laplace_spread", quantile=1.0)
 
 
+# ---------------------------------------------------------------------- student_t_spread
+def _quarterly_inflation():
+    # statsmodels.datasets.macrodata: US quarterly macroeconomic series 1959-2009 (203 rows),
+    # shipped with statsmodels; "infl" is the annualised inflation rate (heavy-tailed)
+    sm = pytest.importorskip("statsmodels.api")
+    return sm.datasets.macrodata.load_pandas().data["infl"].to_numpy(dtype=float)
+
+
+@pytest.mark.parametrize("df", [1.5, 4.0, 30.0])
+def test_student_t_spread_baseline_is_the_scipy_t_fit(df):
+    # outside reference: scipy.stats.t.fit with the degrees of freedom fixed (numerical maximum
+    # likelihood over loc and scale) on US quarterly inflation: ours reaches at least scipy's
+    # likelihood, and the estimates agree to scipy's optimiser tolerance
+    y = _quarterly_inflation()
+    _, loc, scale = stats.t.fit(y, fdf=df)
+    fam = lossfam.family("student_t_spread", df=df)
+    c = fam.baseline(y)
+    ours = fam.nll(y, _constant(fam, c, y.size)).sum()
+    theirs = -stats.t.logpdf(y, df, loc, scale).sum()
+    assert ours <= theirs + 1e-9
+    np.testing.assert_allclose(c, [loc, np.log(scale)], rtol=1e-4, atol=1e-4)
+
+
+def test_student_t_spread_at_constant_scale_is_the_one_score_family(rng):
+    fam = lossfam.family("student_t_spread", df=3.0)
+    assert fam.constant_scale() == lossfam.family("student_t", df=3.0)
+    y = rng.standard_t(3.0, size=200) * 2.0 + 1.0
+    c = fam.baseline(y)
+    one = fam.constant_scale().with_params(scale=np.exp(c[1]))
+    # at the joint maximum, the one-score family's location and scale fits return the same pair
+    np.testing.assert_allclose(one.baseline(y), c[0], rtol=1e-8, atol=1e-8)
+    np.testing.assert_allclose(one.fit_nuisance(y, np.full(y.size, c[0])).scale, np.exp(c[1]), rtol=1e-8)
+    raw = _constant(fam, c, y.size)
+    np.testing.assert_allclose(fam.nll(y, raw), one.nll(y, raw[:, 0]), rtol=1e-13)
+
+
+@pytest.mark.parametrize("df", [0.5, 1.0, 4.0, 1e3])
+def test_student_t_spread_fisher_at_several_df(df, rng):
+    # Monte Carlo variance of the score against the closed form (the generic test runs at df = 4)
+    fam = lossfam.family("student_t_spread", df=df)
+    raw = np.array([[0.7, 0.3]])
+    rep = np.repeat(raw, 200_000, axis=0)
+    y = fam.distribution(rep).rvs(random_state=rng)
+    g = fam.gradient(y, rep)
+    f = fam.fisher(raw)[0]
+    np.testing.assert_allclose(g.T @ g / y.size, f, rtol=0.03, atol=0.03 * f.max())
+
+
 # ---------------------------------------------------------------------- every family here
 @pytest.mark.parametrize("name", SPREAD_FAMILIES)
 def test_far_tails_are_finite(name, rng):
@@ -135,7 +188,7 @@ def test_bad_targets_are_named_by_row(name):
 @pytest.mark.parametrize("name", SPREAD_FAMILIES)
 def test_baseline_refuses_a_zero_scale(name):
     fam = lossfam.family(name)
-    with pytest.raises(ValueError, match=f"{name}: .*scale is 0"):
+    with pytest.raises(ValueError, match=f"{name}: .*{SPREAD_FAMILIES[name]}"):
         fam.baseline(np.full(5, 3.0))
 
 

@@ -15,12 +15,13 @@ from .lognormal import Lognormal
 from .negative_binomial import NegativeBinomial
 from .poisson import Poisson
 from .student_t import StudentT
+from .student_t_spread import StudentTSpread
 from .tweedie import Tweedie, TweedieLaw, tweedie_power_profile
 from .weibull import Weibull
 
 BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma,
             Tweedie, NegativeBinomial, StudentT, Lognormal, Beta, Weibull)
 #: the built-in families with several raw scores per row (lossfam.families._several)
-BUILT_IN_SEVERAL = (GaussianSpread, LaplaceSpread, AsymmetricLaplaceSpread)
+BUILT_IN_SEVERAL = (GaussianSpread, LaplaceSpread, AsymmetricLaplaceSpread, StudentTSpread)
 
 __all__ = ["Family", "FromParam", "SeveralScoreFamily", "BUILT_IN_SEVERAL", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN + BUILT_IN_SEVERAL]
