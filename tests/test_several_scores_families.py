@@ -13,6 +13,7 @@ SPREAD_FAMILIES = {
     "laplace_spread": "scale is 0",
     "asymmetric_laplace_spread": "scale is 0",
     "student_t_spread": "too many residuals are exactly zero",
+    "gamma_spread": "shape is infinite",
 }
 
 
@@ -153,13 +154,67 @@ def test_student_t_spread_fisher_at_several_df(df, rng):
     np.testing.assert_allclose(g.T @ g / y.size, f, rtol=0.03, atol=0.03 * f.max())
 
 
+# ---------------------------------------------------------------------- gamma_spread
+def test_gamma_spread_baseline_is_the_scipy_gamma_fit():
+    # outside reference: scipy.stats.gamma.fit with loc fixed at 0 (maximum likelihood of the shape
+    # and scale) on the Engel food expenditures; mean = shape * scale
+    y = _engel_foodexp()
+    a, _, scale = stats.gamma.fit(y, floc=0)
+    c = lossfam.family("gamma_spread").baseline(y)
+    np.testing.assert_allclose(c, [np.log(a * scale), np.log(a)], rtol=1e-7)
+
+
+def test_gamma_spread_baseline_at_constant_scores_is_the_one_score_fit(rng):
+    y = rng.gamma(3.0, 2.0, size=300)
+    w = rng.uniform(0.5, 2.0, size=y.size)
+    o = rng.normal(0.0, 0.3, size=y.size)
+    fam = lossfam.family("gamma_spread")
+    one = fam.constant_scale()
+    assert one == lossfam.family("gamma")
+    c0 = one.baseline(y, w, offset=o)
+    k = one.fit_nuisance(y, c0 + o, w).shape
+    c = fam.baseline(y, w, offset=o)
+    np.testing.assert_allclose(c, [c0, np.log(k)], rtol=1e-12)
+    raw = _constant(fam, [0.3, np.log(k)], y.size)
+    np.testing.assert_allclose(fam.nll(y, raw), one.with_params(shape=k).nll(y, raw[:, 0]), rtol=1e-12)
+
+
+@pytest.mark.parametrize("shape", [0.05, 1.0, 40.0, 1e4])
+def test_gamma_spread_fisher_over_the_shape_range(shape, rng):
+    # Monte Carlo variance of the score against k and k^2 trigamma(k) - k (the generic test runs
+    # at shapes near 1); at k = 1e4 the series branch of f(k) is used
+    fam = lossfam.family("gamma_spread")
+    raw = np.array([[0.5, np.log(shape)]])
+    rep = np.repeat(raw, 200_000, axis=0)
+    y = fam.distribution(rep).rvs(random_state=rng)
+    g = fam.gradient(y, rep)
+    f = fam.fisher(raw)[0]
+    np.testing.assert_allclose(g.T @ g / y.size, f, rtol=0.03, atol=0.03 * f.max())
+
+
+def test_gamma_spread_special_functions_against_mpmath():
+    # m(k) = k (log k - digamma k), f(k) = k (k trigamma k - 1), c(k) = k + lgamma k - k log k
+    # against mpmath at 50 digits, across both sides of the branch points k = 1 and k = 16
+    mp = pytest.importorskip("mpmath")
+    from lossfam.families.gamma_spread import _c, _f, _m
+    mp.mp.dps = 50
+    k = np.array([1e-300, 1e-8, 0.3, 0.999999, 1.0, 3.0, 15.9999, 16.0, 100.0, 1e8, 1e15])
+    r1 = np.log(k)
+    exact = [[float(K * (mp.log(K) - mp.digamma(K))), float(K * (K * mp.psi(1, K) - 1)),
+              float(K + mp.loggamma(K) - K * mp.log(K))] for K in map(mp.mpf, k.tolist())]
+    np.testing.assert_allclose(np.column_stack([_m(k, r1), _f(k), _c(k, r1)]), exact, rtol=1e-13)
+
+
 # ---------------------------------------------------------------------- every family here
 @pytest.mark.parametrize("name", SPREAD_FAMILIES)
 def test_far_tails_are_finite(name, rng):
     # legal but extreme input: large |raw| in both columns and targets far from the location
     fam = lossfam.family(name)
     n = 64
-    raw = np.column_stack([rng.choice([-1e6, 0.0, 1e6], n), rng.choice([-30.0, 0.0, 30.0], n)])
+    # a location through the identity link may be far out; through a log link, e^{+-30} is already
+    # far (beyond e^{+-709} the true values leave float64, and +-inf is then the honest answer)
+    far = 1e6 if fam.links[0] is lossfam.links.IDENTITY else 30.0
+    raw = np.column_stack([rng.choice([-far, 0.0, far], n), rng.choice([-30.0, 0.0, 30.0], n)])
     y = _extreme_targets(fam, rng, n)
     for curvature in ("newton", "fisher", "natural"):
         g, d = fam.grad_hess(y, raw, curvature=curvature)
@@ -171,7 +226,7 @@ def test_far_tails_are_finite(name, rng):
 
 def _extreme_targets(fam, rng, n):
     if fam.target_domain is lossfam._checks.REAL:
-        return rng.choice([-1e12, -1.0, 0.0, 1e-9, 1e12], n)
+        return rng.choice([-1e200, -1e12, -1.0, 0.0, 1e-9, 1e12, 1e200], n)
     return rng.choice([1e-12, 1.0, 1e12], n)
 
 

@@ -6,6 +6,7 @@ from .asymmetric_laplace_spread import AsymmetricLaplaceSpread
 from .bernoulli import Bernoulli
 from .beta import Beta
 from .gamma import Gamma
+from .gamma_spread import GammaSpread
 from .gaussian import Gaussian
 from .gaussian_spread import GaussianSpread
 from .huber import Huber, HuberLaw
@@ -22,6 +23,6 @@ from .weibull import Weibull
 BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma,
             Tweedie, NegativeBinomial, StudentT, Lognormal, Beta, Weibull)
 #: the built-in families with several raw scores per row (lossfam.families._several)
-BUILT_IN_SEVERAL = (GaussianSpread, LaplaceSpread, AsymmetricLaplaceSpread, StudentTSpread)
+BUILT_IN_SEVERAL = (GaussianSpread, LaplaceSpread, AsymmetricLaplaceSpread, GammaSpread, StudentTSpread)
 
 __all__ = ["Family", "FromParam", "SeveralScoreFamily", "BUILT_IN_SEVERAL", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN + BUILT_IN_SEVERAL]

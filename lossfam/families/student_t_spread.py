@@ -26,8 +26,8 @@ location entry is negative for outlying rows, |u| > sqrt(nu); the scale entry is
 
 Numerics.  For |u| >= 1 the products are formed as a u = (nu+1) / (u + nu/u) and
 a u^2 = (nu+1) / (1 + nu/u^2), and the Hessian with nu/u^2 in place of nu: no u^2 overflows,
-and a far outlier's gradient tends to (0, -nu).  log1p(u^2/nu) is the one-score family's
-overflow-free form.
+and a far outlier's gradient tends to (0, -nu).  Where u^2 overflows, log1p(u^2/nu) is
+log1p(e^x) with x = 2 (log|y - mu| - r1) - log nu (the one-score family's overflow-free form).
 
 Baseline: no closed form (the joint location-scale t likelihood); the generic BFGS search from
 the one-score family's baseline (its weighted M-estimate at the default scale) and the fitted
@@ -45,7 +45,7 @@ from scipy import stats
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY, LOG
 from ._several import SeveralScoreFamily
-from .student_t import StudentT, _log1p_u2, _log_norm
+from .student_t import StudentT, _log_abs_diff, _log_norm
 
 
 @dataclass(frozen=True)
@@ -65,9 +65,14 @@ class StudentTSpread(SeveralScoreFamily):
 
     def _nll(self, y, raw):
         nu = self.df
-        s = np.exp(raw[:, 1])
         with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
-            return 0.5 * (nu + 1.0) * _log1p_u2(y, raw[:, 0], nu, s) + (raw[:, 1] + _log_norm(nu))
+            u = np.where(y == raw[:, 0], 0.0, (y - raw[:, 0]) * np.exp(-raw[:, 1]))
+            lg = np.log1p(u * u / nu)
+            far = ~np.isfinite(lg)
+            if np.any(far):  # u^2 overflows: log1p(e^x), x = log(u^2 / nu) from logs
+                x = 2.0 * (_log_abs_diff(y[far], raw[far, 0]) - raw[far, 1]) - np.log(nu)
+                lg[far] = np.logaddexp(0.0, x)
+            return 0.5 * (nu + 1.0) * lg + (raw[:, 1] + _log_norm(nu))
 
     def _pieces(self, y, raw):
         """(u, a u, a u^2, nu / (nu + u^2) and u^2 / (nu + u^2)) without overflow of u^2."""
