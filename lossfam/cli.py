@@ -317,7 +317,7 @@ def _safe(name):
     return re.sub(r"[^A-Za-z0-9_.=-]+", "_", name).strip("_")
 
 
-_PLOT_NAME = re.compile(r"^\d{2,}_.+_(qq|pit|coverage|calibration)(-\d+)?\.png$")
+_PLOT_NAME = re.compile(r"^\d{2,}_.+_(qq|pit|coverage|calibration|coverage_by_spread)(-\d+)?\.png$")
 
 
 def _free_path(path):

@@ -72,6 +72,7 @@ __all__ = [
     "binned_calibration",
     "interval_coverage",
     "coverage_by_spread",
+    "grouped_coverage",
     "SPREADS",
     "log_interval_probability",
 ]
@@ -460,6 +461,22 @@ def coverage_by_spread(law, y, *, level=0.9, groups=10, spread="std", by=None, w
         raise ValueError(f"{owner}: {what} is not finite on {rows.size} row(s), e.g. rows {rows[:5].tolist()}"
                          + (" (a law without a finite standard deviation: use spread='iqr')"
                             if by is None and spread == "std" else ""))
+    table = grouped_coverage(key, (lo <= y) & (y <= hi), hi - lo, w, level, int(groups))
+    if as_frame:
+        import pandas as pd
+
+        return pd.DataFrame(table)
+    return table
+
+
+def grouped_coverage(key, inside, width, w, level, groups=10) -> dict:
+    """The table of :func:`coverage_by_spread` from per-row grouping values ``key``, interval
+    indicators ``inside`` (the row's target lies in its central ``level`` interval), interval
+    widths and weights (all (n,) arrays, checked by the caller)."""
+    key = np.asarray(key, dtype=float)
+    w = np.asarray(w, dtype=float)
+    inside = np.asarray(inside, dtype=bool)
+    width = np.asarray(width, dtype=float)
     # weighted quantiles (the inverse of the weighted empirical cdf), so weights act as repeated rows
     order = np.argsort(key, kind="stable")
     cum = np.cumsum(w[order])
@@ -470,7 +487,6 @@ def coverage_by_spread(law, y, *, level=0.9, groups=10, spread="std", by=None, w
     idx = np.clip(np.searchsorted(edges, key, side="right") - 1, 0, max(edges.size - 2, 0))
     _, idx = np.unique(idx, return_inverse=True)  # number the non-empty groups 0, 1, ...
     ng = int(idx.max()) + 1
-    inside = (lo <= y) & (y <= hi)
     wsum = np.bincount(idx, weights=w, minlength=ng)
     w2 = np.bincount(idx, weights=w * w, minlength=ng)
     count = np.bincount(idx, minlength=ng)
@@ -478,7 +494,7 @@ def coverage_by_spread(law, y, *, level=0.9, groups=10, spread="std", by=None, w
         cover = np.bincount(idx, weights=w * inside, minlength=ng) / wsum
         n_eff = wsum * wsum / w2
         mean_key = np.bincount(idx, weights=w * key, minlength=ng) / wsum
-    width = np.bincount(idx, weights=hi - lo, minlength=ng) / count
+    width = np.bincount(idx, weights=width, minlength=ng) / count
     low = np.array([key[idx == g].min() for g in range(ng)])
     high = np.array([key[idx == g].max() for g in range(ng)])
     keep = wsum > 0  # a group of zero-weight rows has no coverage to report
@@ -494,8 +510,4 @@ def coverage_by_spread(law, y, *, level=0.9, groups=10, spread="std", by=None, w
         "se": np.sqrt(level * (1.0 - level) / n_eff[keep]),
         "mean_width": width[keep],
     }
-    if as_frame:
-        import pandas as pd
-
-        return pd.DataFrame(table)
     return table

@@ -13,6 +13,8 @@ import html
 import io
 import math
 
+import numpy as np
+
 from . import selection
 
 __all__ = ["table_html", "figures", "write_report"]
@@ -123,6 +125,31 @@ def figures(rows, details, y):
         if d["p1"] is not None:
             yield r["place"], name, "calibration", plot.calibration_plot(
                 binned_calibration(y, d["p1"]), title=f"{name}: forecast chance against outcome")
+    fig = _coverage_by_spread_figure(rows, details, y)
+    if fig is not None:
+        yield 0, "families", "coverage_by_spread", fig
+
+
+def _coverage_by_spread_figure(rows, details, y):
+    """When a family with a scale per row was scored: the held-out coverage of every scored
+    family's central 90% interval per decile of the predicted 90% interval width of the best-placed
+    such family (the same rows in each group for every family; rows unweighted), or None."""
+    from . import plot
+    from .diagnostics import grouped_coverage
+
+    ok = [r for r in rows if r["status"] == selection.STATUS_OK]
+    several = [r for r in ok if details[r["family"]].get("several")]
+    if not several:
+        return None
+    lead = several[0]["family"]
+    key = details[lead]["width90"]
+    w = np.ones(key.shape[0])
+    tables = {r["family"]: grouped_coverage(key, details[r["family"]]["inside90"], details[r["family"]]["width90"],
+                                            w, selection.CALIBRATION_LEVEL)
+              for r in ok}
+    fig = plot.coverage_by_spread_plot(tables, title=f"90% coverage per decile of {lead}'s interval width")
+    fig.axes[0].set_xlabel(f"{lead}: predicted 90% interval width (decile mean)")
+    return fig
 
 
 def _png(fig) -> bytes:

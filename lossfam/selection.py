@@ -664,6 +664,7 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
         nll_rows = np.empty(n)
         z_all, u_all, mean_all = np.empty(n), np.empty(n), np.empty(n)
         inside = {lv: np.zeros(n, dtype=bool) for lv in PLOT_LEVELS}
+        width90 = np.empty(n)
         p1 = np.empty(n) if not censored and np.all((y == 0) | (y == 1)) else None
         fold_means, params, used, penalty_notes = [], [], [], []
         label = fam0.name
@@ -687,7 +688,11 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
                     raise ValueError(f"the held-out nll on fold {k + 1} is not finite for "
                                      f"{int(np.sum(~np.isfinite(s_nll)))} row(s)")
                 nll_rows[test], z_all[test], u_all[test] = s_nll, s_z, s_u
-                mean_all[test] = np.asarray(fam.distribution(raw).mean(), dtype=float)
+                law = fam.distribution(raw)
+                mean_all[test] = np.asarray(law.mean(), dtype=float)
+                lo90, hi90 = law.interval(CALIBRATION_LEVEL)
+                width90[test] = np.broadcast_to(np.asarray(hi90, dtype=float) - np.asarray(lo90, dtype=float),
+                                                (test.size,))
                 for lv in PLOT_LEVELS:
                     inside[lv][test] = s_in[lv]
                 if p1 is not None:
@@ -753,6 +758,11 @@ def _rank_detailed(X, y, families=None, engine="linear", folds=5, weight=None, s
                 "count": np.full(len(PLOT_LEVELS), n),
             },
             "p1": p1,
+            # per row: the predicted central 90% interval's width (the spread used to group rows in
+            # the coverage-by-spread plot) and whether the target lies in that interval
+            "width90": width90,
+            "inside90": inside[CALIBRATION_LEVEL],
+            "several": isinstance(fam0, SeveralScoreFamily),
         }
     summary = {
         "rows": int(n), "features": names, "feature_kinds": kinds, "folds": int(folds), "engine": engine,

@@ -78,3 +78,44 @@ def test_cli_spread_flag(tmp_path, capsys, rng):
                      "--quiet", "--folds", "2"]) == 0
     rows = json.loads(capsys.readouterr().out)
     assert [r["family"] for r in rows] == ["gaussian_spread", "gaussian"]
+
+
+def test_held_out_coverage_per_decile_in_the_ranking_details_and_plot(tmp_path, rng):
+    pytest.importorskip("matplotlib")
+    from lossfam import report
+    from lossfam.diagnostics import grouped_coverage
+
+    X, y = _hetero(rng, 20_000, 10.0)
+    rows, details, _ = selection._rank_detailed(X, y, families=["gaussian"], spread=True, folds=2)
+    key = details["gaussian_spread"]["width90"]
+    w = np.ones_like(y)
+    spread = grouped_coverage(key, details["gaussian_spread"]["inside90"], key, w, 0.9)
+    const = grouped_coverage(key, details["gaussian"]["inside90"], details["gaussian"]["width90"], w, 0.9)
+    assert spread["group"].size == 10
+    assert np.all((spread["coverage"] >= 0.88) & (spread["coverage"] <= 0.92))
+    assert const["coverage"][0] > 0.99 and const["coverage"][-1] < 0.8
+    kinds = [(place, kind) for place, _, kind, _ in report.figures(rows, details, y)]
+    assert (0, "coverage_by_spread") in kinds
+    rows1, details1, _ = selection._rank_detailed(X[:2000], y[:2000], families=["gaussian"], folds=2)
+    assert "coverage_by_spread" not in [k for _, _, k, _ in report.figures(rows1, details1, y[:2000])]
+
+
+def test_cli_plots_include_coverage_by_spread(tmp_path, capsys, rng):
+    pytest.importorskip("matplotlib")
+    X, y = _hetero(rng, 600, 10.0)
+    path = tmp_path / "delays.csv"
+    with open(path, "w", newline="") as fh:
+        out = csv.writer(fh)
+        out.writerow(["route", "load", "delay"])
+        out.writerows([[f"{a:.5f}", f"{b:.5f}", f"{c:.5f}"] for (a, b), c in zip(X, y)])
+    plots = tmp_path / "plots"
+    assert cli.main(["rank", str(path), "--target", "delay", "--families", "gaussian", "--spread", "--quiet",
+                     "--folds", "2", "--plots", str(plots)]) == 0
+    assert (plots / "00_families_coverage_by_spread.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    # the new plot's name is recognised as a plot: a directory holding only it is refused
+    for f in plots.iterdir():
+        if f.name != "00_families_coverage_by_spread.png":
+            f.unlink()
+    capsys.readouterr()
+    assert cli.main(["rank", str(path), "--target", "delay", "--quiet", "--plots", str(plots)]) == 2
+    assert "00_families_coverage_by_spread.png" in capsys.readouterr().err
