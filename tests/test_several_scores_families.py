@@ -364,3 +364,19 @@ def test_negative_binomial_spread_refuses_counts_that_are_not_overdispersed(rng)
         fam.baseline(rng.binomial(10, 0.5, size=500).astype(float))
     with pytest.raises(ValueError, match=r"non-negative integer; 1 row outside, e.g. row \[1\] = \[2.5\]"):
         fam.nll(np.array([1.0, 2.5]), np.zeros((2, 2)))
+
+
+def test_negative_binomial_spread_near_normal_expansion_matches_the_exact_sum():
+    # the expansion used for mu >= 3e4 and r >= 1e4 against the exact sum over the law's window
+    # (windows of about 5e3 to 3e4 counts: the sum still holds its digits there)
+    from lossfam.families import negative_binomial_spread as nbs
+    fam = lossfam.family("negative_binomial_spread")
+    mu = np.array([3e4, 1e5, 1e5])
+    r = np.array([1e4, 3e4, 1e5])
+    raw = np.column_stack([np.log(mu), -np.log(r)])
+    t = raw[:, 0] + raw[:, 1]
+    sd = np.sqrt(mu * (1 + mu / r))
+    lo = np.floor(mu - 10 * sd)
+    hi = np.ceil(mu + 10 * sd + 40 / np.logaddexp(0.0, -t))
+    exact = nbs._exact_window(fam, raw, lo, (hi - lo + 1).astype(np.int64))[0]
+    np.testing.assert_allclose(fam.fisher(raw)[:, 1, 1], exact, rtol=1e-7)
