@@ -13,6 +13,7 @@ from .huber import Huber, HuberLaw
 from .laplace import Laplace
 from .laplace_spread import LaplaceSpread
 from .lognormal import Lognormal
+from .multinomial import Multinomial
 from .negative_binomial import NegativeBinomial
 from .negative_binomial_spread import NegativeBinomialSpread
 from .poisson import Poisson
@@ -25,6 +26,6 @@ BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gam
             Tweedie, NegativeBinomial, StudentT, Lognormal, Beta, Weibull)
 #: the built-in families with several raw scores per row (lossfam.families._several)
 BUILT_IN_SEVERAL = (GaussianSpread, LaplaceSpread, AsymmetricLaplaceSpread, GammaSpread,
-                    NegativeBinomialSpread, StudentTSpread)
+                    NegativeBinomialSpread, StudentTSpread, Multinomial)
 
 __all__ = ["Family", "FromParam", "SeveralScoreFamily", "BUILT_IN_SEVERAL", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN + BUILT_IN_SEVERAL]

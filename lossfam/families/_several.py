@@ -93,6 +93,9 @@ class SeveralScoreFamily:
     prediction_kind: ClassVar[str] = "mean"
     #: {engine: {engine parameter: value}}: built-in objectives equal to this loss (e.g. softmax)
     native_twins: ClassVar[dict] = {}
+    #: True when adding one constant to every raw score of a row changes nothing (softmax): the
+    #: Hessian and Fisher matrices are then singular along (1, ..., 1)
+    raw_shift_invariant: ClassVar[bool] = False
     #: True when the Fisher matrix is diagonal in the raw scores (the natural gradient divides)
     fisher_diagonal: ClassVar[bool] = False
     #: raw-score columns in which the nll has a kink (module docstring)
@@ -203,7 +206,7 @@ class SeveralScoreFamily:
                 g = g / self._fisher_diagonal(raw)
                 d = np.ones_like(g)
             else:
-                g = np.linalg.solve(self._fisher(raw), g[:, :, None])[:, :, 0]
+                g = self._natural_gradient(y, raw, g)
                 d = np.ones_like(g)
         if w is not None:
             g = g * w[:, None]
@@ -253,6 +256,10 @@ class SeveralScoreFamily:
         """The predictive law per row (a frozen scipy.stats law with per-row arguments)."""
         return self._distribution(self.check_raw(raw))
 
+    def sample(self, raw, random_state=None) -> np.ndarray:
+        """(n,) one target drawn from each row's predictive law (simulation, predictive checks)."""
+        return self._sample(self.check_raw(raw), np.random.default_rng(random_state))
+
     # ------------------------------------------------------------------ hooks
     def _nll(self, y, raw):  # pragma: no cover - abstract
         raise NotImplementedError(f"{type(self).__name__} must implement _nll")
@@ -278,6 +285,13 @@ class SeveralScoreFamily:
         if rows.any():  # the Fisher diagonal of those rows only (it may be costly to compute)
             d[rows] = np.where(bad[rows], self._fisher_diagonal(raw[rows]), d[rows])
         return d
+
+    def _natural_gradient(self, y, raw, g):
+        """(n, k) F^{-1} g per row (a k x k solve; families with a closed form override this)."""
+        return np.linalg.solve(self._fisher(raw), g[:, :, None])[:, :, 0]
+
+    def _sample(self, raw, rng):
+        return np.asarray(self._distribution(raw).rvs(random_state=rng), dtype=float)
 
     def _start(self, y, w, offset):
         """A starting raw-score vector for the baseline search (subclasses give a closed form)."""
