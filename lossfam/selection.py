@@ -245,12 +245,13 @@ def _fit_linear(fam, X, y, w, offset, options, seed):
 
     if isinstance(fam, SeveralScoreFamily):
         # a linear model for every raw score, fitted jointly; an unbounded likelihood (a scale
-        # shrinking to 0 on rows fitted exactly) shows as a fit that does not converge
+        # shrinking to 0 on rows fitted exactly, a dispersion drifting to 0) shows as a fit that
+        # does not converge or as a raw score drifting far from its constant fit
         from sklearn.exceptions import ConvergenceWarning
 
-        Estimator, Unbounded = JointLikelihoodRegressor, ConvergenceWarning
+        Estimator, Unbounded = JointLikelihoodRegressor, (ConvergenceWarning, UnboundedLikelihoodWarning)
     else:
-        Estimator, Unbounded = LikelihoodRegressor, UnboundedLikelihoodWarning
+        Estimator, Unbounded = LikelihoodRegressor, (UnboundedLikelihoodWarning,)
     onehot = _OneHot(X) if _has_categories(X) else None
     Xe = X if onehot is None else onehot(X)
     # centre the columns at the training fold's means: the same model (the intercept absorbs the
@@ -259,7 +260,8 @@ def _fit_linear(fam, X, y, w, offset, options, seed):
     centre = Xe.mean(axis=0)
     Xc = Xe - centre
     with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", Unbounded)
+        for category in Unbounded:
+            warnings.simplefilter("always", category)
         est = Estimator(family=fam, **options).fit(Xc, y, sample_weight=w, offset=offset)
     unbounded = [c for c in caught if issubclass(c.category, Unbounded)]
     for c in caught:

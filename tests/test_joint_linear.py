@@ -269,3 +269,24 @@ def test_kinked_location_fit_is_not_beaten_by_a_direct_search(name, params, rng)
     wgt = np.exp(-raw[:, 1])
     below = np.sum(wgt[y < raw[:, 0] - 1e-9]) / wgt.sum()
     assert abs(below - tau) <= np.max(wgt) * 2 / wgt.sum() + 1e-12
+
+
+def test_dispersion_drifting_to_the_poisson_limit_warns():
+    # Poisson counts under a negative binomial with a log-linear dispersion: on these data (seed 3)
+    # the likelihood keeps rising as the dispersion of some rows goes to 0 (the Poisson limit),
+    # log alpha runs off to about -88 and the fit says so
+    from lossfam.sklearn import UnboundedLikelihoodWarning
+
+    rng = np.random.default_rng(3)
+    X = rng.uniform(-1.0, 1.0, size=(2000, 3))
+    y = rng.poisson(np.exp(1.0 + 0.5 * X[:, 0])).astype(float)
+    with pytest.warns(UnboundedLikelihoodWarning, match="log_dispersion moved"):
+        m = JointLikelihoodRegressor("negative_binomial_spread").fit(X, y)
+    assert m.predict_raw(X)[:, 1].min() < -25
+    # a ridge penalty keeps it finite, and no warning is given
+    import warnings as _w
+
+    with _w.catch_warnings():
+        _w.simplefilter("error")
+        mp = JointLikelihoodRegressor("negative_binomial_spread", alpha=0.01).fit(X, y)
+    assert mp.predict_raw(X)[:, 1].min() > -25

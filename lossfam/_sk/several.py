@@ -40,6 +40,10 @@ def _check_offset(offset, n, k, owner):
     return np.ascontiguousarray(o)
 
 
+#: a scale or shape raw score this far from its constant fit (alpha = 0) draws an UnboundedLikelihoodWarning
+DRIFT = 25.0
+
+
 class JointLikelihoodRegressor(RegressorMixin, BaseEstimator):
     """Linear model for every raw score of a several-score family, by joint maximum likelihood.
 
@@ -91,6 +95,11 @@ class JointLikelihoodRegressor(RegressorMixin, BaseEstimator):
     n_iter_ : Newton (or Fisher-scoring) steps taken
     n_fisher_steps_ : steps that used the expected information
     n_features_in_, feature_names_in_ (pandas input), fitted_with_offset_
+
+    With alpha = 0, a scale or shape raw score that ends more than ``DRIFT`` (25, a factor of
+    about 1e10) from its constant fit on some row draws an ``UnboundedLikelihoodWarning``: the
+    likelihood rises towards a boundary there (e.g. a negative binomial dispersion towards the
+    Poisson limit 0).
 
     ``predict`` gives the location (mean, median or quantile, ``family_.prediction_kind``);
     ``predict_raw`` all k raw scores; ``predict_parameters`` the distribution parameters;
@@ -198,6 +207,7 @@ class JointLikelihoodRegressor(RegressorMixin, BaseEstimator):
         self.scale_features_ = smask
         self.n_iter_ = int(fit.n_iter)
         self.n_fisher_steps_ = int(fit.fisher_steps)
+        self._warn_if_drifting(fam, fit.raw, start, w, owner)
         if not fit.converged:
             warnings.warn(
                 f"{owner} ({fam.name}): the joint Newton iteration stopped after {fit.n_iter} steps with "
@@ -206,6 +216,25 @@ class JointLikelihoodRegressor(RegressorMixin, BaseEstimator):
                 "use fewer scale_features or add a ridge penalty (alpha > 0)",
                 ConvergenceWarning, stacklevel=2)
         return self
+
+    def _warn_if_drifting(self, fam, raw, start, w, owner):
+        """UnboundedLikelihoodWarning when, with alpha = 0, a scale or shape raw score ends more than
+        DRIFT (a factor e^DRIFT ~ 1e10 in the parameter) from its constant maximum-likelihood value
+        on some row: the likelihood then keeps rising towards a boundary (a dispersion towards the
+        Poisson limit 0, a scale towards 0 on rows fitted exactly), where the gradient fades
+        without the supremum being reached."""
+        if self.alpha > 0 or not self.fit_intercept or raw.shape[1] < 2:
+            return
+        far = np.abs(raw[:, 1:] - start[1:]) > DRIFT
+        rows = np.flatnonzero(far.any(axis=1) & (w > 0))
+        if rows.size:
+            cols = [fam.score_names[j + 1] for j in np.flatnonzero(far[rows].any(axis=0))]
+            warnings.warn(
+                f"{owner} ({fam.name}): {', '.join(cols)} moved by more than {DRIFT:g} on the raw scale "
+                f"(a factor e^{DRIFT:g}) from its constant fit on {rows.size} row(s), e.g. rows "
+                f"{rows[:5].tolist()}: the likelihood rises towards a boundary there and has no finite "
+                "maximiser; use alpha > 0 or fewer scale_features",
+                UnboundedLikelihoodWarning, stacklevel=3)
 
     def predict_raw(self, X, offset=None):
         """(n, k): every raw score, offset included."""
