@@ -15,8 +15,14 @@ def _rows(fam, rng, n=40):
     """Targets drawn from the family's own law at random raw scores (so every formula is exercised
     at typical rows), plus the raw scores."""
     raw = rng.normal(0.0, 0.5, size=(n, fam.n_scores))
-    y = np.asarray(fam.distribution(raw).rvs(random_state=rng), dtype=float)
-    return y, raw
+    return fam.sample(raw, rng), raw
+
+
+def _scipy_logp(fam, law, y):
+    """log density / mass of y under the frozen scipy law (class labels one-hot for the multinomial)."""
+    if type(law).__name__ == "multinomial_frozen":
+        return law.logpmf(np.eye(fam.n_scores)[y.astype(int)])
+    return law.logpmf(y) if fam.discrete else law.logpdf(y)
 
 
 @pytest.mark.parametrize("name", SEVERAL)
@@ -41,8 +47,7 @@ def test_nll_is_minus_the_scipy_log_density(name, rng):
     # outside reference: the scipy.stats density (or mass) of the family's law, row by row
     fam = lossfam.family(name)
     y, raw = _rows(fam, rng)
-    law = fam.distribution(raw)
-    logp = law.logpmf(y) if fam.discrete else law.logpdf(y)
+    logp = _scipy_logp(fam, fam.distribution(raw), y)
     np.testing.assert_allclose(fam.nll(y, raw), -logp, rtol=1e-10, atol=1e-12)
 
 
@@ -54,12 +59,17 @@ def test_fisher_is_the_variance_of_the_score(name, rng):
     raw = rng.normal(0.0, 0.3, size=(3, fam.n_scores))
     m = 200_000
     rep = np.repeat(raw, m, axis=0)
-    y = np.asarray(fam.distribution(rep).rvs(random_state=rng), dtype=float)
+    y = fam.sample(rep, rng)
     g = fam.gradient(y, rep).reshape(3, m, fam.n_scores)
     mc = np.einsum("rmi,rmj->rij", g, g) / m
     f = fam.fisher(raw)
     np.testing.assert_allclose(mc, f, rtol=0.03, atol=0.03 * np.abs(f).max())
-    assert np.all(np.linalg.eigvalsh(f) > 0)
+    eig = np.linalg.eigvalsh(f)
+    if fam.raw_shift_invariant:  # singular along (1, ..., 1) only
+        np.testing.assert_allclose(f @ np.ones(fam.n_scores), 0.0, atol=1e-12)
+        assert np.all(eig[:, 0] > -1e-12) and np.all(eig[:, 1:] > 0)
+    else:
+        assert np.all(eig > 0)
 
 
 @pytest.mark.parametrize("name", SEVERAL)
@@ -90,11 +100,73 @@ def test_baseline_minimises_the_weighted_nll(name, rng):
     np.testing.assert_allclose(w @ shifted / w.sum(), 0.0, atol=1e-6)
 
 
+@pytest.mark.parametrize("name", SEVERAL)
+def test_natural_gradient_solves_the_fisher_system(name, rng):
+    fam = lossfam.family(name)
+    y, raw = _rows(fam, rng)
+    g = fam.gradient(y, raw)
+    nat, ones = fam.grad_hess(y, raw, curvature="natural")
+    np.testing.assert_allclose(ones, 1.0)
+    np.testing.assert_allclose(np.einsum("nij,nj->ni", fam.fisher(raw), nat), g, rtol=1e-8, atol=1e-10)
+    _, diag = fam.grad_hess(y, raw, curvature="fisher")
+    np.testing.assert_allclose(diag, np.diagonal(fam.fisher(raw), axis1=1, axis2=2), rtol=1e-12)
+
+
+@pytest.mark.parametrize("name", SEVERAL)
+def test_sample_follows_the_law(name, rng):
+    # the mean of many draws at one row against the law's mean (a law with a finite variance)
+    fam = lossfam.family(name)
+    raw = np.tile(rng.normal(0.0, 0.3, size=fam.n_scores), (100_000, 1))
+    y = fam.sample(raw, rng)
+    if fam.raw_shift_invariant:
+        freq = np.bincount(y.astype(int), minlength=fam.n_scores) / y.size
+        np.testing.assert_allclose(freq, fam.parameters(raw[:1])[0], atol=0.006)
+    else:
+        law = fam.distribution(raw[:1])
+        assert abs(y.mean() - law.mean()[0]) < 5 * law.std()[0] / np.sqrt(y.size)
+
+
 def test_gaussian_spread_baseline_is_the_mean_and_ml_sd(rng):
     # closed form: the Gaussian MLE is the mean and the 1/n standard deviation
     y = rng.normal(3.0, 2.0, size=500)
     c = lossfam.family("gaussian_spread").baseline(y)
     np.testing.assert_allclose(c, [y.mean(), np.log(y.std())], rtol=1e-12)
+
+
+def test_multinomial_matches_log_loss_and_class_shares(rng):
+    # outside reference: scikit-learn's log_loss on softmax probabilities
+    from sklearn.metrics import log_loss
+    fam = lossfam.family("multinomial", n_classes=4)
+    raw = rng.normal(size=(200, 4))
+    y = fam.sample(raw, rng)
+    p = fam.parameters(raw)
+    np.testing.assert_allclose(fam.nll(y, raw).mean(), log_loss(y, p, labels=range(4)), rtol=1e-12)
+    # adding a constant per row changes nothing
+    np.testing.assert_allclose(fam.nll(y, raw + rng.normal(size=(200, 1)) * 50), fam.nll(y, raw), rtol=1e-10)
+    # the baseline: centred log class shares (weighted)
+    w = rng.uniform(0.5, 2.0, size=200)
+    share = np.bincount(y.astype(int), weights=w, minlength=4) / w.sum()
+    c = fam.baseline(y, w)
+    np.testing.assert_allclose(c, np.log(share) - np.log(share).mean(), rtol=1e-12)
+    with pytest.raises(ValueError, match=r"class\(es\) \[3\]"):
+        fam.baseline(np.array([0.0, 1.0, 2.0, 1.0]))
+    with pytest.raises(ValueError, match=r"below n_classes=4; 1 row\(s\) are not \(rows \[1\]"):
+        fam.nll(np.array([0.0, 4.0]), np.zeros((2, 4)))
+    with pytest.raises(ValueError, match="class label"):
+        fam.nll(np.array([0.5, 1.0]), np.zeros((2, 4)))
+    with pytest.raises(ValueError, match="n_classes must be an integer >= 2"):
+        lossfam.family("multinomial", n_classes=1)
+
+
+def test_multinomial_far_raw_scores_stay_finite():
+    fam = lossfam.family("multinomial", n_classes=3)
+    raw = np.array([[800.0, -800.0, 0.0], [-800.0, 800.0, 0.0]])
+    y = np.array([1.0, 1.0])
+    nll = fam.nll(y, raw)
+    np.testing.assert_allclose(nll, [1600.0, 0.0], atol=1e-12)
+    for curv in ("newton", "fisher", "natural"):
+        g, d = fam.grad_hess(y, raw, curvature=curv)
+        assert np.isfinite(g).all() and np.all(d > 0)
 
 
 def test_bad_raw_shapes_and_rows_are_named():

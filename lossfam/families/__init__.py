@@ -10,6 +10,7 @@ from .gaussian_spread import GaussianSpread
 from .huber import Huber, HuberLaw
 from .laplace import Laplace
 from .lognormal import Lognormal
+from .multinomial import Multinomial
 from .negative_binomial import NegativeBinomial
 from .poisson import Poisson
 from .student_t import StudentT
@@ -19,6 +20,6 @@ from .weibull import Weibull
 BUILT_IN = (Gaussian, Laplace, AsymmetricLaplace, Huber, Bernoulli, Poisson, Gamma,
             Tweedie, NegativeBinomial, StudentT, Lognormal, Beta, Weibull)
 #: the built-in families with several raw scores per row (lossfam.families._several)
-BUILT_IN_SEVERAL = (GaussianSpread,)
+BUILT_IN_SEVERAL = (GaussianSpread, Multinomial)
 
 __all__ = ["Family", "FromParam", "SeveralScoreFamily", "BUILT_IN_SEVERAL", "HuberLaw", "TweedieLaw", "tweedie_power_profile", "BUILT_IN"] + [c.__name__ for c in BUILT_IN + BUILT_IN_SEVERAL]

@@ -85,6 +85,9 @@ class SeveralScoreFamily:
     prediction_kind: ClassVar[str] = "mean"
     #: {engine: {engine parameter: value}}: built-in objectives equal to this loss (e.g. softmax)
     native_twins: ClassVar[dict] = {}
+    #: True when adding one constant to every raw score of a row changes nothing (softmax): the
+    #: Hessian and Fisher matrices are then singular along (1, ..., 1)
+    raw_shift_invariant: ClassVar[bool] = False
 
     def __post_init__(self):
         for f in dataclasses.fields(self):
@@ -186,9 +189,9 @@ class SeveralScoreFamily:
             if curvature == "newton":
                 d = self._newton_diagonal(y, raw)
             elif curvature == "fisher":
-                d = np.diagonal(self._fisher(raw), axis1=1, axis2=2).copy()
+                d = self._fisher_diagonal(raw)
             else:
-                g = np.linalg.solve(self._fisher(raw), g[:, :, None])[:, :, 0]
+                g = self._natural_gradient(y, raw, g)
                 d = np.ones_like(g)
         if w is not None:
             g = g * w[:, None]
@@ -238,6 +241,10 @@ class SeveralScoreFamily:
         """The predictive law per row (a frozen scipy.stats law with per-row arguments)."""
         return self._distribution(self.check_raw(raw))
 
+    def sample(self, raw, random_state=None) -> np.ndarray:
+        """(n,) one target drawn from each row's predictive law (simulation, predictive checks)."""
+        return self._sample(self.check_raw(raw), np.random.default_rng(random_state))
+
     # ------------------------------------------------------------------ hooks
     def _nll(self, y, raw):  # pragma: no cover - abstract
         raise NotImplementedError(f"{type(self).__name__} must implement _nll")
@@ -259,6 +266,17 @@ class SeveralScoreFamily:
             f = np.diagonal(self._fisher(raw), axis1=1, axis2=2)
             d[bad] = f[bad]
         return d
+
+    def _fisher_diagonal(self, raw):
+        """(n, k) the diagonal of the Fisher information (families with a cheap form override this)."""
+        return np.diagonal(self._fisher(raw), axis1=1, axis2=2).copy()
+
+    def _natural_gradient(self, y, raw, g):
+        """(n, k) F^{-1} g per row (a k x k solve; families with a closed form override this)."""
+        return np.linalg.solve(self._fisher(raw), g[:, :, None])[:, :, 0]
+
+    def _sample(self, raw, rng):
+        return np.asarray(self._distribution(raw).rvs(random_state=rng), dtype=float)
 
     def _start(self, y, w, offset):
         """A starting raw-score vector for the baseline search (subclasses give a closed form)."""
