@@ -896,7 +896,7 @@ def train_several(family, params, data, num_boost_round=100, *, valid_sets=None,
         vy, vw = sets[id(eval_data)]
         raw = np.asarray(preds, dtype=np.float64).reshape(-1, k)
         if twin is not None:  # the built-in hands a metric its transformed output (class probabilities)
-            raw = fam.raw_from_output(raw)
+            raw = _several.raw_from_output(fam, raw)
         return scorer.name, scorer.value(vy, raw, vw), False
     if twin is not None:
         params.update(twin)
@@ -921,7 +921,7 @@ def train_several(family, params, data, num_boost_round=100, *, valid_sets=None,
         for ds in touched:
             _clear_start(ds)
     if twin is not None:
-        out = fam.raw_from_output(out)
+        out = _several.raw_from_output(fam, out)
     _several.check_trained_several(fam, out)
     if not call.keep_training:
         booster = lgb.Booster(model_str=booster.model_to_string())

@@ -810,7 +810,7 @@ def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curv
         vy, vw = sets[id(dm)]
         raw = np.asarray(preds, dtype=np.float64).reshape(-1, k)
         if twin is not None:
-            raw = fam.raw_from_output(raw)
+            raw = _several.raw_from_output(fam, raw)
         return scorer.name, scorer.value(vy, raw, vw)
 
     params.setdefault("disable_default_eval_metric", 1)
@@ -839,7 +839,7 @@ def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curv
         for dm, original in touched:
             dm.set_base_margin(original if original.size else None)
     if twin is not None:
-        out = fam.raw_from_output(out)
+        out = _several.raw_from_output(fam, out)
     _several.check_trained_several(fam, out)
     info = {"objective": twin["objective"] if twin else "custom", "curvature": curvature,
             "multi_strategy": strategy}

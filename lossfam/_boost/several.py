@@ -163,3 +163,20 @@ def targets(fam, y, w, what):
         if np.all(w == 1.0):
             w = None
     return y, w
+
+
+_TINY = np.finfo(np.float64).tiny
+
+
+def raw_from_output(fam, out):
+    """Raw scores (n, k) from a built-in softmax twin's output (the class probabilities, as the engines
+    hand them to a metric and return them from ``predict``).
+
+    Softmax families (``raw_shift_invariant``) are identified only up to one constant per row, so
+    log p is their raw score (every probability, the nll and the gradient are unchanged).  A
+    probability that rounded to 0 in the engine's output becomes the smallest positive float64
+    (log = -708.4): a finite stand-in, so that such a row's nll reads 708 nats rather than inf."""
+    if not getattr(fam, "raw_shift_invariant", False):
+        raise ValueError(f"{fam.name}: a native twin's output can be read back only for softmax families")
+    p = np.asarray(out, dtype=np.float64).reshape(-1, fam.n_scores)
+    return np.log(np.maximum(p, _TINY))
