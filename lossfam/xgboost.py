@@ -716,7 +716,7 @@ def _margin_several(fit, X, offset):
             X.set_base_margin(start)
             out = fit.booster.predict(X, output_margin=True)
         finally:
-            X.set_base_margin(original if original.size else None)
+            X.set_base_margin(original)
     else:
         n = X.shape[0]
         o = _several.offset_matrix(fam, offset, n, f"{fam.name} offset")
@@ -837,7 +837,7 @@ def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curv
         out = np.asarray(out, dtype=np.float64).reshape(-1, k)
     finally:
         for dm, original in touched:
-            dm.set_base_margin(original if original.size else None)
+            dm.set_base_margin(original)
     if twin is not None:
         out = _several.raw_from_output(fam, out)
     _several.check_trained_several(fam, out)

@@ -418,3 +418,17 @@ def test_multinomial_matches_the_builtin_multiclass_log_loss(engine, native):
         builtin.append(log_loss(y[test], ref_p, labels=[0, 1, 2]))
     ratio = np.mean(ours) / np.mean(builtin)
     assert ratio <= (1.01 if native else 1.10), (ours, builtin)
+
+
+def test_xgboost_training_and_prediction_leave_the_dmatrix_base_margin_as_given():
+    X, y = _draw("gaussian_spread", seed=16)
+    dm = xgb.DMatrix(X, label=y)
+    fit = lossfam.xgboost.train("gaussian_spread", _params("xgboost"), dm, 3, evals=[(dm, "train")],
+                                verbose_eval=False)
+    fit.predict_raw(dm)
+    assert dm.get_base_margin().size == 0
+    lossfam.xgboost.train("gaussian", _params("xgboost"), dm, 2)  # a one-score model on the same DMatrix
+    off = np.full(y.size, 0.1)
+    dm.set_base_margin(off)
+    lossfam.xgboost.train("gaussian_spread", _params("xgboost"), dm, 2)
+    np.testing.assert_array_equal(dm.get_base_margin(), off.astype(np.float32))
