@@ -125,6 +125,24 @@ def _adapter(engine):
     return lossfam.lightgbm if engine == "lightgbm" else lossfam.xgboost
 
 
+# ------------------------------------------------------------------------------------ engine curvature hooks
+@pytest.mark.parametrize("name", FAMILIES)
+def test_curvature_hooks_equal_the_generic_definitions(name):
+    # a family may give closed forms for the engines' per-round hooks (speed); they must equal the
+    # base class's definitions from the full Hessian and Fisher matrices
+    fam = lossfam.family(name)
+    X, y = _draw(name, n=200, seed=17)
+    raw = np.random.default_rng(18).normal(0.0, 0.5, size=(y.size, fam.n_scores)) + fam.baseline(y)
+    g = fam._gradient(y, raw)
+    np.testing.assert_allclose(fam._newton_diagonal(y, raw), SeveralScoreFamily._newton_diagonal(fam, y, raw),
+                               rtol=1e-12, atol=1e-300)
+    np.testing.assert_allclose(fam._fisher_diagonal(raw), SeveralScoreFamily._fisher_diagonal(fam, raw),
+                               rtol=1e-12, atol=1e-300)
+    if not fam.raw_shift_invariant:  # singular Fisher matrix: the family's pseudo-inverse is its own
+        np.testing.assert_allclose(fam._natural_gradient(y, raw, g),
+                                   SeveralScoreFamily._natural_gradient(fam, y, raw, g), rtol=1e-10, atol=1e-12)
+
+
 # ------------------------------------------------------------------------------------ shapes, start
 @pytest.mark.parametrize("engine", ENGINES)
 @pytest.mark.parametrize("name", FAMILIES)
