@@ -450,3 +450,24 @@ def test_xgboost_training_and_prediction_leave_the_dmatrix_base_margin_as_given(
     dm.set_base_margin(off)
     lossfam.xgboost.train("gaussian_spread", _params("xgboost"), dm, 2)
     np.testing.assert_array_equal(dm.get_base_margin(), off.astype(np.float32))
+
+
+# ------------------------------------------------------------------------------------ scikit-learn wrapper
+@pytest.mark.parametrize("engine", ENGINES)
+def test_sklearn_boosted_regressor_trains_what_train_trains(engine):
+    from sklearn.base import clone
+    from lossfam.sklearn import BoostedLikelihoodRegressor
+    X, y = _draw("gaussian_spread", seed=19)
+    est = (lgb.LGBMRegressor(n_estimators=8, verbose=-1, n_jobs=1, num_leaves=7, learning_rate=0.1,
+                             min_child_samples=20) if engine == "lightgbm"
+           else xgb.XGBRegressor(n_estimators=8, n_jobs=1, max_depth=3, learning_rate=0.1, min_child_weight=1.0))
+    reg = clone(BoostedLikelihoodRegressor(est, family="gaussian_spread")).fit(X[:300], y[:300])
+    assert isinstance(reg.model_, lossfam.SeveralScoreFit) and reg.baseline_.shape == (2,)
+    raw = reg.predict_raw(X[300:])
+    assert raw.shape == (100, 2)
+    np.testing.assert_array_equal(raw, reg.model_.predict_raw(X[300:]))
+    np.testing.assert_array_equal(reg.predict(X[300:]), raw[:, 0])
+    np.testing.assert_array_equal(reg.predict_distribution(X[300:]).std(), np.exp(raw[:, 1]))
+    assert reg.score(X[300:], y[300:]) == pytest.approx(-reg.model_.mean_loss(X[300:], y[300:]), rel=1e-12)
+    direct, _ = _train(engine, "gaussian_spread", X[:300], y[:300], rounds=8)
+    np.testing.assert_allclose(raw, direct.predict_raw(X[300:]), rtol=1e-6, atol=1e-6)

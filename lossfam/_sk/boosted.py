@@ -19,6 +19,12 @@ own).  Engine keywords: LightGBM ``callbacks`` (e.g.
 ``early_stopping_rounds`` is read from the estimator.  ``X`` may be a numpy
 array, a pandas DataFrame or a scipy sparse matrix.
 
+A family with several raw scores per row (``lossfam.SeveralScoreFamily``, e.g. gaussian_spread)
+trains the same way (``model_`` is then a :class:`lossfam.SeveralScoreFit`, ``baseline_`` a
+k-vector): ``predict`` gives the location, ``predict_raw`` all k raw scores (n, k),
+``predict_distribution`` the per-row law and ``score`` minus the mean nll; ``offset`` goes to the
+location's raw score.
+
 ``BoostedLikelihoodClassifier(estimator)`` is the bernoulli family as a binary
 classifier (``classes_``, ``predict_proba``, ``decision_function``); it
 accepts a LightGBM or XGBoost regressor or classifier.
@@ -36,6 +42,7 @@ from sklearn.utils.multiclass import check_classification_targets, type_of_targe
 from sklearn.utils.validation import check_is_fitted, column_or_1d, validate_data
 
 from .. import _checks
+from .._boost.several import SeveralScorer, is_several
 from ..registry import family as make_family
 from .linear import _check_offset, _check_sample_weight, _RawScoreRegressorMethods, _warn_missing_offset
 
@@ -237,6 +244,27 @@ class BoostedLikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, _Boo
         w = _check_sample_weight(sample_weight, y, owner)
         offset = _check_offset(offset, y.shape[0], owner)
         return self._fit_engine(fam, X, y, w, offset, eval_set, fit_params)
+
+    def predict(self, X, offset=None):
+        """The prediction on the response scale: the inverse link of the raw score (mean, median or
+        quantile); for a family with several raw scores per row, its location (``family.location``)."""
+        raw = self._raw_score(X, offset)
+        if is_several(self.family_):
+            return self.family_.location(raw)
+        return self.family_.inverse_link(raw)
+
+    def score(self, X, y, sample_weight=None, offset=None):
+        """D^2 (fraction of deviance explained; see ``_RawScoreRegressorMethods.score``); for a
+        family with several raw scores per row, which has no deviance, minus the weighted mean nll
+        (higher is better, as scikit-learn's model selection expects)."""
+        check_is_fitted(self)
+        if not is_several(self.family_):
+            return super().score(X, y, sample_weight=sample_weight, offset=offset)
+        _warn_missing_offset(self, offset)
+        fam = self.family_
+        y = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1))
+        w = None if sample_weight is None else _check_sample_weight(sample_weight, y, type(self).__name__)
+        return -SeveralScorer(fam).value(y, self._raw_score(X, offset), w)
 
 
 
