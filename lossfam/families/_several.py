@@ -43,7 +43,15 @@ objectives take one gradient and one Hessian value per row and output), so they 
 ``"natural"``           the natural gradient (Amari 1998, "Natural gradient works efficiently in
                         learning", Neural Computation 10, 251-276): the gradient premultiplied by
                         the inverse Fisher matrix per row, F^{-1} g, with a unit curvature, so a
-                        tree leaf takes the mean natural gradient of its rows.
+                        tree leaf takes the mean natural gradient of its rows.  A family whose
+                        Fisher matrix is diagonal in its raw scores declares it
+                        (``fisher_diagonal = True``, with ``_fisher_diagonal``): the natural
+                        gradient is then g / diag(F), the same numbers without a k x k solve.
+
+Kinks.  Where the nll has a kink in a raw score (laplace and asymmetric laplace in the location)
+the family lists that column in ``kinked_scores``: its exact second derivative is 0 almost
+everywhere, its gradient is a subgradient (0 at the kink), and a minimiser (the baseline) only
+brackets 0 between the one-sided derivatives there instead of zeroing the gradient.
 
 Families with one raw score keep their own interface (:class:`lossfam.Family`); the two kinds
 share the registry (``lossfam.available(scores="several")`` lists these).
@@ -88,6 +96,10 @@ class SeveralScoreFamily:
     #: True when adding one constant to every raw score of a row changes nothing (softmax): the
     #: Hessian and Fisher matrices are then singular along (1, ..., 1)
     raw_shift_invariant: ClassVar[bool] = False
+    #: True when the Fisher matrix is diagonal in the raw scores (the natural gradient divides)
+    fisher_diagonal: ClassVar[bool] = False
+    #: raw-score columns in which the nll has a kink (module docstring)
+    kinked_scores: ClassVar[tuple] = ()
 
     def __post_init__(self):
         for f in dataclasses.fields(self):
@@ -190,6 +202,9 @@ class SeveralScoreFamily:
                 d = self._newton_diagonal(y, raw)
             elif curvature == "fisher":
                 d = self._fisher_diagonal(raw)
+            elif self.fisher_diagonal:
+                g = g / self._fisher_diagonal(raw)
+                d = np.ones_like(g)
             else:
                 g = self._natural_gradient(y, raw, g)
                 d = np.ones_like(g)
@@ -258,18 +273,18 @@ class SeveralScoreFamily:
     def _fisher(self, raw):  # pragma: no cover - abstract
         raise NotImplementedError(f"{type(self).__name__} must implement _fisher")
 
+    def _fisher_diagonal(self, raw):
+        """(n, k): the diagonal of the Fisher information (a family may compute it directly)."""
+        return np.diagonal(self._fisher(raw), axis1=1, axis2=2).copy()
+
     def _newton_diagonal(self, y, raw):
         """The exact Hessian's diagonal where positive, else the Fisher information's diagonal."""
         d = np.diagonal(self._hessian(y, raw), axis1=1, axis2=2).copy()
         bad = ~(d > 0)
         if bad.any():
-            f = np.diagonal(self._fisher(raw), axis1=1, axis2=2)
+            f = self._fisher_diagonal(raw)
             d[bad] = f[bad]
         return d
-
-    def _fisher_diagonal(self, raw):
-        """(n, k) the diagonal of the Fisher information (families with a cheap form override this)."""
-        return np.diagonal(self._fisher(raw), axis1=1, axis2=2).copy()
 
     def _natural_gradient(self, y, raw, g):
         """(n, k) F^{-1} g per row (a k x k solve; families with a closed form override this)."""

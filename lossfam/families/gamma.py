@@ -158,12 +158,15 @@ class Gamma(Family):
 
 
 def _log_minus_digamma(k):
-    """log k - digamma(k) > 0, to full relative accuracy for every k > 0 (series for k >= 16)."""
-    k = float(k)
-    if k < 16.0:
-        return float(np.log(k) - digamma(k))
-    r = 1.0 / (k * k)
-    return (0.5 + (1.0 / 12.0 + r * (-1.0 / 120.0 + r * (1.0 / 252.0 + r * (-1.0 / 240.0 + r / 132.0)))) / k) / k
+    """log k - digamma(k) > 0, to full relative accuracy for every k > 0 (series for k >= 16).
+
+    A float for a scalar k, else an array of k's shape."""
+    k = np.asarray(k, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        r = 1.0 / (k * k)
+        series = (0.5 + (1.0 / 12.0 + r * (-1.0 / 120.0 + r * (1.0 / 252.0 + r * (-1.0 / 240.0 + r / 132.0)))) / k) / k
+        out = np.where(k < 16.0, np.log(k) - digamma(k), series)
+    return float(out) if out.ndim == 0 else out
 
 
 def _expm1_minus(x):

@@ -37,6 +37,7 @@ class GaussianSpread(SeveralScoreFamily):
     score_names = ("mean", "log_scale")
     links = (IDENTITY, LOG)
     target_domain = REAL
+    fisher_diagonal = True
 
     def constant_scale(self):
         from .gaussian import Gaussian
