@@ -14,6 +14,7 @@ SPREAD_FAMILIES = {
     "asymmetric_laplace_spread": "scale is 0",
     "student_t_spread": "too many residuals are exactly zero",
     "gamma_spread": "shape is infinite",
+    "negative_binomial_spread": "not overdispersed",
 }
 
 
@@ -225,6 +226,8 @@ def test_far_tails_are_finite(name, rng):
 
 
 def _extreme_targets(fam, rng, n):
+    if fam.discrete:
+        return rng.choice([0.0, 1.0, 1e6, 1e12], n)
     if fam.target_domain is lossfam._checks.REAL:
         return rng.choice([-1e200, -1e12, -1.0, 0.0, 1e-9, 1e12, 1e200], n)
     return rng.choice([1e-12, 1.0, 1e12], n)
@@ -258,3 +261,122 @@ def test_natural_gradient_divides_by_the_diagonal_fisher(name, rng):
     assert np.all(off == 0)
     g, d = fam.grad_hess(y, raw, curvature="natural")
     np.testing.assert_allclose(g, np.linalg.solve(f, fam.gradient(y, raw)[:, :, None])[:, :, 0], rtol=1e-13)
+
+
+# ---------------------------------------------------------------------- negative_binomial_spread
+def _doctor_visits():
+    # statsmodels.datasets.randhie: RAND Health Insurance Experiment, "mdvis" = number of outpatient
+    # visits to a physician (20190 rows), shipped with statsmodels; overdispersed counts
+    sm = pytest.importorskip("statsmodels.api")
+    return sm.datasets.randhie.load_pandas().data["mdvis"].to_numpy(dtype=float)
+
+
+def test_negative_binomial_spread_baseline_is_the_statsmodels_nb2_fit():
+    # outside reference: statsmodels NegativeBinomial (loglike_method="nb2", the same alpha:
+    # Var = mu + alpha mu^2), intercept only, maximum likelihood by Newton's method
+    sm = pytest.importorskip("statsmodels.api")
+    y = _doctor_visits()
+    res = sm.NegativeBinomial(y, np.ones((y.size, 1)), loglike_method="nb2").fit(
+        method="newton", tol=1e-12, maxiter=200, disp=0)
+    const, alpha = res.params
+    c = lossfam.family("negative_binomial_spread").baseline(y)
+    np.testing.assert_allclose(c, [const, np.log(alpha)], rtol=1e-7, atol=1e-8)
+
+
+def test_negative_binomial_spread_baseline_at_constant_scores_is_the_one_score_fit(rng):
+    fam = lossfam.family("negative_binomial_spread")
+    one = fam.constant_scale()
+    assert one == lossfam.family("negative_binomial")
+    y = rng.negative_binomial(2.0, 0.2, size=400).astype(float)
+    w = rng.uniform(0.5, 2.0, size=y.size)
+    c0 = one.baseline(y, w)
+    alpha = one.fit_nuisance(y, np.full(y.size, c0), w).dispersion
+    np.testing.assert_allclose(fam.baseline(y, w), [c0, np.log(alpha)], rtol=1e-12)
+    raw = _constant(fam, [1.2, np.log(alpha)], y.size)
+    np.testing.assert_allclose(fam.nll(y, raw), one.with_params(dispersion=alpha).nll(y, raw[:, 0]), rtol=1e-12)
+
+
+def _alpha_information_by_scipy(mu, alpha, terms):
+    # the alpha-alpha information as sum_j P(Y > j) [(1 + alpha j)^-2 - (1 + alpha mu)^-1] with
+    # the tail probabilities of scipy.stats.nbinom (an independent route: survival function
+    # instead of the mass recursion)
+    j = np.arange(terms, dtype=float)
+    sf = stats.nbinom.sf(j, 1.0 / alpha, 1.0 / (1.0 + alpha * mu))
+    return float(np.sum(sf * ((1.0 + alpha * j) ** -2 - 1.0 / (1.0 + alpha * mu))))
+
+
+@pytest.mark.parametrize("mu, alpha, terms", [(3.0, 0.5, 400), (40.0, 2.0, 20_000), (0.2, 5.0, 2000),
+                                              (200.0, 1.0, 40_000), (2000.0, 0.01, 6000)])
+def test_negative_binomial_spread_alpha_information_against_scipy_tails(mu, alpha, terms):
+    fam = lossfam.family("negative_binomial_spread")
+    f = fam.fisher(np.array([[np.log(mu), np.log(alpha)]]))[0]
+    np.testing.assert_allclose(f[0, 0], mu / (1 + alpha * mu), rtol=1e-14)
+    np.testing.assert_allclose(f[1, 1], _alpha_information_by_scipy(mu, alpha, terms), rtol=1e-8)
+
+
+def test_negative_binomial_spread_alpha_information_limits():
+    # alpha -> 0: the Poisson limit alpha^2 mu^2 / 2 (to first order in alpha); mu -> inf: the gamma
+    # law of the mixing mean, r (r trigamma(r) - 1), the gamma_spread shape information at k = r
+    fam = lossfam.family("negative_binomial_spread")
+    mu = 5.0
+    for alpha in (1e-3, 1e-4):
+        f11 = fam.fisher(np.array([[np.log(mu), np.log(alpha)]]))[0, 1, 1]
+        np.testing.assert_allclose(f11 / alpha**2, mu**2 / 2, rtol=20 * alpha * mu)
+    alpha = 0.5
+    f11 = fam.fisher(np.array([[np.log(1e7), np.log(alpha)]]))[0, 1, 1]
+    gamma_info = lossfam.family("gamma_spread").fisher(np.array([[0.0, np.log(1 / alpha)]]))[0, 1, 1]
+    np.testing.assert_allclose(f11, gamma_info, rtol=1e-5)
+
+
+@pytest.mark.slow
+def test_negative_binomial_spread_wide_rows_match_the_exact_sum():
+    # the documented approximation for wide windows against the exact sum over the whole window
+    from lossfam.families import negative_binomial_spread as nbs
+    fam = lossfam.family("negative_binomial_spread")
+    raw = np.log([[200.0, 1.0], [50.0, 10.0], [1e4, 0.05], [500.0, 30.0], [2e3, 3.0], [5.0, 300.0]])
+    t = raw[:, 0] + raw[:, 1]
+    mu, alpha = np.exp(raw[:, 0]), np.exp(raw[:, 1])
+    sd = np.sqrt(mu * (1 + alpha * mu))
+    lo = np.floor(np.maximum(0.0, mu - 10 * sd))
+    hi = np.ceil(mu + 10 * sd + 40 / np.logaddexp(0.0, -t))
+    assert np.all(hi - lo + 1 > nbs._EXACT_TERMS)
+    exact = nbs._exact_window(fam, raw, lo, (hi - lo + 1).astype(np.int64))[0]
+    np.testing.assert_allclose(nbs._wide_window(fam, raw, lo, hi), exact, rtol=1e-6)
+
+
+def test_negative_binomial_spread_digamma_differences_against_mpmath():
+    mp = pytest.importorskip("mpmath")
+    from lossfam.families.negative_binomial_spread import digamma_trigamma_differences
+    mp.mp.dps = 40
+    y = np.array([0.0, 1.0, 3.0, 50.0, 1e4, 1.0, 7.0, 1e6, 2.0])
+    r = np.array([0.3, 5.0, 19.9, 20.0, 20.0, 1e6, 1e9, 1e3, 1e14])
+    D, T = digamma_trigamma_differences(y, r)
+    for i in range(y.size):
+        Y, R = mp.mpf(y[i]), mp.mpf(r[i])
+        ed, et = mp.digamma(Y + R) - mp.digamma(R), mp.psi(1, R) - mp.psi(1, Y + R)
+        assert D[i] == pytest.approx(float(ed), rel=1e-13, abs=1e-300), (y[i], r[i])
+        assert T[i] == pytest.approx(float(et), rel=1e-12, abs=1e-300), (y[i], r[i])
+
+
+def test_negative_binomial_spread_refuses_counts_that_are_not_overdispersed(rng):
+    fam = lossfam.family("negative_binomial_spread")
+    with pytest.raises(ValueError, match="negative_binomial_spread: .*not overdispersed"):
+        fam.baseline(rng.binomial(10, 0.5, size=500).astype(float))
+    with pytest.raises(ValueError, match=r"non-negative integer; 1 row outside, e.g. row \[1\] = \[2.5\]"):
+        fam.nll(np.array([1.0, 2.5]), np.zeros((2, 2)))
+
+
+def test_negative_binomial_spread_near_normal_expansion_matches_the_exact_sum():
+    # the expansion used for mu >= 3e4 and r >= 1e4 against the exact sum over the law's window
+    # (windows of about 5e3 to 3e4 counts: the sum still holds its digits there)
+    from lossfam.families import negative_binomial_spread as nbs
+    fam = lossfam.family("negative_binomial_spread")
+    mu = np.array([3e4, 1e5, 1e5])
+    r = np.array([1e4, 3e4, 1e5])
+    raw = np.column_stack([np.log(mu), -np.log(r)])
+    t = raw[:, 0] + raw[:, 1]
+    sd = np.sqrt(mu * (1 + mu / r))
+    lo = np.floor(mu - 10 * sd)
+    hi = np.ceil(mu + 10 * sd + 40 / np.logaddexp(0.0, -t))
+    exact = nbs._exact_window(fam, raw, lo, (hi - lo + 1).astype(np.int64))[0]
+    np.testing.assert_allclose(fam.fisher(raw)[:, 1, 1], exact, rtol=1e-7)

@@ -281,9 +281,9 @@ class SeveralScoreFamily:
         """The exact Hessian's diagonal where positive, else the Fisher information's diagonal."""
         d = np.diagonal(self._hessian(y, raw), axis1=1, axis2=2).copy()
         bad = ~(d > 0)
-        if bad.any():
-            f = self._fisher_diagonal(raw)
-            d[bad] = f[bad]
+        rows = bad.any(axis=1)
+        if rows.any():  # the Fisher diagonal of those rows only (it may be costly to compute)
+            d[rows] = np.where(bad[rows], self._fisher_diagonal(raw[rows]), d[rows])
         return d
 
     def _natural_gradient(self, y, raw, g):

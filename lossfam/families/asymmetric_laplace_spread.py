@@ -76,14 +76,20 @@ class AsymmetricLaplaceSpread(SeveralScoreFamily):
         _, v, _ = self._parts(y, raw)
         return v + raw[:, 1] - np.log(t * (1.0 - t))
 
+    @staticmethod
+    def _over_b(s, inv_b):
+        """s / b, 0 where s = 0 (tau = 1/2 at the kink) even where 1 / b overflows."""
+        with np.errstate(invalid="ignore"):
+            return np.where(s == 0, 0.0, s * inv_b)
+
     def _gradient(self, y, raw):
         s, v, inv_b = self._parts(y, raw)
-        return np.column_stack([s * inv_b, 1.0 - v])
+        return np.column_stack([self._over_b(s, inv_b), 1.0 - v])
 
     def _hessian(self, y, raw):
         s, v, inv_b = self._parts(y, raw)
         h = np.zeros((y.shape[0], 2, 2))
-        h[:, 0, 1] = h[:, 1, 0] = -s * inv_b
+        h[:, 0, 1] = h[:, 1, 0] = -self._over_b(s, inv_b)
         h[:, 1, 1] = v
         return h
 

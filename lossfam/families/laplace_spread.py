@@ -68,14 +68,20 @@ class LaplaceSpread(SeveralScoreFamily):
             a = np.where(d == 0, 0.0, np.abs(d) * inv_b)
         return np.sign(d), a, inv_b
 
+    @staticmethod
+    def _sign_over_b(s, inv_b):
+        """sign(z) / b, 0 at the kink even where 1 / b overflows."""
+        with np.errstate(invalid="ignore"):
+            return np.where(s == 0, 0.0, s * inv_b)
+
     def _gradient(self, y, raw):
         s, a, inv_b = self._parts(y, raw)
-        return np.column_stack([-s * inv_b, 1.0 - a])
+        return np.column_stack([-self._sign_over_b(s, inv_b), 1.0 - a])
 
     def _hessian(self, y, raw):
         s, a, inv_b = self._parts(y, raw)
         h = np.zeros((y.shape[0], 2, 2))
-        h[:, 0, 1] = h[:, 1, 0] = s * inv_b
+        h[:, 0, 1] = h[:, 1, 0] = self._sign_over_b(s, inv_b)
         h[:, 1, 1] = a
         return h
 
