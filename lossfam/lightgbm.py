@@ -439,7 +439,7 @@ def _constant_booster(lgb, params, data):
 
 def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_names=None, offset=None,
           valid_offsets=None, step_limit=STEP_LIMIT_DEFAULT, native=True, nuisance_set=None, metric_kind="nll",
-          callbacks=None, prefit=True, client=None, curvature="newton", **engine_kwargs) -> BoostedFit:
+          callbacks=None, prefit=True, client=None, curvature=None, **engine_kwargs) -> BoostedFit:
     """Train a LightGBM model with the family's nll as the loss; returns a :class:`lossfam.BoostedFit`.
 
     Parameters
@@ -478,8 +478,8 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
         trains with the parameters as given.
     curvature : "newton", "fisher" or "natural"
         Families with several raw scores per row only (``lossfam.SeveralScoreFamily``): the
-        diagonal curvature of ``family.grad_hess`` (see ``train_several``); one-score families
-        take "newton".
+        diagonal curvature of ``family.grad_hess`` (see ``train_several``); None: the family's
+        ``default_curvature``.  One-score families take none.
     **engine_kwargs
         Passed to ``lightgbm.train`` (``feval``, evaluated after lossfam's
         metric; ``keep_training_booster``).
@@ -497,7 +497,7 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
         return train_several(fam, params, data, num_boost_round, valid_sets=valid_sets, valid_names=valid_names,
                              offset=offset, valid_offsets=valid_offsets, curvature=curvature, native=native,
                              callbacks=callbacks, **engine_kwargs)
-    if curvature != "newton":
+    if curvature is not None:
         raise ValueError(f"curvature={curvature!r} applies to families with several raw scores per row; "
                          f"{fam.name} has one (its Hessian is the family's own)")
     if isinstance(data, cluster.ClusterData):
@@ -846,7 +846,7 @@ def _several_objective(fam, curvature, y, w):
 
 
 def train_several(family, params, data, num_boost_round=100, *, valid_sets=None, valid_names=None, offset=None,
-                  valid_offsets=None, curvature="newton", native=True, callbacks=None, **engine_kwargs):
+                  valid_offsets=None, curvature=None, native=True, callbacks=None, **engine_kwargs):
     """Train a family with k raw scores per row; returns a :class:`lossfam.SeveralScoreFit`.
 
     LightGBM grows one tree per raw score and round (``num_class = k``) from lossfam's objective:
@@ -868,7 +868,7 @@ def train_several(family, params, data, num_boost_round=100, *, valid_sets=None,
         raise ValueError(f"{fam.name} has {k} raw scores per row: num_class is set by lossfam ({k})")
     for name in ("num_class", "num_classes"):
         params.pop(name, None)
-    _several.check_curvature(fam, curvature)
+    curvature = _several.check_curvature(fam, curvature)
     _check_no_user_init_score(data, "data")
     y, w = _several.targets(fam, _field(data, "label"), _field(data, "weight"), "data")
     plan = _several.several_plan(fam, y, w, offset)
@@ -888,7 +888,7 @@ def train_several(family, params, data, num_boost_round=100, *, valid_sets=None,
         vy, vw = _several.targets(fam, _field(vs, "label"), _field(vs, "weight"), f"valid_sets[{j}]")
         sets[id(vs)] = (vy, vw)
         starts[j] = plan.start_for(vy.size, vo, f"valid_offsets[{j}]")
-    twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native, guard_is_default=curvature == "newton",
+    twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native, guard_is_default=curvature == fam.default_curvature,
                              params=params)
     scorer = _several.SeveralScorer(fam)
 

@@ -331,7 +331,7 @@ def _offset_of(dmatrix, fam):
 
 def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=STEP_LIMIT_DEFAULT, native=True,
           nuisance_set=None, metric_kind="nll", early_stopping_rounds=None, evals_result=None, verbose_eval=True,
-          prefit=True, client=None, curvature="newton", multi_strategy=None, **engine_kwargs) -> BoostedFit:
+          prefit=True, client=None, curvature=None, multi_strategy=None, **engine_kwargs) -> BoostedFit:
     """Train an XGBoost booster on the family's nll; returns a :class:`lossfam.BoostedFit`
     (:class:`lossfam.SeveralScoreFit` for a family with several raw scores per row, through
     :func:`train_several`, which also takes ``curvature`` and ``multi_strategy``).
@@ -377,7 +377,7 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
         return train_several(fam, params, dtrain, num_boost_round, evals=evals, curvature=curvature, native=native,
                              multi_strategy=multi_strategy, early_stopping_rounds=early_stopping_rounds,
                              evals_result=evals_result, verbose_eval=verbose_eval, **engine_kwargs)
-    if curvature != "newton" or multi_strategy is not None:
+    if curvature is not None or multi_strategy is not None:
         raise ValueError(f"curvature= and multi_strategy= apply to families with several raw scores per row; "
                          f"{fam.name} has one")
     if isinstance(dtrain, cluster.ClusterData):
@@ -744,7 +744,7 @@ class _SeveralObjective:
         return self.grads(self.y, raw, self.w)
 
 
-def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curvature="newton", native=True,
+def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curvature=None, native=True,
                   multi_strategy=None, early_stopping_rounds=None, evals_result=None, verbose_eval=True,
                   **engine_kwargs):
     """Train a family with k raw scores per row; returns a :class:`lossfam.SeveralScoreFit`.
@@ -772,7 +772,7 @@ def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curv
     for key in ("obj", "maximize"):
         if key in engine_kwargs:
             raise ValueError(f"{key}= is set by lossfam.xgboost.train")
-    _several.check_curvature(fam, curvature)
+    curvature = _several.check_curvature(fam, curvature)
     strategy = MULTI_STRATEGY_DEFAULT if multi_strategy is None else multi_strategy
     if strategy not in ("one_output_per_tree", "multi_output_tree"):
         raise ValueError(f"multi_strategy must be 'one_output_per_tree' or 'multi_output_tree', got {strategy!r}")
@@ -802,7 +802,7 @@ def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curv
             starts.append((dm, plan.start_for(vy.size, None if vbm.size == 0 else vbm.astype(np.float64),
                                               f"evals[{j}] base_margin")))
     sets[id(dtrain)] = (y, w)
-    twin = facts.chosen_twin(fam, _ENGINE, "XGBoost", native=native, guard_is_default=curvature == "newton",
+    twin = facts.chosen_twin(fam, _ENGINE, "XGBoost", native=native, guard_is_default=curvature == fam.default_curvature,
                              params=params)
     scorer = _several.SeveralScorer(fam)
 

@@ -34,6 +34,9 @@ def is_several(fam) -> bool:
 
 
 def check_curvature(fam, curvature):
+    """The curvature to use: ``curvature``, or the family's ``default_curvature`` when None."""
+    if curvature is None:
+        curvature = fam.default_curvature
     if curvature not in CURVATURES:
         raise ValueError(f"{fam.name}: curvature must be one of {CURVATURES}, got {curvature!r}")
     return curvature
@@ -100,7 +103,7 @@ class SeveralGradients:
     ``order="F"`` returns column-major buffers (LightGBM reads its multi-score gradients one
     score column after another, so it then takes them without a copy)."""
 
-    def __init__(self, fam, curvature="newton", order="C"):
+    def __init__(self, fam, curvature=None, order="C"):
         self.family = fam
         self.curvature = check_curvature(fam, curvature)
         self.order = order

@@ -38,6 +38,7 @@ class GaussianSpread(SeveralScoreFamily):
     links = (IDENTITY, LOG)
     target_domain = REAL
     fisher_diagonal = True
+    default_curvature = "natural"
 
     def constant_scale(self):
         from .gaussian import Gaussian
