@@ -155,8 +155,11 @@ def _check_sample_weight(sample_weight, y, owner):
     return np.ascontiguousarray(w)
 
 
-def _fit_linear(est, fam, X, y, w, offset):
-    """Solve the penalised problem for ``fam``; return the fit."""
+def _fit_linear(est, fam, X, y, w, offset, unweighted=False):
+    """Solve the penalised problem for ``fam``; return the fit.
+
+    ``unweighted``: no sample weights were given (w is all ones); the family's
+    own helpers then get none, which spares them a rescaled copy of w."""
     n, p = X.shape
     v = w / w.sum()
     alpha = float(est.alpha)
@@ -171,7 +174,7 @@ def _fit_linear(est, fam, X, y, w, offset):
         return _solvers.quantile_lp(X, y, v, offset, tau, est.fit_intercept,
                                     names=getattr(est, "feature_names_in_", None))
     if est.fit_intercept:
-        intercept = fam.baseline(y, w, offset=offset)
+        intercept = fam.baseline(y, None if unweighted else w, offset=offset)
     else:
         intercept = 0.0
     coef = np.zeros(p)
@@ -236,8 +239,9 @@ def _joint_nuisance(fam):
     return bool(fam.location_needs_nuisance)
 
 
-def _finish(est, fam, fit, y, w):
-    """Attributes shared by both estimators; nuisance parameters by maximum likelihood."""
+def _finish(est, fam, fit, y, w, unweighted=False):
+    """Attributes shared by both estimators; nuisance parameters by maximum likelihood
+    (``unweighted`` as in ``_fit_linear``)."""
     est.coef_ = fit.coef
     est.intercept_ = float(fit.intercept)
     est.n_iter_ = int(fit.n_iter)
@@ -271,7 +275,7 @@ def _finish(est, fam, fit, y, w):
             )
         return
     try:
-        est.family_ = fam.fit_nuisance(y, fit.raw, w)
+        est.family_ = fam.fit_nuisance(y, fit.raw, None if unweighted else w)
     except ValueError as exc:
         warnings.warn(
             f"{type(est).__name__}: the nuisance parameters of {fam.name} keep their given values "
@@ -449,8 +453,8 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         w = _check_sample_weight(sample_weight, y, owner)
         offset = _check_offset(offset, X.shape[0], owner)
         self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
-        fit = _fit_linear(self, fam, X, y, w, offset)
-        _finish(self, fam, fit, y, w)
+        fit = _fit_linear(self, fam, X, y, w, offset, unweighted=sample_weight is None)
+        _finish(self, fam, fit, y, w, unweighted=sample_weight is None)
         _warn_if_unbounded(self, fam, X, y, w, fit.raw)
         return self
 
@@ -552,8 +556,8 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
         offset = _check_offset(offset, X.shape[0], owner)
         self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
         fam = make_family("bernoulli")
-        fit = _fit_linear(self, fam, X, y01, w, offset)
-        _finish(self, fam, fit, y01, w)
+        fit = _fit_linear(self, fam, X, y01, w, offset, unweighted=sample_weight is None)
+        _finish(self, fam, fit, y01, w, unweighted=sample_weight is None)
         _warn_if_unbounded(self, fam, X, y01, w, fit.raw)
         return self
 
