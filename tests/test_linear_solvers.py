@@ -207,6 +207,47 @@ def test_large_dense_badly_scaled_fit_matches_its_standardised_twin_and_sklearn(
     np.testing.assert_allclose(twin.coef_, ref.coef_, rtol=1e-7)
 
 
+def test_column_scales_from_the_subsample_are_unit_free_and_exact_where_it_sees_zeros():
+    # direct formula: c_j = sqrt(sum_i v_i x_ij^2); a column the subsample saw only as zeros gets it from all rows
+    rng = np.random.default_rng(5)
+    n = 4000
+    X = rng.standard_normal((n, 3))
+    X[:, 1] = 0.0
+    X[1::8, 1] = 7.0  # non-zero only on rows the subsample (every 8th row from 0) leaves out
+    v = rng.uniform(0.5, 1.5, n)
+    v /= v.sum()
+    sub = slice(0, None, _solvers.SUBSAMPLE_FRACTION)
+    vs = v[sub] / v[sub].sum()
+    squares = vs @ X[sub] ** 2
+    assert squares[1] == 0.0
+    c = _solvers._scales_from_subsample(X, v, squares)
+    np.testing.assert_allclose(c[1], np.sqrt(v @ X[:, 1] ** 2), rtol=1e-12)
+    np.testing.assert_allclose(c[[0, 2]], np.sqrt(squares[[0, 2]]), rtol=1e-12)
+    scale = np.array([1e-8, 1e12, 3.0])  # units: every scale moves with its column
+    Xs = X * scale
+    c_s = _solvers._scales_from_subsample(Xs, v, vs @ Xs[sub] ** 2)
+    np.testing.assert_allclose(c_s, c * scale, rtol=1e-12)
+
+
+def test_large_dense_fit_with_a_column_the_start_never_sees_matches_sklearn():
+    # n >= SUBSAMPLE_MIN_ROWS: the start's rows (every 8th) hold only zeros in the last column,
+    # which is in tiny units; reference: scikit-learn's newton-cholesky PoissonRegressor (tol=1e-12)
+    # on the columns standardised, mapped back
+    rng = np.random.default_rng(22)
+    n = _solvers.SUBSAMPLE_MIN_ROWS + 4000
+    X = rng.standard_normal((n, 3))
+    rare = np.zeros(n)
+    rows = np.flatnonzero((np.arange(n) % _solvers.SUBSAMPLE_FRACTION != 0) & (rng.random(n) < 0.02))
+    rare[rows] = 1e-6
+    X = np.column_stack([X, rare])
+    y = rng.poisson(np.exp(0.2 + X[:, :3] @ np.array([0.2, -0.1, 0.15]) + 0.4e6 * rare)).astype(float)
+    ours = LikelihoodRegressor(family="poisson").fit(X, y)
+    sd = X.std(axis=0)
+    ref = PoissonRegressor(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=200).fit(X / sd, y)
+    np.testing.assert_allclose(ours.coef_, ref.coef_ / sd, rtol=1e-7)
+    np.testing.assert_allclose(ours.intercept_, ref.intercept_, rtol=1e-7)
+
+
 def test_onehot_blocks_finds_the_factors_and_nothing_in_general_sparse_data():
     X, rng = onehot_design(5000, 3, 40, seed=21)  # factors in columns 0-38, 39-77, 78-116; a numeric column 117
     block_of, k = _solvers.onehot_blocks(X)

@@ -35,8 +35,9 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     max_j |dF/dcoef_j| / c_j <= tol with c_j = sqrt(sum_i v_i x_ij^2) (c = 1 for
     the intercept and for all-zero columns): the gradient with respect to the
     coefficients of the standardised columns x_j / c_j, so the rule does not
-    depend on a column's units; or when a step no longer changes any raw score
-    beyond rounding (64 eps max |raw|).
+    depend on a column's units (dense X with at least SUBSAMPLE_MIN_ROWS rows:
+    c_j estimated on one row in SUBSAMPLE_FRACTION, see ``newton_dense``); or
+    when a step no longer changes any raw score beyond rounding (64 eps max |raw|).
 
     Families whose Hessian is a surrogate (``exact_hessian`` False, e.g. a user
     family) use the same iteration with the surrogate in place of d2F: each
@@ -569,8 +570,11 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
             if new_draw:
                 np.dot(Xb, dc, out=draw[s:e])
                 draw[s:e] += db
-            np.multiply(draw[s:e], t, out=rb)
-            rb += raw_base[s:e]
+            if t == 1.0:
+                np.add(raw_base[s:e], draw[s:e], out=rb)
+            else:
+                np.multiply(draw[s:e], t, out=rb)
+                rb += raw_base[s:e]
             g, h = fam._grad_hess(y[s:e], rb)
             vb = v[s:e]
             if squares is not None:
@@ -629,7 +633,10 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     * start: the same iteration on one row in SUBSAMPLE_FRACTION (weights
       rescaled to the same total), to SUBSAMPLE_START_TOL; its solution is
       the starting point and its last factorisation (with its secant pairs)
-      the matrix of the first steps on all rows.  That subsample fit
+      the matrix of the first steps on all rows; the column scales c_j of the
+      stopping rule are estimated on its rows too (``_scales_from_subsample``:
+      exact for a column that is zero there), which spares the first pass over
+      all rows the squares of X.  That subsample fit
       (``nested``) starts in turn from one of its own rows in
       SUBSAMPLE_FRACTION when it has at least SUBSAMPLE_MIN_ROWS /
       SUBSAMPLE_FRACTION rows: it forms its Newton matrix once, at that
@@ -676,6 +683,8 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
                     and np.all(np.isfinite(start.coef)) and np.isfinite(start.intercept)):
                 coef, intercept = start.coef, float(start.intercept)
                 start_solve, start_iter = got["solve"], start.n_iter
+                if cscale is None and not nested and got.get("squares") is not None:
+                    cscale = _scales_from_subsample(X, v, got["squares"])
     raw = np.full(n, intercept) if offset is None else offset + intercept
     m = max(SUBSAMPLE_FRACTION, min(_BLOCK, n))
     if buf is None or buf.shape[0] < m or buf.shape[1] != p:
@@ -703,6 +712,8 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     first = None if (large and start_solve is not None) else ("sub" if use_sub else "full")
     raw, grad, H = sweep(raw, 1.0, coef, 0.0, True, first, coef, squares)
     if cscale is None:
+        if state is not None:
+            state["squares"] = squares.copy()
         cscale = np.sqrt(squares)
         cscale[~(cscale > 0) | ~np.isfinite(cscale)] = 1.0
     inv_c = np.ones(nfree)
@@ -787,6 +798,24 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
         coef, intercept, raw, grad, gnorm = _refine_dense(
             solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
     return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)
+
+
+def _scales_from_subsample(X, v, squares):
+    """Column scales c_j for the stopping rule from sum_i v_i x_ij^2 over the start's row subsample.
+
+    The subsample (one row in SUBSAMPLE_FRACTION, weights rescaled to the same
+    total) estimates sum_i v_i x_ij^2 over all rows; scaling a column scales its
+    estimate exactly as it scales the exact value, so the stopping rule stays
+    free of the columns' units.  A column that is zero (or not finite) on the
+    subsample gets its exact value from all rows (one read of those columns).
+    """
+    sq = np.array(squares, dtype=float)
+    bad = ~(sq > 0) | ~np.isfinite(sq)
+    if np.any(bad):
+        sq[bad] = weighted_column_squares(np.ascontiguousarray(X[:, bad]), v)
+    c = np.sqrt(sq)
+    c[~(c > 0) | ~np.isfinite(c)] = 1.0
+    return c
 
 
 def _refine_dense(solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol, rounds=3):
