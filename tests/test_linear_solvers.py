@@ -248,6 +248,40 @@ def test_large_dense_fit_with_a_column_the_start_never_sees_matches_sklearn():
     np.testing.assert_allclose(ours.intercept_, ref.intercept_, rtol=1e-7)
 
 
+@pytest.mark.parametrize("family", ["poisson", "gamma"])
+def test_dense_fit_stopped_by_an_unchecked_correction_has_its_gradient_below_tol(family, monkeypatch):
+    # the fit stops by applying a correction below tol without a pass to check it (early, or as the
+    # refinement after the gradient test).  With means near 1 the standardised Newton matrix is near
+    # the identity, so the correction's error (a contraction factor times tol) leaves the gradient at
+    # the returned coefficients, written out with numpy, below tol in the standardised units;
+    # reference: scikit-learn's newton-cholesky solver at tol=1e-12
+    rng = np.random.default_rng(23)
+    n = _solvers.SUBSAMPLE_MIN_ROWS + 8000
+    X = rng.standard_normal((n, 6)) * np.array([1.0, 2.0, 1e-3, 1e4, 1.0, 0.5])
+    mu = np.exp(0.3 + (X / X.std(axis=0)) @ rng.normal(0.0, 0.15, 6))
+    y = rng.poisson(mu).astype(float) if family == "poisson" else rng.gamma(2.0, mu / 2.0)
+    stops = []
+    real = _solvers._raw
+
+    def counting(X_, coef, intercept, offset):
+        if X_.shape[0] == n and offset is None:
+            stops.append(1)  # only an unchecked correction computes X d this way
+        return real(X_, coef, intercept, offset)
+    monkeypatch.setattr(_solvers, "_raw", counting)
+    tol = 1e-8
+    est = LikelihoodRegressor(family=family, tol=tol).fit(X, y)
+    assert stops  # the final correction was applied
+    raw = X @ est.coef_ + est.intercept_
+    g, _ = lossfam.family(family)._grad_hess(y, raw)
+    grad = np.r_[X.T @ g, g.sum()] / n
+    c = np.r_[np.sqrt(np.mean(X ** 2, axis=0)), 1.0]
+    assert np.max(np.abs(grad) / c) <= tol
+    cls = PoissonRegressor if family == "poisson" else GammaRegressor
+    sd = X.std(axis=0)
+    ref = cls(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=200).fit(X / sd, y)
+    np.testing.assert_allclose(est.coef_ * sd, ref.coef_, rtol=1e-7, atol=1e-9)
+
+
 def test_onehot_blocks_finds_the_factors_and_nothing_in_general_sparse_data():
     X, rng = onehot_design(5000, 3, 40, seed=21)  # factors in columns 0-38, 39-77, 78-116; a numeric column 117
     block_of, k = _solvers.onehot_blocks(X)

@@ -37,7 +37,9 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     coefficients of the standardised columns x_j / c_j, so the rule does not
     depend on a column's units (dense X with at least SUBSAMPLE_MIN_ROWS rows:
     c_j estimated on one row in SUBSAMPLE_FRACTION, see ``newton_dense``); or
-    when a step no longer changes any raw score beyond rounding (64 eps max |raw|).
+    when a step no longer changes any raw score beyond rounding (64 eps max |raw|);
+    dense X with few columns also when a trusted correction is below tol in the
+    same units (``newton_dense``).
 
     Families whose Hessian is a surrogate (``exact_hessian`` False, e.g. a user
     family) use the same iteration with the surrogate in place of d2F: each
@@ -133,7 +135,7 @@ class LinearFit:
     raw: np.ndarray  # fitted raw scores, offset included
     n_iter: int
     objective: float  # F at the solution when it was evaluated, else nan; LP: sum v rho_tau
-    grad_norm: float  # max |dF| at the solution (nan for the LP)
+    grad_norm: float  # max |dF| at the solution (nan for the LP; before a final unchecked correction)
     converged: bool
     family: object  # the family used (huber: with its fitted scale)
     nuisance_fitted: bool = True  # huber: False when the scale had no maximum-likelihood value
@@ -652,7 +654,13 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
       SUBSAMPLE_WHILE_STEP.)
 
     The gradient is exact at every step, so the solution and the stopping
-    rule are those of ``newton``.  On smaller data every step is a Newton
+    rule are those of ``newton``, with one more way to stop: when the next
+    correction d is below tol in standardised units (max_j c_j |d_j|, and
+    |d| of the intercept) and its matrix is trusted -- the exact Newton
+    matrix at this point, or one whose last step shrank ||C^-1 dF||^2 by
+    CHORD_SHRINK -- d is applied without a further pass over X (its error is
+    then about the last contraction factor times tol; the gradient reported
+    is the one before it).  On smaller data every step is a Newton
     step with the matrix from all rows.  At the gradient test the last
     factorisation refines the solution (``_refine_dense``).  If the gradient
     norm cannot be decreased the general iteration (``newton``, with its
@@ -722,7 +730,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     solve = start_solve
     poor_sub = 0
     pairs = []  # (step, gradient change) since the last factorisation
-    converged = False
+    converged = corrected = proven = False
     gnorm = np.inf
     it = 0
     for it in range(max_iter + 1):
@@ -746,6 +754,14 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             d = -_secant_solve(solve, pairs)(grad)
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
+        if (used == "full" or proven) and not float(np.max(np.abs(d) / inv_c)) > tol:
+            # the correction is below tol in standardised units and comes from the exact Newton
+            # matrix at this point, or from one whose last step shrank ||C^-1 dF||^2 CHORD_SHRINK-
+            # fold: applied without checking it (the refinement's rule, one pass earlier)
+            coef, intercept = coef + dc, intercept + db
+            raw = raw + _raw(X, dc, db, None)
+            converged = corrected = True
+            break
         m0 = float(sgrad @ sgrad)
         # the matrix formed at the trial point: the subsample's far from the optimum; on small
         # data all rows at every step (Newton's method); on large data near the optimum none
@@ -770,6 +786,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             return fit
         change = t * float(np.max(np.abs(draw)))
         shrink = m1 / m0 if m0 > 0 else 0.0
+        proven = t == 1.0 and shrink <= CHORD_SHRINK
         pairs.append((t * d, grad_new - grad))
         coef, intercept, raw, grad = coef + t * dc, intercept + t * db, raw_new, grad_new
         if used == "sub":
@@ -794,7 +811,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             solve, pairs = last, []
     if state is not None:
         state["solve"] = _secant_solve(solve, pairs) if solve is not None else None
-    if converged and solve is not None and not nested:  # a start needs no refinement
+    if converged and solve is not None and not nested and not corrected:  # a start needs no refinement
         coef, intercept, raw, grad, gnorm = _refine_dense(
             solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
     return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)

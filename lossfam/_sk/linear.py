@@ -403,7 +403,9 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         gradient for standardised columns, so the rule does not depend on a
         column's units), then refine with the last factorisation while that
         still improves the fit; or when a full step changes no raw score beyond
-        rounding.
+        rounding; dense X with at most 200 coefficients also when the next Newton
+        (or secant-corrected chord) correction is below tol in the same
+        standardised units, which is then applied.
 
     Attributes
     ----------
