@@ -291,12 +291,16 @@ def _warn_if_unbounded(est, fam, X, y, w, raw):
     if est.alpha > 0:
         return
     if isinstance(fam, Bernoulli):
+        if not max(float(np.max(raw, initial=0.0)), -float(np.min(raw, initial=0.0))) > 13.8:
+            return  # no fitted probability within 1e-6 of 0 or 1 (two reductions, no masks)
         sign = 2.0 * y - 1.0
         near = sign * raw > 13.8  # a fitted probability within 1e-6 of its label
         what = ("the two classes are (quasi-)separated by a linear score, so the unpenalised "
                 "maximum-likelihood estimate does not exist: coefficients diverge and fitted "
                 "probabilities reach 0 or 1")
     elif isinstance(fam, Poisson):
+        if not float(np.min(raw, initial=np.inf)) < -13.8:
+            return  # no fitted mean below 1e-6 (one reduction, no masks)
         sign = np.where(y == 0, -1.0, 0.0)
         near = (y == 0) & (raw < -13.8)  # a fitted mean below 1e-6 on a zero count
         what = ("some zero counts can be fitted by a mean of exactly 0 (e.g. a category whose "
