@@ -122,12 +122,13 @@ def test_sparse_many_columns_non_unit_entries():
     np.testing.assert_allclose(params(ours), params(ref), rtol=1e-6, atol=1e-8)
 
 
+@pytest.mark.parametrize("order", ["C", "F"])  # F: column-major X, whole-array products
 @pytest.mark.parametrize("hessian", [None, "sub", "full"])
 @pytest.mark.parametrize("fit_intercept", [True, False])
-def test_dense_sweep_matches_the_direct_formulas(hessian, fit_intercept):
+def test_dense_sweep_matches_the_direct_formulas(hessian, fit_intercept, order):
     rng = np.random.default_rng(3)
     n, p = 20_000, 5
-    X = rng.standard_normal((n, p))
+    X = np.asarray(rng.standard_normal((n, p)), order=order)
     y = rng.poisson(2.0, n).astype(float)
     v = rng.uniform(0.5, 2.0, n)
     v /= v.sum()
@@ -136,7 +137,10 @@ def test_dense_sweep_matches_the_direct_formulas(hessian, fit_intercept):
     dc, db = rng.normal(0, 0.1, p), 0.05
     draw = np.empty(n)
     buf = np.empty((_solvers._BLOCK, p))
-    raw, grad, H = _solvers.dense_sweep(fam, X, y, v, raw0, 0.5, dc, db, draw, True, hessian, fit_intercept, buf)
+    squares = np.zeros(p)
+    raw, grad, H = _solvers.dense_sweep(fam, X, y, v, raw0, 0.5, dc, db, draw, True, hessian, fit_intercept, buf,
+                                        squares)
+    np.testing.assert_allclose(squares, v @ X ** 2, rtol=1e-12)
     # direct formulas with numpy, all rows at once
     np.testing.assert_allclose(draw, X @ dc + db, rtol=1e-12, atol=1e-14)
     np.testing.assert_allclose(raw, raw0 + 0.5 * (X @ dc + db), rtol=1e-12)
@@ -280,6 +284,32 @@ def test_dense_fit_stopped_by_an_unchecked_correction_has_its_gradient_below_tol
     sd = X.std(axis=0)
     ref = cls(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=200).fit(X / sd, y)
     np.testing.assert_allclose(est.coef_ * sd, ref.coef_, rtol=1e-7, atol=1e-9)
+
+
+@pytest.mark.parametrize("family", ["poisson", "gamma"])
+def test_column_major_and_dataframe_input_fit_like_row_major_without_a_copy(family, monkeypatch):
+    # the same data as a C-ordered array, an F-ordered array and a DataFrame (whose values are
+    # column-major) give the same fit; the F-ordered data reach the solver as they are, not copied
+    pd = pytest.importorskip("pandas")
+    rng = np.random.default_rng(24)
+    n = _solvers.SUBSAMPLE_MIN_ROWS + 2000
+    X = rng.standard_normal((n, 5))
+    mu = np.exp(0.2 + X @ rng.normal(0.0, 0.2, 5))
+    y = rng.poisson(mu).astype(float) if family == "poisson" else rng.gamma(2.0, mu / 2.0)
+    XF = np.asfortranarray(X)
+    seen = []
+    real = _solvers.newton_dense
+
+    def spying(fam, X_, *a, **k):
+        if X_.shape[0] == n:
+            seen.append(X_)
+        return real(fam, X_, *a, **k)
+    monkeypatch.setattr(_solvers, "newton_dense", spying)
+    fits = [LikelihoodRegressor(family=family).fit(data, y)
+            for data in (X, XF, pd.DataFrame(X, columns=list("abcde")))]
+    assert np.shares_memory(seen[1], XF)
+    for est in fits[1:]:
+        np.testing.assert_allclose(params(est), params(fits[0]), rtol=1e-9, atol=1e-12)
 
 
 def test_onehot_blocks_finds_the_factors_and_nothing_in_general_sparse_data():

@@ -553,6 +553,8 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
     used by all three while it is in cache; H is accumulated with one product
     a^T a per block of rows scaled by sqrt(v h) (``weighted_gram``).  ``squares``
     (length p), when given, has sum_i v_i x_ij^2 added to it in the same pass.
+    Column-major X: X d and X^T (v g) are whole-array products (a block of
+    rows of such an X is p strided pieces); only H is formed in blocks.
     """
     n, p = X.shape
     nfree = p + int(fit_intercept)
@@ -564,28 +566,51 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
     hsum = vsum = 0.0
     general = False
     step = SUBSAMPLE_FRACTION if hessian == "sub" else 1
+    # column-major X (e.g. from a DataFrame): a block of its rows is 'p' strided pieces, so X d and
+    # X^T (v g) are whole-array products (each column read once, at full speed) and the blocks
+    # below only form H
+    by_columns = X.flags.f_contiguous and not X.flags.c_contiguous
     with np.errstate(over="ignore", invalid="ignore"):
-        for s in range(0, n, m):
+        if by_columns:
+            if new_draw:
+                np.dot(X, dc, out=draw)
+                draw += db
+            if t == 1.0:
+                np.add(raw_base, draw, out=raw_new)
+            else:
+                np.multiply(draw, t, out=raw_new)
+                raw_new += raw_base
+            g_all, h_all = fam._grad_hess(y, raw_new)
+            g_all *= v
+            grad[:p] = X.T @ g_all
+            if fit_intercept:
+                grad[p] = g_all.sum()
+            if squares is not None:
+                squares += weighted_column_squares(X, v)
+        for s in range(0, n if (hessian or not by_columns) else 0, m):
             e = min(n, s + m)
             Xb = X[s:e]
-            rb = raw_new[s:e]
-            if new_draw:
-                np.dot(Xb, dc, out=draw[s:e])
-                draw[s:e] += db
-            if t == 1.0:
-                np.add(raw_base[s:e], draw[s:e], out=rb)
-            else:
-                np.multiply(draw[s:e], t, out=rb)
-                rb += raw_base[s:e]
-            g, h = fam._grad_hess(y[s:e], rb)
             vb = v[s:e]
-            if squares is not None:
-                sq = np.multiply(Xb, Xb, out=buf[: e - s])
-                squares += vb @ sq
-            g *= vb
-            grad[:p] += g @ Xb
-            if fit_intercept:
-                grad[p] += g.sum()
+            if by_columns:
+                h = h_all[s:e]
+            else:
+                rb = raw_new[s:e]
+                if new_draw:
+                    np.dot(Xb, dc, out=draw[s:e])
+                    draw[s:e] += db
+                if t == 1.0:
+                    np.add(raw_base[s:e], draw[s:e], out=rb)
+                else:
+                    np.multiply(draw[s:e], t, out=rb)
+                    rb += raw_base[s:e]
+                g, h = fam._grad_hess(y[s:e], rb)
+                if squares is not None:
+                    sq = np.multiply(Xb, Xb, out=buf[: e - s])
+                    squares += vb @ sq
+                g *= vb
+                grad[:p] += g @ Xb
+                if fit_intercept:
+                    grad[p] += g.sum()
             if not hessian:
                 continue
             if step > 1:

@@ -105,13 +105,16 @@ def _check_numeric_columns(X, owner):
 
 
 def _validate_X_y(est, X, y, owner, **kw):
-    """validate_data for fit: numeric pandas columns, dense C-ordered or sparse CSR float64 X."""
+    """validate_data for fit: numeric pandas columns, dense float64 X contiguous in either order (a
+    DataFrame's column-major values are not copied), or sparse CSR."""
     _check_numeric_columns(X, owner)
-    X, y = validate_data(est, X, y, dtype=np.float64, order="C", accept_sparse=("csr", "csc"),
+    X, y = validate_data(est, X, y, dtype=np.float64, accept_sparse=("csr", "csc"),
                          ensure_all_finite=False, **kw)
     if sparse.issparse(X):
         X = X.tocsr()
         X.sort_indices()
+    elif not (X.flags.c_contiguous or X.flags.f_contiguous):
+        X = np.ascontiguousarray(X)
     _check_finite_rows(X, owner)
     return X, y
 
