@@ -122,16 +122,18 @@ def test_sparse_many_columns_non_unit_entries():
     np.testing.assert_allclose(params(ours), params(ref), rtol=1e-6, atol=1e-8)
 
 
+@pytest.mark.parametrize("weights", ["varying", "equal"])  # equal: sums formed unweighted, scaled once
 @pytest.mark.parametrize("order", ["C", "F"])  # F: column-major X, whole-array products
 @pytest.mark.parametrize("hessian", [None, "sub", "full"])
 @pytest.mark.parametrize("fit_intercept", [True, False])
-def test_dense_sweep_matches_the_direct_formulas(hessian, fit_intercept, order):
+def test_dense_sweep_matches_the_direct_formulas(hessian, fit_intercept, order, weights):
     rng = np.random.default_rng(3)
     n, p = 20_000, 5
     X = np.asarray(rng.standard_normal((n, p)), order=order)
     y = rng.poisson(2.0, n).astype(float)
-    v = rng.uniform(0.5, 2.0, n)
+    v = rng.uniform(0.5, 2.0, n) if weights == "varying" else np.ones(n)
     v /= v.sum()
+    vconst = v[0] if weights == "equal" else None
     fam = lossfam.family("poisson")
     raw0 = rng.normal(0.5, 0.2, n)
     dc, db = rng.normal(0, 0.1, p), 0.05
@@ -139,7 +141,7 @@ def test_dense_sweep_matches_the_direct_formulas(hessian, fit_intercept, order):
     buf = np.empty((_solvers._BLOCK, p))
     squares = np.zeros(p)
     raw, grad, H = _solvers.dense_sweep(fam, X, y, v, raw0, 0.5, dc, db, draw, True, hessian, fit_intercept, buf,
-                                        squares)
+                                        squares, vconst)
     np.testing.assert_allclose(squares, v @ X ** 2, rtol=1e-12)
     # direct formulas with numpy, all rows at once
     np.testing.assert_allclose(draw, X @ dc + db, rtol=1e-12, atol=1e-14)

@@ -540,7 +540,8 @@ def _secant_solve(solve, pairs):
     return apply
 
 
-def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_intercept, buf, squares=None):
+def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_intercept, buf, squares=None,
+                vconst=None):
     """One pass over the rows of dense X in blocks: the raw scores, gradient and Newton matrix at a trial point.
 
     Returns (raw, grad, H) with raw = raw_base + t draw, where ``draw`` holds
@@ -555,6 +556,8 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
     (length p), when given, has sum_i v_i x_ij^2 added to it in the same pass.
     Column-major X: X d and X^T (v g) are whole-array products (a block of
     rows of such an X is p strided pieces); only H is formed in blocks.
+    ``vconst``: the value of every v_i when the weights are all equal (no
+    sample weights); the sums are then formed unweighted and scaled once.
     """
     n, p = X.shape
     nfree = p + int(fit_intercept)
@@ -581,7 +584,8 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
                 np.multiply(draw, t, out=raw_new)
                 raw_new += raw_base
             g_all, h_all = fam._grad_hess(y, raw_new)
-            g_all *= v
+            if vconst is None:
+                g_all *= v
             grad[:p] = X.T @ g_all
             if fit_intercept:
                 grad[p] = g_all.sum()
@@ -607,7 +611,8 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
                 if squares is not None:
                     sq = np.multiply(Xb, Xb, out=buf[: e - s])
                     squares += vb @ sq
-                g *= vb
+                if vconst is None:
+                    g *= vb
                 grad[:p] += g @ Xb
                 if fit_intercept:
                     grad[p] += g.sum()
@@ -616,8 +621,9 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
             if step > 1:
                 k = -(-(e - s) // step)  # the first 1/step of the block: contiguous, so cheap to scale and multiply
                 Xb, h, vb = Xb[:k], h[:k], vb[:k]
-                vsum += float(vb.sum())
-            h *= vb
+                vsum += float(vb.sum()) if vconst is None else vconst * k
+            if vconst is None:
+                h *= vb
             hsum += float(h.sum())
             if general or np.min(h) < 0:
                 if not general:  # a negative curvature: no square roots, plain products from here on
@@ -630,6 +636,8 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
             a = np.multiply(Xb, h[:, None], out=buf[: Xb.shape[0]])
             H += a.T @ a
             xh += h @ a
+    if vconst is not None:
+        grad *= vconst
     if not hessian:
         return raw_new, grad, None
     full = np.empty((nfree, nfree))
@@ -638,6 +646,8 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
         full[:p, p] = xh
         full[p, :p] = xh
         full[p, p] = hsum
+    if vconst is not None:
+        full *= vconst
     if step > 1:
         full *= 1.0 / max(vsum, 1e-300)
     return raw_new, grad, full
@@ -725,10 +735,12 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     else:
         buf = buf[:m]
     draw = np.zeros(n)
+    # equal weights (no sample weights): the sweeps form their sums unweighted and scale them once
+    vconst = float(v[0]) if n and v[0] > 0 and not np.any(v != v[0]) else None
 
     def sweep(raw_base, t, dc, db, new_draw, hessian, coef_, squares=None):
         raw_new, grad, H = dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian,
-                                       fit_intercept, buf, squares)
+                                       fit_intercept, buf, squares, vconst)
         if alpha:
             grad[:p] += alpha * coef_
             if H is not None:
