@@ -38,7 +38,8 @@ Two more sections:
   data; medians over --repeats children.
 
 Run:  python benchmarks/linear_fit.py [--n 500000] [--p 30] [--repeats 3] [--sparse-n 1000000]
-      (--section dense|equilibration|sparse to run one section)
+      (--section dense|equilibration|sparse to run one section; --layout F|dataframe for the
+      dense section on column-major X or a DataFrame, as pandas hands its values over)
 Synthetic data only (a demo scenario: standard-normal features, coefficients
 drawn once from N(0, 0.15^2); for the sparse section level effects from N(0, 0.3^2)).
 """
@@ -119,7 +120,7 @@ def load_average():
 
 def dense_section(args):
     print(f"{time.strftime('%Y-%m-%d %H:%M:%S', time.gmtime())} UTC, {load_average()}")
-    print(f"n = {args.n}, p = {args.p}, median of {args.repeats} alternating rounds; "
+    print(f"n = {args.n}, p = {args.p}, X {args.layout}, median of {args.repeats} alternating rounds; "
           "coef diff = max relative difference from the reference (newton-cholesky, tol=1e-12)")
     print()
     print(f"{'family':8s} {'estimator':42s} {'wall [s]':>9s} {'ratio':>6s} {'CPU [s]':>8s} {'ratio':>6s} "
@@ -127,6 +128,11 @@ def dense_section(args):
     sk_cls = {"poisson": PoissonRegressor, "gamma": GammaRegressor}
     for fam in ("poisson", "gamma"):
         X, y = make_data(args.n, args.p, fam)
+        if args.layout == "F":
+            X = np.asfortranarray(X)
+        elif args.layout == "dataframe":
+            import pandas as pd
+            X = pd.DataFrame(X, columns=[f"x{j}" for j in range(X.shape[1])])  # column-major values
         cls = sk_cls[fam]
         ref = cls(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=1000).fit(X, y)
         ref_params = params(ref)
@@ -297,6 +303,8 @@ def main():
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--sparse-n", type=int, default=1_000_000)
     ap.add_argument("--section", choices=("all", "dense", "equilibration", "sparse"), default="all")
+    ap.add_argument("--layout", choices=("C", "F", "dataframe"), default="C",
+                    help="dense section: X row-major, column-major, or a pandas DataFrame")
     args = ap.parse_args()
     if args.section in ("all", "dense"):
         dense_section(args)
