@@ -105,13 +105,16 @@ def _check_numeric_columns(X, owner):
 
 
 def _validate_X_y(est, X, y, owner, **kw):
-    """validate_data for fit: numeric pandas columns, dense C-ordered or sparse CSR float64 X."""
+    """validate_data for fit: numeric pandas columns, dense float64 X contiguous in either order (a
+    DataFrame's column-major values are not copied), or sparse CSR."""
     _check_numeric_columns(X, owner)
-    X, y = validate_data(est, X, y, dtype=np.float64, order="C", accept_sparse=("csr", "csc"),
+    X, y = validate_data(est, X, y, dtype=np.float64, accept_sparse=("csr", "csc"),
                          ensure_all_finite=False, **kw)
     if sparse.issparse(X):
         X = X.tocsr()
         X.sort_indices()
+    elif not (X.flags.c_contiguous or X.flags.f_contiguous):
+        X = np.ascontiguousarray(X)
     _check_finite_rows(X, owner)
     return X, y
 
@@ -155,8 +158,11 @@ def _check_sample_weight(sample_weight, y, owner):
     return np.ascontiguousarray(w)
 
 
-def _fit_linear(est, fam, X, y, w, offset):
-    """Solve the penalised problem for ``fam``; return the fit."""
+def _fit_linear(est, fam, X, y, w, offset, unweighted=False):
+    """Solve the penalised problem for ``fam``; return the fit.
+
+    ``unweighted``: no sample weights were given (w is all ones); the family's
+    own helpers then get none, which spares them a rescaled copy of w."""
     n, p = X.shape
     v = w / w.sum()
     alpha = float(est.alpha)
@@ -171,7 +177,7 @@ def _fit_linear(est, fam, X, y, w, offset):
         return _solvers.quantile_lp(X, y, v, offset, tau, est.fit_intercept,
                                     names=getattr(est, "feature_names_in_", None))
     if est.fit_intercept:
-        intercept = fam.baseline(y, w, offset=offset)
+        intercept = fam.baseline(y, None if unweighted else w, offset=offset)
     else:
         intercept = 0.0
     coef = np.zeros(p)
@@ -236,8 +242,9 @@ def _joint_nuisance(fam):
     return bool(fam.location_needs_nuisance)
 
 
-def _finish(est, fam, fit, y, w):
-    """Attributes shared by both estimators; nuisance parameters by maximum likelihood."""
+def _finish(est, fam, fit, y, w, unweighted=False):
+    """Attributes shared by both estimators; nuisance parameters by maximum likelihood
+    (``unweighted`` as in ``_fit_linear``)."""
     est.coef_ = fit.coef
     est.intercept_ = float(fit.intercept)
     est.n_iter_ = int(fit.n_iter)
@@ -271,7 +278,7 @@ def _finish(est, fam, fit, y, w):
             )
         return
     try:
-        est.family_ = fam.fit_nuisance(y, fit.raw, w)
+        est.family_ = fam.fit_nuisance(y, fit.raw, None if unweighted else w)
     except ValueError as exc:
         warnings.warn(
             f"{type(est).__name__}: the nuisance parameters of {fam.name} keep their given values "
@@ -287,12 +294,16 @@ def _warn_if_unbounded(est, fam, X, y, w, raw):
     if est.alpha > 0:
         return
     if isinstance(fam, Bernoulli):
+        if not max(float(np.max(raw, initial=0.0)), -float(np.min(raw, initial=0.0))) > 13.8:
+            return  # no fitted probability within 1e-6 of 0 or 1 (two reductions, no masks)
         sign = 2.0 * y - 1.0
         near = sign * raw > 13.8  # a fitted probability within 1e-6 of its label
         what = ("the two classes are (quasi-)separated by a linear score, so the unpenalised "
                 "maximum-likelihood estimate does not exist: coefficients diverge and fitted "
                 "probabilities reach 0 or 1")
     elif isinstance(fam, Poisson):
+        if not float(np.min(raw, initial=np.inf)) < -13.8:
+            return  # no fitted mean below 1e-6 (one reduction, no masks)
         sign = np.where(y == 0, -1.0, 0.0)
         near = (y == 0) & (raw < -13.8)  # a fitted mean below 1e-6 on a zero count
         what = ("some zero counts can be fitted by a mean of exactly 0 (e.g. a category whose "
@@ -399,7 +410,9 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         gradient for standardised columns, so the rule does not depend on a
         column's units), then refine with the last factorisation while that
         still improves the fit; or when a full step changes no raw score beyond
-        rounding.
+        rounding; dense X with at most 200 coefficients also when the next Newton
+        (or secant-corrected chord) correction is below tol in the same
+        standardised units, which is then applied.
 
     Attributes
     ----------
@@ -449,8 +462,8 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         w = _check_sample_weight(sample_weight, y, owner)
         offset = _check_offset(offset, X.shape[0], owner)
         self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
-        fit = _fit_linear(self, fam, X, y, w, offset)
-        _finish(self, fam, fit, y, w)
+        fit = _fit_linear(self, fam, X, y, w, offset, unweighted=sample_weight is None)
+        _finish(self, fam, fit, y, w, unweighted=sample_weight is None)
         _warn_if_unbounded(self, fam, X, y, w, fit.raw)
         return self
 
@@ -552,8 +565,8 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
         offset = _check_offset(offset, X.shape[0], owner)
         self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
         fam = make_family("bernoulli")
-        fit = _fit_linear(self, fam, X, y01, w, offset)
-        _finish(self, fam, fit, y01, w)
+        fit = _fit_linear(self, fam, X, y01, w, offset, unweighted=sample_weight is None)
+        _finish(self, fam, fit, y01, w, unweighted=sample_weight is None)
         _warn_if_unbounded(self, fam, X, y01, w, fit.raw)
         return self
 
