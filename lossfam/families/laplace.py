@@ -42,7 +42,7 @@ from .._boost.quantiles import sample_quantile
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family, residuals, scaled_mean
-from ._censored import location_scale_pieces
+from ._censored import TailLaw, location_scale_pieces
 
 #: residuals below FLOOR * scale get the curvature of a residual of that size
 FLOOR = 1e-3
@@ -96,6 +96,37 @@ class _LaplaceLaw(stats.rv_continuous):
 
 
 laplace_law = _LaplaceLaw(name="laplace")
+
+
+class LaplaceTails(TailLaw):
+    r"""The standard Laplace law in linear space for the censored gradient and Hessian
+    (lossfam.families._censored.TailLaw).  Right-censored at z, with e = e^z for z < 0:
+
+        z >= 0:  r = f0 / S0 = 1,            c = r + psi = 0  (the linear tail: surrogate g^2)
+        z <  0:  r = e / (2 - e),            c = r + 1 = 2 / (2 - e)
+
+    and left(z) = right(-z) (symmetric law)."""
+
+    symmetric = True
+
+    def pdf(self, z):
+        return 0.5 * np.exp(-np.abs(z))
+
+    def score(self, z):
+        return -np.sign(z)
+
+    def cdf(self, z):
+        half = 0.5 * np.exp(-np.abs(z))
+        return np.where(z < 0, half, 1.0 - half)
+
+    def right(self, z):
+        e = np.exp(np.minimum(z, 0.0))
+        d = 2.0 - e
+        pos = z >= 0
+        return np.where(pos, 1.0, e / d), np.where(pos, 0.0, 2.0 / d)
+
+
+LAPLACE_TAILS = LaplaceTails()
 
 
 def weighted_quantile(values, weights, q):
@@ -155,6 +186,9 @@ class Laplace(Family):
         law = laplace_law
         return location_scale_pieces((v - raw) / self.scale, self.scale, law._logcdf, law._logsf,
                                      law._logpdf, lambda z: -np.sign(z))
+
+    def _tail_law(self):
+        return LAPLACE_TAILS, self.scale
 
     def _distribution(self, raw):
         return laplace_law(loc=raw, scale=self.scale)
