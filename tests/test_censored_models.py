@@ -348,3 +348,80 @@ def test_weibull_default_guard_keeps_deep_trees_finite(engine):
     fit.save(path)
     again = lossfam.load(path)
     assert np.allclose(again.predict_raw(X), fit.predict_raw(X)) and again.fitted_family == fit.fitted_family
+
+
+# ---------------------------------------------------------------------------- scikit-learn wrappers and scorers
+def _sk_engine(engine, rounds=15):
+    pytest.importorskip(engine)
+    if engine == "lightgbm":
+        import lightgbm
+        return lightgbm.LGBMRegressor(n_estimators=rounds, num_leaves=4, learning_rate=0.2, min_child_samples=5,
+                                      verbose=-1, num_threads=1)
+    import xgboost
+    return xgboost.XGBRegressor(n_estimators=rounds, max_depth=2, learning_rate=0.2, nthread=1)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_boosted_wrapper_trains_what_the_engine_trains_on_censored_rows(rng, engine):
+    from lossfam.sklearn import BoostedLikelihoodRegressor, mean_nll, scorer
+
+    mod = _adapter(engine)
+    X, _, t = _durations(rng, 300, np.exp(1.5))
+    est = _sk_engine(engine)
+    m = BoostedLikelihoodRegressor(est, "weibull").fit(X[:200], t[:200], eval_set=[(X[200:], t[200:])])
+    # the same training through the engine adapter on its censored data container
+    params = {k: v for k, v in est.get_params().items() if v is not None}
+    if engine == "lightgbm":
+        params = {"num_leaves": 4, "learning_rate": 0.2, "min_child_samples": 5, "verbose": -1, "num_threads": 1}
+        fit = mod.train("weibull", params, mod.censored_dataset(X[:200], t[:200]), 15)
+    else:
+        params = {"max_depth": 2, "learning_rate": 0.2, "nthread": 1}
+        fit = mod.train("weibull", params, mod.censored_dmatrix(X[:200], t[:200]), 15, verbose_eval=False)
+    assert np.allclose(m.predict_raw(X), fit.predict_raw(X), rtol=0, atol=1e-12)
+    assert m.family_ == fit.fitted_family
+    # the eval-set metric is the held-out censored nll at the training family (float32 rounding aside)
+    raw_val = m.predict_raw(X[200:])
+    last = list(m.evals_result_["validation_0"].values())[0][-1]
+    assert last == pytest.approx(m.model_.family.nll(t[200:], raw_val).mean(), rel=1e-5)
+    # the likelihood scorer and mean_nll take the IntervalTarget: the mean censored nll at family_
+    ref = m.family_.nll(t[200:], raw_val).mean()
+    assert scorer("weibull")(m, X[200:], t[200:]) == pytest.approx(-ref, rel=1e-12)
+    assert mean_nll(t[200:], m.predict(X[200:]), m.family_) == pytest.approx(ref, rel=1e-12)
+
+
+@pytest.mark.parametrize("model", ["linear", "lightgbm", "xgboost"])
+def test_cross_validation_with_censored_targets(rng, model):
+    # scikit-learn's cross_val_score splits the IntervalTarget like any target; each fold's score is
+    # the held-out mean censored nll of a model refitted on the other folds
+    from sklearn.base import clone
+    from sklearn.model_selection import KFold, cross_val_score
+
+    from lossfam.sklearn import BoostedLikelihoodRegressor, LikelihoodRegressor, scorer
+
+    X, _, t = _durations(rng, 240, np.exp(1.5))
+    est = LikelihoodRegressor("weibull") if model == "linear" else BoostedLikelihoodRegressor(_sk_engine(model), "weibull")
+    cv = KFold(3)
+    got = cross_val_score(est, X, t, cv=cv, scoring=scorer("weibull"), error_score="raise")
+    ref = []
+    for tr, te in cv.split(X):
+        m = clone(est).fit(X[tr], t[tr])
+        ref.append(-m.family_.nll(t[te], m.predict_raw(X[te])).mean())
+    assert np.allclose(got, ref, rtol=1e-12)
+
+
+@pytest.mark.parametrize("model", ["linear", "lightgbm"])
+def test_score_and_deviance_scorers_refuse_censored_rows_but_take_exact_interval_targets(rng, model):
+    from lossfam.sklearn import BoostedLikelihoodRegressor, LikelihoodRegressor, scorer
+
+    X, _, t = _durations(rng, 200, np.exp(1.5))
+    est = LikelihoodRegressor("weibull") if model == "linear" else BoostedLikelihoodRegressor(_sk_engine(model), "weibull")
+    m = est.fit(X, t)
+    with pytest.raises(ValueError, match=r"score: D\^2 rests on the unit deviance, which censored rows do not have "
+                                         r"\(\d+ here\); .*scorer\('weibull', 'nll'\)"):
+        m.score(X, t)
+    with pytest.raises(ValueError, match="unit deviance is not defined for censored rows"):
+        scorer("weibull", "d2")(m, X, t)
+    exact = t[t.exact]
+    Xe = X[t.exact]
+    assert m.score(Xe, exact) == m.score(Xe, exact.lower)
+    assert scorer("weibull", "deviance")(m, Xe, exact) == scorer("weibull", "deviance")(m, Xe, exact.lower)

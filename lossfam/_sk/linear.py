@@ -359,9 +359,16 @@ class _RawScoreRegressorMethods:
         Pipeline, GridSearchCV or cross_val_score it arrives only through
         scikit-learn's metadata routing (``sklearn.set_config(enable_metadata_routing=True)``
         and ``est.set_score_request(offset=True)``, as for sample_weight); a
-        model fitted with an offset and scored without one warns.
+        model fitted with an offset and scored without one warns.  An IntervalTarget is
+        accepted when all its rows are exact; censored rows have no unit deviance, so they are
+        refused with a pointer to ``lossfam.sklearn.scorer(family, "nll")``.
         """
         _warn_missing_offset(self, offset)
+        if isinstance(y, IntervalTarget) and not y.exact.all():
+            raise ValueError(
+                f"{type(self).__name__}.score: D^2 rests on the unit deviance, which censored rows do not "
+                f"have ({int((~y.exact).sum())} here); score censored targets by their likelihood with "
+                f"lossfam.sklearn.scorer({self.family_.name!r}, 'nll') (the mean censored nll)")
         pred = self.predict(X, offset=offset)
         return d2_score(y, pred, self.family_, sample_weight=sample_weight)
 
