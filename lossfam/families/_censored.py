@@ -211,6 +211,9 @@ class TailLaw:
     log_bounds = False
     #: z at which F0 = 1/2
     median = 0.0
+    #: True when ``right`` / ``left`` may return NaN (rows for the log-space path); False for laws
+    #: whose one-sided ratios are in closed form everywhere
+    defers = True
     #: S0(z) = F0(-z): ``left`` and the upper tail follow from ``right`` and the lower tail
     symmetric = False
 
@@ -234,6 +237,10 @@ class TailLaw:
         out[upper] = self.sf(z[upper])
         out[~upper] = self.cdf(z[~upper])
         return out
+
+    def tail_pdf(self, z, upper):
+        """(``tail(z, upper)``, ``pdf(z)``): a law may share work between the two."""
+        return self.tail(z, upper), self.pdf(z)
 
     def right(self, z):
         """(r, c) of right-censored rows from the sf (generic; NaN where S0 < TINY)."""
@@ -270,6 +277,7 @@ class NormalLaw(TailLaw):
     """
 
     symmetric = True
+    defers = False
     FAR = 5.0
     LEVELS = 40
 
@@ -350,17 +358,18 @@ def _rows_for(fam, target, law):
 
 
 def _one_sided(law, s, t, raw, right):
-    """(g, h, rows to redo in log space) of one-sided rows at transformed bounds t (TailLaw)."""
+    """(g, h, rows to redo in log space or None) of one-sided rows at transformed bounds t (TailLaw)."""
     z = np.subtract(t, raw)
     if s != 1.0:
         z /= s
     r, c = law.right(z) if right else law.left(z)
-    redo = np.isnan(r)
+    redo = np.isnan(r) if law.defers else None
     g = np.negative(r) if right else r.copy()
-    g /= s
     h = np.multiply(r, c, out=c)
-    h /= s
-    h /= s
+    if s != 1.0:
+        g /= s
+        h /= s  # twice, not by s^2: s^2 may overflow or underflow where the quotient does not
+        h /= s
     sur = ~(h > 0)
     if sur.any():
         h[sur] = g[sur] * g[sur]
@@ -374,23 +383,28 @@ def _closed(law, s, tl, th, raw):
     if s != 1.0:
         zl /= s
         zh /= s
-    upper = (zl + zh) > 2.0 * law.median
-    big = law.tail(np.where(upper, zl, zh), upper)
-    small = law.tail(np.where(upper, zh, zl), upper)
-    p = np.subtract(big, small, out=small)
+    upper = zl + zh
+    upper = upper > 2.0 * law.median
+    t_lo, a = law.tail_pdf(zl, upper)
+    t_hi, b_hi = law.tail_pdf(zh, upper)
+    big = np.where(upper, t_lo, t_hi)
+    p = np.where(upper, t_hi, t_lo)
+    np.subtract(big, p, out=p)
     redo = ~((big >= TINY) & (p > 0))
-    p *= s
-    a = law.pdf(zh)
-    a /= p
-    b = law.pdf(zl)
+    if s != 1.0:
+        p *= s
+    b = a  # f0(z_lo) / (s P)
     b /= p
+    a = b_hi  # f0(z_hi) / (s P)
+    a /= p
     g = a - b
     ea = law.score(zh)
     ea *= a
     eb = law.score(zl)
     eb *= b
     h = np.subtract(eb, ea, out=ea)  # (psi_lo b - psi_hi a), times 1 / s below
-    h /= s
+    if s != 1.0:
+        h /= s
     size = np.abs(h)
     g2 = g * g
     h += g2
@@ -432,16 +446,15 @@ def censored_grad_hess(fam, target, raw):
                 rb = raw[ib]
                 if kind == "closed":
                     gb, hb, redo = _closed(law, s, rows.t_lo[kind][blk], rows.t_hi[kind][blk], rb)
-                    lo_b, hi_b = rows.lo[kind][blk], rows.hi[kind][blk]
                 elif kind == "right":
                     gb, hb, redo = _one_sided(law, s, rows.t_lo[kind][blk], rb, True)
-                    lo_b, hi_b = rows.lo[kind][blk], np.full(ib.size, np.inf)
                 else:
                     gb, hb, redo = _one_sided(law, s, rows.t_hi[kind][blk], rb, False)
-                    lo_b, hi_b = np.full(ib.size, -np.inf), rows.hi[kind][blk]
-                if redo.any():
+                if redo is not None and redo.any():
                     k = np.flatnonzero(redo)
-                    _, gb[k], hb[k] = interval_terms(fam, lo_b[k], hi_b[k], rb[k])
+                    lo_k = rows.lo[kind][blk][k] if kind != "left" else np.full(k.size, -np.inf)
+                    hi_k = rows.hi[kind][blk][k] if kind != "right" else np.full(k.size, np.inf)
+                    _, gb[k], hb[k] = interval_terms(fam, lo_k, hi_k, rb[k])
                 g[ib] = gb
                 h[ib] = hb
         void = rows.idx["void"]

@@ -108,6 +108,7 @@ class LaplaceTails(TailLaw):
     and left(z) = right(-z) (symmetric law)."""
 
     symmetric = True
+    defers = False
 
     def pdf(self, z):
         return 0.5 * np.exp(-np.abs(z))
@@ -118,6 +119,15 @@ class LaplaceTails(TailLaw):
     def cdf(self, z):
         half = 0.5 * np.exp(-np.abs(z))
         return np.where(z < 0, half, 1.0 - half)
+
+    def tail_pdf(self, z, upper):
+        # F0(z) = f0(z) for z < 0, 1 - f0(z) above (f0 = e^-|z| / 2); S0(z) = F0(-z)
+        f = np.abs(z)
+        np.negative(f, out=f)
+        np.exp(f, out=f)
+        f *= 0.5
+        near = (z < 0) == upper  # the tail holds the mode: 1 - f0
+        return np.where(near, 1.0 - f, f), f
 
     def right(self, z):
         e = np.exp(np.minimum(z, 0.0))

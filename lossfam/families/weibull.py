@@ -66,6 +66,7 @@ class ExtremeValueLaw(TailLaw):
 
     log_bounds = True
     median = float(np.log(np.log(2.0)))
+    defers = False
 
     def pdf(self, z):
         return np.exp(z - np.exp(z))
