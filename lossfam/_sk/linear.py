@@ -210,15 +210,18 @@ def _fit_censored(est, fam, X, target, sample_weight, offset, owner):
     """Penalised maximum likelihood of a censored target (Tobit for gaussian, accelerated failure
     time for lognormal and weibull): Newton's method on the censored nll from the censored
     baseline, alternated with the nuisance fit (``fam.censored_fit``) until the parameters settle,
-    since under censoring the coefficients depend on them."""
-    if not fam.exact_hessian and not target.exact.all():
-        raise ValueError(f"{owner}: {fam.name} has a surrogate Hessian, and the linear solvers' "
-                         "majorise-minimise steps on a censored likelihood with a fitted scale converge too "
-                         "slowly to be offered; fit censored targets with a smooth family (gaussian, "
-                         "lognormal, weibull, gamma) or with a boosting engine")
+    since under censoring the coefficients depend on them.  Families with a surrogate Hessian
+    (laplace, student_t) are fitted by direct minimisation of the same objective
+    (``_solvers.censored_direct``)."""
     w = _check_sample_weight(sample_weight, target.lower, owner)
     v = w / w.sum()
     intercept = fam.baseline(target, w, offset=offset) if est.fit_intercept else 0.0
+    if not fam.exact_hessian and not target.exact.all():
+        if fam.censored_fit and fam.params:  # a starting scale for the constant fit
+            start = np.full(target.size, intercept) + (0.0 if offset is None else offset)
+            fam = fam.fit_nuisance(target, start, w)
+        return _solvers.censored_direct(fam, X, target, w, v, offset, float(est.alpha), est.fit_intercept,
+                                        est.max_iter, est.tol, np.zeros(X.shape[1]), intercept)
     args = (X, target, w, v, offset, float(est.alpha), est.fit_intercept, est.max_iter, est.tol,
             np.zeros(X.shape[1]), intercept)
     view = _CensoredView(fam)
@@ -481,7 +484,7 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         self.n_iter_ = int(fit.n_iter)
         self.family_ = fit.family
         if not fit.converged:
-            warnings.warn(f"{owner} ({fam.name}, censored): Newton's method stopped after {fit.n_iter} "
+            warnings.warn(f"{owner} ({fam.name}, censored): the solver stopped after {fit.n_iter} "
                           f"iterations with max |gradient| = {fit.grad_norm:.3g} > tol = {self.tol}",
                           ConvergenceWarning, stacklevel=2)
         return self
