@@ -1763,10 +1763,12 @@ def censored_direct(fam, X, target, w, v, offset, alpha, fit_intercept, max_iter
        raw = y), rounds of: Nelder-Mead from the best point (xatol 1e-10, fatol 1e-15); the
        family's own maximum-likelihood fit of the parameters given the coefficients
        (``Family.fit_nuisance``, smooth and one-dimensional, where a direct search stalls
-       first); and BFGS on the kinks held: the exact rows with |y - raw| <= 1e-7 scale are
-       constrained to raw = y (coefficients in the null space of those rows, from a particular
-       solution by least squares), where the objective is smooth, so BFGS meets the gradient
-       tolerance there if the set is right (``converged``).  Each step is kept only where it
+       first); and BFGS on the kinks held: the exact rows nearest their kink (|y - raw| <=
+       1e-4 scale, at most one per coefficient) are constrained to raw = y (coefficients in the
+       null space of those rows, from a particular solution by least squares), where the
+       objective is smooth, so BFGS meets the gradient tolerance there if the set is right; a
+       held row whose multiplier lies outside its subgradient range is released and the solve
+       repeated (``_on_kinks``); ``converged`` when the gradient tolerance and the ranges hold.  Each step is kept only where it
        lowers F; the rounds stop when one no longer lowers F by more than its rounding.  A direct search: meant for a handful of columns (it is slow
        and may stop short beyond about ten parameters; ``converged`` is then False).
     """
@@ -1805,7 +1807,9 @@ def censored_direct(fam, X, target, w, v, offset, alpha, fit_intercept, max_iter
             val = float(np.dot(v, censored_nll(f2, target, raw))) + 0.5 * alpha * float(beta @ beta)
         return val if np.isfinite(val) else np.inf
 
-    def gradient(theta):
+    def gradient(theta, drop=None):
+        """dF/dtheta; ``drop``: rows left out of the coefficient part (kink rows, whose share is a
+        multiplier)."""
         beta, b, logp = unpack(theta)
         f2 = family_at(logp)
         out = np.zeros_like(theta)
@@ -1815,6 +1819,8 @@ def censored_direct(fam, X, target, w, v, offset, alpha, fit_intercept, max_iter
         with np.errstate(all="ignore"):
             g = censored_grad_hess(f2, target, raw)[0]
         vg = v * g
+        if drop is not None:
+            vg[drop] = 0.0
         out[:p] = (X.T @ vg + alpha * beta) * inv_c
         if fit_intercept:
             out[p] = vg.sum()
@@ -1849,7 +1855,8 @@ def censored_direct(fam, X, target, w, v, offset, alpha, fit_intercept, max_iter
                 if ft < f:
                     theta, f = trial, ft
             # the exact rows at the kink (raw = y) held there: a smooth problem on the rest
-            trial, ok, it = _on_kinks(objective, gradient, theta, X, target, o, inv_c, p, k, fit_intercept, tol)
+            trial, ok, it = _on_kinks(objective, gradient, family_at, theta, X, target, v, o, inv_c, p, k,
+                                      fit_intercept, tol)
             n_iter += it
             ft = objective(trial)
             if ft <= f:
@@ -1865,36 +1872,60 @@ def censored_direct(fam, X, target, w, v, offset, alpha, fit_intercept, max_iter
                      grad_norm=grad_norm, converged=converged, family=f2)
 
 
-def _on_kinks(objective, gradient, theta, X, target, o, inv_c, p, k, fit_intercept, tol):
-    """BFGS with the exact rows at their kink (|y - raw| <= 1e-7 scale) held at raw = y
-    (``censored_direct``, step 2).  Returns (theta, converged, iterations)."""
+def _on_kinks(objective, gradient, family_at, theta, X, target, v, o, inv_c, p, k, fit_intercept, tol):
+    """BFGS with the exact rows near their kink (|y - raw| <= 1e-4 scale, at most as many as there
+    are coefficients, nearest first) held at raw = y (``censored_direct``, step 2), then the optimality check of the held rows: the multipliers
+    lambda solving Z^T lambda = -(gradient without those rows) must lie within each row's
+    subgradient range, v_i |g_i| just off the kink (v_i / b for laplace); the row with the largest
+    excess is released and the solve repeated.  Returns (theta, converged, iterations)."""
     beta = theta[:p] * inv_c
     b = theta[p] if fit_intercept else 0.0
     raw = X @ beta + b + o
     ex = target.exact
     r = np.where(ex, target.lower - raw, np.inf)
     scale = float(np.exp(theta[k])) if theta.size > k else 1.0
-    rows = np.flatnonzero(np.abs(r) <= 1e-7 * scale)
-    if rows.size == 0:
-        return theta, False, 0
-    Xa = X[rows]
-    Xa = Xa.toarray() if sparse.issparse(Xa) else np.asarray(Xa)
-    Z = Xa * inv_c
-    if fit_intercept:
-        Z = np.column_stack([Z, np.ones(rows.size)])
-    rhs = target.lower[rows] - (o[rows] if isinstance(o, np.ndarray) else o)
-    base = linalg.lstsq(Z, rhs)[0]
-    N = linalg.null_space(Z)
-    m = N.shape[1]
-    rest = theta[k:]
+    near = np.abs(r) <= 1e-4 * scale
+    rows = np.flatnonzero(near)
+    rows = rows[np.argsort(np.abs(r[rows]), kind="stable")[:k]]  # at most one per free coefficient
+    iters = 0
+    while rows.size:
+        Xa = X[rows]
+        Xa = Xa.toarray() if sparse.issparse(Xa) else np.asarray(Xa)
+        Z = Xa * inv_c
+        if fit_intercept:
+            Z = np.column_stack([Z, np.ones(rows.size)])
+        y_a = target.lower[rows]
+        rhs = y_a - (o[rows] if isinstance(o, np.ndarray) else o)
+        base = linalg.lstsq(Z, rhs)[0]
+        N = linalg.null_space(Z)
+        m = N.shape[1]
 
-    def full(u):
-        return np.concatenate([base + N @ u[:m], u[m:]])
+        def full(u):
+            return np.concatenate([base + N @ u[:m], u[m:]])
 
-    u0 = np.concatenate([N.T @ (theta[:k] - base), rest])
-    res = optimize.minimize(lambda u: objective(full(u)),
-                            u0, jac=lambda u: np.concatenate([N.T @ gradient(full(u))[:k], gradient(full(u))[k:]]),
-                            method="BFGS", options={"gtol": tol, "maxiter": 1000})
-    g = gradient(full(res.x))
-    ok = bool(np.max(np.abs(np.concatenate([N.T @ g[:k], g[k:]])), initial=0.0) <= tol)
-    return full(res.x), ok, int(res.nit)
+        def reduced_grad(u):
+            g = gradient(full(u), drop=rows)
+            return np.concatenate([N.T @ g[:k], g[k:]])
+
+        u0 = np.concatenate([N.T @ (theta[:k] - base), theta[k:]])
+        res = optimize.minimize(lambda u: objective(full(u)), u0, jac=reduced_grad, method="BFGS",
+                                options={"gtol": tol, "maxiter": 1000})
+        iters += int(res.nit)
+        new = full(res.x)
+        ok = bool(np.max(np.abs(reduced_grad(res.x)), initial=0.0) <= tol)
+        if not ok:
+            return new, False, iters
+        # the multipliers of the held rows, and each row's subgradient range at the kink
+        g = gradient(new, drop=rows)[:k]
+        lam = linalg.lstsq(Z.T, -g)[0]
+        fam = family_at(new[k:])
+        with np.errstate(all="ignore"):
+            step = 1e-8 * max(1.0, float(np.max(np.abs(y_a))))
+            bound = v[rows] * np.minimum(np.abs(fam._grad_hess(y_a, y_a + step)[0]),
+                                         np.abs(fam._grad_hess(y_a, y_a - step)[0]))
+        excess = np.abs(lam) - bound * (1.0 + 1e-6) - tol
+        if not np.any(excess > 0):
+            return new, True, iters
+        rows = np.delete(rows, int(np.argmax(excess)))
+        theta = new
+    return theta, False, iters
