@@ -410,6 +410,8 @@ def test_fast_kernel_agrees_with_the_log_space_terms(name):
     ok_h = (np.abs(h - h0) <= 1e-7 * np.abs(h0) + 1e-11 * g0 * g0) | ~trusted
     # where the log-space Hessian is lost to cancellation it takes the surrogate g^2; the linear
     # space keeps the exact value there: check it against finite differences of the gradient
+    if name == "laplace":  # a bound at raw sits on the density's kink: no second derivative there
+        ok_h |= (lo == r4) | (hi == r4)
     took = trusted & ~ok_h & (h0 == g0 * g0) & (h < h0)
     step = 1e-4
     with np.errstate(all="ignore"):

@@ -216,6 +216,9 @@ class TailLaw:
     defers = True
     #: S0(z) = F0(-z): ``left`` and the upper tail follow from ``right`` and the lower tail
     symmetric = False
+    #: None, or ``closed(z_lo, z_hi)`` -> (s g, s^2 h) of closed intervals in closed form (no
+    #: rows left for the log-space path)
+    closed = None
 
     def pdf(self, z):  # pragma: no cover - abstract
         raise NotImplementedError
@@ -383,6 +386,13 @@ def _closed(law, s, tl, th, raw):
     if s != 1.0:
         zl /= s
         zh /= s
+    if law.closed is not None:  # the law's own closed form, in z units
+        g, h = law.closed(zl, zh)
+        if s != 1.0:
+            g /= s
+            h /= s
+            h /= s
+        return g, h, None
     upper = zl + zh
     upper = upper > 2.0 * law.median
     t_lo, a = law.tail_pdf(zl, upper)

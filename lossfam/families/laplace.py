@@ -105,10 +105,32 @@ class LaplaceTails(TailLaw):
         z >= 0:  r = f0 / S0 = 1,            c = r + psi = 0  (the linear tail: surrogate g^2)
         z <  0:  r = e / (2 - e),            c = r + 1 = 2 / (2 - e)
 
-    and left(z) = right(-z) (symmetric law)."""
+    and left(z) = right(-z) (symmetric law).  A closed interval z_lo < z_hi on one linear tail has
+    P proportional to e^(+-raw / b): gradient -+1 / b, Hessian 0 (the surrogate g^2 = 1 / b^2).
+    One that holds the mode (z_lo < 0 < z_hi) has, with e_lo = expm1(z_lo) and e_hi = expm1(-z_hi)
+    (each in (-1, 0): a sum without cancellation), P = -(e_lo + e_hi) / 2, a = f0(z_hi) / P =
+    (1 + e_hi) / (2 P), b = f0(z_lo) / P = (1 + e_lo) / (2 P), psi(z_hi) = -1 and psi(z_lo) = 1:
+
+        gradient = (a - b) / b_scale,   Hessian = (a + b + (a - b)^2) / b_scale^2   (> 0, exact)."""
 
     symmetric = True
     defers = False
+
+    @staticmethod
+    def closed(zl, zh):
+        g = np.where(zl >= 0, -1.0, 1.0)
+        h = np.ones(zl.shape)
+        mode = (zl < 0) & (zh > 0)
+        if mode.any():
+            e_lo = np.expm1(zl[mode])
+            e_hi = np.expm1(np.negative(zh[mode]))
+            p2 = np.add(e_lo, e_hi)  # -2 P
+            a = (1.0 + e_hi) / -p2
+            b = (1.0 + e_lo) / -p2
+            gm = a - b
+            g[mode] = gm
+            h[mode] = a + b + gm * gm
+        return g, h
 
     def pdf(self, z):
         return 0.5 * np.exp(-np.abs(z))
