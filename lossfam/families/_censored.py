@@ -261,7 +261,7 @@ class TailLaw:
         with np.errstate(divide="ignore", invalid="ignore", over="ignore", under="ignore"):
             r = self.pdf(z) / tail
             c = r + psi
-            c[~(c > ROUNDING * (r + np.abs(psi)))] = 0.0
+            np.copyto(c, 0.0, where=~(c > ROUNDING * (r + np.abs(psi))))
         r[~(tail >= TINY)] = np.nan
         return r, c
 
@@ -373,9 +373,9 @@ def _one_sided(law, s, t, raw, right):
         g /= s
         h /= s  # twice, not by s^2: s^2 may overflow or underflow where the quotient does not
         h /= s
-    sur = ~(h > 0)
-    if sur.any():
-        h[sur] = g[sur] * g[sur]
+    ok = h > 0
+    if not ok.all():  # the surrogate g^2 (np.copyto: no boolean gather and scatter)
+        np.copyto(h, g * g, where=~ok)
     return g, h, redo
 
 
@@ -419,9 +419,10 @@ def _closed(law, s, tl, th, raw):
     g2 = g * g
     h += g2
     size += g2
-    sur = ~(h > ROUNDING * size)
-    if sur.any():
-        h[sur] = g2[sur]
+    size *= ROUNDING
+    ok = h > size
+    if not ok.all():
+        np.copyto(h, g2, where=~ok)
     return g, h, redo
 
 

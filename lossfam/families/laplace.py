@@ -102,7 +102,8 @@ class LaplaceTails(TailLaw):
     r"""The standard Laplace law in linear space for the censored gradient and Hessian
     (lossfam.families._censored.TailLaw).  Right-censored at z, with e = e^z for z < 0:
 
-        z >= 0:  r = f0 / S0 = 1,            c = r + psi = 0  (the linear tail: surrogate g^2)
+        z >= 0:  r = f0 / S0 = 1,            c = r + psi = 0: the linear tail, whose Hessian 0 is
+                 replaced by the surrogate g^2 = r^2 / b^2, i.e. c = r = 1 is returned
         z <  0:  r = e / (2 - e),            c = r + 1 = 2 / (2 - e)
 
     and left(z) = right(-z) (symmetric law).  A closed interval z_lo < z_hi on one linear tail has
@@ -155,7 +156,7 @@ class LaplaceTails(TailLaw):
         e = np.exp(np.minimum(z, 0.0))
         d = 2.0 - e
         pos = z >= 0
-        return np.where(pos, 1.0, e / d), np.where(pos, 0.0, 2.0 / d)
+        return np.where(pos, 1.0, e / d), np.where(pos, 1.0, 2.0 / d)
 
 
 LAPLACE_TAILS = LaplaceTails()
