@@ -53,6 +53,17 @@ unit on laplace's tails.
 
 Exact rows (lo == hi) use the family's own ``_nll`` and ``_grad_hess``, so a
 target with no censored row gives today's numbers bit for bit.
+
+The gradient and Hessian, fast
+------------------------------
+The log-space terms above serve the nll, and the gradient and Hessian of families that declare
+only their pieces.  A family that also declares its standard law in linear space
+(``Family._tail_law``, a :class:`TailLaw`) gets ``censored_grad_hess`` by kind of row: the
+family's own kernel over all rows (censored rows given a stand-in y, then overwritten), the
+one-sided rows by their hazard ratio alone, the closed intervals by the difference of their
+smaller-side tails, block by block (``BLOCK_ROWS``), with the row split and the transformed
+bounds kept on the target; the log-space terms only for the rows whose tails underflow.  Both
+writings are checked against each other in the tests.
 """
 from __future__ import annotations
 
