@@ -1826,3 +1826,189 @@ def ridge_pinball(X, y, v, offset, tau, weight_factor, alpha, fit_intercept, max
         "the ridge-penalised pinball problem: no solution passed the optimality certificate "
         f"after {max_iter} rounds of the active-set correction"
     )
+
+
+def censored_direct(fam, X, target, w, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept):
+    r"""Censored fits of families with a surrogate Hessian (laplace, student_t): direct minimisation
+    of the exact objective F (module docstring) jointly over the coefficients, the intercept and the
+    logs of the parameters in ``fam.censored_fit``, with ``nll`` the censored nll
+    (lossfam.families._censored).
+
+    Newton's iteration is not used here: laplace's nll has a kink at every exact row
+    (|y - raw|) and student_t's is not convex, so their Hessians are surrogates, and alternating
+    majorise-minimise steps with the scale fit converges too slowly.  Instead, on standardised
+    columns x_j / c_j (c_j = sqrt(sum_i v_i x_ij^2), as in ``newton``):
+
+    1. BFGS (scipy.optimize.minimize) with the exact gradient in the coefficients and intercept
+       (X^T (v g) + alpha coef, sum v g; g the censored gradient) and central differences
+       (step 1e-6) in the log parameters, to a gradient below ``tol``;
+    2. where BFGS stops without meeting that tolerance (a kink: laplace's exact rows where
+       raw = y), rounds of: Nelder-Mead from the best point (xatol 1e-10, fatol 1e-15); the
+       family's own maximum-likelihood fit of the parameters given the coefficients
+       (``Family.fit_nuisance``, smooth and one-dimensional, where a direct search stalls
+       first); and BFGS on the kinks held: the exact rows nearest their kink (|y - raw| <=
+       1e-4 scale, at most one per coefficient) are constrained to raw = y (coefficients in the
+       null space of those rows, from a particular solution by least squares), where the
+       objective is smooth, so BFGS meets the gradient tolerance there if the set is right; a
+       held row whose multiplier lies outside its subgradient range is released and the solve
+       repeated (``_on_kinks``); ``converged`` when the gradient tolerance and the ranges hold.  Each step is kept only where it
+       lowers F; the rounds stop when one no longer lowers F by more than its rounding.  A direct search: meant for a handful of columns (it is slow
+       and may stop short beyond about ten parameters; ``converged`` is then False).
+    """
+    import dataclasses
+
+    from ..families._censored import censored_grad_hess, censored_nll
+
+    names = [n for n in fam.censored_fit if n in fam.params]
+    p = X.shape[1]
+    c = column_scales(X, v)
+    inv_c = 1.0 / c
+    o = 0.0 if offset is None else offset
+    k = p + (1 if fit_intercept else 0)
+
+    def unpack(theta):
+        beta = theta[:p] * inv_c
+        b = theta[p] if fit_intercept else 0.0
+        return beta, b, theta[k:]
+
+    def family_at(logp):
+        if not names:
+            return fam
+        try:
+            with np.errstate(over="ignore", under="ignore"):
+                return dataclasses.replace(fam, **{n: float(np.exp(x)) for n, x in zip(names, logp)})
+        except ValueError:
+            return None
+
+    def objective(theta):
+        beta, b, logp = unpack(theta)
+        f2 = family_at(logp)
+        if f2 is None:
+            return np.inf
+        raw = X @ beta + b + o
+        with np.errstate(all="ignore"):
+            val = float(np.dot(v, censored_nll(f2, target, raw))) + 0.5 * alpha * float(beta @ beta)
+        return val if np.isfinite(val) else np.inf
+
+    def gradient(theta, drop=None):
+        """dF/dtheta; ``drop``: rows left out of the coefficient part (kink rows, whose share is a
+        multiplier)."""
+        beta, b, logp = unpack(theta)
+        f2 = family_at(logp)
+        out = np.zeros_like(theta)
+        if f2 is None:
+            return out
+        raw = X @ beta + b + o
+        with np.errstate(all="ignore"):
+            g = censored_grad_hess(f2, target, raw)[0]
+        vg = v * g
+        if drop is not None:
+            vg[drop] = 0.0
+        out[:p] = (X.T @ vg + alpha * beta) * inv_c
+        if fit_intercept:
+            out[p] = vg.sum()
+        for j in range(len(names)):
+            e = np.zeros_like(theta)
+            e[k + j] = 1e-6
+            out[k + j] = (objective(theta + e) - objective(theta - e)) / 2e-6
+        return out
+
+    theta = np.concatenate([np.asarray(coef, dtype=float) * c, [intercept] if fit_intercept else [],
+                            np.log([fam.params[n] for n in names])])
+    res = optimize.minimize(objective, theta, jac=gradient, method="BFGS",
+                            options={"gtol": tol, "maxiter": max(50, 20 * max_iter)})
+    theta, n_iter = res.x, int(res.nit)
+    grad_norm = float(np.max(np.abs(gradient(theta)))) if theta.size else 0.0
+    converged = grad_norm <= tol
+    if not converged:
+        f = objective(theta)
+        for _ in range(20):
+            f0 = f
+            nm = optimize.minimize(objective, theta, method="Nelder-Mead",
+                                   options={"xatol": 1e-10, "fatol": 1e-15, "maxfev": 4000 * theta.size,
+                                            "adaptive": theta.size > 4})
+            n_iter += int(nm.nit)
+            if nm.fun < f:
+                theta, f = nm.x, nm.fun
+            if names:  # the parameters given the coefficients, by the family's own (smooth, 1-D) fit
+                beta, b, logp = unpack(theta)
+                refit = family_at(logp).fit_nuisance(target, X @ beta + b + o, w)
+                trial = np.concatenate([theta[:k], np.log([refit.params[n] for n in names])])
+                ft = objective(trial)
+                if ft < f:
+                    theta, f = trial, ft
+            # the exact rows at the kink (raw = y) held there: a smooth problem on the rest
+            trial, ok, it = _on_kinks(objective, gradient, family_at, theta, X, target, v, o, inv_c, p, k,
+                                      fit_intercept, tol)
+            n_iter += it
+            ft = objective(trial)
+            if ft <= f:
+                theta, f = trial, ft
+                converged = ok
+            if not f0 - f > 64 * np.finfo(float).eps * max(1.0, abs(f0)):
+                converged = converged or bool(nm.success)
+                break
+    beta, b, logp = unpack(theta)
+    f2 = family_at(logp)
+    raw = X @ beta + b + o
+    return LinearFit(coef=beta, intercept=float(b), raw=raw, n_iter=n_iter, objective=objective(theta),
+                     grad_norm=grad_norm, converged=converged, family=f2)
+
+
+def _on_kinks(objective, gradient, family_at, theta, X, target, v, o, inv_c, p, k, fit_intercept, tol):
+    """BFGS with the exact rows near their kink (|y - raw| <= 1e-4 scale, at most as many as there
+    are coefficients, nearest first) held at raw = y (``censored_direct``, step 2), then the optimality check of the held rows: the multipliers
+    lambda solving Z^T lambda = -(gradient without those rows) must lie within each row's
+    subgradient range, v_i |g_i| just off the kink (v_i / b for laplace); the row with the largest
+    excess is released and the solve repeated.  Returns (theta, converged, iterations)."""
+    beta = theta[:p] * inv_c
+    b = theta[p] if fit_intercept else 0.0
+    raw = X @ beta + b + o
+    ex = target.exact
+    r = np.where(ex, target.lower - raw, np.inf)
+    scale = float(np.exp(theta[k])) if theta.size > k else 1.0
+    near = np.abs(r) <= 1e-4 * scale
+    rows = np.flatnonzero(near)
+    rows = rows[np.argsort(np.abs(r[rows]), kind="stable")[:k]]  # at most one per free coefficient
+    iters = 0
+    while rows.size:
+        Xa = X[rows]
+        Xa = Xa.toarray() if sparse.issparse(Xa) else np.asarray(Xa)
+        Z = Xa * inv_c
+        if fit_intercept:
+            Z = np.column_stack([Z, np.ones(rows.size)])
+        y_a = target.lower[rows]
+        rhs = y_a - (o[rows] if isinstance(o, np.ndarray) else o)
+        base = linalg.lstsq(Z, rhs)[0]
+        N = linalg.null_space(Z)
+        m = N.shape[1]
+
+        def full(u):
+            return np.concatenate([base + N @ u[:m], u[m:]])
+
+        def reduced_grad(u):
+            g = gradient(full(u), drop=rows)
+            return np.concatenate([N.T @ g[:k], g[k:]])
+
+        u0 = np.concatenate([N.T @ (theta[:k] - base), theta[k:]])
+        res = optimize.minimize(lambda u: objective(full(u)), u0, jac=reduced_grad, method="BFGS",
+                                options={"gtol": tol, "maxiter": 1000})
+        iters += int(res.nit)
+        new = full(res.x)
+        ok = bool(np.max(np.abs(reduced_grad(res.x)), initial=0.0) <= tol)
+        if not ok:
+            return new, False, iters
+        # the multipliers of the held rows, and each row's subgradient range at the kink
+        g = gradient(new, drop=rows)[:k]
+        lam = linalg.lstsq(Z.T, -g)[0]
+        fam = family_at(new[k:])
+        with np.errstate(all="ignore"):
+            step = 1e-8 * max(1.0, float(np.max(np.abs(y_a))))
+            bound = v[rows] * np.minimum(np.abs(fam._grad_hess(y_a, y_a + step)[0]),
+                                         np.abs(fam._grad_hess(y_a, y_a - step)[0]))
+        excess = np.abs(lam) - bound * (1.0 + 1e-6) - tol
+        if not np.any(excess > 0):
+            return new, True, iters
+        rows = np.delete(rows, int(np.argmax(excess)))
+        theta = new
+    return theta, False, iters

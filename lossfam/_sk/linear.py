@@ -216,15 +216,18 @@ def _fit_censored(est, fam, X, target, sample_weight, offset, owner):
     """Penalised maximum likelihood of a censored target (Tobit for gaussian, accelerated failure
     time for lognormal and weibull): Newton's method on the censored nll from the censored
     baseline, alternated with the nuisance fit (``fam.censored_fit``) until the parameters settle,
-    since under censoring the coefficients depend on them."""
-    if not fam.exact_hessian and not target.exact.all():
-        raise ValueError(f"{owner}: {fam.name} has a surrogate Hessian, and the linear solvers' "
-                         "majorise-minimise steps on a censored likelihood with a fitted scale converge too "
-                         "slowly to be offered; fit censored targets with a smooth family (gaussian, "
-                         "lognormal, weibull, gamma) or with a boosting engine")
+    since under censoring the coefficients depend on them.  Families with a surrogate Hessian
+    (laplace, student_t) are fitted by direct minimisation of the same objective
+    (``_solvers.censored_direct``)."""
     w = _check_sample_weight(sample_weight, target.lower, owner)
     v = w / w.sum()
     intercept = fam.baseline(target, w, offset=offset) if est.fit_intercept else 0.0
+    if not fam.exact_hessian and not target.exact.all():
+        if fam.censored_fit and fam.params:  # a starting scale for the constant fit
+            start = np.full(target.size, intercept) + (0.0 if offset is None else offset)
+            fam = fam.fit_nuisance(target, start, w)
+        return _solvers.censored_direct(fam, X, target, w, v, offset, float(est.alpha), est.fit_intercept,
+                                        est.max_iter, est.tol, np.zeros(X.shape[1]), intercept)
     args = (X, target, w, v, offset, float(est.alpha), est.fit_intercept, est.max_iter, est.tol,
             np.zeros(X.shape[1]), intercept)
     view = _CensoredView(fam)
@@ -370,9 +373,16 @@ class _RawScoreRegressorMethods:
         Pipeline, GridSearchCV or cross_val_score it arrives only through
         scikit-learn's metadata routing (``sklearn.set_config(enable_metadata_routing=True)``
         and ``est.set_score_request(offset=True)``, as for sample_weight); a
-        model fitted with an offset and scored without one warns.
+        model fitted with an offset and scored without one warns.  An IntervalTarget is
+        accepted when all its rows are exact; censored rows have no unit deviance, so they are
+        refused with a pointer to ``lossfam.sklearn.scorer(family, "nll")``.
         """
         _warn_missing_offset(self, offset)
+        if isinstance(y, IntervalTarget) and not y.exact.all():
+            raise ValueError(
+                f"{type(self).__name__}.score: D^2 rests on the unit deviance, which censored rows do not "
+                f"have ({int((~y.exact).sum())} here); score censored targets by their likelihood with "
+                f"lossfam.sklearn.scorer({self.family_.name!r}, 'nll') (the mean censored nll)")
         pred = self.predict(X, offset=offset)
         return d2_score(y, pred, self.family_, sample_weight=sample_weight)
 
@@ -487,7 +497,7 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         self.n_iter_ = int(fit.n_iter)
         self.family_ = fit.family
         if not fit.converged:
-            warnings.warn(f"{owner} ({fam.name}, censored): Newton's method stopped after {fit.n_iter} "
+            warnings.warn(f"{owner} ({fam.name}, censored): the solver stopped after {fit.n_iter} "
                           f"iterations with max |gradient| = {fit.grad_norm:.3g} > tol = {self.tol}",
                           ConvergenceWarning, stacklevel=2)
         return self
