@@ -4,7 +4,7 @@ Poisson and gamma (log link), n x p = 500000 x 30 by default, no penalty.
 For each family the script times (median of --repeats rounds; in each round
 every contender fits once, in turn, on the same data):
 
-* LikelihoodRegressor(family=..., alpha=0) -- Newton, one pass over X per step, tol=1e-8
+* LikelihoodRegressor(family=..., alpha=0) -- Newton, one pass over X per step, tol=1e-8 (its default)
 * scikit-learn PoissonRegressor / GammaRegressor(solver="lbfgs", alpha=0) at
   its default tol=1e-4, and at tol=1e-8
 * scikit-learn ...(solver="newton-cholesky", alpha=0) at its default tol
@@ -19,10 +19,13 @@ than wall time when the machine is shared.
 Two more sections:
 
 * equilibration cost on the same well-scaled data: the time of the column
-  scales (``_solvers.column_scales``; inside the fit they are accumulated in
-  the first pass over X), of the symmetric scaling of each Newton matrix
-  (``_solvers._equilibrate``) and of the refinement at the end
-  (``_solvers._refine_dense``), as shares of the whole fit;
+  scales computed exactly in a separate pass (``_solvers.column_scales``; not
+  done by the fit, shown for scale), of the column scales the fit takes from
+  its start's row subsample (``_solvers._scales_from_subsample``; the squares
+  themselves come from the subsample fit's first pass over its rows), of the
+  symmetric scaling of each Newton matrix (``_solvers._equilibrate``) and of
+  the refinement at the end (``_solvers._refine_dense``), as shares of the
+  whole fit;
 * sparse: a claim-count scenario with ten categorical rating factors of 200
   levels each, one-hot encoded (first level dropped) into a CSR matrix of
   --sparse-n rows x 1990 columns (~10 non-zeros a row), poisson, alpha=0,
@@ -35,7 +38,8 @@ Two more sections:
   data; medians over --repeats children.
 
 Run:  python benchmarks/linear_fit.py [--n 500000] [--p 30] [--repeats 3] [--sparse-n 1000000]
-      (--section dense|equilibration|sparse to run one section)
+      (--section dense|equilibration|sparse to run one section; --layout F|dataframe for the
+      dense section on column-major X or a DataFrame, as pandas hands its values over)
 Synthetic data only (a demo scenario: standard-normal features, coefficients
 drawn once from N(0, 0.15^2); for the sparse section level effects from N(0, 0.3^2)).
 """
@@ -55,6 +59,7 @@ import warnings
 # while preempted make level-3 calls (the Newton solver's factorisations) up to 20x slower
 os.environ.setdefault("OMP_NUM_THREADS", "1")
 os.environ.setdefault("OPENBLAS_NUM_THREADS", "1")
+os.environ.setdefault("MKL_NUM_THREADS", "1")
 
 import numpy as np  # noqa: E402
 from sklearn.exceptions import ConvergenceWarning  # noqa: E402
@@ -93,20 +98,29 @@ def fit_once(make, X, y):
 
 
 def alternated(rows, X, y, repeats):
-    """Median wall and CPU time of each contender; each round fits every contender once, in turn."""
+    """Median wall and CPU time of each contender; each round fits every contender once, in turn
+    (the order reversed every other round, so no contender always runs right after the same one)."""
     wall = {label: [] for label, _ in rows}
     cpu = {label: [] for label, _ in rows}
     last = {}
-    for _ in range(repeats):
-        for label, make in rows:
+    for r in range(repeats):
+        for label, make in (rows if r % 2 == 0 else rows[::-1]):
             w, c, last[label] = fit_once(make, X, y)
             wall[label].append(w)
             cpu[label].append(c)
     return [(label, float(np.median(wall[label])), float(np.median(cpu[label])), last[label]) for label, _ in rows]
 
 
+def load_average():
+    try:
+        return "load average %.2f %.2f %.2f" % os.getloadavg()
+    except OSError:
+        return "load average unknown"
+
+
 def dense_section(args):
-    print(f"n = {args.n}, p = {args.p}, median of {args.repeats} alternating rounds; "
+    print(f"{time.strftime('%Y-%m-%d %H:%M:%S', time.gmtime())} UTC, {load_average()}")
+    print(f"n = {args.n}, p = {args.p}, X {args.layout}, median of {args.repeats} alternating rounds; "
           "coef diff = max relative difference from the reference (newton-cholesky, tol=1e-12)")
     print()
     print(f"{'family':8s} {'estimator':42s} {'wall [s]':>9s} {'ratio':>6s} {'CPU [s]':>8s} {'ratio':>6s} "
@@ -114,6 +128,11 @@ def dense_section(args):
     sk_cls = {"poisson": PoissonRegressor, "gamma": GammaRegressor}
     for fam in ("poisson", "gamma"):
         X, y = make_data(args.n, args.p, fam)
+        if args.layout == "F":
+            X = np.asfortranarray(X)
+        elif args.layout == "dataframe":
+            import pandas as pd
+            X = pd.DataFrame(X, columns=[f"x{j}" for j in range(X.shape[1])])  # column-major values
         cls = sk_cls[fam]
         ref = cls(alpha=0.0, solver="newton-cholesky", tol=1e-12, max_iter=1000).fit(X, y)
         ref_params = params(ref)
@@ -131,21 +150,25 @@ def dense_section(args):
                   f"{int(np.max(est.n_iter_)):7d} {diff:10.2e}")
     print()
     print("ratio = time / time of the default lbfgs fit of the same family (target for LikelihoodRegressor: <= 1.0)")
+    print(f"{time.strftime('%Y-%m-%d %H:%M:%S', time.gmtime())} UTC, {load_average()}")
 
 
 def equilibration_section(args):
     """Share of a fit spent on what the scale-free solver adds: column scales, matrix scaling, refinement."""
     X, y = make_data(args.n, args.p, "poisson")
     v = np.full(args.n, 1.0 / args.n)
-    t_scale, t_fit = [], []
-    spent = {"_equilibrate": [], "_refine_dense": []}
+    sub = np.ascontiguousarray(X[::_solvers.SUBSAMPLE_FRACTION])
+    v_sub = np.full(sub.shape[0], 1.0 / sub.shape[0])
+    t_scale, t_sub, t_fit = [], [], []
+    spent = {"_scales_from_subsample": [], "_equilibrate": [], "_refine_dense": [], "_raw": []}
     originals = {name: getattr(_solvers, name) for name in spent}
 
     def timing(name):
         def wrapper(*a, **k):
             t0 = time.perf_counter()
             out = originals[name](*a, **k)
-            spent[name][-1] += time.perf_counter() - t0
+            if name != "_raw" or (a[0].shape[0] == args.n and a[3] is None):  # _raw: X d on all rows only
+                spent[name][-1] += time.perf_counter() - t0
             return out
         return wrapper
 
@@ -156,6 +179,9 @@ def equilibration_section(args):
             t0 = time.perf_counter()
             _solvers.column_scales(X, v)
             t_scale.append(time.perf_counter() - t0)
+            t0 = time.perf_counter()
+            _solvers.weighted_column_squares(sub, v_sub)
+            t_sub.append(time.perf_counter() - t0)
             for name in spent:
                 spent[name].append(0.0)
             t0 = time.perf_counter()
@@ -164,14 +190,22 @@ def equilibration_section(args):
     finally:
         for name, f in originals.items():
             setattr(_solvers, name, f)
-    fit, sc = np.median(t_fit), np.median(t_scale)
+    fit, sc, sq = np.median(t_fit), np.median(t_scale), np.median(t_sub)
+    ss = np.median(spent["_scales_from_subsample"])
     eq, rf = np.median(spent["_equilibrate"]), np.median(spent["_refine_dense"])
-    print(f"poisson, n = {args.n}, p = {args.p} (standard-normal columns), medians of {args.repeats}")
+    xd = np.median(spent["_raw"])
+    print(f"poisson, n = {args.n}, p = {args.p} (standard-normal columns), medians of {args.repeats}; "
+          f"{time.strftime('%H:%M:%S', time.gmtime())} UTC, {load_average()}")
     print(f"  whole fit                              {fit:8.3f} s")
-    print(f"  column scales as a separate pass       {sc:8.3f} s  ({100 * sc / fit:5.1f}% of the fit; "
-          "in the fit they share the first pass)")
+    print(f"  exact column scales, a separate pass   {sc:8.3f} s  ({100 * sc / fit:5.1f}% of the fit; "
+          "not made by the fit)")
+    print(f"  squares on the start's rows, alone     {sq:8.3f} s  ({100 * sq / fit:5.1f}% of the fit; "
+          "in the fit they share the subsample fit's first pass)")
+    print(f"  column scales from those squares       {ss:8.3f} s  ({100 * ss / fit:5.1f}% of the fit)")
     print(f"  scaling of the Newton matrices         {eq:8.3f} s  ({100 * eq / fit:5.1f}% of the fit)")
     print(f"  refinement at the end                  {rf:8.3f} s  ({100 * rf / fit:5.1f}% of the fit)")
+    print(f"  final unchecked correction X d         {xd:8.3f} s  ({100 * xd / fit:5.1f}% of the fit; "
+          "early stop or refinement)")
 
 
 def make_sparse(n, factors=10, levels=200, seed=0):
@@ -269,6 +303,8 @@ def main():
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--sparse-n", type=int, default=1_000_000)
     ap.add_argument("--section", choices=("all", "dense", "equilibration", "sparse"), default="all")
+    ap.add_argument("--layout", choices=("C", "F", "dataframe"), default="C",
+                    help="dense section: X row-major, column-major, or a pandas DataFrame")
     args = ap.parse_args()
     if args.section in ("all", "dense"):
         dense_section(args)

@@ -14,7 +14,7 @@ on a Dask cluster.  ``lossfam.interval_target`` / ``lossfam.right_censored`` bui
 and interval targets (``lossfam.censoring``), accepted wherever a target goes.
 """
 from ._boost.cluster import ClusterData
-from ._boost.model import BoostedFit, load
+from ._boost.model import BoostedFit, SeveralScoreFit, load
 from .censoring import IntervalTarget, interval_target, right_censored
 from .families import Family, SeveralScoreFamily
 from .registry import available, family, register, unregister
@@ -22,4 +22,4 @@ from .selection import rank_families  # numpy/scipy only at import; engines, pan
 
 __version__ = "0.1.0"
 
-__all__ = ["BoostedFit", "ClusterData", "Family", "SeveralScoreFamily", "IntervalTarget", "interval_target", "right_censored", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]
+__all__ = ["BoostedFit", "SeveralScoreFit", "ClusterData", "Family", "SeveralScoreFamily", "IntervalTarget", "interval_target", "right_censored", "available", "load", "rank_families", "family", "register", "unregister", "__version__"]

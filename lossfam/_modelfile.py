@@ -5,7 +5,7 @@ Layout (no pickle; readable with any JSON reader)::
     {"lossfam_model": 2,                  # format version
      "engine": "lightgbm" | "xgboost",
      "family": {"name": ..., "params": {...}},
-     "baseline": <float>,                 # the starting raw score
+     "baseline": <float> | [<float>, ...], # the starting raw score (k of them: several-score family)
      "extra": {...},                      # engine-specific settings
      "model": <the engine's own model text or JSON, as a string>,
      "integrity": {"algorithm": "sha256" | "hmac-sha256", "digest": <hex>}}
@@ -53,13 +53,18 @@ def write_model_file(path, *, engine: str, family, baseline: float, model: str, 
     """Write a model document to ``path`` atomically, sealed with a checksum (or an HMAC when ``key`` is given)."""
     if engine not in ENGINES:
         raise ValueError(f"engine must be one of {ENGINES}, got {engine!r}")
-    if not (isinstance(baseline, (int, float)) and math.isfinite(baseline)):
+    several = isinstance(baseline, (list, tuple))
+    if several:
+        if not baseline or not all(isinstance(v, (int, float)) and math.isfinite(v) for v in baseline):
+            raise ValueError(f"the baseline {baseline!r} is not a list of finite numbers")
+        baseline = [float(v) for v in baseline]
+    elif not (isinstance(baseline, (int, float)) and math.isfinite(baseline)):
         raise ValueError(f"the baseline {baseline!r} is not a finite number")
     body = {
         _KEY: FORMAT_VERSION,
         "engine": engine,
         "family": {"name": family.name, "params": dict(family.params)},
-        "baseline": float(baseline),
+        "baseline": baseline if several else float(baseline),
         "extra": dict(extra or {}),
         "model": model,
     }
@@ -139,8 +144,9 @@ def read_model_file(path, *, engine: str | None = None, key=None) -> dict:
     if not (isinstance(fam, dict) and set(fam) == {"name", "params"} and isinstance(fam["name"], str)):
         raise ValueError(f"{path}: the family entry must be {{'name': str, 'params': {{...}}}}")
     params = _number_map(fam["params"], f"{path}: the family parameters")
-    if not _filecheck.is_number(doc["baseline"]):
-        raise ValueError(f"{path}: the baseline {doc['baseline']!r} is not a finite number")
+    b = doc["baseline"]
+    if not (_filecheck.is_number(b) or (isinstance(b, list) and b and all(_filecheck.is_number(v) for v in b))):
+        raise ValueError(f"{path}: the baseline {doc['baseline']!r} is not a finite number (or a list of them)")
     extra = doc["extra"]
     if not isinstance(extra, dict):
         raise ValueError(f"{path}: 'extra' must be an object, got {type(extra).__name__}")

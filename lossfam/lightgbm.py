@@ -77,10 +77,11 @@ from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
 from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
-from ._boost.model import BoostedFit
+from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
 from ._boost.plan import censored_passes, check_trained, fit_nuisance_or_keep, start_plan, train_in_passes
 from ._boost.scoring import Scorer, raw_from_output
+from ._boost import several as _several
 from .censoring import IntervalTarget
 from .registry import family as make_family
 
@@ -438,7 +439,7 @@ def _constant_booster(lgb, params, data):
 
 def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_names=None, offset=None,
           valid_offsets=None, step_limit=STEP_LIMIT_DEFAULT, native=True, nuisance_set=None, metric_kind="nll",
-          callbacks=None, prefit=True, client=None, **engine_kwargs) -> BoostedFit:
+          callbacks=None, prefit=True, client=None, curvature=None, **engine_kwargs) -> BoostedFit:
     """Train a LightGBM model with the family's nll as the loss; returns a :class:`lossfam.BoostedFit`.
 
     Parameters
@@ -475,12 +476,30 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
         Fit the nuisance parameters at the baseline first when the family's
         location depends on them (``Family.location_needs_nuisance``); False
         trains with the parameters as given.
+    curvature : "newton", "fisher" or "natural"
+        Families with several raw scores per row only (``lossfam.SeveralScoreFamily``): the
+        diagonal curvature of ``family.grad_hess`` (see ``train_several``); None: the family's
+        ``default_curvature``.  One-score families take none.
     **engine_kwargs
         Passed to ``lightgbm.train`` (``feval``, evaluated after lossfam's
         metric; ``keep_training_booster``).
+
+    A family with several raw scores per row trains through :func:`train_several` and returns a
+    :class:`lossfam.SeveralScoreFit`.
     """
     lgb = _lgb()
     fam = make_family(family)
+    if _several.is_several(fam):
+        if nuisance_set is not None or metric_kind != "nll" or prefit is not True or client is not None \
+                or step_limit != STEP_LIMIT_DEFAULT:
+            raise ValueError(f"{fam.name} has several raw scores per row: nuisance_set, metric_kind, prefit, "
+                             "step_limit and client do not apply (every parameter has its own raw score)")
+        return train_several(fam, params, data, num_boost_round, valid_sets=valid_sets, valid_names=valid_names,
+                             offset=offset, valid_offsets=valid_offsets, curvature=curvature, native=native,
+                             callbacks=callbacks, **engine_kwargs)
+    if curvature is not None:
+        raise ValueError(f"curvature={curvature!r} applies to families with several raw scores per row; "
+                         f"{fam.name} has one (its Hessian is the family's own)")
     if isinstance(data, cluster.ClusterData):
         if offset is not None or valid_offsets is not None or callbacks or engine_kwargs:
             raise ValueError("on a Dask cluster the offsets live in ClusterData(offset=...); callbacks and other "
@@ -799,3 +818,113 @@ def _tree_range(booster):
                 stack += [node["left_child"], node["right_child"]]
         lo, hi = lo + min(values), hi + max(values)
     return lo, hi
+
+
+# --------------------------------------------------------------------------- several raw scores per row
+def _scores_per_round(booster):
+    return int(booster.num_model_per_iteration())
+
+
+def _margin_several(fit, X, offset):
+    if _is_dataset(X):
+        raise TypeError("LightGBM predicts from arrays, DataFrames or sparse matrices, not from a Dataset "
+                        "(pass the Dataset's data)")
+    k = fit.family.n_scores
+    raw = np.asarray(fit.booster.predict(X, raw_score=True), dtype=np.float64).reshape(-1, k)
+    raw = raw + fit.baseline
+    o = _several.offset_matrix(fit.family, offset, raw.shape[0], f"{fit.family.name} offset")
+    return raw if o is None else raw + o
+
+
+def _several_objective(fam, curvature, y, w):
+    """The custom objective of a several-score family: a plain function (lightgbm deep-copies params)."""
+    grads = _several.SeveralGradients(fam, curvature, order="F")
+
+    def several_objective(preds, train_data):
+        return grads(y, preds, w)
+    return several_objective
+
+
+def train_several(family, params, data, num_boost_round=100, *, valid_sets=None, valid_names=None, offset=None,
+                  valid_offsets=None, curvature=None, native=True, callbacks=None, **engine_kwargs):
+    """Train a family with k raw scores per row; returns a :class:`lossfam.SeveralScoreFit`.
+
+    LightGBM grows one tree per raw score and round (``num_class = k``) from lossfam's objective:
+    the family's gradient and diagonal curvature (``curvature``: "newton", "fisher" or
+    "natural", ``lossfam.families._several``) at the (n, k) raw scores.  The starting scores are
+    the family's k-vector baseline (given weights and offset) plus the offset, set as each
+    Dataset's (n, k) ``init_score``; ``offset`` / ``valid_offsets`` entries are (n,) (location
+    column) or (n, k).  ``valid_sets`` report the weighted mean nll ("<family>_nll");
+    ``lightgbm.early_stopping`` rolls the model back to its best round.  A family that declares a
+    LightGBM native twin (``native_twins``) trains on it with ``native=True``: LightGBM computes
+    the gradients, lossfam supplies the start, the metric and the file.
+    """
+    lgb = _lgb()
+    fam = make_family(family)
+    call = _Call(lgb, params, data, valid_sets, valid_names, valid_offsets, None, callbacks, engine_kwargs)
+    k = fam.n_scores
+    params = call.params
+    if int(_param(params, ("num_class", "num_classes"), k)) != k:
+        raise ValueError(f"{fam.name} has {k} raw scores per row: num_class is set by lossfam ({k})")
+    for name in ("num_class", "num_classes"):
+        params.pop(name, None)
+    curvature = _several.check_curvature(fam, curvature)
+    _check_no_user_init_score(data, "data")
+    y, w = _several.targets(fam, _field(data, "label"), _field(data, "weight"), "data")
+    plan = _several.several_plan(fam, y, w, offset)
+    starts, sets = {}, {}
+    for j, (vs, vo) in enumerate(zip(call.valid_sets, call.valid_offsets)):
+        if vs is data:
+            if vo is not None:
+                raise ValueError(f"valid_sets[{j}] is the training set: its offset is offset=, not valid_offsets")
+            sets[id(vs)] = (y, w)
+            continue
+        if not isinstance(vs, lgb.Dataset):
+            raise ValueError(f"valid_sets[{j}] must be a lightgbm.Dataset, got {type(vs).__name__}")
+        _check_no_user_init_score(vs, f"valid_sets[{j}]")
+        if plan.offset is not None and vo is None:
+            raise ValueError(f"training used an offset but valid_sets[{j}] has none: its metric would score the rows "
+                             "without their offset; pass valid_offsets (zeros where there truly is none)")
+        vy, vw = _several.targets(fam, _field(vs, "label"), _field(vs, "weight"), f"valid_sets[{j}]")
+        sets[id(vs)] = (vy, vw)
+        starts[j] = plan.start_for(vy.size, vo, f"valid_offsets[{j}]")
+    twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native, guard_is_default=curvature == fam.default_curvature,
+                             params=params)
+    scorer = _several.SeveralScorer(fam)
+
+    def several_metric(preds, eval_data):
+        vy, vw = sets[id(eval_data)]
+        raw = np.asarray(preds, dtype=np.float64).reshape(-1, k)
+        if twin is not None:  # the built-in hands a metric its transformed output (class probabilities)
+            raw = _several.raw_from_output(fam, raw)
+        return scorer.name, scorer.value(vy, raw, vw), False
+    if twin is not None:
+        params.update(twin)
+    else:
+        params["objective"] = _several_objective(fam, curvature, y, w)
+    params["num_class"] = k
+    params.setdefault("metric", "None")
+    touched = [data] + [call.valid_sets[j] for j in starts]
+    try:
+        _set_start(data, plan.start)
+        for j, st in starts.items():
+            _set_start(call.valid_sets[j], st)
+        booster = lgb.train(params, data, num_boost_round=num_boost_round, valid_sets=call.valid_sets or None,
+                            valid_names=call.valid_names,
+                            feval=[several_metric] + call.user_feval if call.valid_sets else None,
+                            callbacks=call.callbacks, keep_training_booster=True, **call.engine_kwargs)
+        best = booster.best_iteration
+        while 0 < best < booster.current_iteration():
+            booster.rollback_one_iter()
+        out = _training_output(booster, copy=True).reshape(-1, k)
+    finally:
+        for ds in touched:
+            _clear_start(ds)
+    if twin is not None:
+        out = _several.raw_from_output(fam, out)
+    _several.check_trained_several(fam, out)
+    if not call.keep_training:
+        booster = lgb.Booster(model_str=booster.model_to_string())
+    info = {"objective": twin["objective"] if twin else "custom", "curvature": curvature,
+            "trees_per_round": k}
+    return SeveralScoreFit(_ENGINE, booster, fam, plan.baseline, best - 1 if best > 0 else None, info)

@@ -70,10 +70,11 @@ from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
 from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
-from ._boost.model import BoostedFit
+from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
 from ._boost.plan import censored_passes, check_trained, fit_nuisance_or_keep, start_plan, train_in_passes
 from ._boost.scoring import Scorer, raw_from_output
+from ._boost import several as _several
 from .censoring import IntervalTarget
 from .registry import family as _as_family
 
@@ -276,7 +277,10 @@ def _booster_from_text(text, extra, path, fam, baseline, info):
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else ""
         raise ValueError(f"{path}: the XGBoost model inside is corrupted or not an XGBoost model ({first})") from None
     stored = _base_score(booster)
-    expected = _base_score_of(fam, baseline, info.get("objective", "custom") != "custom")
+    if _several.is_several(fam):  # the starting scores travel as base_margin, base_score is 0
+        expected = np.float32(0.0)
+    else:
+        expected = _base_score_of(fam, baseline, info.get("objective", "custom") != "custom")
     if stored is not None and stored != expected:
         raise ValueError(
             f"{path}: the baseline {baseline!r} disagrees with the booster's base_score {float(stored)!r}; "
@@ -327,8 +331,10 @@ def _offset_of(dmatrix, fam):
 
 def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=STEP_LIMIT_DEFAULT, native=True,
           nuisance_set=None, metric_kind="nll", early_stopping_rounds=None, evals_result=None, verbose_eval=True,
-          prefit=True, client=None, **engine_kwargs) -> BoostedFit:
-    """Train an XGBoost booster on the family's nll; returns a :class:`lossfam.BoostedFit`.
+          prefit=True, client=None, curvature=None, multi_strategy=None, **engine_kwargs) -> BoostedFit:
+    """Train an XGBoost booster on the family's nll; returns a :class:`lossfam.BoostedFit`
+    (:class:`lossfam.SeveralScoreFit` for a family with several raw scores per row, through
+    :func:`train_several`, which also takes ``curvature`` and ``multi_strategy``).
 
     Parameters
     ----------
@@ -363,6 +369,17 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     """
     xgb = _xgb()
     fam = _as_family(family)
+    if _several.is_several(fam):
+        if nuisance_set is not None or metric_kind != "nll" or prefit is not True or client is not None \
+                or step_limit != STEP_LIMIT_DEFAULT:
+            raise ValueError(f"{fam.name} has several raw scores per row: nuisance_set, metric_kind, prefit, "
+                             "step_limit and client do not apply (every parameter has its own raw score)")
+        return train_several(fam, params, dtrain, num_boost_round, evals=evals, curvature=curvature, native=native,
+                             multi_strategy=multi_strategy, early_stopping_rounds=early_stopping_rounds,
+                             evals_result=evals_result, verbose_eval=verbose_eval, **engine_kwargs)
+    if curvature is not None or multi_strategy is not None:
+        raise ValueError(f"curvature= and multi_strategy= apply to families with several raw scores per row; "
+                         f"{fam.name} has one")
     if isinstance(dtrain, cluster.ClusterData):
         return _train_cluster(fam, params, dtrain, num_boost_round, evals, step_limit, native, nuisance_set,
                               metric_kind, early_stopping_rounds, prefit, client,
@@ -672,3 +689,158 @@ def _tree_range(booster):
         leaves = np.asarray(tree["split_conditions"], dtype=np.float64)[left == -1]
         lo, hi = lo + float(leaves.min()), hi + float(leaves.max())
     return lo, hi
+
+
+# ---------------------------------------------------------------------------- several raw scores per row
+#: the multi-output tree layout used when the caller names none (benchmarks/README, "Several raw scores")
+MULTI_STRATEGY_DEFAULT = "one_output_per_tree"
+
+
+def _scores_per_round(booster):
+    cfg = json.loads(booster.save_config())["learner"]["learner_model_param"]
+    return max(int(cfg.get("num_class", "0")), int(cfg.get("num_target", "1")), 1)
+
+
+def _margin_several(fit, X, offset):
+    xgb = _xgb()
+    fam = fit.family
+    if isinstance(X, xgb.DMatrix):
+        n = X.num_row()
+        if offset is None:
+            bm = X.get_base_margin()
+            offset = None if bm.size == 0 else bm.astype(np.float64)
+        o = _several.offset_matrix(fam, offset, n, f"{fam.name} offset")
+        start = np.tile(fit.baseline, (n, 1)) if o is None else fit.baseline + o
+        original = X.get_base_margin()
+        try:
+            X.set_base_margin(start)
+            out = fit.booster.predict(X, output_margin=True)
+        finally:
+            X.set_base_margin(original)
+    else:
+        n = X.shape[0]
+        o = _several.offset_matrix(fam, offset, n, f"{fam.name} offset")
+        start = np.tile(fit.baseline, (n, 1)) if o is None else fit.baseline + o
+        out = fit.booster.inplace_predict(X, predict_type="margin", base_margin=start)
+    return np.asarray(out, dtype=np.float64).reshape(n, fam.n_scores)
+
+
+class _SeveralObjective:
+    """The custom objective of a several-score family: (n, k) margins in, (n, k) float32 out."""
+
+    def __init__(self, fam, curvature, y, w):
+        self.grads = _several.SeveralGradients(fam, curvature)
+        self.y, self.w = y, w
+        self.k = fam.n_scores
+        self._buf = None
+
+    def __call__(self, preds, dtrain):
+        raw = np.asarray(preds).reshape(-1, self.k)
+        if raw.dtype != np.float64:  # float32 margins: widen into a reused buffer
+            if self._buf is None or self._buf.shape != raw.shape:
+                self._buf = np.empty(raw.shape)
+            np.copyto(self._buf, raw)
+            raw = self._buf
+        return self.grads(self.y, raw, self.w)
+
+
+def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curvature=None, native=True,
+                  multi_strategy=None, early_stopping_rounds=None, evals_result=None, verbose_eval=True,
+                  **engine_kwargs):
+    """Train a family with k raw scores per row; returns a :class:`lossfam.SeveralScoreFit`.
+
+    XGBoost boosts k outputs per row (``num_target = k``, ``tree_method="hist"``) from lossfam's
+    objective: the family's gradient and diagonal curvature (``curvature``: "newton", "fisher" or
+    "natural") at the (n, k) margins.  ``multi_strategy``: "one_output_per_tree" (the default,
+    ``MULTI_STRATEGY_DEFAULT``: k trees per round) or "multi_output_tree" (one tree with
+    k-vector leaves).  The DMatrix's ``base_margin`` is read as the offset ((n,) on the location
+    column, or (n, k)); during training each DMatrix's base_margin is baseline + offset (put back
+    afterwards).  ``evals`` report the weighted mean nll; with ``early_stopping_rounds`` the model
+    is cut back to its best round.  A family that declares an XGBoost native twin trains on it with
+    ``native=True`` (XGBoost computes the gradients; start, metric and file are lossfam's).
+    """
+    xgb = _xgb()
+    fam = _as_family(family)
+    if not isinstance(dtrain, xgb.DMatrix):
+        raise TypeError(f"train expects an xgboost.DMatrix, got {type(dtrain).__name__}")
+    params = dict(params or {})
+    owned = sorted(k for k in ("objective", "base_score", "boost_from_average", "obj", "num_target", "num_class",
+                               "multi_strategy") if k in params)
+    if owned:
+        raise ValueError(f"params {owned} are set by lossfam.xgboost.train for {fam.name} (the family fixes the "
+                         "objective, the baseline and the outputs; pass multi_strategy= as an argument)")
+    for key in ("obj", "maximize"):
+        if key in engine_kwargs:
+            raise ValueError(f"{key}= is set by lossfam.xgboost.train")
+    curvature = _several.check_curvature(fam, curvature)
+    strategy = MULTI_STRATEGY_DEFAULT if multi_strategy is None else multi_strategy
+    if strategy not in ("one_output_per_tree", "multi_output_tree"):
+        raise ValueError(f"multi_strategy must be 'one_output_per_tree' or 'multi_output_tree', got {strategy!r}")
+    if params.get("tree_method", "hist") != "hist":
+        raise ValueError(f"{fam.name}: several outputs per row need tree_method='hist'")
+    evals = list(evals or [])
+    for pair in evals:
+        if not (isinstance(pair, (tuple, list)) and len(pair) == 2 and isinstance(pair[0], xgb.DMatrix)):
+            raise TypeError("evals must be a list of (xgboost.DMatrix, name) pairs")
+    k = fam.n_scores
+    y, w = _several.targets(fam, dtrain.get_label(), dtrain.get_weight(), "dtrain")
+    bm = dtrain.get_base_margin()
+    plan = _several.several_plan(fam, y, w, None if bm.size == 0 else bm.astype(np.float64), precision=np.float32)
+    sets = {}
+    starts = []
+    for j, (dm, name) in enumerate(evals):
+        if dm is dtrain:
+            continue
+        vbm = dm.get_base_margin()
+        if plan.offset is not None and vbm.size == 0:
+            raise ValueError(f"training used an offset (base_margin) but evals[{j}] ({name!r}) has none: its metric "
+                             "would score the rows without their offset; give it a base_margin (zeros where there "
+                             "truly is none)")
+        vy, vw = _several.targets(fam, dm.get_label(), dm.get_weight(), f"evals[{j}]")
+        sets[id(dm)] = (vy, vw)
+        if not any(dm is d for d, _ in starts):
+            starts.append((dm, plan.start_for(vy.size, None if vbm.size == 0 else vbm.astype(np.float64),
+                                              f"evals[{j}] base_margin")))
+    sets[id(dtrain)] = (y, w)
+    twin = facts.chosen_twin(fam, _ENGINE, "XGBoost", native=native, guard_is_default=curvature == fam.default_curvature,
+                             params=params)
+    scorer = _several.SeveralScorer(fam)
+
+    def several_metric(preds, dm):
+        vy, vw = sets[id(dm)]
+        raw = np.asarray(preds, dtype=np.float64).reshape(-1, k)
+        if twin is not None:
+            raw = _several.raw_from_output(fam, raw)
+        return scorer.name, scorer.value(vy, raw, vw)
+
+    params.setdefault("disable_default_eval_metric", 1)
+    params["tree_method"] = "hist"
+    params["multi_strategy"] = strategy
+    if twin is not None:
+        params.update(twin)
+        params["num_class"] = k
+        obj = None
+    else:
+        params["num_target"] = k
+        obj = _SeveralObjective(fam, curvature, y, w)
+    params["base_score"] = 0.0  # every DMatrix carries its starting scores as base_margin
+    user_metric = engine_kwargs.pop("custom_metric", None)
+    kw = dict(engine_kwargs, early_stopping_rounds=early_stopping_rounds, evals_result=evals_result,
+              verbose_eval=verbose_eval)
+    touched = [(dtrain, bm)] + [(dm, dm.get_base_margin()) for dm, _ in starts]
+    try:
+        dtrain.set_base_margin(plan.start)
+        for dm, st in starts:
+            dm.set_base_margin(st)
+        booster, best, out = _train_engine(xgb, obj, params, dtrain, num_boost_round, evals,
+                                           user_metric or several_metric, kw)
+        out = np.asarray(out, dtype=np.float64).reshape(-1, k)
+    finally:
+        for dm, original in touched:
+            dm.set_base_margin(original)
+    if twin is not None:
+        out = _several.raw_from_output(fam, out)
+    _several.check_trained_several(fam, out)
+    info = {"objective": twin["objective"] if twin else "custom", "curvature": curvature,
+            "multi_strategy": strategy}
+    return SeveralScoreFit(_ENGINE, booster, fam, plan.baseline, best, info)

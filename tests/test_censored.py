@@ -373,3 +373,81 @@ def test_a_user_family_gets_the_censored_likelihood_from_its_tail_pieces(rng):
     assert np.allclose(g, finite_difference(lambda r: fam.nll(t, r), raw, 1e-4), rtol=1e-6, atol=1e-9)
     assert np.allclose(h, finite_difference(lambda r: fam.grad_hess(t, r)[0], raw, 1e-4), rtol=1e-5, atol=1e-9)
     assert np.isfinite(fam.baseline(t)) and fam.fit_nuisance(t, raw).scale > 0
+
+
+# ---------------------------------------------------------------------------- the fast kernel
+@pytest.mark.parametrize("name", CENSORING + ["gamma_k1"])
+def test_fast_kernel_agrees_with_the_log_space_terms(name):
+    # the linear-space formulas (TailLaw) and the log-space pieces are two writings of the same
+    # derivatives: they must agree row by row, from the bulk to far tails, on every kind of row
+    from lossfam.families._censored import _grad_hess_log_space, censored_grad_hess
+
+    fam = (lossfam.family("gamma", shape=1.0) if name == "gamma_k1"
+           else lossfam.family(name, **PARAMS[name]))
+    pos = fam.support_edges[0] == 0
+    z = np.concatenate([np.linspace(-12.0, 12.0, 97), [-40.0, -30.0, -8.0, 8.0, 30.0, 40.0]])
+    if name == "student_t":
+        z = np.concatenate([z, [-1e6, 1e6]])
+    raw = np.zeros(z.size) + (0.3 if pos else 0.0)
+    v = raw + z
+    lo_open = 0.0 if pos else -np.inf
+    lo = np.concatenate([v, np.full(z.size, lo_open), v, v])
+    hi = np.concatenate([np.full(z.size, np.inf), v, v + 0.7, v])
+    if pos:
+        lo = np.where(lo == 0.0, 0.0, np.exp(lo))
+        hi = np.exp(hi)
+    t = interval_target(lo, hi)
+    r4 = np.tile(raw, 4)
+    with np.errstate(all="ignore"):
+        g, h = censored_grad_hess(fam, t, r4)
+        g0, h0 = _grad_hess_log_space(fam, t, r4)
+    assert np.all(np.isfinite(g)) and np.all(np.isfinite(h)) and np.all(h >= 0)
+    # the log-space terms lose about eps * nll of relative accuracy (exp(log D - log P) with both
+    # logs of the size of the nll): compare where that is below 1e-13, i.e. nll < 1e3; the Hessian
+    # is a difference of terms of the size of g^2 in both writings, so it is compared to that size
+    trusted = fam.nll(t, r4) < 1e3
+    ok_g = np.isclose(g, g0, rtol=1e-9, atol=1e-300) | ~trusted
+    ok_h = (np.abs(h - h0) <= 1e-7 * np.abs(h0) + 1e-11 * g0 * g0) | ~trusted
+    # where the log-space Hessian is lost to cancellation it takes the surrogate g^2; the linear
+    # space keeps the exact value there: check it against finite differences of the gradient
+    if name == "laplace":  # a bound at raw sits on the density's kink: no second derivative there
+        ok_h |= (lo == r4) | (hi == r4)
+    took = trusted & ~ok_h & (h0 == g0 * g0) & (h < h0)
+    step = 1e-4
+    with np.errstate(all="ignore"):
+        fd_h = finite_difference(lambda r: censored_grad_hess(fam, t, r)[0], r4, step)
+    ok_h |= took & (np.abs(h - fd_h) <= 1e-5 * h + 1e-13 * np.maximum(np.abs(g), 1.0) / step)
+    assert ok_g.all(), (name, lo[~ok_g], hi[~ok_g], g[~ok_g], g0[~ok_g])
+    assert ok_h.all(), (name, lo[~ok_h], hi[~ok_h], h[~ok_h], h0[~ok_h])
+
+
+def test_normal_hazard_continued_fraction_against_mpmath():
+    # outside reference: mpmath at 50 digits, r = phi(z) / Phi(-z) and r - z
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 50
+    from lossfam.families._censored import NORMAL
+
+    z = np.array([-30.0, -3.0, 0.0, 2.0, 4.9, 5.1, 12.0, 37.0, 1e3, 1e8])
+    with np.errstate(all="ignore"):
+        r, c = NORMAL.right(z)
+    for zi, ri, ci in zip(z, r, c):
+        zz = mpmath.mpf(zi)
+        rr = mpmath.npdf(zz) / mpmath.ncdf(-zz)
+        assert ri == pytest.approx(float(rr), rel=1e-14, abs=1e-300)
+        assert ci == pytest.approx(float(rr - zz), rel=1e-12)
+
+
+def test_extreme_value_left_ratio_against_mpmath():
+    # outside reference: mpmath at 50 digits, q = f0 / F0 and q - psi for the minimum extreme-value law
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 50
+    from lossfam.families.weibull import EXTREME_VALUE
+
+    z = np.array([-700.0, -30.0, -5.0, -4.7, -4.5, 0.0, 3.0, 6.5, 6.6])
+    with np.errstate(all="ignore"):
+        q, c = EXTREME_VALUE.left(z)
+    for zi, qi, ci in zip(z, q, c):
+        x = mpmath.mpf(float(np.exp(zi)))  # the same x = e^z as float64 (its rounding is not the law's)
+        qq = x * mpmath.e ** (-x) / -mpmath.expm1(-x)
+        assert qi == pytest.approx(float(qq), rel=1e-14, abs=1e-300)
+        assert ci == pytest.approx(float(qq - 1 + x), rel=1e-13)

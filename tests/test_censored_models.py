@@ -73,6 +73,50 @@ def test_aft_with_right_censoring_matches_direct_maximisation(rng, name):
     assert 0.15 < 1 - event.mean() < 0.6
 
 
+@pytest.mark.parametrize("name", ["laplace", "student_t"])
+def test_surrogate_hessian_families_fit_censored_rows_by_direct_minimisation(name):
+    # laplace (a kink at every exact row) and student_t (not convex): right-, left- and
+    # interval-censored rows; the likelihood written from scipy.stats (logpdf, logsf, logcdf, and
+    # the difference of cdfs) maximised over (intercept, coef, log scale) by scipy.optimize
+    # (Powell, then Nelder-Mead restarts each followed by a Brent search in the log scale)
+    sk = pytest.importorskip("lossfam.sklearn")
+    rng = np.random.default_rng(11)
+    n = 400
+    X = rng.normal(size=(n, 2))
+    mu = 0.5 + X @ [1.0, -0.7]
+    ys = mu + (0.8 * rng.laplace(size=n) if name == "laplace" else 0.9 * rng.standard_t(4.0, size=n))
+    kind = rng.integers(0, 4, n)  # 0 exact, 1 right-censored at c, 2 left-censored at c, 3 in a unit cell
+    c = rng.uniform(-0.5, 2.0, n)
+    right, left = (kind == 1) & (ys > c), (kind == 2) & (ys < c)
+    cell = kind == 3
+    lo = np.where(right, c, np.where(left, -np.inf, np.where(cell, np.floor(ys), ys)))
+    hi = np.where(right, np.inf, np.where(left, c, np.where(cell, np.floor(ys) + 1.0, ys)))
+    t = interval_target(lo, hi)
+    m = sk.LikelihoodRegressor(name).fit(X, t)
+    exact, closed = lo == hi, np.isfinite(lo) & np.isfinite(hi) & (lo < hi)
+    a, b = np.where(np.isfinite(lo), lo, 0.0), np.where(np.isfinite(hi), hi, 0.0)
+
+    def nll(p):
+        loc, s = p[0] + X @ p[1:3], np.exp(p[3])
+        law = stats.laplace(loc, s) if name == "laplace" else stats.t(4.0, loc, s)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            ll = np.where(exact, law.logpdf(a), np.where(closed, np.log(law.cdf(b) - law.cdf(a)),
+                                                         np.where(np.isfinite(lo), law.logsf(a), law.logcdf(b))))
+        return -np.sum(ll)
+
+    ref = optimize.minimize(nll, np.zeros(4), method="Powell", options={"xtol": 1e-12, "ftol": 1e-15}).x
+    for _ in range(2):
+        ref = optimize.minimize(nll, ref, method="Nelder-Mead",
+                                options={"xatol": 1e-11, "fatol": 1e-14, "maxfev": 4000}).x
+        ref[3] = optimize.minimize_scalar(lambda ls: nll(np.r_[ref[:3], ls]), bracket=(ref[3] - 0.01, ref[3] + 0.01),
+                                          tol=1e-12).x
+    assert np.allclose(m.coef_, ref[1:3], atol=1e-6) and m.intercept_ == pytest.approx(ref[0], abs=1e-6)
+    assert m.family_.scale == pytest.approx(np.exp(ref[3]), rel=1e-6)
+    ours = np.r_[m.intercept_, m.coef_, np.log(m.family_.scale)]
+    assert nll(ours) <= nll(ref) + 1e-9 * abs(nll(ref))
+    assert 0.1 < t.censored_fraction < 0.6 and right.any() and left.any() and cell.any()
+
+
 def test_exponential_linear_model_without_covariates_is_events_over_time_at_risk(rng):
     # textbook closed form (exponential lifetimes, right-censored, no covariates: rate = events /
     # total time at risk; e.g. Lawless 2003, section 2.2, recalled from memory), through the linear
@@ -348,3 +392,80 @@ def test_weibull_default_guard_keeps_deep_trees_finite(engine):
     fit.save(path)
     again = lossfam.load(path)
     assert np.allclose(again.predict_raw(X), fit.predict_raw(X)) and again.fitted_family == fit.fitted_family
+
+
+# ---------------------------------------------------------------------------- scikit-learn wrappers and scorers
+def _sk_engine(engine, rounds=15):
+    pytest.importorskip(engine)
+    if engine == "lightgbm":
+        import lightgbm
+        return lightgbm.LGBMRegressor(n_estimators=rounds, num_leaves=4, learning_rate=0.2, min_child_samples=5,
+                                      verbose=-1, num_threads=1)
+    import xgboost
+    return xgboost.XGBRegressor(n_estimators=rounds, max_depth=2, learning_rate=0.2, nthread=1)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_boosted_wrapper_trains_what_the_engine_trains_on_censored_rows(rng, engine):
+    from lossfam.sklearn import BoostedLikelihoodRegressor, mean_nll, scorer
+
+    mod = _adapter(engine)
+    X, _, t = _durations(rng, 300, np.exp(1.5))
+    est = _sk_engine(engine)
+    m = BoostedLikelihoodRegressor(est, "weibull").fit(X[:200], t[:200], eval_set=[(X[200:], t[200:])])
+    # the same training through the engine adapter on its censored data container
+    params = {k: v for k, v in est.get_params().items() if v is not None}
+    if engine == "lightgbm":
+        params = {"num_leaves": 4, "learning_rate": 0.2, "min_child_samples": 5, "verbose": -1, "num_threads": 1}
+        fit = mod.train("weibull", params, mod.censored_dataset(X[:200], t[:200]), 15)
+    else:
+        params = {"max_depth": 2, "learning_rate": 0.2, "nthread": 1}
+        fit = mod.train("weibull", params, mod.censored_dmatrix(X[:200], t[:200]), 15, verbose_eval=False)
+    assert np.allclose(m.predict_raw(X), fit.predict_raw(X), rtol=0, atol=1e-12)
+    assert m.family_ == fit.fitted_family
+    # the eval-set metric is the held-out censored nll at the training family (float32 rounding aside)
+    raw_val = m.predict_raw(X[200:])
+    last = list(m.evals_result_["validation_0"].values())[0][-1]
+    assert last == pytest.approx(m.model_.family.nll(t[200:], raw_val).mean(), rel=1e-5)
+    # the likelihood scorer and mean_nll take the IntervalTarget: the mean censored nll at family_
+    ref = m.family_.nll(t[200:], raw_val).mean()
+    assert scorer("weibull")(m, X[200:], t[200:]) == pytest.approx(-ref, rel=1e-12)
+    assert mean_nll(t[200:], m.predict(X[200:]), m.family_) == pytest.approx(ref, rel=1e-12)
+
+
+@pytest.mark.parametrize("model", ["linear", "lightgbm", "xgboost"])
+def test_cross_validation_with_censored_targets(rng, model):
+    # scikit-learn's cross_val_score splits the IntervalTarget like any target; each fold's score is
+    # the held-out mean censored nll of a model refitted on the other folds
+    from sklearn.base import clone
+    from sklearn.model_selection import KFold, cross_val_score
+
+    from lossfam.sklearn import BoostedLikelihoodRegressor, LikelihoodRegressor, scorer
+
+    X, _, t = _durations(rng, 240, np.exp(1.5))
+    est = LikelihoodRegressor("weibull") if model == "linear" else BoostedLikelihoodRegressor(_sk_engine(model), "weibull")
+    cv = KFold(3)
+    got = cross_val_score(est, X, t, cv=cv, scoring=scorer("weibull"), error_score="raise")
+    ref = []
+    for tr, te in cv.split(X):
+        m = clone(est).fit(X[tr], t[tr])
+        ref.append(-m.family_.nll(t[te], m.predict_raw(X[te])).mean())
+    assert np.allclose(got, ref, rtol=1e-12)
+
+
+@pytest.mark.parametrize("model", ["linear", "lightgbm"])
+def test_score_and_deviance_scorers_refuse_censored_rows_but_take_exact_interval_targets(rng, model):
+    from lossfam.sklearn import BoostedLikelihoodRegressor, LikelihoodRegressor, scorer
+
+    X, _, t = _durations(rng, 200, np.exp(1.5))
+    est = LikelihoodRegressor("weibull") if model == "linear" else BoostedLikelihoodRegressor(_sk_engine(model), "weibull")
+    m = est.fit(X, t)
+    with pytest.raises(ValueError, match=r"score: D\^2 rests on the unit deviance, which censored rows do not have "
+                                         r"\(\d+ here\); .*scorer\('weibull', 'nll'\)"):
+        m.score(X, t)
+    with pytest.raises(ValueError, match="unit deviance is not defined for censored rows"):
+        scorer("weibull", "d2")(m, X, t)
+    exact = t[t.exact]
+    Xe = X[t.exact]
+    assert m.score(Xe, exact) == m.score(Xe, exact.lower)
+    assert scorer("weibull", "deviance")(m, Xe, exact) == scorer("weibull", "deviance")(m, Xe, exact.lower)

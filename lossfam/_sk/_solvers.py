@@ -35,8 +35,11 @@ The model and the objective, for rows i with weights w_i >= 0 and v_i = w_i / su
     max_j |dF/dcoef_j| / c_j <= tol with c_j = sqrt(sum_i v_i x_ij^2) (c = 1 for
     the intercept and for all-zero columns): the gradient with respect to the
     coefficients of the standardised columns x_j / c_j, so the rule does not
-    depend on a column's units; or when a step no longer changes any raw score
-    beyond rounding (64 eps max |raw|).
+    depend on a column's units (dense X with at least SUBSAMPLE_MIN_ROWS rows:
+    c_j estimated on one row in SUBSAMPLE_FRACTION, see ``newton_dense``); or
+    when a step no longer changes any raw score beyond rounding (64 eps max |raw|);
+    dense X with few columns also when a trusted correction is below tol in the
+    same units (``newton_dense``).
 
     Families whose Hessian is a surrogate (``exact_hessian`` False, e.g. a user
     family) use the same iteration with the surrogate in place of d2F: each
@@ -132,7 +135,7 @@ class LinearFit:
     raw: np.ndarray  # fitted raw scores, offset included
     n_iter: int
     objective: float  # F at the solution when it was evaluated, else nan; LP: sum v rho_tau
-    grad_norm: float  # max |dF| at the solution (nan for the LP)
+    grad_norm: float  # max |dF| at the solution (nan for the LP; before a final unchecked correction)
     converged: bool
     family: object  # the family used (huber: with its fitted scale)
     nuisance_fitted: bool = True  # huber: False when the scale had no maximum-likelihood value
@@ -537,7 +540,8 @@ def _secant_solve(solve, pairs):
     return apply
 
 
-def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_intercept, buf, squares=None):
+def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_intercept, buf, squares=None,
+                vconst=None):
     """One pass over the rows of dense X in blocks: the raw scores, gradient and Newton matrix at a trial point.
 
     Returns (raw, grad, H) with raw = raw_base + t draw, where ``draw`` holds
@@ -550,6 +554,10 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
     used by all three while it is in cache; H is accumulated with one product
     a^T a per block of rows scaled by sqrt(v h) (``weighted_gram``).  ``squares``
     (length p), when given, has sum_i v_i x_ij^2 added to it in the same pass.
+    Column-major X: X d and X^T (v g) are whole-array products (a block of
+    rows of such an X is p strided pieces); only H is formed in blocks.
+    ``vconst``: the value of every v_i when the weights are all equal (no
+    sample weights); the sums are then formed unweighted and scaled once.
     """
     n, p = X.shape
     nfree = p + int(fit_intercept)
@@ -561,32 +569,61 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
     hsum = vsum = 0.0
     general = False
     step = SUBSAMPLE_FRACTION if hessian == "sub" else 1
+    # column-major X (e.g. from a DataFrame): a block of its rows is 'p' strided pieces, so X d and
+    # X^T (v g) are whole-array products (each column read once, at full speed) and the blocks
+    # below only form H
+    by_columns = X.flags.f_contiguous and not X.flags.c_contiguous
     with np.errstate(over="ignore", invalid="ignore"):
-        for s in range(0, n, m):
+        if by_columns:
+            if new_draw:
+                np.dot(X, dc, out=draw)
+                draw += db
+            if t == 1.0:
+                np.add(raw_base, draw, out=raw_new)
+            else:
+                np.multiply(draw, t, out=raw_new)
+                raw_new += raw_base
+            g_all, h_all = fam._grad_hess(y, raw_new)
+            if vconst is None:
+                g_all *= v
+            grad[:p] = X.T @ g_all
+            if fit_intercept:
+                grad[p] = g_all.sum()
+            if squares is not None:
+                squares += weighted_column_squares(X, v)
+        for s in range(0, n if (hessian or not by_columns) else 0, m):
             e = min(n, s + m)
             Xb = X[s:e]
-            rb = raw_new[s:e]
-            if new_draw:
-                np.dot(Xb, dc, out=draw[s:e])
-                draw[s:e] += db
-            np.multiply(draw[s:e], t, out=rb)
-            rb += raw_base[s:e]
-            g, h = fam._grad_hess(y[s:e], rb)
             vb = v[s:e]
-            if squares is not None:
-                sq = np.multiply(Xb, Xb, out=buf[: e - s])
-                squares += vb @ sq
-            g *= vb
-            grad[:p] += g @ Xb
-            if fit_intercept:
-                grad[p] += g.sum()
+            if by_columns:
+                h = h_all[s:e]
+            else:
+                rb = raw_new[s:e]
+                if new_draw:
+                    np.dot(Xb, dc, out=draw[s:e])
+                    draw[s:e] += db
+                if t == 1.0:
+                    np.add(raw_base[s:e], draw[s:e], out=rb)
+                else:
+                    np.multiply(draw[s:e], t, out=rb)
+                    rb += raw_base[s:e]
+                g, h = fam._grad_hess(y[s:e], rb)
+                if squares is not None:
+                    sq = np.multiply(Xb, Xb, out=buf[: e - s])
+                    squares += vb @ sq
+                if vconst is None:
+                    g *= vb
+                grad[:p] += g @ Xb
+                if fit_intercept:
+                    grad[p] += g.sum()
             if not hessian:
                 continue
             if step > 1:
                 k = -(-(e - s) // step)  # the first 1/step of the block: contiguous, so cheap to scale and multiply
                 Xb, h, vb = Xb[:k], h[:k], vb[:k]
-                vsum += float(vb.sum())
-            h *= vb
+                vsum += float(vb.sum()) if vconst is None else vconst * k
+            if vconst is None:
+                h *= vb
             hsum += float(h.sum())
             if general or np.min(h) < 0:
                 if not general:  # a negative curvature: no square roots, plain products from here on
@@ -599,6 +636,8 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
             a = np.multiply(Xb, h[:, None], out=buf[: Xb.shape[0]])
             H += a.T @ a
             xh += h @ a
+    if vconst is not None:
+        grad *= vconst
     if not hessian:
         return raw_new, grad, None
     full = np.empty((nfree, nfree))
@@ -607,6 +646,8 @@ def dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian, fit_
         full[:p, p] = xh
         full[p, :p] = xh
         full[p, p] = hsum
+    if vconst is not None:
+        full *= vconst
     if step > 1:
         full *= 1.0 / max(vsum, 1e-300)
     return raw_new, grad, full
@@ -629,7 +670,10 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     * start: the same iteration on one row in SUBSAMPLE_FRACTION (weights
       rescaled to the same total), to SUBSAMPLE_START_TOL; its solution is
       the starting point and its last factorisation (with its secant pairs)
-      the matrix of the first steps on all rows.  That subsample fit
+      the matrix of the first steps on all rows; the column scales c_j of the
+      stopping rule are estimated on its rows too (``_scales_from_subsample``:
+      exact for a column that is zero there), which spares the first pass over
+      all rows the squares of X.  That subsample fit
       (``nested``) starts in turn from one of its own rows in
       SUBSAMPLE_FRACTION when it has at least SUBSAMPLE_MIN_ROWS /
       SUBSAMPLE_FRACTION rows: it forms its Newton matrix once, at that
@@ -645,7 +689,13 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
       SUBSAMPLE_WHILE_STEP.)
 
     The gradient is exact at every step, so the solution and the stopping
-    rule are those of ``newton``.  On smaller data every step is a Newton
+    rule are those of ``newton``, with one more way to stop: when the next
+    correction d is below tol in standardised units (max_j c_j |d_j|, and
+    |d| of the intercept) and its matrix is trusted -- the exact Newton
+    matrix at this point, or one whose last step shrank ||C^-1 dF||^2 by
+    CHORD_SHRINK -- d is applied without a further pass over X (its error is
+    then about the last contraction factor times tol; the gradient reported
+    is the one before it).  On smaller data every step is a Newton
     step with the matrix from all rows.  At the gradient test the last
     factorisation refines the solution (``_refine_dense``).  If the gradient
     norm cannot be decreased the general iteration (``newton``, with its
@@ -676,6 +726,8 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
                     and np.all(np.isfinite(start.coef)) and np.isfinite(start.intercept)):
                 coef, intercept = start.coef, float(start.intercept)
                 start_solve, start_iter = got["solve"], start.n_iter
+                if cscale is None and not nested and got.get("squares") is not None:
+                    cscale = _scales_from_subsample(X, v, got["squares"])
     raw = np.full(n, intercept) if offset is None else offset + intercept
     m = max(SUBSAMPLE_FRACTION, min(_BLOCK, n))
     if buf is None or buf.shape[0] < m or buf.shape[1] != p:
@@ -683,10 +735,12 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     else:
         buf = buf[:m]
     draw = np.zeros(n)
+    # equal weights (no sample weights): the sweeps form their sums unweighted and scale them once
+    vconst = float(v[0]) if n and v[0] > 0 and not np.any(v != v[0]) else None
 
     def sweep(raw_base, t, dc, db, new_draw, hessian, coef_, squares=None):
         raw_new, grad, H = dense_sweep(fam, X, y, v, raw_base, t, dc, db, draw, new_draw, hessian,
-                                       fit_intercept, buf, squares)
+                                       fit_intercept, buf, squares, vconst)
         if alpha:
             grad[:p] += alpha * coef_
             if H is not None:
@@ -703,6 +757,8 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     first = None if (large and start_solve is not None) else ("sub" if use_sub else "full")
     raw, grad, H = sweep(raw, 1.0, coef, 0.0, True, first, coef, squares)
     if cscale is None:
+        if state is not None:
+            state["squares"] = squares.copy()
         cscale = np.sqrt(squares)
         cscale[~(cscale > 0) | ~np.isfinite(cscale)] = 1.0
     inv_c = np.ones(nfree)
@@ -711,7 +767,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
     solve = start_solve
     poor_sub = 0
     pairs = []  # (step, gradient change) since the last factorisation
-    converged = False
+    converged = corrected = proven = False
     gnorm = np.inf
     it = 0
     for it in range(max_iter + 1):
@@ -735,6 +791,14 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             d = -_secant_solve(solve, pairs)(grad)
         dc = d[:p]
         db = d[p] if fit_intercept else 0.0
+        if (used == "full" or proven) and not float(np.max(np.abs(d) / inv_c)) > tol:
+            # the correction is below tol in standardised units and comes from the exact Newton
+            # matrix at this point, or from one whose last step shrank ||C^-1 dF||^2 CHORD_SHRINK-
+            # fold: applied without checking it (the refinement's rule, one pass earlier)
+            coef, intercept = coef + dc, intercept + db
+            raw = raw + _raw(X, dc, db, None)
+            converged = corrected = True
+            break
         m0 = float(sgrad @ sgrad)
         # the matrix formed at the trial point: the subsample's far from the optimum; on small
         # data all rows at every step (Newton's method); on large data near the optimum none
@@ -759,6 +823,7 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             return fit
         change = t * float(np.max(np.abs(draw)))
         shrink = m1 / m0 if m0 > 0 else 0.0
+        proven = t == 1.0 and shrink <= CHORD_SHRINK
         pairs.append((t * d, grad_new - grad))
         coef, intercept, raw, grad = coef + t * dc, intercept + t * db, raw_new, grad_new
         if used == "sub":
@@ -783,10 +848,28 @@ def newton_dense(fam, X, y, v, offset, alpha, fit_intercept, max_iter, tol, coef
             solve, pairs = last, []
     if state is not None:
         state["solve"] = _secant_solve(solve, pairs) if solve is not None else None
-    if converged and solve is not None and not nested:  # a start needs no refinement
+    if converged and solve is not None and not nested and not corrected:  # a start needs no refinement
         coef, intercept, raw, grad, gnorm = _refine_dense(
             solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol)
     return LinearFit(coef, intercept, raw, it + start_iter, np.nan, gnorm, converged, fam)
+
+
+def _scales_from_subsample(X, v, squares):
+    """Column scales c_j for the stopping rule from sum_i v_i x_ij^2 over the start's row subsample.
+
+    The subsample (one row in SUBSAMPLE_FRACTION, weights rescaled to the same
+    total) estimates sum_i v_i x_ij^2 over all rows; scaling a column scales its
+    estimate exactly as it scales the exact value, so the stopping rule stays
+    free of the columns' units.  A column that is zero (or not finite) on the
+    subsample gets its exact value from all rows (one read of those columns).
+    """
+    sq = np.array(squares, dtype=float)
+    bad = ~(sq > 0) | ~np.isfinite(sq)
+    if np.any(bad):
+        sq[bad] = weighted_column_squares(np.ascontiguousarray(X[:, bad]), v)
+    c = np.sqrt(sq)
+    c[~(c > 0) | ~np.isfinite(c)] = 1.0
+    return c
 
 
 def _refine_dense(solve, pairs, sweep, X, coef, intercept, raw, grad, inv_c, fit_intercept, draw, tol, rounds=3):
@@ -1743,3 +1826,189 @@ def ridge_pinball(X, y, v, offset, tau, weight_factor, alpha, fit_intercept, max
         "the ridge-penalised pinball problem: no solution passed the optimality certificate "
         f"after {max_iter} rounds of the active-set correction"
     )
+
+
+def censored_direct(fam, X, target, w, v, offset, alpha, fit_intercept, max_iter, tol, coef, intercept):
+    r"""Censored fits of families with a surrogate Hessian (laplace, student_t): direct minimisation
+    of the exact objective F (module docstring) jointly over the coefficients, the intercept and the
+    logs of the parameters in ``fam.censored_fit``, with ``nll`` the censored nll
+    (lossfam.families._censored).
+
+    Newton's iteration is not used here: laplace's nll has a kink at every exact row
+    (|y - raw|) and student_t's is not convex, so their Hessians are surrogates, and alternating
+    majorise-minimise steps with the scale fit converges too slowly.  Instead, on standardised
+    columns x_j / c_j (c_j = sqrt(sum_i v_i x_ij^2), as in ``newton``):
+
+    1. BFGS (scipy.optimize.minimize) with the exact gradient in the coefficients and intercept
+       (X^T (v g) + alpha coef, sum v g; g the censored gradient) and central differences
+       (step 1e-6) in the log parameters, to a gradient below ``tol``;
+    2. where BFGS stops without meeting that tolerance (a kink: laplace's exact rows where
+       raw = y), rounds of: Nelder-Mead from the best point (xatol 1e-10, fatol 1e-15); the
+       family's own maximum-likelihood fit of the parameters given the coefficients
+       (``Family.fit_nuisance``, smooth and one-dimensional, where a direct search stalls
+       first); and BFGS on the kinks held: the exact rows nearest their kink (|y - raw| <=
+       1e-4 scale, at most one per coefficient) are constrained to raw = y (coefficients in the
+       null space of those rows, from a particular solution by least squares), where the
+       objective is smooth, so BFGS meets the gradient tolerance there if the set is right; a
+       held row whose multiplier lies outside its subgradient range is released and the solve
+       repeated (``_on_kinks``); ``converged`` when the gradient tolerance and the ranges hold.  Each step is kept only where it
+       lowers F; the rounds stop when one no longer lowers F by more than its rounding.  A direct search: meant for a handful of columns (it is slow
+       and may stop short beyond about ten parameters; ``converged`` is then False).
+    """
+    import dataclasses
+
+    from ..families._censored import censored_grad_hess, censored_nll
+
+    names = [n for n in fam.censored_fit if n in fam.params]
+    p = X.shape[1]
+    c = column_scales(X, v)
+    inv_c = 1.0 / c
+    o = 0.0 if offset is None else offset
+    k = p + (1 if fit_intercept else 0)
+
+    def unpack(theta):
+        beta = theta[:p] * inv_c
+        b = theta[p] if fit_intercept else 0.0
+        return beta, b, theta[k:]
+
+    def family_at(logp):
+        if not names:
+            return fam
+        try:
+            with np.errstate(over="ignore", under="ignore"):
+                return dataclasses.replace(fam, **{n: float(np.exp(x)) for n, x in zip(names, logp)})
+        except ValueError:
+            return None
+
+    def objective(theta):
+        beta, b, logp = unpack(theta)
+        f2 = family_at(logp)
+        if f2 is None:
+            return np.inf
+        raw = X @ beta + b + o
+        with np.errstate(all="ignore"):
+            val = float(np.dot(v, censored_nll(f2, target, raw))) + 0.5 * alpha * float(beta @ beta)
+        return val if np.isfinite(val) else np.inf
+
+    def gradient(theta, drop=None):
+        """dF/dtheta; ``drop``: rows left out of the coefficient part (kink rows, whose share is a
+        multiplier)."""
+        beta, b, logp = unpack(theta)
+        f2 = family_at(logp)
+        out = np.zeros_like(theta)
+        if f2 is None:
+            return out
+        raw = X @ beta + b + o
+        with np.errstate(all="ignore"):
+            g = censored_grad_hess(f2, target, raw)[0]
+        vg = v * g
+        if drop is not None:
+            vg[drop] = 0.0
+        out[:p] = (X.T @ vg + alpha * beta) * inv_c
+        if fit_intercept:
+            out[p] = vg.sum()
+        for j in range(len(names)):
+            e = np.zeros_like(theta)
+            e[k + j] = 1e-6
+            out[k + j] = (objective(theta + e) - objective(theta - e)) / 2e-6
+        return out
+
+    theta = np.concatenate([np.asarray(coef, dtype=float) * c, [intercept] if fit_intercept else [],
+                            np.log([fam.params[n] for n in names])])
+    res = optimize.minimize(objective, theta, jac=gradient, method="BFGS",
+                            options={"gtol": tol, "maxiter": max(50, 20 * max_iter)})
+    theta, n_iter = res.x, int(res.nit)
+    grad_norm = float(np.max(np.abs(gradient(theta)))) if theta.size else 0.0
+    converged = grad_norm <= tol
+    if not converged:
+        f = objective(theta)
+        for _ in range(20):
+            f0 = f
+            nm = optimize.minimize(objective, theta, method="Nelder-Mead",
+                                   options={"xatol": 1e-10, "fatol": 1e-15, "maxfev": 4000 * theta.size,
+                                            "adaptive": theta.size > 4})
+            n_iter += int(nm.nit)
+            if nm.fun < f:
+                theta, f = nm.x, nm.fun
+            if names:  # the parameters given the coefficients, by the family's own (smooth, 1-D) fit
+                beta, b, logp = unpack(theta)
+                refit = family_at(logp).fit_nuisance(target, X @ beta + b + o, w)
+                trial = np.concatenate([theta[:k], np.log([refit.params[n] for n in names])])
+                ft = objective(trial)
+                if ft < f:
+                    theta, f = trial, ft
+            # the exact rows at the kink (raw = y) held there: a smooth problem on the rest
+            trial, ok, it = _on_kinks(objective, gradient, family_at, theta, X, target, v, o, inv_c, p, k,
+                                      fit_intercept, tol)
+            n_iter += it
+            ft = objective(trial)
+            if ft <= f:
+                theta, f = trial, ft
+                converged = ok
+            if not f0 - f > 64 * np.finfo(float).eps * max(1.0, abs(f0)):
+                converged = converged or bool(nm.success)
+                break
+    beta, b, logp = unpack(theta)
+    f2 = family_at(logp)
+    raw = X @ beta + b + o
+    return LinearFit(coef=beta, intercept=float(b), raw=raw, n_iter=n_iter, objective=objective(theta),
+                     grad_norm=grad_norm, converged=converged, family=f2)
+
+
+def _on_kinks(objective, gradient, family_at, theta, X, target, v, o, inv_c, p, k, fit_intercept, tol):
+    """BFGS with the exact rows near their kink (|y - raw| <= 1e-4 scale, at most as many as there
+    are coefficients, nearest first) held at raw = y (``censored_direct``, step 2), then the optimality check of the held rows: the multipliers
+    lambda solving Z^T lambda = -(gradient without those rows) must lie within each row's
+    subgradient range, v_i |g_i| just off the kink (v_i / b for laplace); the row with the largest
+    excess is released and the solve repeated.  Returns (theta, converged, iterations)."""
+    beta = theta[:p] * inv_c
+    b = theta[p] if fit_intercept else 0.0
+    raw = X @ beta + b + o
+    ex = target.exact
+    r = np.where(ex, target.lower - raw, np.inf)
+    scale = float(np.exp(theta[k])) if theta.size > k else 1.0
+    near = np.abs(r) <= 1e-4 * scale
+    rows = np.flatnonzero(near)
+    rows = rows[np.argsort(np.abs(r[rows]), kind="stable")[:k]]  # at most one per free coefficient
+    iters = 0
+    while rows.size:
+        Xa = X[rows]
+        Xa = Xa.toarray() if sparse.issparse(Xa) else np.asarray(Xa)
+        Z = Xa * inv_c
+        if fit_intercept:
+            Z = np.column_stack([Z, np.ones(rows.size)])
+        y_a = target.lower[rows]
+        rhs = y_a - (o[rows] if isinstance(o, np.ndarray) else o)
+        base = linalg.lstsq(Z, rhs)[0]
+        N = linalg.null_space(Z)
+        m = N.shape[1]
+
+        def full(u):
+            return np.concatenate([base + N @ u[:m], u[m:]])
+
+        def reduced_grad(u):
+            g = gradient(full(u), drop=rows)
+            return np.concatenate([N.T @ g[:k], g[k:]])
+
+        u0 = np.concatenate([N.T @ (theta[:k] - base), theta[k:]])
+        res = optimize.minimize(lambda u: objective(full(u)), u0, jac=reduced_grad, method="BFGS",
+                                options={"gtol": tol, "maxiter": 1000})
+        iters += int(res.nit)
+        new = full(res.x)
+        ok = bool(np.max(np.abs(reduced_grad(res.x)), initial=0.0) <= tol)
+        if not ok:
+            return new, False, iters
+        # the multipliers of the held rows, and each row's subgradient range at the kink
+        g = gradient(new, drop=rows)[:k]
+        lam = linalg.lstsq(Z.T, -g)[0]
+        fam = family_at(new[k:])
+        with np.errstate(all="ignore"):
+            step = 1e-8 * max(1.0, float(np.max(np.abs(y_a))))
+            bound = v[rows] * np.minimum(np.abs(fam._grad_hess(y_a, y_a + step)[0]),
+                                         np.abs(fam._grad_hess(y_a, y_a - step)[0]))
+        excess = np.abs(lam) - bound * (1.0 + 1e-6) - tol
+        if not np.any(excess > 0):
+            return new, True, iters
+        rows = np.delete(rows, int(np.argmax(excess)))
+        theta = new
+    return theta, False, iters

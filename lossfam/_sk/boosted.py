@@ -14,10 +14,21 @@ the training data, ``baseline_`` the starting raw score and
 ``fit(X, y, sample_weight=None, offset=None, eval_set=None, **fit_params)``:
 ``offset`` is a per-row raw-scale term; ``eval_set`` a list of ``(X, y)`` or
 ``(X, y, offset)`` (with a training offset every evaluation set needs its
-own).  Engine keywords: LightGBM ``callbacks`` (e.g.
+own).  ``y`` (in ``fit``, ``eval_set`` and ``score``) may be a
+:class:`lossfam.censoring.IntervalTarget` (censored and interval rows), as for
+``LikelihoodRegressor``: the engines then train on the censored likelihood
+(``lossfam.lightgbm.censored_dataset``, ``lossfam.xgboost.censored_dmatrix``),
+the eval-set metric is the censored nll, and ``score`` (D^2, built on the unit
+deviance) refuses censored rows: score them with ``lossfam.sklearn.scorer(family, "nll")``.  Engine keywords: LightGBM ``callbacks`` (e.g.
 ``lightgbm.early_stopping(k)``), XGBoost ``verbose``; XGBoost's
 ``early_stopping_rounds`` is read from the estimator.  ``X`` may be a numpy
 array, a pandas DataFrame or a scipy sparse matrix.
+
+A family with several raw scores per row (``lossfam.SeveralScoreFamily``, e.g. gaussian_spread)
+trains the same way (``model_`` is then a :class:`lossfam.SeveralScoreFit`, ``baseline_`` a
+k-vector): ``predict`` gives the location, ``predict_raw`` all k raw scores (n, k),
+``predict_distribution`` the per-row law and ``score`` minus the mean nll; ``offset`` goes to the
+location's raw score.
 
 ``BoostedLikelihoodClassifier(estimator)`` is the bernoulli family as a binary
 classifier (``classes_``, ``predict_proba``, ``decision_function``); it
@@ -36,6 +47,8 @@ from sklearn.utils.multiclass import check_classification_targets, type_of_targe
 from sklearn.utils.validation import check_is_fitted, column_or_1d, validate_data
 
 from .. import _checks
+from .._boost.several import SeveralScorer, is_several
+from ..censoring import IntervalTarget
 from ..registry import family as make_family
 from .linear import _check_offset, _check_sample_weight, _RawScoreRegressorMethods, _warn_missing_offset
 
@@ -108,6 +121,10 @@ class _BoostBase(BaseEstimator):
         if y is None:
             raise ValueError(f"{owner} requires y to be passed, but the target y is None")
         X = self._validate_X(X, reset=True)
+        if isinstance(y, IntervalTarget):  # censored rows: the bounds are checked by the family
+            if y.size != X.shape[0]:
+                raise ValueError(f"{owner}: X has {X.shape[0]} rows but the target has {y.size}")
+            return X, y
         y = column_or_1d(y, warn=True)
         _check_labels_finite(y, owner)
         if y.shape[0] != X.shape[0]:
@@ -124,8 +141,10 @@ class _BoostBase(BaseEstimator):
             if len(item) not in (2, 3):
                 raise ValueError(f"{owner}: eval_set[{k}] must be (X, y) or (X, y, offset)")
             Xe = self._validate_X(item[0], reset=False)
-            ye = np.asarray(item[1], dtype=float).reshape(-1)
-            _check_labels_finite(ye, f"{owner} eval_set[{k}]")
+            ye = item[1]
+            if not isinstance(ye, IntervalTarget):
+                ye = np.asarray(ye, dtype=float).reshape(-1)
+                _check_labels_finite(ye, f"{owner} eval_set[{k}]")
             ye = fam.check_target(ye, for_nll=True)
             if ye.shape[0] != Xe.shape[0]:
                 raise ValueError(f"{owner}: eval_set[{k}] has {Xe.shape[0]} rows in X but {ye.shape[0]} targets")
@@ -147,8 +166,13 @@ class _BoostBase(BaseEstimator):
             if unknown:
                 raise ValueError(f"{owner}: unknown fit keyword(s) {unknown} for LightGBM; accepted: {sorted(known)}")
             ds_kw = {k: kwargs.pop(k) for k in ("categorical_feature", "feature_name") if k in kwargs}
-            dtrain = lgb.Dataset(X, y, weight=unit_w, free_raw_data=False, **ds_kw)
-            valid = [lgb.Dataset(Xe, ye, reference=dtrain, free_raw_data=False) for Xe, ye, _ in evals]
+            def dataset(Xd, yd, **kw):  # censored rows: the bounds travel with the Dataset
+                if isinstance(yd, IntervalTarget):
+                    return adapter.censored_dataset(Xd, yd, free_raw_data=False, **kw)
+                return lgb.Dataset(Xd, yd, free_raw_data=False, **kw)
+
+            dtrain = dataset(X, y, weight=unit_w, **ds_kw)
+            valid = [dataset(Xe, ye, reference=dtrain) for Xe, ye, _ in evals]
             callbacks = list(kwargs.pop("callbacks", None) or [])
             if valid:
                 callbacks.append(lgb.record_evaluation(history))
@@ -167,9 +191,13 @@ class _BoostBase(BaseEstimator):
                 raise ValueError(f"{owner}: unknown fit keyword(s) {unknown} for XGBoost; accepted: {sorted(known)}")
             dm_kw = dict(missing=base.missing, enable_categorical=base.enable_categorical,
                          feature_types=base.feature_types)
-            dtrain = xgb.DMatrix(X, label=y, weight=unit_w, base_margin=offset, **dm_kw)
-            valid = [(xgb.DMatrix(Xe, label=ye, base_margin=oe, **dm_kw), f"validation_{k}")
-                     for k, (Xe, ye, oe) in enumerate(evals)]
+            def dmatrix(Xd, yd, **kw):  # censored rows: XGBoost's label_lower_bound / label_upper_bound
+                if isinstance(yd, IntervalTarget):
+                    return adapter.censored_dmatrix(Xd, yd, **kw, **dm_kw)
+                return xgb.DMatrix(Xd, label=yd, **kw, **dm_kw)
+
+            dtrain = dmatrix(X, y, weight=unit_w, base_margin=offset)
+            valid = [(dmatrix(Xe, ye, base_margin=oe), f"validation_{k}") for k, (Xe, ye, oe) in enumerate(evals)]
             model = adapter.train(fam, params, dtrain, rounds, evals=valid, early_stopping_rounds=early if valid else None,
                                   evals_result=history, verbose_eval=bool(kwargs.get("verbose", False)))
         self.model_ = model
@@ -234,9 +262,30 @@ class BoostedLikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, _Boo
         fam = make_family(self.family, **(self.family_params or {}))
         X, y = self._validate_Xy(X, y)
         y = fam.check_target(y, for_nll=False)
-        w = _check_sample_weight(sample_weight, y, owner)
+        w = _check_sample_weight(sample_weight, y.lower if isinstance(y, IntervalTarget) else y, owner)
         offset = _check_offset(offset, y.shape[0], owner)
         return self._fit_engine(fam, X, y, w, offset, eval_set, fit_params)
+
+    def predict(self, X, offset=None):
+        """The prediction on the response scale: the inverse link of the raw score (mean, median or
+        quantile); for a family with several raw scores per row, its location (``family.location``)."""
+        raw = self._raw_score(X, offset)
+        if is_several(self.family_):
+            return self.family_.location(raw)
+        return self.family_.inverse_link(raw)
+
+    def score(self, X, y, sample_weight=None, offset=None):
+        """D^2 (fraction of deviance explained; see ``_RawScoreRegressorMethods.score``); for a
+        family with several raw scores per row, which has no deviance, minus the weighted mean nll
+        (higher is better, as scikit-learn's model selection expects)."""
+        check_is_fitted(self)
+        if not is_several(self.family_):
+            return super().score(X, y, sample_weight=sample_weight, offset=offset)
+        _warn_missing_offset(self, offset)
+        fam = self.family_
+        y = fam.check_target(np.asarray(y, dtype=np.float64).reshape(-1))
+        w = None if sample_weight is None else _check_sample_weight(sample_weight, y, type(self).__name__)
+        return -SeveralScorer(fam).value(y, self._raw_score(X, offset), w)
 
 
 

@@ -105,13 +105,16 @@ def _check_numeric_columns(X, owner):
 
 
 def _validate_X_y(est, X, y, owner, **kw):
-    """validate_data for fit: numeric pandas columns, dense C-ordered or sparse CSR float64 X."""
+    """validate_data for fit: numeric pandas columns, dense float64 X contiguous in either order (a
+    DataFrame's column-major values are not copied), or sparse CSR."""
     _check_numeric_columns(X, owner)
-    X, y = validate_data(est, X, y, dtype=np.float64, order="C", accept_sparse=("csr", "csc"),
+    X, y = validate_data(est, X, y, dtype=np.float64, accept_sparse=("csr", "csc"),
                          ensure_all_finite=False, **kw)
     if sparse.issparse(X):
         X = X.tocsr()
         X.sort_indices()
+    elif not (X.flags.c_contiguous or X.flags.f_contiguous):
+        X = np.ascontiguousarray(X)
     _check_finite_rows(X, owner)
     return X, y
 
@@ -155,8 +158,11 @@ def _check_sample_weight(sample_weight, y, owner):
     return np.ascontiguousarray(w)
 
 
-def _fit_linear(est, fam, X, y, w, offset):
-    """Solve the penalised problem for ``fam``; return the fit."""
+def _fit_linear(est, fam, X, y, w, offset, unweighted=False):
+    """Solve the penalised problem for ``fam``; return the fit.
+
+    ``unweighted``: no sample weights were given (w is all ones); the family's
+    own helpers then get none, which spares them a rescaled copy of w."""
     n, p = X.shape
     v = w / w.sum()
     alpha = float(est.alpha)
@@ -171,7 +177,7 @@ def _fit_linear(est, fam, X, y, w, offset):
         return _solvers.quantile_lp(X, y, v, offset, tau, est.fit_intercept,
                                     names=getattr(est, "feature_names_in_", None))
     if est.fit_intercept:
-        intercept = fam.baseline(y, w, offset=offset)
+        intercept = fam.baseline(y, None if unweighted else w, offset=offset)
     else:
         intercept = 0.0
     coef = np.zeros(p)
@@ -210,15 +216,18 @@ def _fit_censored(est, fam, X, target, sample_weight, offset, owner):
     """Penalised maximum likelihood of a censored target (Tobit for gaussian, accelerated failure
     time for lognormal and weibull): Newton's method on the censored nll from the censored
     baseline, alternated with the nuisance fit (``fam.censored_fit``) until the parameters settle,
-    since under censoring the coefficients depend on them."""
-    if not fam.exact_hessian and not target.exact.all():
-        raise ValueError(f"{owner}: {fam.name} has a surrogate Hessian, and the linear solvers' "
-                         "majorise-minimise steps on a censored likelihood with a fitted scale converge too "
-                         "slowly to be offered; fit censored targets with a smooth family (gaussian, "
-                         "lognormal, weibull, gamma) or with a boosting engine")
+    since under censoring the coefficients depend on them.  Families with a surrogate Hessian
+    (laplace, student_t) are fitted by direct minimisation of the same objective
+    (``_solvers.censored_direct``)."""
     w = _check_sample_weight(sample_weight, target.lower, owner)
     v = w / w.sum()
     intercept = fam.baseline(target, w, offset=offset) if est.fit_intercept else 0.0
+    if not fam.exact_hessian and not target.exact.all():
+        if fam.censored_fit and fam.params:  # a starting scale for the constant fit
+            start = np.full(target.size, intercept) + (0.0 if offset is None else offset)
+            fam = fam.fit_nuisance(target, start, w)
+        return _solvers.censored_direct(fam, X, target, w, v, offset, float(est.alpha), est.fit_intercept,
+                                        est.max_iter, est.tol, np.zeros(X.shape[1]), intercept)
     args = (X, target, w, v, offset, float(est.alpha), est.fit_intercept, est.max_iter, est.tol,
             np.zeros(X.shape[1]), intercept)
     view = _CensoredView(fam)
@@ -236,8 +245,9 @@ def _joint_nuisance(fam):
     return bool(fam.location_needs_nuisance)
 
 
-def _finish(est, fam, fit, y, w):
-    """Attributes shared by both estimators; nuisance parameters by maximum likelihood."""
+def _finish(est, fam, fit, y, w, unweighted=False):
+    """Attributes shared by both estimators; nuisance parameters by maximum likelihood
+    (``unweighted`` as in ``_fit_linear``)."""
     est.coef_ = fit.coef
     est.intercept_ = float(fit.intercept)
     est.n_iter_ = int(fit.n_iter)
@@ -271,7 +281,7 @@ def _finish(est, fam, fit, y, w):
             )
         return
     try:
-        est.family_ = fam.fit_nuisance(y, fit.raw, w)
+        est.family_ = fam.fit_nuisance(y, fit.raw, None if unweighted else w)
     except ValueError as exc:
         warnings.warn(
             f"{type(est).__name__}: the nuisance parameters of {fam.name} keep their given values "
@@ -287,12 +297,16 @@ def _warn_if_unbounded(est, fam, X, y, w, raw):
     if est.alpha > 0:
         return
     if isinstance(fam, Bernoulli):
+        if not max(float(np.max(raw, initial=0.0)), -float(np.min(raw, initial=0.0))) > 13.8:
+            return  # no fitted probability within 1e-6 of 0 or 1 (two reductions, no masks)
         sign = 2.0 * y - 1.0
         near = sign * raw > 13.8  # a fitted probability within 1e-6 of its label
         what = ("the two classes are (quasi-)separated by a linear score, so the unpenalised "
                 "maximum-likelihood estimate does not exist: coefficients diverge and fitted "
                 "probabilities reach 0 or 1")
     elif isinstance(fam, Poisson):
+        if not float(np.min(raw, initial=np.inf)) < -13.8:
+            return  # no fitted mean below 1e-6 (one reduction, no masks)
         sign = np.where(y == 0, -1.0, 0.0)
         near = (y == 0) & (raw < -13.8)  # a fitted mean below 1e-6 on a zero count
         what = ("some zero counts can be fitted by a mean of exactly 0 (e.g. a category whose "
@@ -359,9 +373,16 @@ class _RawScoreRegressorMethods:
         Pipeline, GridSearchCV or cross_val_score it arrives only through
         scikit-learn's metadata routing (``sklearn.set_config(enable_metadata_routing=True)``
         and ``est.set_score_request(offset=True)``, as for sample_weight); a
-        model fitted with an offset and scored without one warns.
+        model fitted with an offset and scored without one warns.  An IntervalTarget is
+        accepted when all its rows are exact; censored rows have no unit deviance, so they are
+        refused with a pointer to ``lossfam.sklearn.scorer(family, "nll")``.
         """
         _warn_missing_offset(self, offset)
+        if isinstance(y, IntervalTarget) and not y.exact.all():
+            raise ValueError(
+                f"{type(self).__name__}.score: D^2 rests on the unit deviance, which censored rows do not "
+                f"have ({int((~y.exact).sum())} here); score censored targets by their likelihood with "
+                f"lossfam.sklearn.scorer({self.family_.name!r}, 'nll') (the mean censored nll)")
         pred = self.predict(X, offset=offset)
         return d2_score(y, pred, self.family_, sample_weight=sample_weight)
 
@@ -399,7 +420,9 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         gradient for standardised columns, so the rule does not depend on a
         column's units), then refine with the last factorisation while that
         still improves the fit; or when a full step changes no raw score beyond
-        rounding.
+        rounding; dense X with at most 200 coefficients also when the next Newton
+        (or secant-corrected chord) correction is below tol in the same
+        standardised units, which is then applied.
 
     Attributes
     ----------
@@ -449,8 +472,8 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         w = _check_sample_weight(sample_weight, y, owner)
         offset = _check_offset(offset, X.shape[0], owner)
         self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
-        fit = _fit_linear(self, fam, X, y, w, offset)
-        _finish(self, fam, fit, y, w)
+        fit = _fit_linear(self, fam, X, y, w, offset, unweighted=sample_weight is None)
+        _finish(self, fam, fit, y, w, unweighted=sample_weight is None)
         _warn_if_unbounded(self, fam, X, y, w, fit.raw)
         return self
 
@@ -474,7 +497,7 @@ class LikelihoodRegressor(_RawScoreRegressorMethods, RegressorMixin, BaseEstimat
         self.n_iter_ = int(fit.n_iter)
         self.family_ = fit.family
         if not fit.converged:
-            warnings.warn(f"{owner} ({fam.name}, censored): Newton's method stopped after {fit.n_iter} "
+            warnings.warn(f"{owner} ({fam.name}, censored): the solver stopped after {fit.n_iter} "
                           f"iterations with max |gradient| = {fit.grad_norm:.3g} > tol = {self.tol}",
                           ConvergenceWarning, stacklevel=2)
         return self
@@ -552,8 +575,8 @@ class LikelihoodClassifier(ClassifierMixin, BaseEstimator):
         offset = _check_offset(offset, X.shape[0], owner)
         self.fitted_with_offset_ = offset is not None and bool(np.any(offset != 0))
         fam = make_family("bernoulli")
-        fit = _fit_linear(self, fam, X, y01, w, offset)
-        _finish(self, fam, fit, y01, w)
+        fit = _fit_linear(self, fam, X, y01, w, offset, unweighted=sample_weight is None)
+        _finish(self, fam, fit, y01, w, unweighted=sample_weight is None)
         _warn_if_unbounded(self, fam, X, y01, w, fit.raw)
         return self
 

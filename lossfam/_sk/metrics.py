@@ -13,6 +13,11 @@ raw score for these very targets (so D^2 is 0 for the constant model and 1 for
 a perfect fit; it is the scale-free "fraction of deviance explained").  D^2
 is nan when the targets are all equal under the family (null deviance 0).
 
+``y`` may be a :class:`lossfam.censoring.IntervalTarget` (censored and interval rows) in
+``mean_nll`` and in the scorers of kind "nll": the mean censored nll.  The deviance kinds
+(``mean_deviance``, ``d2_score``, "deviance", "d2") refuse censored rows, which have no unit
+deviance.
+
 ``scorer(family, kind)`` turns one of them into a scikit-learn scorer
 (greater is better: it returns -mean_nll, -mean_deviance or D^2).  For lossfam
 estimators it reads the raw score directly (``predict_raw`` or
@@ -28,6 +33,7 @@ from __future__ import annotations
 import numpy as np
 
 from .. import _checks
+from ..censoring import IntervalTarget
 from ..registry import family as make_family
 
 
@@ -50,11 +56,21 @@ def _nll_raw(fam, y, raw, w):
 
 
 def _dev_raw(fam, y, raw, w):
-    return _mean(fam.deviance(y, raw), w)
+    return _mean(fam.deviance(_plain(fam, y), raw), w)
+
+
+def _plain(fam, y):
+    """An IntervalTarget whose rows are all exact as its plain targets (the deviance kinds); censored
+    rows are refused by the family (they have no unit deviance)."""
+    if isinstance(y, IntervalTarget):
+        if not y.exact.all():
+            fam.deviance(y, np.zeros(y.size))  # raises, naming the censored rows
+        return y.lower
+    return y
 
 
 def _d2_raw(fam, y, raw, w):
-    y = fam.check_target(y, for_nll=False)
+    y = _plain(fam, fam.check_target(y, for_nll=False))
     dev = fam.deviance(y, raw)
     c0 = fam.baseline(y, w)
     null = fam.deviance(y, np.full_like(y, c0))
@@ -143,7 +159,11 @@ class LikelihoodScorer:
         if self.use_fitted and fitted is not None and getattr(fitted, "name", None) == fam.name:
             fam = fitted
         classes = getattr(estimator, "classes_", None)
-        y = np.asarray(y)
+        censored = isinstance(y, IntervalTarget)
+        if not censored:
+            y = np.asarray(y)
+        if classes is not None and censored:
+            raise ValueError("scorer: a classifier has no censored targets; an IntervalTarget needs a regressor")
         if classes is not None:
             if len(classes) != 2:
                 raise ValueError("scorer: a classifier must have exactly two classes for a likelihood score")

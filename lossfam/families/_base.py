@@ -403,5 +403,10 @@ class Family:
         """(log F, log S, log D, E) at finite bounds v inside the support (lossfam.families._censored)."""
         raise NotImplementedError(f"{type(self).__name__} has no censored likelihood")
 
+    def _tail_law(self):
+        """(TailLaw, scale) for the fast censored gradient and Hessian (lossfam.families._censored),
+        or None: the log-space ``_tail_pieces`` then serve every censored row."""
+        return None
+
     def _distribution(self, raw):  # pragma: no cover - abstract
         raise NotImplementedError(f"{type(self).__name__} has no predictive distribution")

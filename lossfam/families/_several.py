@@ -31,9 +31,10 @@ The engines' curvature
 ----------------------
 The engines grow one tree per raw score and round (LightGBM's and XGBoost's multi-output custom
 objectives take one gradient and one Hessian value per row and output), so they need a diagonal.
-``grad_hess(..., curvature=)`` chooses it, the same way in every engine:
+``grad_hess(..., curvature=)`` chooses it, the same way in every engine; without one, the family's
+``default_curvature`` (declared once on the family) applies:
 
-``"newton"`` (default)  the diagonal of the exact Hessian where it is positive; where a diagonal
+``"newton"``            the diagonal of the exact Hessian where it is positive; where a diagonal
                         entry is not positive (e.g. gaussian log sigma at a zero residual, where
                         d^2 nll / d log sigma^2 = 2 z^2 = 0), the family's positive surrogate,
                         the diagonal of the Fisher information (documented per family in
@@ -96,6 +97,10 @@ class SeveralScoreFamily:
     #: True when adding one constant to every raw score of a row changes nothing (softmax): the
     #: Hessian and Fisher matrices are then singular along (1, ..., 1)
     raw_shift_invariant: ClassVar[bool] = False
+    #: the engines' curvature when the user gives none ("newton", "fisher" or "natural"): families
+    #: with a cheap closed-form Fisher matrix declare "natural" (measured steadier on the scale
+    #: columns; README, "Several raw scores per row")
+    default_curvature: ClassVar[str] = "newton"
     #: True when the Fisher matrix is diagonal in the raw scores (the natural gradient divides)
     fisher_diagonal: ClassVar[bool] = False
     #: raw-score columns in which the nll has a kink (module docstring)
@@ -189,10 +194,13 @@ class SeveralScoreFamily:
             f = self._fisher(raw)
         return f if w is None else f * w[:, None, None]
 
-    def grad_hess(self, y, raw, weight=None, *, curvature: str = "newton"):
+    def grad_hess(self, y, raw, weight=None, *, curvature: str | None = None):
         """(gradient (n, k), diagonal curvature (n, k)) of weight * nll, as the engines use them.
 
-        ``curvature`` is "newton", "fisher" or "natural" (module docstring)."""
+        ``curvature`` is "newton", "fisher" or "natural" (module docstring); None: the family's
+        ``default_curvature``."""
+        if curvature is None:
+            curvature = self.default_curvature
         if curvature not in CURVATURES:
             raise ValueError(f"{self.name}: curvature must be one of {CURVATURES}, got {curvature!r}")
         y, raw, w = self._inputs(y, raw, weight, for_nll=False)

@@ -57,6 +57,7 @@ class AsymmetricLaplaceSpread(SeveralScoreFamily):
     param_domains = {"quantile": OPEN_UNIT}
     prediction_kind = "quantile"
     fisher_diagonal = True
+    default_curvature = "natural"
     kinked_scores = (0,)
 
     def constant_scale(self):

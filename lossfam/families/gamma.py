@@ -48,12 +48,45 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, stats
-from scipy.special import digamma, gammainc, gammaincc, gammaln, logsumexp
+from scipy.special import digamma, gammainc, gammaincc, gammaincinv, gammaln, logsumexp
 
 from .. import _checks
 from .._checks import POSITIVE
 from ..links import LOG
 from ._base import Family, scaled_mean
+from ._censored import TailLaw
+
+
+class LogGammaLaw(TailLaw):
+    """The law of z = log(G / k), G ~ Gamma(k, 1), in linear space for the censored gradient and
+    Hessian (lossfam.families._censored.TailLaw): with x = k e^z, F0 = P(k, x), S0 = Q(k, x)
+    (scipy.special.gammainc / gammaincc), f0 = x^k e^-x / Gamma(k), psi = k - x; the generic
+    ratios f0 / S0 and f0 / F0 (tails below TINY go to the log-space pieces).  At k = 1 the law
+    is the minimum extreme-value law (weibull's), used instead (``Gamma._tail_law``)."""
+
+    log_bounds = True
+
+    def __init__(self, k):
+        self.k = float(k)
+        self.log_k = float(np.log(k))
+        self.norm = float(gammaln(k))
+        self.median = float(np.log(gammaincinv(k, 0.5)) - self.log_k)
+
+    def _x(self, z):
+        return self.k * np.exp(z)
+
+    def pdf(self, z):
+        k = self.k
+        return np.exp(k * (self.log_k + z) - self._x(z) - self.norm)
+
+    def score(self, z):
+        return self.k - self._x(z)
+
+    def cdf(self, z):
+        return gammainc(self.k, self._x(z))
+
+    def sf(self, z):
+        return gammaincc(self.k, self._x(z))
 
 
 @dataclass(frozen=True)
@@ -150,6 +183,12 @@ class Gamma(Family):
             log_f0 = k * log_x - x - gammaln(k)
         log_p, log_q = _log_incomplete_gamma(k, x, log_x)
         return log_p, log_q, log_f0, x - k
+
+    def _tail_law(self):
+        if self.shape == 1.0:  # the exponential law: log G is the minimum extreme-value law
+            from .weibull import EXTREME_VALUE
+            return EXTREME_VALUE, 1.0
+        return LogGammaLaw(self.shape), 1.0
 
     def _distribution(self, raw):
         with np.errstate(over="ignore"):

@@ -95,6 +95,7 @@ class GammaSpread(SeveralScoreFamily):
     target_domain = POSITIVE
     prediction_kind = "mean"
     fisher_diagonal = True
+    default_curvature = "natural"
 
     def constant_scale(self):
         return Gamma()

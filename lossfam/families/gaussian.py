@@ -80,5 +80,8 @@ class Gaussian(Family):
     def _tail_pieces(self, v, raw):
         return _censored.normal_pieces((v - raw) / self.scale, self.scale)
 
+    def _tail_law(self):
+        return _censored.NORMAL, self.scale
+
     def _distribution(self, raw):
         return stats.norm(loc=raw, scale=self.scale)

@@ -12,6 +12,8 @@ With z = (y - mu) / sigma:
                is (-(y - mu), (1 - z^2) / 2))
 
 Newton's diagonal: d2/dr1^2 = 2 z^2 vanishes at a zero residual; there the Fisher entry 2 is used.
+The engines' curvature hooks are these closed forms (no (n, 2, 2) arrays): Newton (1/sigma^2,
+2 z^2 or 2), Fisher diagonal (1/sigma^2, 2), natural gradient (-(y - mu), (1 - z^2) / 2).
 Baseline: r0 = the weighted mean of y - o0, r1 = log of the maximum-likelihood standard deviation
 of the residuals (closed form; with an offset on r1 the generic search is used).
 """
@@ -36,6 +38,7 @@ class GaussianSpread(SeveralScoreFamily):
     links = (IDENTITY, LOG)
     target_domain = REAL
     fisher_diagonal = True
+    default_curvature = "natural"
 
     def constant_scale(self):
         from .gaussian import Gaussian
@@ -68,6 +71,20 @@ class GaussianSpread(SeveralScoreFamily):
         f[:, 0, 0] = inv_s * inv_s
         f[:, 1, 1] = 2.0
         return f
+
+    def _newton_diagonal(self, y, raw):
+        inv_s = np.exp(-raw[:, 1])
+        z = (y - raw[:, 0]) * inv_s
+        d1 = 2.0 * z * z
+        return np.column_stack([inv_s * inv_s, np.where(d1 > 0, d1, 2.0)])
+
+    def _fisher_diagonal(self, raw):
+        inv_s = np.exp(-raw[:, 1])
+        return np.column_stack([inv_s * inv_s, np.full(raw.shape[0], 2.0)])
+
+    def _natural_gradient(self, y, raw, g):
+        # F = diag(1/sigma^2, 2): F^{-1} g = (sigma^2 g0, g1 / 2)
+        return np.column_stack([g[:, 0] * np.exp(2.0 * raw[:, 1]), 0.5 * g[:, 1]])
 
     def _start(self, y, w, offset):
         t = y if offset is None else y - offset[:, 0]

@@ -42,7 +42,7 @@ from .._boost.quantiles import sample_quantile
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family, residuals, scaled_mean
-from ._censored import location_scale_pieces
+from ._censored import TailLaw, location_scale_pieces
 
 #: residuals below FLOOR * scale get the curvature of a residual of that size
 FLOOR = 1e-3
@@ -96,6 +96,70 @@ class _LaplaceLaw(stats.rv_continuous):
 
 
 laplace_law = _LaplaceLaw(name="laplace")
+
+
+class LaplaceTails(TailLaw):
+    r"""The standard Laplace law in linear space for the censored gradient and Hessian
+    (lossfam.families._censored.TailLaw).  Right-censored at z, with e = e^z for z < 0:
+
+        z >= 0:  r = f0 / S0 = 1,            c = r + psi = 0: the linear tail, whose Hessian 0 is
+                 replaced by the surrogate g^2 = r^2 / b^2, i.e. c = r = 1 is returned
+        z <  0:  r = e / (2 - e),            c = r + 1 = 2 / (2 - e)
+
+    and left(z) = right(-z) (symmetric law).  A closed interval z_lo < z_hi on one linear tail has
+    P proportional to e^(+-raw / b): gradient -+1 / b, Hessian 0 (the surrogate g^2 = 1 / b^2).
+    One that holds the mode (z_lo < 0 < z_hi) has, with e_lo = expm1(z_lo) and e_hi = expm1(-z_hi)
+    (each in (-1, 0): a sum without cancellation), P = -(e_lo + e_hi) / 2, a = f0(z_hi) / P =
+    (1 + e_hi) / (2 P), b = f0(z_lo) / P = (1 + e_lo) / (2 P), psi(z_hi) = -1 and psi(z_lo) = 1:
+
+        gradient = (a - b) / b_scale,   Hessian = (a + b + (a - b)^2) / b_scale^2   (> 0, exact)."""
+
+    symmetric = True
+    defers = False
+
+    @staticmethod
+    def closed(zl, zh):
+        g = np.where(zl >= 0, -1.0, 1.0)
+        h = np.ones(zl.shape)
+        mode = (zl < 0) & (zh > 0)
+        if mode.any():
+            e_lo = np.expm1(zl[mode])
+            e_hi = np.expm1(np.negative(zh[mode]))
+            p2 = np.add(e_lo, e_hi)  # -2 P
+            a = (1.0 + e_hi) / -p2
+            b = (1.0 + e_lo) / -p2
+            gm = a - b
+            g[mode] = gm
+            h[mode] = a + b + gm * gm
+        return g, h
+
+    def pdf(self, z):
+        return 0.5 * np.exp(-np.abs(z))
+
+    def score(self, z):
+        return -np.sign(z)
+
+    def cdf(self, z):
+        half = 0.5 * np.exp(-np.abs(z))
+        return np.where(z < 0, half, 1.0 - half)
+
+    def tail_pdf(self, z, upper):
+        # F0(z) = f0(z) for z < 0, 1 - f0(z) above (f0 = e^-|z| / 2); S0(z) = F0(-z)
+        f = np.abs(z)
+        np.negative(f, out=f)
+        np.exp(f, out=f)
+        f *= 0.5
+        near = (z < 0) == upper  # the tail holds the mode: 1 - f0
+        return np.where(near, 1.0 - f, f), f
+
+    def right(self, z):
+        e = np.exp(np.minimum(z, 0.0))
+        d = 2.0 - e
+        pos = z >= 0
+        return np.where(pos, 1.0, e / d), np.where(pos, 1.0, 2.0 / d)
+
+
+LAPLACE_TAILS = LaplaceTails()
 
 
 def weighted_quantile(values, weights, q):
@@ -155,6 +219,9 @@ class Laplace(Family):
         law = laplace_law
         return location_scale_pieces((v - raw) / self.scale, self.scale, law._logcdf, law._logsf,
                                      law._logpdf, lambda z: -np.sign(z))
+
+    def _tail_law(self):
+        return LAPLACE_TAILS, self.scale
 
     def _distribution(self, raw):
         return laplace_law(loc=raw, scale=self.scale)

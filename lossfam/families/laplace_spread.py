@@ -50,6 +50,7 @@ class LaplaceSpread(SeveralScoreFamily):
     target_domain = REAL
     prediction_kind = "median"
     fisher_diagonal = True
+    default_curvature = "natural"
     kinked_scores = (0,)
 
     def constant_scale(self):

@@ -85,6 +85,9 @@ class Lognormal(Family):
     def _tail_pieces(self, v, raw):
         return _censored.normal_pieces((np.log(v) - raw) / self.scale, self.scale)
 
+    def _tail_law(self):
+        return _censored.LOG_NORMAL, self.scale
+
     def _distribution(self, raw):
         with np.errstate(over="ignore"):
             return stats.lognorm(s=self.scale, scale=np.exp(raw))

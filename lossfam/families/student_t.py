@@ -50,12 +50,12 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import optimize, stats
-from scipy.special import expit, gammaln
+from scipy.special import expit, gammaln, stdtr
 
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
 from ._base import Family
-from ._censored import location_scale_pieces
+from ._censored import TailLaw, location_scale_pieces
 from .laplace import weighted_quantile
 
 #: range of the degrees of freedom searched when estimate_df=True
@@ -98,6 +98,29 @@ def _log1p_u2(y, raw, nu, s):
             x = 2.0 * (_log_abs_diff(y, raw)[far] - np.log(s)) - np.log(nu)  # log(u^2 / nu)
             out[far] = np.logaddexp(0.0, x)
     return out
+
+
+class StudentTTails(TailLaw):
+    """The standard t law with nu degrees of freedom in linear space, for the censored gradient
+    and Hessian (lossfam.families._censored.TailLaw): cdf scipy.special.stdtr, the generic ratios
+    f0 / S0; left(z) = right(-z)."""
+
+    symmetric = True
+
+    def __init__(self, nu):
+        self.nu = float(nu)
+        self.log_norm = float(_log_norm(self.nu))
+
+    def pdf(self, z):
+        nu = self.nu
+        return np.exp(-0.5 * (nu + 1.0) * np.log1p(z * z / nu) - self.log_norm)
+
+    def score(self, z):
+        nu = self.nu
+        return -(nu + 1.0) * z / (nu + z * z)
+
+    def cdf(self, z):
+        return stdtr(self.nu, z)
 
 
 @dataclass(frozen=True)
@@ -287,6 +310,9 @@ class StudentT(Family):
             (v - raw) / s, s, lambda z: stats.t.logcdf(z, nu), lambda z: stats.t.logsf(z, nu),
             lambda z: -0.5 * (nu + 1.0) * np.log1p(z * z / nu) - _log_norm(nu),
             lambda z: -(nu + 1.0) * z / (nu + z * z))
+
+    def _tail_law(self):
+        return StudentTTails(self.df), self.scale
 
     def _distribution(self, raw):
         return stats.t(df=self.df, loc=raw, scale=self.scale)

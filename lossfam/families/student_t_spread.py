@@ -59,6 +59,7 @@ class StudentTSpread(SeveralScoreFamily):
     param_domains = {"df": POSITIVE}
     prediction_kind = "median"
     fisher_diagonal = True
+    default_curvature = "natural"
 
     def constant_scale(self):
         return StudentT(df=self.df)
