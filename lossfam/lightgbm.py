@@ -774,12 +774,16 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     params.setdefault("metric", "None")
     params.setdefault("verbosity", -1)
     est = ldask.DaskLGBMRegressor(client=client, n_estimators=int(num_boost_round), **params)
-    est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
-    booster = _lgb().Booster(model_str=est.booster_.model_to_string())
+    with cluster.timed(plan.stats, "trees"):
+        est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
+    with cluster.timed(plan.stats, "model"):
+        booster = _lgb().Booster(model_str=est.booster_.model_to_string())
     info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
             "step_limit": guard.limit, "hessian_damping": guard.damping}
     fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, None, info)
-    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, _tree_range(booster))
+    with cluster.timed(plan.stats, "tree_range"):
+        tree_range = _tree_range(booster)
+    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, tree_range)
 
 
 def _tree_range(booster):

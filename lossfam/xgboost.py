@@ -639,12 +639,13 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     def dmatrix(X, y, w, o, start):  # base_margin replaces base_score: baseline + offset where there is an offset
         return dxgb.DaskDMatrix(client, X, y, weight=w, base_margin=None if o is None else start)
 
-    dtrain = dmatrix(plan.X, plan.y, plan.weight, plan.offset, plan.start)
-    dev = [(dmatrix(*v), name) for v, (_, name) in zip(valids, evals)]
-    out = dxgb.train(client, params, dtrain, int(num_boost_round), evals=dev, obj=obj,
-                     custom_metric=_Metric(fam, metric_kind, from_output=twin is not None) if dev else None,
-                     early_stopping_rounds=early_stopping_rounds,
-                     verbose_eval=engine_kwargs.get("verbose_eval", True))
+    with cluster.timed(plan.stats, "trees"):  # the engine's: its data objects and its training
+        dtrain = dmatrix(plan.X, plan.y, plan.weight, plan.offset, plan.start)
+        dev = [(dmatrix(*v), name) for v, (_, name) in zip(valids, evals)]
+        out = dxgb.train(client, params, dtrain, int(num_boost_round), evals=dev, obj=obj,
+                         custom_metric=_Metric(fam, metric_kind, from_output=twin is not None) if dev else None,
+                         early_stopping_rounds=early_stopping_rounds,
+                         verbose_eval=engine_kwargs.get("verbose_eval", True))
     booster = out["booster"]
     if engine_kwargs.get("evals_result") is not None:
         engine_kwargs["evals_result"].update(out["history"])
@@ -654,8 +655,9 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
             "step_limit": guard.limit, "hessian_damping": guard.damping}
     fit = BoostedFit(_ENGINE, booster, fam, baseline, fam, best, info)
-    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind,
-                          _tree_range(booster))
+    with cluster.timed(plan.stats, "tree_range"):
+        tree_range = _tree_range(booster)
+    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind, tree_range)
 
 
 def _tree_range(booster):

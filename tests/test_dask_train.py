@@ -99,6 +99,12 @@ def test_cluster_train_matches_local(engine, case, client, tmp_path):
     assert fit.info["cluster"]["partitions"] >= 16 and fit.info["objective"] == local.info["objective"]
     # without a nuisance fit the trained scores are checked from the trees' range, with one by predicting the rows
     assert fit.info["cluster"]["trained_check"] == ("rows" if fam.params else "bounds")
+    # the timing of lossfam's own steps: known steps only, their sum, and the engine's call apart
+    info = fit.info["cluster"]
+    assert set(info["seconds"]) <= set(cluster.STEPS) and {"checks", "baseline", "trained_check"} <= set(info["seconds"])
+    assert info["lossfam_seconds"] == pytest.approx(sum(info["seconds"].values()), abs=1e-3)
+    assert info["engine_seconds"] > 0 and info["overhead"] == pytest.approx(info["lossfam_seconds"] / info["engine_seconds"],
+                                                                            rel=1e-3, abs=1e-4)
 
     # the baseline: the quantile by exact selection is the local number; the poisson mean (the root of
     # the summed gradient) agrees to rounding: its partition sums are added in another order

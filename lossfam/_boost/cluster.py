@@ -77,6 +77,30 @@ SELECT_GATHER = 4096
 SELECT_PIVOTS = 1024
 NEWTON_STEPS = 100
 
+#: lossfam's own steps on a cluster, in the order they run (``fit.info["cluster"]["seconds"]``)
+STEPS = ("data", "checks", "baseline", "starts", "prefit", "valid_starts", "model", "tree_range", "trained_check",
+         "nuisance", "refit", "valid_metrics", "best_round")
+
+
+class timed:
+    """``with timed(stats, step):`` adds the block's wall seconds to ``stats["seconds"][step]``."""
+
+    def __init__(self, stats, step):
+        self.stats, self.step = stats, step
+
+    def __enter__(self):
+        import time
+
+        self.t0 = time.perf_counter()
+        return self
+
+    def __exit__(self, *exc):
+        import time
+
+        secs = self.stats.setdefault("seconds", {})
+        secs[self.step] = secs.get(self.step, 0.0) + time.perf_counter() - self.t0
+        return False
+
 
 def _dask():
     try:
@@ -297,6 +321,7 @@ def smooth_baseline(client, fam, y, w, o, stats=None, sums=None):
         stats["passes"] += 1
     c = _start_guess(client, fam, y, w, o, sums)
     lo, hi = -math.inf, math.inf  # G(lo) < 0 < G(hi)
+    last = None  # (c, H, step) of the previous pass
     for _ in range(NEWTON_STEPS):
         G, H = partition_sums(client, _gh_block, [y, w, o], fam, c)
         stats["passes"] += 1
@@ -308,9 +333,19 @@ def smooth_baseline(client, fam, y, w, o, stats=None, sums=None):
             lo = c
         else:
             hi = c
-        step = -G / H if H > 0 and math.isfinite(H) else -math.copysign(1.0, G)
-        if abs(step) <= 4 * np.spacing(max(abs(c), 1e-300)):
+        newton = H > 0 and math.isfinite(H)
+        step = -G / H if newton else -math.copysign(1.0, G)
+        ulp4 = 4 * np.spacing(max(abs(c), 1e-300))
+        if abs(step) <= ulp4:
             return c + step
+        if newton and last is not None and last[2] != 0 and abs(step) < 1e-3 * abs(last[2]):
+            # converging quadratically: the error left after this step is about |H'| step^2 / (2 H), H' the
+            # slope of the summed Hessian between the last two points; when that is below 4 ulp, the
+            # confirming pass would only move c by rounding (saves one pass of the usual 4-5)
+            slope = abs(H - last[1]) / abs(c - last[0])
+            if slope * step * step / (2 * H) <= ulp4 and lo < c + step < hi:
+                return c + step
+        last = (c, H, step) if newton else None
         new = c + step
         if not (lo < new < hi):
             if math.isinf(lo) or math.isinf(hi):  # expand towards the sign change
@@ -459,7 +494,7 @@ def _local_fit_block(y, w, raw, start, fam):
         return None
 
 
-def fit_nuisance(client, fam, y, w, raw, stats=None):
+def fit_nuisance(client, fam, y, w, raw, stats=None, first=None):
     """Maximum-likelihood nuisance parameters at the raw scores ``raw`` (Dask array), on the cluster.
 
     The parameters fitted are those the family's own fit returns (asymmetric
@@ -467,15 +502,18 @@ def fit_nuisance(client, fam, y, w, raw, stats=None):
     partition on a worker, which also gives the starting point.  Then the
     weighted mean nll over all partitions is minimised over their logs, one
     pass per evaluation.  Keeps the given parameters where no finite maximum
-    exists (as ``fit_nuisance_or_keep``)."""
+    exists (as ``fit_nuisance_or_keep``).  ``first``: that fit on the first partition when an
+    earlier pass has run it (``check_trained``)."""
     if not fam.params:
         return fam
     dask, _, _ = _dask()
     stats = {} if stats is None else stats
     stats.setdefault("nuisance_passes", 0)
     ys, ws, rs = y.to_delayed().ravel(), _blocks(w, y.numblocks[0]), raw.to_delayed().ravel()
-    local = None
-    for i in range(min(len(ys), 4)):  # the first partition where the family's own fit succeeds
+    local = first
+    for i in range(1 if first else 0, min(len(ys), 4)):  # the first partition where the family's own fit succeeds
+        if local:
+            break
         local = client.compute(dask.delayed(_local_fit_block, pure=True)(ys[i], ws[i], rs[i], 0, fam)).result()
         stats["nuisance_passes"] += 1
         if local:
@@ -545,6 +583,7 @@ def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
     eye = np.eye(d)
     f_x = None
     h_i = 0
+    last_size = None
     for _ in range(max_passes):
         h = FD_STEPS[h_i]
         pts = [x]
@@ -583,6 +622,11 @@ def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
                 h_i += 1  # close: the fine difference step from here on
         elif size <= NUISANCE_TOL:
             return x
+        elif last_size is not None and size < 1e-2 * last_size and size * size * size / (last_size * last_size) <= NUISANCE_TOL:
+            # converging quadratically (error_k+1 ~ C error_k^2, C ~ size / last_size^2): the step left after
+            # this one, about C size^2, is below the tolerance; the confirming pass is skipped
+            return x
+        last_size = size if h_i + 1 == len(FD_STEPS) else None
     return None
 
 
@@ -623,15 +667,30 @@ def _trained_block(raw, start, fam):
     return np.concatenate([[idx.size], (idx[:5] + start).astype(np.float64), np.full(5 - min(idx.size, 5), -1.0)])
 
 
-def check_trained(client, fam, raw):
-    """Refuse trained raw scores that are not finite or leave the link's range (rows named)."""
-    out = partition_results(client, _trained_block, [raw], fam)
+def _trained_fit_block(raw, y, w, start, fam, fit_first):
+    """``_trained_block``, and on the first partition (``fit_first``) the family's own nuisance fit there."""
+    bad = _trained_block(raw, start, fam)
+    return bad, (_local_fit_block(y, w, raw, start, fam) if fit_first and start == 0 else None)
+
+
+def check_trained(client, fam, raw, y=None, w=None):
+    """Refuse trained raw scores that are not finite or leave the link's range (rows named).
+
+    Given ``y`` (and ``w``), the same pass also runs the family's own nuisance fit on the first
+    partition and returns it (``fit_nuisance``'s ``first``); else returns None."""
+    if y is None:
+        out = partition_results(client, _trained_block, [raw], fam)
+        first = None
+    else:
+        both = partition_results(client, _trained_fit_block, [raw, y, w], fam, True)
+        out, first = [b for b, _ in both], both[0][1]
     count = int(sum(r[0] for r in out))
     if count:
         rows = [int(x) for r in out for x in r[1:] if x >= 0][:5]
         raise ValueError(f"{fam.name}: training diverged: the trained model's raw scores at {count} training rows "
                          f"(e.g. rows {rows}) are not finite or leave the {fam.link_function.name} link's range; "
                          "use a smaller learning rate (or a step_limit)")
+    return first
 
 
 # --------------------------------------------------------------------------- the plan
@@ -652,8 +711,9 @@ class ClusterPlan:
 
     def start_for(self, data: ClusterData, what):
         """(X, y, w, o, start) of a validation set: its start is baseline + its offset."""
-        X, y, w, o = data.aligned(self.client)
-        check_rows(self.client, self.family, y, w, o, what)
+        with timed(self.stats, "valid_starts"):
+            X, y, w, o = data.aligned(self.client)
+            check_rows(self.client, self.family, y, w, o, what)
         if self.offset is not None and o is None:
             raise ValueError(f"training used an offset but {what} has none: its metric would score the rows without "
                              "their offset; give it one (zeros where there truly is none)")
@@ -682,26 +742,23 @@ def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precisio
     """Baseline given offset and weights, starting scores and the pre-fit, computed on the workers
     (as ``plan.start_plan``: with ``engine``, a median / quantile family starts where that engine's
     built-in starts).  ``drop_unit_weights``: weights that are all 1 count as none (LightGBM's rule)."""
-    import time
-
-    t0 = time.perf_counter()
     stats = {"passes": 0, "gathered": 0, "seconds": {}}
-    X, y, w, o = data.aligned(client)
-    sums = check_rows(client, fam, y, w, o, "data")
+    with timed(stats, "data"):
+        X, y, w, o = data.aligned(client)
+    with timed(stats, "checks"):
+        sums = check_rows(client, fam, y, w, o, "data")
     if drop_unit_weights and w is not None and sums[4] == 0:
         w = None
-    t1 = time.perf_counter()
-    own = engine_start(client, fam, engine, y, w, o, stats, int(sums[3]))
-    baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums) if own is None else own))
+    with timed(stats, "baseline"):
+        own = engine_start(client, fam, engine, y, w, o, stats, int(sums[3]))
+        baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums) if own is None else own))
     if not math.isfinite(baseline):
         raise ValueError(f"{fam.name}: no finite constant raw score minimises the nll for these targets")
-    start = client.persist(starts_of(y, o, baseline))
-    t2 = time.perf_counter()
+    with timed(stats, "starts"):
+        start = client.persist(starts_of(y, o, baseline))
     if prefit and fam.location_needs_nuisance and fam.params:
-        fam = fit_nuisance(client, fam, y, w, start, stats)
-    t3 = time.perf_counter()
-    stats["seconds"].update(checks=t1 - t0, baseline=t2 - t1, prefit=t3 - t2)
-    stats["plan_seconds"] = t3 - t0
+        with timed(stats, "prefit"):
+            fam = fit_nuisance(client, fam, y, w, start, stats)
     return ClusterPlan(client, fam, baseline, X, y, w, o, start, stats, (-float(sums[5]), float(sums[6])))
 
 
@@ -798,42 +855,59 @@ def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kin
     scores and that range, plus the baseline and the offsets' range, stays finite and inside the
     link's range, no row can fail the check, and the pass that predicts every training row is
     skipped (local training checks the engine's own training output, which costs nothing)."""
-    import time
-
-    t0 = time.perf_counter()
     client, fam, stats = plan.client, plan.family, plan.stats
     need_rows = bool(fam.params) and nuisance_set is None
-    if not need_rows and tree_range is not None and _range_is_fine(fam, plan, tree_range):
-        raw, stats["trained_check"] = None, "bounds"  # no row can be off: no pass over the rows needed
-    else:
-        raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
-        check_trained(client, fam, raw)
-        stats["trained_check"] = "rows"
-    t1 = time.perf_counter()
-    if not fam.params:
-        fitted = fam
-    elif nuisance_set is None:
-        fitted = fit_nuisance(client, fam, plan.y, plan.weight, raw, stats)
-    else:
-        X, y, w, o, _ = valids[int(nuisance_set)]
-        fitted = fit_nuisance(client, fam, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]), stats)
+    with timed(stats, "trained_check"):
+        if not need_rows and tree_range is not None and _range_is_fine(fam, plan, tree_range):
+            raw, stats["trained_check"] = None, "bounds"  # no row can be off: no pass over the rows needed
+        else:
+            raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
+            first = check_trained(client, fam, raw, *((plan.y, plan.weight) if need_rows else ()))
+            stats["trained_check"] = "rows"
+    with timed(stats, "nuisance"):
+        if not fam.params:
+            fitted = fam
+        elif nuisance_set is None:
+            fitted = fit_nuisance(client, fam, plan.y, plan.weight, raw, stats, first=first)
+        else:
+            X, y, w, o, _ = valids[int(nuisance_set)]
+            fitted = fit_nuisance(client, fam, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]), stats)
     fit.fitted_family = fitted
-    t2 = time.perf_counter()
-    metrics = {}
-    for (X, y, w, o, _), name in zip(valids, valid_names):
-        metrics[name] = mean_loss(client, fam, metric_kind, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]))
-    t3 = time.perf_counter()
-    stats["finish_seconds"] = t3 - t0
-    stats["seconds"].update(predict_and_check=t1 - t0, nuisance=t2 - t1, valid_metrics=t3 - t2)
-    fit.info["cluster"] = {
+    metrics = stats.pop("valid_metrics", None)
+    if metrics is None:  # (early stopping has scored them already, round by round)
+        metrics = {}
+        with timed(stats, "valid_metrics"):
+            for (X, y, w, o, _), name in zip(valids, valid_names):
+                metrics[name] = mean_loss(client, fam, metric_kind, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]))
+    fit.info["cluster"] = cluster_info(plan, client, metrics)
+    return fit
+
+
+def cluster_info(plan, client, metrics):
+    """``fit.info["cluster"]``: where the work went.
+
+    ``seconds``: wall seconds of each of lossfam's own steps that ran (``STEPS``, in that order:
+    aligning/persisting the data, checking the rows, the baseline, the starting scores, the
+    nuisance pre-fit, the valid sets' checks and starts, fetching the model, reading the trees'
+    leaf range, checking the trained scores, the nuisance fit, leaf refits, the valid metrics, the
+    choice of the best round); ``lossfam_seconds`` their sum; ``engine_seconds`` the engine's
+    training call (``lightgbm.dask`` / ``xgboost.dask``: the trees, and with a Python objective
+    its gradients); ``overhead`` = lossfam_seconds / engine_seconds."""
+    stats = plan.stats
+    secs = stats.get("seconds", {})
+    engine = float(secs.pop("trees", float("nan")))
+    own = {k: round(float(secs[k]), 4) for k in STEPS if k in secs}
+    total = float(sum(secs[k] for k in STEPS if k in secs))
+    return {
         "partitions": int(plan.y.numblocks[0]), "workers": len(client.scheduler_info().get("workers", {})),
         "baseline_passes": int(stats.get("passes", 0)), "nuisance_passes": int(stats.get("nuisance_passes", 0)),
+        "refit_passes": int(stats.get("refit_passes", 0)),
         "gathered_rows": int(stats.get("gathered", 0)), "valid_metrics": metrics,
         "trained_check": stats.get("trained_check"),
-        "lossfam_seconds": float(stats["plan_seconds"] + stats["finish_seconds"]),
-        "seconds": {k: round(float(v), 4) for k, v in stats["seconds"].items()},
+        "lossfam_seconds": round(total, 4), "engine_seconds": round(engine, 4),
+        "overhead": total / engine if engine > 0 else float("nan"),
+        "seconds": own,
     }
-    return fit
 
 
 def refuse_refit(fam, engine_name):
