@@ -287,3 +287,62 @@ def test_nuisance_set_evals_and_early_stopping(client):
     assert logged[fit.best_iteration] == pytest.approx(expect, rel=1e-5)
     assert fit.info["cluster"]["valid_metrics"]["valid"] == pytest.approx(expect, rel=1e-9)
     assert fit.fitted_family.scale == pytest.approx(fam.fit_nuisance(yv, raw_v, wv).scale, rel=1e-7)
+
+
+def test_best_round_is_lightgbms_early_stopping_rule():
+    """cluster.best_round replays lightgbm.early_stopping on metric curves: the round it keeps is the
+    one LightGBM's own callback picks when fed the same values (ties, min_delta, several valid sets,
+    no stop before the last round)."""
+    from lightgbm.callback import CallbackEnv, EarlyStopException
+
+    rng = np.random.default_rng(4)
+    cases = [[np.r_[5.0, 4.0, 4.0, 3.5, 3.6, 3.5, 3.7, 3.8, 3.9, 4.0, 4.1]],
+             [np.r_[3.0, 2.0, 1.5, 1.4, 1.3, 1.2, 1.1, 1.0]]]  # never stops: the last round's best
+    cases += [[np.cumsum(rng.normal(-0.05, 0.3, 60)) for _ in range(k)] for k in (1, 2, 3) for _ in range(3)]
+    for curves in cases:
+        for rounds, delta in ((3, 0.0), (5, 0.0), (4, 0.05)):
+            cb = lgb.early_stopping(rounds, min_delta=delta, verbose=False)
+            T = len(curves[0])
+            kept = None
+            for it in range(T):
+                env = CallbackEnv(model=None, params={}, iteration=it, begin_iteration=0, end_iteration=T,
+                                  evaluation_result_list=[lgb.EvalResult(f"v{i}", "nll", float(c[it]), False, None)
+                                                          for i, c in enumerate(curves)])
+                try:
+                    cb(env)
+                except EarlyStopException as stop:
+                    kept = stop.best_iteration
+                    break
+            assert cluster.best_round(curves, rounds, delta) == kept, (rounds, delta)
+
+
+def test_lightgbm_early_stopping_on_the_cluster(client, tmp_path):
+    """LightGBM on the cluster with a ClusterData valid set (its own offset) and early_stopping: the
+    per-round curve is lossfam's nll on all valid rows of the model cut after that round, the model
+    keeps the rounds up to the best one, and the file keeps best_iteration."""
+    fam = lossfam.family("poisson")
+    X, y, w, o = _claims(31, 4000)
+    Xv, yv, _, ov = _claims(32, 2000)
+    valid = lossfam.ClusterData(_dask(Xv), _dask(yv), offset=_dask(ov))
+    fit = lfl.train(fam, dict(PARAMS["lightgbm"], learning_rate=0.6, num_leaves=31, min_data_in_leaf=5),
+                    lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 150, valid_sets=[valid],
+                    valid_names=["valid"], callbacks=[lgb.early_stopping(5, verbose=False)], client=client)
+    info = fit.info["cluster"]
+    curve = np.asarray(info["valid_curves"]["valid"])
+    best = fit.best_iteration
+    assert info["rounds_trained"] == len(curve) == 150
+    assert best is not None and best + 5 < 150 and fit.booster.num_trees() == best + 1
+    assert best == cluster.best_round([curve], 5)
+    for r in sorted({0, best // 2, best}):
+        raw = fit.baseline + ov + fit.booster.predict(Xv, raw_score=True, num_iteration=r + 1)
+        assert curve[r] == pytest.approx(float(np.mean(fam.nll(yv, raw))), rel=1e-9), r
+    assert info["valid_metrics"]["valid"] == curve[best] == pytest.approx(fit.mean_loss(Xv, yv, offset=ov), rel=1e-9)
+    assert "best_round" in info["seconds"]
+    path = tmp_path / "stopped.json"
+    fit.save(path)
+    back = lossfam.load(path)
+    assert back.best_iteration == best
+    np.testing.assert_array_equal(back.predict_raw(Xv, ov), fit.predict_raw(Xv, ov))
+    with pytest.raises(ValueError, match="only callback accepted"):
+        lfl.train(fam, PARAMS["lightgbm"], lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 5,
+                  valid_sets=[valid], callbacks=[lgb.log_evaluation(1)], client=client)

@@ -215,7 +215,9 @@ def _tree_add(dask, parts):
 
 
 def _blocks(arr, k):
-    return [None] * k if arr is None else list(arr.to_delayed().ravel())
+    if arr is None:
+        return [None] * k
+    return list(arr.to_delayed()) if _is_frame(arr) else list(arr.to_delayed().ravel())
 
 
 def _quiet(fn):
@@ -883,6 +885,56 @@ def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kin
     return fit
 
 
+# --------------------------------------------------------------------------- best round
+#: rows per block when a partition's raw scores are built round by round
+CURVE_ROWS = 8192
+
+
+def _curve_block(y, w, start, X, row0, leaves, tables, scorer):
+    """(sum w loss, sum w) after each round for one partition: ``leaves(X)`` gives the rows' leaf
+    index in every tree (n, T), ``tables[t]`` tree t's leaf values; the raw score after round t is
+    the start plus the cumulative sum of the rows' leaf values up to tree t."""
+    L = np.asarray(leaves(X))
+    y = np.asarray(y, dtype=np.float64)
+    start = np.asarray(start, dtype=np.float64)
+    T = len(tables)
+    out = np.zeros((T, 2))
+    for r0 in range(0, y.size, CURVE_ROWS):
+        sl = slice(r0, r0 + CURVE_ROWS)
+        raw = start[sl, None] + np.cumsum(np.column_stack([tables[t][L[sl, t]] for t in range(T)]), axis=1)
+        wb = None if w is None else np.asarray(w, dtype=np.float64)[sl]
+        for t in range(T):
+            out[t] += scorer.sums(y[sl], raw[:, t], wb)
+    return out.ravel()
+
+
+def round_curves(client, fam, kind, valid, leaves, tables):
+    """The weighted mean nll (or deviance) of a valid set (a ``ClusterPlan.start_for`` tuple) after
+    each round, in one pass over its partitions: only 2 numbers per round come back."""
+    dask, _, _ = _dask()
+    X, y, w, _, start = valid
+    leaves, tables = (dask.delayed(v, pure=True, traverse=False) for v in (leaves, tables))  # sent once, shared
+    sums = partition_sums(client, _curve_block, [y, w, start, X], leaves, tables, Scorer(fam, kind)).reshape(-1, 2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return sums[:, 0] / sums[:, 1]
+
+
+def best_round(curves, stopping_rounds, min_delta=0.0):
+    """The round LightGBM's ``early_stopping`` callback keeps (0-based), replayed on per-round metric
+    curves (lower is better): per round and valid set in order, a score below the set's best minus
+    ``min_delta`` becomes its best; the first set whose best is ``stopping_rounds`` rounds old stops
+    training at its best; at the last round the first set's best is kept."""
+    T = len(curves[0])
+    best_score, best_iter = [None] * len(curves), [0] * len(curves)
+    for it in range(T):
+        for i, c in enumerate(curves):
+            if best_score[i] is None or c[it] < best_score[i] - min_delta:
+                best_score[i], best_iter[i] = c[it], it
+            if it - best_iter[i] >= stopping_rounds or it == T - 1:
+                return best_iter[i]
+    return None
+
+
 def cluster_info(plan, client, metrics):
     """``fit.info["cluster"]``: where the work went.
 
@@ -904,6 +956,8 @@ def cluster_info(plan, client, metrics):
         "refit_passes": int(stats.get("refit_passes", 0)),
         "gathered_rows": int(stats.get("gathered", 0)), "valid_metrics": metrics,
         "trained_check": stats.get("trained_check"),
+        **({"valid_curves": stats["valid_curves"], "rounds_trained": stats["rounds_trained"]}
+           if "valid_curves" in stats else {}),
         "lossfam_seconds": round(total, 4), "engine_seconds": round(engine, 4),
         "overhead": total / engine if engine > 0 else float("nan"),
         "seconds": own,
