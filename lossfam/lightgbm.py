@@ -26,7 +26,9 @@ On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
 grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
 ``init_score``; lossfam's own steps run on the workers
 (``lossfam._boost.cluster``).  Native twins and the Python objective only (no
-refit path, no callbacks); ``valid_sets`` are scored after training.
+refit path); ``valid_sets`` are scored after training, and one
+``lightgbm.early_stopping`` callback is honoured by scoring every round on all
+valid rows afterwards and cutting the model at the best one.
 
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian
