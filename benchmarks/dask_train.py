@@ -62,6 +62,8 @@ def main():
     ap.add_argument("--partitions", type=int, default=16)
     ap.add_argument("--local-threads", type=int, default=2)
     ap.add_argument("--repeats", type=int, default=3)
+    ap.add_argument("--local-repeats", type=int, default=None,
+                    help="local trainings per cell (default: --repeats); fewer on a loaded machine")
     ap.add_argument("--engines", nargs="+", default=["xgboost", "lightgbm"])
     ap.add_argument("--cases", nargs="+", default=list(CASES), help=f"of {list(CASES)}")
     args = ap.parse_args()
@@ -84,7 +86,8 @@ def main():
     n = int(args.rows)
     rows = -(-n // args.partitions)
     print(f"rows {n}, rounds {args.rounds}, partitions {args.partitions}, local threads {args.local_threads}, "
-          f"cluster 2 workers x 1 thread, repeats {args.repeats} (medians)")
+          f"cluster 2 workers x 1 thread, repeats {args.repeats} (medians), local repeats "
+          f"{args.repeats if args.local_repeats is None else args.local_repeats}")
     print("load average before (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
     med = statistics.median
     cells = []
@@ -127,10 +130,11 @@ def main():
                     def remote():
                         return lfx.train(fam, dict(p, nthread=1), data, args.rounds, client=client, native=native)
                 t_loc, t_cl, infos = [], [], []
-                for _ in range(args.repeats):
-                    t0 = time.perf_counter()
-                    fl = local()
-                    t_loc.append(time.perf_counter() - t0)
+                for r in range(args.repeats):
+                    if r < (args.repeats if args.local_repeats is None else args.local_repeats):
+                        t0 = time.perf_counter()
+                        fl = local()
+                        t_loc.append(time.perf_counter() - t0)
                     t0 = time.perf_counter()
                     fc = remote()
                     t_cl.append(time.perf_counter() - t0)
