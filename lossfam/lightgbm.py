@@ -26,7 +26,9 @@ On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
 grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
 ``init_score``; lossfam's own steps run on the workers
 (``lossfam._boost.cluster``).  Native twins and the Python objective only (no
-refit path, no callbacks); ``valid_sets`` are scored after training.
+refit path); ``valid_sets`` are scored after training, and one
+``lightgbm.early_stopping`` callback is honoured by scoring every round on all
+valid rows afterwards and cutting the model at the best one.
 
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian
@@ -69,6 +71,7 @@ for rows that truly have none.  Datasets that already carry an
 """
 from __future__ import annotations
 
+import functools
 
 import numpy as np
 
@@ -501,11 +504,12 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
         raise ValueError(f"curvature={curvature!r} applies to families with several raw scores per row; "
                          f"{fam.name} has one (its Hessian is the family's own)")
     if isinstance(data, cluster.ClusterData):
-        if offset is not None or valid_offsets is not None or callbacks or engine_kwargs:
-            raise ValueError("on a Dask cluster the offsets live in ClusterData(offset=...); callbacks and other "
+        stopping = _cluster_stopping(lgb, callbacks)
+        if offset is not None or valid_offsets is not None or engine_kwargs:
+            raise ValueError("on a Dask cluster the offsets live in ClusterData(offset=...); other "
                              f"lightgbm.train arguments are not supported there (got {sorted(engine_kwargs)})")
         return _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, step_limit, native,
-                              nuisance_set, metric_kind, prefit, client)
+                              nuisance_set, metric_kind, prefit, client, stopping)
     call = _Call(lgb, params, data, valid_sets, valid_names, valid_offsets, nuisance_set, callbacks, engine_kwargs)
 
     # the start: targets, baseline given offset and weights, nuisance pre-fit, starting scores
@@ -764,8 +768,49 @@ def _finish(call, fam, y, w, run, valid):
     return fit_nuisance_or_keep(fam, vy, vraw, vw)
 
 
+def _cluster_stopping(lgb, callbacks):
+    """(stopping_rounds, min_delta) of the one ``lightgbm.early_stopping`` callback a cluster training
+    accepts, or None without callbacks."""
+    callbacks = list(callbacks or [])
+    if not callbacks:
+        return None
+    kind = getattr(getattr(lgb, "callback", None), "_EarlyStoppingCallback", None)
+    if len(callbacks) != 1 or kind is None or not isinstance(callbacks[0], kind):
+        raise ValueError("on a Dask cluster the only callback accepted is one lightgbm.early_stopping(...)")
+    cb = callbacks[0]
+    if cb.first_metric_only is not False and cb.first_metric_only is not True:
+        raise ValueError("early_stopping: first_metric_only must be a bool")
+    delta = cb.min_delta
+    if isinstance(delta, (list, tuple)):
+        if len(set(delta)) != 1:
+            raise ValueError("on a Dask cluster early_stopping takes one min_delta (lossfam's metric is the only one)")
+        delta = delta[0]
+    return int(cb.stopping_rounds), float(delta)
+
+
+def _pred_leaves(booster, X):
+    return booster.predict(X, pred_leaf=True)
+
+
+def _leaf_tables(booster):
+    """Per tree, its leaf values indexed by LightGBM's leaf index."""
+    tables = []
+    for tree in booster.dump_model().get("tree_info") or []:
+        values, stack = {}, [tree["tree_structure"]]
+        while stack:
+            node = stack.pop()
+            if "leaf_value" in node:
+                values[int(node.get("leaf_index", 0))] = float(node["leaf_value"])
+            else:
+                stack += [node["left_child"], node["right_child"]]
+        table = np.zeros(max(values) + 1)
+        table[list(values)] = list(values.values())
+        tables.append(table)
+    return tables
+
+
 def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, step_limit, native, nuisance_set,
-                   metric_kind, prefit, client):
+                   metric_kind, prefit, client, stopping=None):
     """``train`` on ClusterData: lossfam's steps on the workers (``lossfam._boost.cluster``), the trees by
     ``lightgbm.dask``, one model trained on all partitions."""
     import lightgbm.dask as ldask
@@ -780,6 +825,8 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     names = list(valid_names or [f"valid_{k}" for k in range(len(valid_sets))])
     if nuisance_set is not None and not (0 <= int(nuisance_set) < len(valid_sets)):
         raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(valid_sets)} valid_sets")
+    if stopping is not None and not valid_sets:
+        raise ValueError("early stopping needs at least one valid set (valid_sets=[ClusterData(...)])")
     plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, engine=_ENGINE,
                                 drop_unit_weights=True)
     fam = plan.family
@@ -793,12 +840,33 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     params.setdefault("metric", "None")
     params.setdefault("verbosity", -1)
     est = ldask.DaskLGBMRegressor(client=client, n_estimators=int(num_boost_round), **params)
-    est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
-    booster = _lgb().Booster(model_str=est.booster_.model_to_string())
+    with cluster.timed(plan.stats, "trees"):
+        est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
+    with cluster.timed(plan.stats, "model"):
+        booster = _lgb().Booster(model_str=est.booster_.model_to_string())
+    best = None
+    if stopping is not None:
+        # lightgbm.dask scores a valid set on each worker's part only, so the workers could not agree on
+        # when to stop: all rounds are trained, then lossfam's metric on all valid rows after every round
+        # (one pass per valid set) replays LightGBM's early-stopping rule and the model keeps the rounds
+        # up to the best one (the trees of those rounds do not depend on later ones)
+        with cluster.timed(plan.stats, "best_round"):
+            tables = _leaf_tables(booster)
+            curves = [cluster.round_curves(client, fam, metric_kind, v, functools.partial(_pred_leaves, booster), tables)
+                      for v in valids]
+            if tables:
+                best = cluster.best_round(curves, *stopping)
+                plan.stats["valid_metrics"] = {name: float(c[best]) for name, c in zip(names, curves)}
+                plan.stats["valid_curves"] = {name: [float(x) for x in c] for name, c in zip(names, curves)}
+                plan.stats["rounds_trained"] = len(tables)
+                if best + 1 < len(tables):
+                    booster = _lgb().Booster(model_str=booster.model_to_string(num_iteration=best + 1))
     info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
             "step_limit": guard.limit, "hessian_damping": guard.damping}
-    fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, None, info)
-    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, _tree_range(booster))
+    fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, best, info)
+    with cluster.timed(plan.stats, "tree_range"):
+        tree_range = _tree_range(booster)
+    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, tree_range)
 
 
 def _tree_range(booster):

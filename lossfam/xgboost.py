@@ -43,7 +43,8 @@ maps them back through the link.
 On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
 grown by ``xgboost.dask.train`` (base_margin = baseline + offset where there is
 an offset); lossfam's own steps run on the workers (``lossfam._boost.cluster``).
-Native twins and the Python objective only (no refit path).
+Median / quantile leaves on the custom path are renewed on the workers each round
+(``lossfam._xgboost_refit``: exact per-leaf quantiles over XGBoost's collective).
 
 Refit path (families whose ``leaf_value`` rule is not ``"newton"``, on the
 Python objective).  lossfam runs the rounds itself: each tree is grown with
@@ -639,14 +640,34 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, precision=np.float32,
                                 engine=_ENGINE)
     fam, baseline = plan.family, plan.baseline
-    guard, twin = cluster.cluster_path(fam, _ENGINE, "XGBoost", step_limit, native, params)
+    guard, twin = cluster.cluster_path(fam, _ENGINE, "XGBoost", step_limit, native, params,
+                                       refits=("median", "quantile"))
     rule = facts.leaf_rule(fam)
     valids = [plan.start_for(d, f"evals[{k}]") for k, (d, _) in enumerate(evals)]
     params.setdefault("disable_default_eval_metric", 1)
-    obj = None
+    obj, callbacks, engine_evals = None, None, True
     if twin is not None:
         params.update(twin)
         params["base_score"] = float(_base_score_of(fam, baseline, True))
+    elif rule in ("median", "quantile"):
+        # the refit on the workers (lossfam._xgboost_refit): leaves renewed to the residual quantile of the
+        # rows of every worker before each round; XGBoost's own scores miss the renewed leaves, so its
+        # metric would be wrong during training: the evals are scored by lossfam afterwards
+        if early_stopping_rounds:
+            raise ValueError(f"{fam.name} refits leaves on the cluster; early stopping is not supported on that path "
+                             "(train with native=True, or without early_stopping_rounds)")
+        if float(params.get("subsample", 1.0)) < 1.0 or int(params.get("num_parallel_tree", 1)) != 1 \
+                or params.get("booster", "gbtree") != "gbtree":
+            raise ValueError(f"{fam.name} refits leaves on the cluster: one tree per round on all rows "
+                             "(booster='gbtree', num_parallel_tree=1, no subsample)")
+        from . import _xgboost_refit
+
+        params["base_score"] = baseline
+        eta = float(params.get("learning_rate", params.get("eta", 0.3)))
+        obj, refit_cb = _xgboost_refit.make(rule, facts.leaf_level(fam), eta,
+                                            facts.renewal_definition(_ENGINE, weighted=plan.weight is not None),
+                                            baseline)
+        callbacks, engine_evals = [refit_cb], False
     else:
         params["base_score"] = baseline
         if guard.damping is not None:  # as in local training: the damped objective also clips each leaf
@@ -656,13 +677,19 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     def dmatrix(X, y, w, o, start):  # base_margin replaces base_score: baseline + offset where there is an offset
         return dxgb.DaskDMatrix(client, X, y, weight=w, base_margin=None if o is None else start)
 
-    dtrain = dmatrix(plan.X, plan.y, plan.weight, plan.offset, plan.start)
-    dev = [(dmatrix(*v), name) for v, (_, name) in zip(valids, evals)]
-    out = dxgb.train(client, params, dtrain, int(num_boost_round), evals=dev, obj=obj,
-                     custom_metric=_Metric(fam, metric_kind, from_output=twin is not None) if dev else None,
-                     early_stopping_rounds=early_stopping_rounds,
-                     verbose_eval=engine_kwargs.get("verbose_eval", True))
+    with cluster.timed(plan.stats, "trees"):  # the engine's: its data objects and its training
+        dtrain = dmatrix(plan.X, plan.y, plan.weight, plan.offset, plan.start)
+        dev = [(dmatrix(*v), name) for v, (_, name) in zip(valids, evals)] if engine_evals else []
+        out = dxgb.train(client, params, dtrain, int(num_boost_round), evals=dev, obj=obj,
+                         custom_metric=_Metric(fam, metric_kind, from_output=twin is not None) if dev else None,
+                         early_stopping_rounds=early_stopping_rounds, callbacks=callbacks,
+                         verbose_eval=engine_kwargs.get("verbose_eval", True))
     booster = out["booster"]
+    if callbacks:  # the refit ran inside the engine's call: its seconds are lossfam's
+        secs, reductions = _xgboost_refit.take_timing(booster)
+        plan.stats["seconds"]["refit"] = secs
+        plan.stats["seconds"]["trees"] -= secs
+        plan.stats["refit_passes"] = reductions
     if engine_kwargs.get("evals_result") is not None:
         engine_kwargs["evals_result"].update(out["history"])
     best = _best_iteration(booster) if early_stopping_rounds else None
@@ -671,8 +698,9 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
             "step_limit": guard.limit, "hessian_damping": guard.damping}
     fit = BoostedFit(_ENGINE, booster, fam, baseline, fam, best, info)
-    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind,
-                          _tree_range(booster))
+    with cluster.timed(plan.stats, "tree_range"):
+        tree_range = _tree_range(booster)
+    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind, tree_range)
 
 
 def _tree_range(booster):
