@@ -205,17 +205,13 @@ class SeveralScoreFamily:
             raise ValueError(f"{self.name}: curvature must be one of {CURVATURES}, got {curvature!r}")
         y, raw, w = self._inputs(y, raw, weight, for_nll=False)
         with np.errstate(over="ignore", divide="ignore"):
-            g = self._gradient(y, raw)
-            if curvature == "newton":
-                d = self._newton_diagonal(y, raw)
-            elif curvature == "fisher":
-                d = self._fisher_diagonal(raw)
-            elif self.fisher_diagonal:
-                g = g / self._fisher_diagonal(raw)
+            if curvature == "natural":
+                g = self._natural_direction(y, raw)
                 d = np.ones_like(g)
+            elif curvature == "newton":
+                g, d = self._gradient(y, raw), self._newton_diagonal(y, raw)
             else:
-                g = self._natural_gradient(y, raw, g)
-                d = np.ones_like(g)
+                g, d = self._gradient(y, raw), self._fisher_diagonal(raw)
         if w is not None:
             g = g * w[:, None]
             d = d * w[:, None]
@@ -293,6 +289,14 @@ class SeveralScoreFamily:
         if rows.any():  # the Fisher diagonal of those rows only (it may be costly to compute)
             d[rows] = np.where(bad[rows], self._fisher_diagonal(raw[rows]), d[rows])
         return d
+
+    def _natural_direction(self, y, raw):
+        """(n, k) F^{-1} g at (y, raw): the gradient divided by the Fisher diagonal when that matrix
+        is diagonal, else ``_natural_gradient``; families with a closed form override this."""
+        g = self._gradient(y, raw)
+        if self.fisher_diagonal:
+            return g / self._fisher_diagonal(raw)
+        return self._natural_gradient(y, raw, g)
 
     def _natural_gradient(self, y, raw, g):
         """(n, k) F^{-1} g per row (a k x k solve; families with a closed form override this)."""
