@@ -47,8 +47,9 @@ the Python objective).  Each tree is grown on the rule's gradient (the pinball
 subgradient with a unit Hessian for median/quantile; the family's own for a
 line search), then its leaves are set from ``lossfam._boost.leaves`` via
 ``Booster.set_leaf_output`` (a median / quantile leaf by LightGBM's own
-definition, Hyndman and Fan's 7, on unweighted rows: the same leaf values as
-the native twin's, so ``native=False`` gives the native path's model; on
+definition, Hyndman and Fan's 7, interpolated as LightGBM does it, on unweighted
+rows: the same leaf values as the native twin's, so ``native=False`` gives the
+native path's model; on
 weighted rows, which LightGBM renews by a rule of its own, the midpoint of the
 leaf's minimisers).  LightGBM's score caches never see edited leaves,
 so ``train`` keeps the raw scores of the training and validation sets itself

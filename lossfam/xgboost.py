@@ -52,7 +52,8 @@ Hessian for median/quantile, as the built-ins; the family's own for a line
 search), its leaves are read with ``booster[i:i+1].predict(pred_leaf=True)``
 and set from ``lossfam._boost.leaves`` (a median / quantile leaf by XGBoost's
 own definition: Hyndman and Fan's 6 without weights, the inverted weighted cdf
-with them; so ``native=False`` gives the native path's model); the values are tracked by lossfam and
+with them; without weights also in XGBoost's float32 arithmetic, from float32
+scores, so ``native=False`` gives the native path's model exactly); the values are tracked by lossfam and
 written into the model's JSON once, at the end.  With ``subsample`` < 1
 lossfam draws the bag itself and refits on in-bag rows only.  This path
 accepts ``evals``, ``early_stopping_rounds``, ``evals_result``,
@@ -69,7 +70,7 @@ from . import _checks
 from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
 from ._boost.gradients import warn_if_far_from_baseline
-from ._boost.leaves import RowBag, leaf_table
+from ._boost.leaves import ENGINE_ARITHMETIC, RowBag, leaf_table
 from ._boost.model import BoostedFit
 from ._boost.model import load as _load
 from ._boost.plan import censored_passes, checked_training_raw, fit_info, fit_nuisance_or_keep, start_plan
@@ -579,11 +580,14 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
         params = {k: v for k, v in params.items() if k != "subsample"}
 
     booster = xgb.Booster(params, [dtrain] + [d for d, _ in evals])
-    raw = start.copy()
+    # median / quantile leaves renewed as XGBoost renews them: from its float32 scores (float32 sums of
+    # float32 leaves), so that the custom path follows the native twin round after round
+    scores = np.float32 if rule in ("median", "quantile") and definition in ENGINE_ARITHMETIC else np.float64
+    raw = start.astype(scores)
     eval_state = []
     for d, name in evals:
         o = d.get_base_margin()  # already shifted by the baseline
-        eval_state.append((d, name, np.full(d.num_row(), baseline) if o.size == 0 else o.astype(np.float64)))
+        eval_state.append((d, name, np.full(d.num_row(), baseline, dtype=scores) if o.size == 0 else o.astype(scores)))
     log = {name: {} for _, name in evals}
     tables = []
     best_score, best_iter = math.inf, None
@@ -598,11 +602,13 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
         lvs = [np.asarray(tree.predict(d, pred_leaf=True), dtype=np.intp).reshape(-1) for d, _, _ in eval_state]
         n_nodes = max([n_nodes] + [int(lv.max()) + 1 for lv in lvs if lv.size])
         values, has = leaf_table(rule, level, fam, leaves, y, raw, wi, n_nodes, eta, definition)
-        table = np.where(has, values, 0.0).astype(np.float32).astype(np.float64)
+        table32 = np.where(has, values, 0.0).astype(np.float32)
+        table = table32.astype(np.float64)
         tables.append(table)
-        raw += table[leaves]
+        step = table32 if scores is np.float32 else table
+        raw += step[leaves]
         for (d, name, r), lv in zip(eval_state, lvs):
-            r += table[lv]
+            r += step[lv]
         if evals:
             line = [f"[{i}]"]
             for d, name, r in eval_state:
