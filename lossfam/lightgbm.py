@@ -49,8 +49,9 @@ the Python objective).  Each tree is grown on the rule's gradient (the pinball
 subgradient with a unit Hessian for median/quantile; the family's own for a
 line search), then its leaves are set from ``lossfam._boost.leaves`` via
 ``Booster.set_leaf_output`` (a median / quantile leaf by LightGBM's own
-definition, Hyndman and Fan's 7, on unweighted rows: the same leaf values as
-the native twin's, so ``native=False`` gives the native path's model; on
+definition, Hyndman and Fan's 7, interpolated as LightGBM does it, on unweighted
+rows: the same leaf values as the native twin's, so ``native=False`` gives the
+native path's model; on
 weighted rows, which LightGBM renews by a rule of its own, the midpoint of the
 leaf's minimisers).  LightGBM's score caches never see edited leaves,
 so ``train`` keeps the raw scores of the training and validation sets itself
@@ -82,7 +83,8 @@ from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
 from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
-from ._boost.plan import censored_passes, check_trained, fit_nuisance_or_keep, start_plan, train_in_passes
+from ._boost.plan import censored_passes, checked_training_raw, fit_info, fit_nuisance_or_keep, start_plan
+from ._boost.plan import train_in_passes, training_path
 from ._boost.scoring import Scorer, raw_from_output
 from ._boost import several as _several
 from .censoring import IntervalTarget
@@ -522,16 +524,12 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
                                callbacks=callbacks, **engine_kwargs)
     plan = start_plan(fam, y, w, offset, prefit=prefit, engine=_ENGINE)
     fam = plan.family
-    guard = resolve_guard(fam, step_limit)
     valid = _ValidStarts(lgb, call, plan, fam)
 
     # the engine's objective: the native twin, the Python objective, or the Python objective with leaf refit
-    twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native,
-                             guard_is_default=guard == resolve_guard(fam, "auto"), params=call.params)
     censored = isinstance(y, IntervalTarget)
-    if censored:  # the censored likelihood: lossfam's gradients, Newton leaves
-        twin = None
-    refit = _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid, newton_leaves=censored)
+    guard, twin, rule = training_path(fam, _ENGINE, "LightGBM", step_limit, native, call.params, censored)
+    refit = _plumb(call, fam, guard, metric_kind, twin, rule, y, w, plan, valid)
     if refit is None and not censored and _label_is_a_copy(data, y):
         y = w = None  # a float64 copy of LightGBM's float32 label: read again after training, not held during it
 
@@ -541,11 +539,8 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
 
     # the trained model: its training scores checked, its nuisance parameters fitted
     fitted = _finish(call, fam, y, w, run, valid)
-    info = {"objective": run.twin["objective"] if run.twin else "custom",
-            "leaf_value": ("newton" if censored else facts.leaf_rule(fam)) if run.twin is None else "engine",
-            "step_limit": None if guard.limit is None else guard.limit, "hessian_damping": guard.damping}
     best = run.best - 1 if run.best > 0 else None
-    return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, best, info)
+    return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, best, fit_info(run.twin, rule, guard))
 
 
 class _Call:
@@ -606,12 +601,11 @@ class _ValidStarts:
             self.starts[k] = plan.start_for(self.targets[k][0].size, vo, f"valid_offsets[{k}]")
 
 
-def _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid, newton_leaves=False):
-    """Set the engine objective, metrics and callbacks of the chosen path; the refit state (or None).
-    ``newton_leaves``: keep the engine's Newton leaves whatever the family's rule (censored targets)."""
+def _plumb(call, fam, guard, metric_kind, twin, rule, y, w, plan, valid):
+    """Set the engine objective, metrics and callbacks of the chosen path; the refit state (or None)."""
     params = call.params
     refit = None
-    if twin is None and not newton_leaves and facts.leaf_rule(fam) != "newton":
+    if twin is None and rule != "newton":
         refit = _refit_state(call, fam, guard, y, w, plan, valid)
     own_metric = _Metric(fam, metric_kind, from_output=twin is not None)
     call.fevals = [own_metric] + call.user_feval
@@ -749,13 +743,8 @@ def _training_output(booster, copy):
 
 def _finish(call, fam, y, w, run, valid):
     """Check the trained scores of the training rows; the family with its nuisance parameters fitted."""
-    if run.train_pred is not None:
-        check_trained(fam, pred=run.train_pred)
-        if fam.params:
-            run.train_raw = raw_from_output(fam, run.train_pred, overwrite=True)
-        run.train_pred = None
-    else:
-        check_trained(fam, raw=run.train_raw)
+    run.train_raw = checked_training_raw(fam, run.train_raw, run.train_pred)
+    run.train_pred = None
     if not fam.params:
         return fam
     k = call.nuisance_set
@@ -861,9 +850,7 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
                 plan.stats["rounds_trained"] = len(tables)
                 if best + 1 < len(tables):
                     booster = _lgb().Booster(model_str=booster.model_to_string(num_iteration=best + 1))
-    info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
-            "step_limit": guard.limit, "hessian_damping": guard.damping}
-    fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, best, info)
+    fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, best, fit_info(twin, rule, guard))
     with cluster.timed(plan.stats, "tree_range"):
         tree_range = _tree_range(booster)
     return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, tree_range)

@@ -445,6 +445,30 @@ def test_sample_quantile_definitions_match_numpy():
                 assert values[k] == sample_quantile(x[group == k], 5.0 * ww[group == k], 0.3, definition)  # scale-free
 
 
+def test_engine_arithmetic_quantiles_per_group():
+    """grouped_engine_quantile: per group, XGBoost's float32 rule is single_precision_quantile's
+    (the engine's start, reproduced bit for bit below) on that group's float32 values; LightGBM's
+    double interpolation from the upper neighbour is numpy's "linear" quantile at the float32
+    level, to rounding."""
+    from lossfam._boost.quantiles import grouped_engine_quantile, single_precision_quantile
+
+    rng = np.random.default_rng(5)
+    for trial in range(6):
+        n_groups = 9
+        group = rng.integers(0, n_groups - 1, 3000)  # the last group stays empty
+        group[:40] = np.arange(40) % (n_groups - 1)
+        x = np.round(rng.gamma(2.0, 30.0, group.size)) if trial % 2 else rng.standard_normal(group.size) * 1e3
+        for q in (0.01, 0.05, 0.5, 0.9, 0.99):
+            v32, has = grouped_engine_quantile(group, x.astype(np.float32), q, n_groups, "weibull")
+            v64, has64 = grouped_engine_quantile(group, x, q, n_groups, "linear")
+            assert v32.dtype == np.float32 and has.tolist() == has64.tolist() == [True] * 8 + [False]
+            for k in range(n_groups - 1):
+                xs = x[group == k]
+                assert v32[k] == single_precision_quantile(xs.astype(np.float32), None, q, "weibull")
+                ref = np.quantile(xs, float(np.float32(q)), method="linear")
+                assert abs(v64[k] - ref) <= 1e-12 * max(1.0, abs(ref)), (trial, q, k)
+
+
 @pytest.mark.parametrize(("engine", "weighted"), [("lightgbm", False), ("xgboost", False), ("xgboost", True)],
                          ids=["lightgbm-unweighted", "xgboost-unweighted", "xgboost-weighted"])
 def test_engine_renewal_definitions_are_the_engines(engine, weighted):
