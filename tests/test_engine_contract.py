@@ -526,3 +526,38 @@ def test_engine_starts_are_reproduced_bit_for_bit(engine, weighted):
                 config = json.loads(b.save_config())["learner"]["learner_model_param"]["base_score"]
                 theirs = float(np.float32(float(config.strip("[]"))))
             assert facts.engine_start(fam, engine, y, w) == theirs, (trial, n, tau)
+
+
+def test_line_search_leaves_cannot_diverge_from_far_residuals(rng):
+    # logistic errors have a bounded score: a bare Newton step from a residual z is s sinh(z),
+    # which overshoots and diverged (NaN leaves) for small leaves of far-off rows; each leaf's
+    # step is now halved until its nll does not rise, and the leaf still reaches its root
+    from lossfam._boost.leaves import grouped_line_search
+    fam = LogisticErrorsDeclared(scale=1.3)
+    n, n_leaves = 500, 20
+    leaf = rng.integers(0, n_leaves, n)
+    y = 2.0 * rng.logistic(size=n)
+    y[leaf == 3] += 40.0
+    raw, w = rng.normal(size=n), rng.uniform(0.0, 2.0, n)
+    c, has = grouped_line_search(fam, leaf, y, raw, w, n_leaves)
+    g, _ = fam._grad_hess(y, raw + c[leaf])
+    assert has.all() and np.isfinite(c).all()
+    np.testing.assert_allclose(np.bincount(leaf, weights=g * w, minlength=n_leaves), 0.0, atol=1e-10)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_line_search_with_bagging_weights_and_tiny_leaves_trains(engine, rng):
+    # the case that produced NaN leaves in XGBoost: depth 8, no minimum leaf weight, half the rows
+    # in the bag, user weights
+    X = rng.normal(size=(600, 4))
+    y = X[:, 0] + rng.logistic(size=600)
+    w = rng.uniform(0.2, 3.0, 600)
+    if engine == "xgboost":
+        fit = lossfam.xgboost.train(LogisticErrorsDeclared.name, dict(max_depth=8, eta=0.3, subsample=0.5, nthread=1,
+                                    seed=1, min_child_weight=0), xgb.DMatrix(X, y, weight=w), 30)
+    else:
+        fit = lossfam.lightgbm.train(LogisticErrorsDeclared.name, dict(num_leaves=64, learning_rate=0.3,
+                                     min_data_in_leaf=1, min_sum_hessian_in_leaf=0, bagging_fraction=0.5,
+                                     bagging_freq=1, verbosity=-1, num_threads=1, seed=1),
+                                     lgb.Dataset(X, y, weight=w), 30)
+    assert np.isfinite(fit.predict(X)).all()

@@ -27,24 +27,49 @@ from .quantiles import grouped_engine_quantile, grouped_quantile
 
 LINE_SEARCH_STEPS = 50
 LINE_SEARCH_TOL = 1e-10
+LINE_SEARCH_HALVINGS = 40
 
 
 def grouped_line_search(fam, leaf, y, raw, w, n_leaves):
-    """Per leaf, the constant c with sum over the leaf of w g(y, raw + c) = 0 (Newton / IRLS)."""
+    """Per leaf, the constant c with sum over the leaf of w g(y, raw + c) = 0: Newton / IRLS steps
+    on the family's own curvature, each halved (up to ``LINE_SEARCH_HALVINGS`` times) until the
+    leaf's weighted nll does not rise, so that a leaf of few far-off rows, where a bare Newton step
+    on a bounded score overshoots (logistic errors: s sinh(z) from a residual z), cannot diverge.
+    A leaf whose step cannot be made to lower its nll stops where it is."""
     wt = np.ones_like(y) if w is None else w
     mass = np.bincount(leaf, weights=wt, minlength=n_leaves)
     has = mass > 0
     c = np.zeros(n_leaves)
+
+    def leaf_nll(cv):
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            v = fam._nll(y, raw + cv[leaf]) * wt
+        v[wt == 0] = 0.0  # out-of-bag rows take no part, whatever their nll
+        return np.bincount(leaf, weights=v, minlength=n_leaves)
+
+    current = leaf_nll(c)
     for _ in range(LINE_SEARCH_STEPS):
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             g, h = fam._grad_hess(y, raw + c[leaf])
-        G = np.bincount(leaf, weights=g * wt, minlength=n_leaves)
-        H = np.bincount(leaf, weights=h * wt, minlength=n_leaves)
-        with np.errstate(invalid="ignore", divide="ignore"):
+            G = np.bincount(leaf, weights=g * wt, minlength=n_leaves)
+            H = np.bincount(leaf, weights=h * wt, minlength=n_leaves)
             step = np.where(has & (H > 0), -G / H, 0.0)
-        if not np.all(np.isfinite(step)):
-            break
+        step[~np.isfinite(step)] = 0.0
+        moving = step != 0.0
+        worse = np.zeros(n_leaves, dtype=bool)
+        for _ in range(LINE_SEARCH_HALVINGS):
+            if not moving.any():
+                break
+            trial = leaf_nll(c + np.where(moving, step, 0.0))
+            worse = moving & ~(trial <= current + 1e-12 * np.abs(current))
+            if not worse.any():
+                break
+            step[worse] *= 0.5
+        else:
+            worse = moving & ~(trial <= current + 1e-12 * np.abs(current))
+        step[worse] = 0.0
         c += step
+        current = leaf_nll(c)
         if np.all(np.abs(step) <= LINE_SEARCH_TOL * (1.0 + np.abs(c))):
             break
     return c, has
