@@ -8,11 +8,16 @@ weighted rows), alternately:
   ``LocalCluster(n_workers=2, threads_per_worker=1)`` (worker processes), the data already
   persisted on the workers in ``--partitions`` partitions.
 
-Printed per cell (medians over ``--repeats``): local seconds, cluster seconds, their ratio; the
-seconds of lossfam's own cluster steps (checks, baseline, starting scores, the nuisance fit, the
-check of the trained scores: ``fit.info["cluster"]["lossfam_seconds"]``) and their share of the
-engine's training time on the cluster (cluster seconds minus lossfam's); the passes over the
-partitions; the held-out mean nll of the cluster model over the local model's.
+Printed (medians over ``--repeats``), first one row per cell: local seconds, cluster seconds (the
+whole ``train`` call), their ratio; the engine's training call on the cluster
+(``fit.info["cluster"]["engine_seconds"]``: ``lightgbm.dask`` / ``xgboost.dask`` growing the trees);
+lossfam's own cluster steps (``lossfam_seconds``: checks, baseline, starting scores, nuisance
+fit, refits, metric, ...) and their share of the engine time (``overhead``, the target is at most
+10%); the passes over the partitions; the held-out mean nll of the cluster model over the local
+model's.  Then one row per cell with each step's median seconds and its share of the engine time
+(``fit.info["cluster"]["seconds"]``, steps in ``lossfam._boost.cluster.STEPS``).  The load average
+(``os.getloadavg``) is printed before and after: on a shared machine the seconds mean little
+without it.
 
 Usage::
 
@@ -25,6 +30,7 @@ from __future__ import annotations
 
 import argparse
 import statistics
+import warnings
 import time
 
 import numpy as np
@@ -43,7 +49,10 @@ def delays(rng, n):
     return X, y, rng.uniform(0.5, 2.0, n), None
 
 
-CASES = {"poisson+exposure": ("poisson", {}, claims), "asymmetric_laplace(0.9)": ("asymmetric_laplace", {"quantile": 0.9}, delays)}
+CASES = {"poisson+exposure": ("poisson", {}, claims, True),
+         "asymmetric_laplace(0.9)": ("asymmetric_laplace", {"quantile": 0.9}, delays, True),
+         # the custom path with lossfam's leaf refit (XGBoost only: LightGBM refuses it on a cluster)
+         "asymmetric_laplace(0.9) refit": ("asymmetric_laplace", {"quantile": 0.9}, delays, False)}
 
 
 def main():
@@ -53,8 +62,13 @@ def main():
     ap.add_argument("--partitions", type=int, default=16)
     ap.add_argument("--local-threads", type=int, default=2)
     ap.add_argument("--repeats", type=int, default=3)
-    ap.add_argument("--engines", nargs="+", default=["lightgbm", "xgboost"])
+    ap.add_argument("--local-repeats", type=int, default=None,
+                    help="local trainings per cell (default: --repeats); fewer on a loaded machine")
+    ap.add_argument("--engines", nargs="+", default=["xgboost", "lightgbm"])
+    ap.add_argument("--cases", nargs="+", default=list(CASES), help=f"of {list(CASES)}")
     args = ap.parse_args()
+    warnings.filterwarnings("ignore", message="Sending large graph")  # the data, sent once before timing
+    warnings.filterwarnings("ignore", message="Parameter n_jobs will be ignored")
 
     import dask.array as da
     import lightgbm as lgb
@@ -65,26 +79,36 @@ def main():
     from lossfam import lightgbm as lfl
     from lossfam import xgboost as lfx
 
+    import os
+
+    from lossfam._boost.cluster import STEPS
+
     n = int(args.rows)
     rows = -(-n // args.partitions)
     print(f"rows {n}, rounds {args.rounds}, partitions {args.partitions}, local threads {args.local_threads}, "
-          f"cluster 2 workers x 1 thread, repeats {args.repeats} (medians)")
-    print("| engine | family | local s | cluster s | cluster / local | lossfam steps s | share of engine time "
-          "| passes (baseline, nuisance) | held-out nll cluster / local |")
-    print("|---|---|---:|---:|---:|---:|---:|---|---:|")
+          f"cluster 2 workers x 1 thread, repeats {args.repeats} (medians), local repeats "
+          f"{args.repeats if args.local_repeats is None else args.local_repeats}")
+    print("load average before (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
+    med = statistics.median
+    cells = []
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as lc, \
             Client(lc) as client:
         t0 = time.perf_counter()
         client.run(lambda: __import__("lossfam.lightgbm") and __import__("lossfam.xgboost"))  # one-time import cost
         print(f"(workers import lossfam and the engines once: {time.perf_counter() - t0:.1f} s, not counted below)")
+        print("| engine | family | local s | cluster s | cluster / local | engine s | lossfam steps s | overhead "
+              "| passes (baseline, nuisance) | held-out nll cluster / local |")
+        print("|---|---|---:|---:|---:|---:|---:|---:|---|---:|", flush=True)
         for engine in args.engines:
-            for case, (name, params, make) in CASES.items():
+            for case, (name, params, make, native) in CASES.items():
+                if case not in args.cases or (not native and engine == "lightgbm"):
+                    continue
                 fam = lossfam.family(name, **params)
                 rng = np.random.default_rng(2026)
                 X, y, w, o = make(rng, n)
                 Xt, yt, wt, ot = make(rng, n // 5)
 
-                def chunked(a):
+                def chunked(a):  # persisted on the workers before timing
                     return None if a is None else client.persist(da.from_array(a, chunks=(rows,) + a.shape[1:]))
                 data = lossfam.ClusterData(chunked(X), chunked(y), weight=chunked(w), offset=chunked(o))
                 if engine == "lightgbm":
@@ -92,38 +116,50 @@ def main():
 
                     def local():
                         return lfl.train(fam, dict(p, num_threads=args.local_threads), lgb.Dataset(X, y, weight=w),
-                                         args.rounds, offset=o)
+                                         args.rounds, offset=o, native=native)
 
                     def remote():
-                        return lfl.train(fam, p, data, args.rounds, client=client)
+                        return lfl.train(fam, p, data, args.rounds, client=client, native=native)
                 else:
                     p = {"max_depth": 6, "eta": 0.1, "tree_method": "hist"}
 
                     def local():
                         return lfx.train(fam, dict(p, nthread=args.local_threads), xgb.DMatrix(X, y, weight=w, base_margin=o),
-                                         args.rounds, verbose_eval=False)
+                                         args.rounds, verbose_eval=False, native=native)
 
                     def remote():
-                        return lfx.train(fam, dict(p, nthread=1), data, args.rounds, client=client)
-                t_loc, t_cl, t_own, share = [], [], [], []
-                for _ in range(args.repeats):
-                    t0 = time.perf_counter()
-                    fl = local()
-                    t_loc.append(time.perf_counter() - t0)
+                        return lfx.train(fam, dict(p, nthread=1), data, args.rounds, client=client, native=native)
+                t_loc, t_cl, infos = [], [], []
+                for r in range(args.repeats):
+                    if r < (args.repeats if args.local_repeats is None else args.local_repeats):
+                        t0 = time.perf_counter()
+                        fl = local()
+                        t_loc.append(time.perf_counter() - t0)
                     t0 = time.perf_counter()
                     fc = remote()
                     t_cl.append(time.perf_counter() - t0)
-                    own = fc.info["cluster"]["lossfam_seconds"]
-                    t_own.append(own)
-                    share.append(own / (t_cl[-1] - own))
-                info = fc.info["cluster"]
+                    infos.append(fc.info["cluster"])
+                info = infos[-1]
                 held = fc.mean_loss(Xt, yt, weight=wt, offset=ot) / fl.mean_loss(Xt, yt, weight=wt, offset=ot)
-                med = statistics.median
+                eng = med(i["engine_seconds"] for i in infos)
+                own = med(i["lossfam_seconds"] for i in infos)
+                share = med(i["overhead"] for i in infos)
                 print(f"| {engine} | {case} | {med(t_loc):.2f} | {med(t_cl):.2f} | {med(t_cl) / med(t_loc):.2f} | "
-                      f"{med(t_own):.2f} | {100 * med(share):.1f}% | {info['baseline_passes']}, "
+                      f"{eng:.2f} | {own:.2f} | {100 * share:.1f}% | {info['baseline_passes']}, "
                       f"{info['nuisance_passes']} | {held:.4f} |", flush=True)
-                print(f"  lossfam steps, last repeat (s): {info['seconds']}", flush=True)
-
+                steps = {k: med(i["seconds"].get(k, 0.0) for i in infos) for k in STEPS}
+                steps_share = {k: med(i["seconds"].get(k, 0.0) / i["engine_seconds"] for i in infos) for k in STEPS}
+                cells.append((engine, case, steps, steps_share))
+                print("  steps, median s (share of engine time): " + ", ".join(
+                    f"{k} {steps[k]:.3f} ({100 * steps_share[k]:.1f}%)" for k in STEPS if steps[k] > 0)
+                    + "; load %.1f" % os.getloadavg()[0], flush=True)
+    print("load average after (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
+    used = [k for k in STEPS if any(c[2][k] > 0 for c in cells)]
+    print("\nlossfam's steps: median seconds (share of the engine's training time)")
+    print("| engine | family | " + " | ".join(used) + " |")
+    print("|---|---|" + "---:|" * len(used))
+    for engine, case, steps, steps_share in cells:
+        print(f"| {engine} | {case} | " + " | ".join(f"{steps[k]:.3f} ({100 * steps_share[k]:.1f}%)" for k in used) + " |")
 
 if __name__ == "__main__":
     main()

@@ -26,7 +26,9 @@ On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
 grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
 ``init_score``; lossfam's own steps run on the workers
 (``lossfam._boost.cluster``).  Native twins and the Python objective only (no
-refit path, no callbacks); ``valid_sets`` are scored after training.
+refit path); ``valid_sets`` are scored after training, and one
+``lightgbm.early_stopping`` callback is honoured by scoring every round on all
+valid rows afterwards and cutting the model at the best one.
 
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian
@@ -47,8 +49,9 @@ the Python objective).  Each tree is grown on the rule's gradient (the pinball
 subgradient with a unit Hessian for median/quantile; the family's own for a
 line search), then its leaves are set from ``lossfam._boost.leaves`` via
 ``Booster.set_leaf_output`` (a median / quantile leaf by LightGBM's own
-definition, Hyndman and Fan's 7, on unweighted rows: the same leaf values as
-the native twin's, so ``native=False`` gives the native path's model; on
+definition, Hyndman and Fan's 7, interpolated as LightGBM does it, on unweighted
+rows: the same leaf values as the native twin's, so ``native=False`` gives the
+native path's model; on
 weighted rows, which LightGBM renews by a rule of its own, the midpoint of the
 leaf's minimisers).  LightGBM's score caches never see edited leaves,
 so ``train`` keeps the raw scores of the training and validation sets itself
@@ -69,6 +72,7 @@ for rows that truly have none.  Datasets that already carry an
 """
 from __future__ import annotations
 
+import functools
 
 import numpy as np
 
@@ -79,7 +83,8 @@ from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
 from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
-from ._boost.plan import censored_passes, check_trained, fit_nuisance_or_keep, start_plan, train_in_passes
+from ._boost.plan import censored_passes, checked_training_raw, fit_info, fit_nuisance_or_keep, start_plan
+from ._boost.plan import train_in_passes, training_path
 from ._boost.scoring import Scorer, raw_from_output
 from ._boost import several as _several
 from .censoring import IntervalTarget
@@ -501,11 +506,12 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
         raise ValueError(f"curvature={curvature!r} applies to families with several raw scores per row; "
                          f"{fam.name} has one (its Hessian is the family's own)")
     if isinstance(data, cluster.ClusterData):
-        if offset is not None or valid_offsets is not None or callbacks or engine_kwargs:
-            raise ValueError("on a Dask cluster the offsets live in ClusterData(offset=...); callbacks and other "
+        stopping = _cluster_stopping(lgb, callbacks)
+        if offset is not None or valid_offsets is not None or engine_kwargs:
+            raise ValueError("on a Dask cluster the offsets live in ClusterData(offset=...); other "
                              f"lightgbm.train arguments are not supported there (got {sorted(engine_kwargs)})")
         return _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, step_limit, native,
-                              nuisance_set, metric_kind, prefit, client)
+                              nuisance_set, metric_kind, prefit, client, stopping)
     call = _Call(lgb, params, data, valid_sets, valid_names, valid_offsets, nuisance_set, callbacks, engine_kwargs)
 
     # the start: targets, baseline given offset and weights, nuisance pre-fit, starting scores
@@ -518,16 +524,12 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
                                callbacks=callbacks, **engine_kwargs)
     plan = start_plan(fam, y, w, offset, prefit=prefit, engine=_ENGINE)
     fam = plan.family
-    guard = resolve_guard(fam, step_limit)
     valid = _ValidStarts(lgb, call, plan, fam)
 
     # the engine's objective: the native twin, the Python objective, or the Python objective with leaf refit
-    twin = facts.chosen_twin(fam, _ENGINE, "LightGBM", native=native,
-                             guard_is_default=guard == resolve_guard(fam, "auto"), params=call.params)
     censored = isinstance(y, IntervalTarget)
-    if censored:  # the censored likelihood: lossfam's gradients, Newton leaves
-        twin = None
-    refit = _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid, newton_leaves=censored)
+    guard, twin, rule = training_path(fam, _ENGINE, "LightGBM", step_limit, native, call.params, censored)
+    refit = _plumb(call, fam, guard, metric_kind, twin, rule, y, w, plan, valid)
     if refit is None and not censored and _label_is_a_copy(data, y):
         y = w = None  # a float64 copy of LightGBM's float32 label: read again after training, not held during it
 
@@ -537,11 +539,8 @@ def train(family, params, data, num_boost_round=100, *, valid_sets=None, valid_n
 
     # the trained model: its training scores checked, its nuisance parameters fitted
     fitted = _finish(call, fam, y, w, run, valid)
-    info = {"objective": run.twin["objective"] if run.twin else "custom",
-            "leaf_value": ("newton" if censored else facts.leaf_rule(fam)) if run.twin is None else "engine",
-            "step_limit": None if guard.limit is None else guard.limit, "hessian_damping": guard.damping}
     best = run.best - 1 if run.best > 0 else None
-    return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, best, info)
+    return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, best, fit_info(run.twin, rule, guard))
 
 
 class _Call:
@@ -602,12 +601,11 @@ class _ValidStarts:
             self.starts[k] = plan.start_for(self.targets[k][0].size, vo, f"valid_offsets[{k}]")
 
 
-def _plumb(call, fam, guard, metric_kind, twin, y, w, plan, valid, newton_leaves=False):
-    """Set the engine objective, metrics and callbacks of the chosen path; the refit state (or None).
-    ``newton_leaves``: keep the engine's Newton leaves whatever the family's rule (censored targets)."""
+def _plumb(call, fam, guard, metric_kind, twin, rule, y, w, plan, valid):
+    """Set the engine objective, metrics and callbacks of the chosen path; the refit state (or None)."""
     params = call.params
     refit = None
-    if twin is None and not newton_leaves and facts.leaf_rule(fam) != "newton":
+    if twin is None and rule != "newton":
         refit = _refit_state(call, fam, guard, y, w, plan, valid)
     own_metric = _Metric(fam, metric_kind, from_output=twin is not None)
     call.fevals = [own_metric] + call.user_feval
@@ -745,13 +743,8 @@ def _training_output(booster, copy):
 
 def _finish(call, fam, y, w, run, valid):
     """Check the trained scores of the training rows; the family with its nuisance parameters fitted."""
-    if run.train_pred is not None:
-        check_trained(fam, pred=run.train_pred)
-        if fam.params:
-            run.train_raw = raw_from_output(fam, run.train_pred, overwrite=True)
-        run.train_pred = None
-    else:
-        check_trained(fam, raw=run.train_raw)
+    run.train_raw = checked_training_raw(fam, run.train_raw, run.train_pred)
+    run.train_pred = None
     if not fam.params:
         return fam
     k = call.nuisance_set
@@ -764,8 +757,49 @@ def _finish(call, fam, y, w, run, valid):
     return fit_nuisance_or_keep(fam, vy, vraw, vw)
 
 
+def _cluster_stopping(lgb, callbacks):
+    """(stopping_rounds, min_delta) of the one ``lightgbm.early_stopping`` callback a cluster training
+    accepts, or None without callbacks."""
+    callbacks = list(callbacks or [])
+    if not callbacks:
+        return None
+    kind = getattr(getattr(lgb, "callback", None), "_EarlyStoppingCallback", None)
+    if len(callbacks) != 1 or kind is None or not isinstance(callbacks[0], kind):
+        raise ValueError("on a Dask cluster the only callback accepted is one lightgbm.early_stopping(...)")
+    cb = callbacks[0]
+    if cb.first_metric_only is not False and cb.first_metric_only is not True:
+        raise ValueError("early_stopping: first_metric_only must be a bool")
+    delta = cb.min_delta
+    if isinstance(delta, (list, tuple)):
+        if len(set(delta)) != 1:
+            raise ValueError("on a Dask cluster early_stopping takes one min_delta (lossfam's metric is the only one)")
+        delta = delta[0]
+    return int(cb.stopping_rounds), float(delta)
+
+
+def _pred_leaves(booster, X):
+    return booster.predict(X, pred_leaf=True)
+
+
+def _leaf_tables(booster):
+    """Per tree, its leaf values indexed by LightGBM's leaf index."""
+    tables = []
+    for tree in booster.dump_model().get("tree_info") or []:
+        values, stack = {}, [tree["tree_structure"]]
+        while stack:
+            node = stack.pop()
+            if "leaf_value" in node:
+                values[int(node.get("leaf_index", 0))] = float(node["leaf_value"])
+            else:
+                stack += [node["left_child"], node["right_child"]]
+        table = np.zeros(max(values) + 1)
+        table[list(values)] = list(values.values())
+        tables.append(table)
+    return tables
+
+
 def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, step_limit, native, nuisance_set,
-                   metric_kind, prefit, client):
+                   metric_kind, prefit, client, stopping=None):
     """``train`` on ClusterData: lossfam's steps on the workers (``lossfam._boost.cluster``), the trees by
     ``lightgbm.dask``, one model trained on all partitions."""
     import lightgbm.dask as ldask
@@ -780,6 +814,8 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     names = list(valid_names or [f"valid_{k}" for k in range(len(valid_sets))])
     if nuisance_set is not None and not (0 <= int(nuisance_set) < len(valid_sets)):
         raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(valid_sets)} valid_sets")
+    if stopping is not None and not valid_sets:
+        raise ValueError("early stopping needs at least one valid set (valid_sets=[ClusterData(...)])")
     plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, engine=_ENGINE,
                                 drop_unit_weights=True)
     fam = plan.family
@@ -793,12 +829,31 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     params.setdefault("metric", "None")
     params.setdefault("verbosity", -1)
     est = ldask.DaskLGBMRegressor(client=client, n_estimators=int(num_boost_round), **params)
-    est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
-    booster = _lgb().Booster(model_str=est.booster_.model_to_string())
-    info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
-            "step_limit": guard.limit, "hessian_damping": guard.damping}
-    fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, None, info)
-    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, _tree_range(booster))
+    with cluster.timed(plan.stats, "trees"):
+        est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
+    with cluster.timed(plan.stats, "model"):
+        booster = _lgb().Booster(model_str=est.booster_.model_to_string())
+    best = None
+    if stopping is not None:
+        # lightgbm.dask scores a valid set on each worker's part only, so the workers could not agree on
+        # when to stop: all rounds are trained, then lossfam's metric on all valid rows after every round
+        # (one pass per valid set) replays LightGBM's early-stopping rule and the model keeps the rounds
+        # up to the best one (the trees of those rounds do not depend on later ones)
+        with cluster.timed(plan.stats, "best_round"):
+            tables = _leaf_tables(booster)
+            curves = [cluster.round_curves(client, fam, metric_kind, v, functools.partial(_pred_leaves, booster), tables)
+                      for v in valids]
+            if tables:
+                best = cluster.best_round(curves, *stopping)
+                plan.stats["valid_metrics"] = {name: float(c[best]) for name, c in zip(names, curves)}
+                plan.stats["valid_curves"] = {name: [float(x) for x in c] for name, c in zip(names, curves)}
+                plan.stats["rounds_trained"] = len(tables)
+                if best + 1 < len(tables):
+                    booster = _lgb().Booster(model_str=booster.model_to_string(num_iteration=best + 1))
+    fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, best, fit_info(twin, rule, guard))
+    with cluster.timed(plan.stats, "tree_range"):
+        tree_range = _tree_range(booster)
+    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, tree_range)
 
 
 def _tree_range(booster):

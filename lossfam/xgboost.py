@@ -43,7 +43,8 @@ maps them back through the link.
 On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
 grown by ``xgboost.dask.train`` (base_margin = baseline + offset where there is
 an offset); lossfam's own steps run on the workers (``lossfam._boost.cluster``).
-Native twins and the Python objective only (no refit path).
+Median / quantile leaves on the custom path are renewed on the workers each round
+(``lossfam._xgboost_refit``: exact per-leaf quantiles over XGBoost's collective).
 
 Refit path (families whose ``leaf_value`` rule is not ``"newton"``, on the
 Python objective).  lossfam runs the rounds itself: each tree is grown with
@@ -52,7 +53,8 @@ Hessian for median/quantile, as the built-ins; the family's own for a line
 search), its leaves are read with ``booster[i:i+1].predict(pred_leaf=True)``
 and set from ``lossfam._boost.leaves`` (a median / quantile leaf by XGBoost's
 own definition: Hyndman and Fan's 6 without weights, the inverted weighted cdf
-with them; so ``native=False`` gives the native path's model); the values are tracked by lossfam and
+with them; without weights also in XGBoost's float32 arithmetic, from float32
+scores, so ``native=False`` gives the native path's model exactly); the values are tracked by lossfam and
 written into the model's JSON once, at the end.  With ``subsample`` < 1
 lossfam draws the bag itself and refits on in-bag rows only.  This path
 accepts ``evals``, ``early_stopping_rounds``, ``evals_result``,
@@ -69,10 +71,11 @@ from . import _checks
 from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
 from ._boost.gradients import warn_if_far_from_baseline
-from ._boost.leaves import RowBag, leaf_table
+from ._boost.leaves import ENGINE_ARITHMETIC, RowBag, leaf_table
 from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
-from ._boost.plan import censored_passes, check_trained, fit_nuisance_or_keep, start_plan, train_in_passes
+from ._boost.plan import censored_passes, checked_training_raw, fit_info, fit_nuisance_or_keep, start_plan
+from ._boost.plan import train_in_passes, training_path
 from ._boost.scoring import Scorer, raw_from_output
 from ._boost import several as _several
 from .censoring import IntervalTarget
@@ -384,31 +387,15 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
         return _train_cluster(fam, params, dtrain, num_boost_round, evals, step_limit, native, nuisance_set,
                               metric_kind, early_stopping_rounds, prefit, client,
                               dict(engine_kwargs, verbose_eval=verbose_eval, evals_result=evals_result))
-    if not isinstance(dtrain, xgb.DMatrix):
-        raise TypeError(f"train expects an xgboost.DMatrix, got {type(dtrain).__name__}")
-    params = dict(params or {})
-    owned = sorted(k for k in ("objective", "base_score", "boost_from_average", "obj") if k in params)
-    if owned:
-        raise ValueError(f"params {owned} are set by lossfam.xgboost.train (the family fixes the objective and the baseline)")
-    for key in ("obj", "maximize"):
-        if key in engine_kwargs:
-            raise ValueError(f"{key}= is set by lossfam.xgboost.train")
-    num_boost_round = int(num_boost_round)
-    if num_boost_round < 0:
-        raise ValueError(f"num_boost_round must be >= 0, got {num_boost_round}")
-    evals = list(evals or [])
-    for pair in evals:
-        if not (isinstance(pair, (tuple, list)) and len(pair) == 2 and isinstance(pair[0], xgb.DMatrix)):
-            raise TypeError("evals must be a list of (xgboost.DMatrix, name) pairs")
-    if nuisance_set is not None and not (0 <= int(nuisance_set) < len(evals)):
-        raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(evals)} evals")
+    call = _Call(xgb, params, dtrain, num_boost_round, evals, nuisance_set, engine_kwargs)
 
+    # the start: targets, baseline given offset and weights, nuisance pre-fit, starting scores
     y = fam.check_target(_dmatrix_y(dtrain), for_nll=False)
     _checks.check_nonempty(y, fam.name)
     censored = isinstance(y, IntervalTarget)
     if censored_passes(fam, y, prefit):
-        return train_in_passes(train, fam, params=params, dtrain=dtrain, num_boost_round=num_boost_round,
-                               evals=evals, step_limit=step_limit, native=native, nuisance_set=nuisance_set,
+        return train_in_passes(train, fam, params=call.params, dtrain=dtrain, num_boost_round=call.rounds,
+                               evals=call.evals, step_limit=step_limit, native=native, nuisance_set=nuisance_set,
                                metric_kind=metric_kind, early_stopping_rounds=early_stopping_rounds,
                                evals_result=evals_result, verbose_eval=verbose_eval, **engine_kwargs)
     if y.ndim != 1:
@@ -418,27 +405,101 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     offset, _ = _offset_of(dtrain, fam)
     plan = start_plan(fam, y, w, offset, prefit=prefit, precision=np.float32, engine=_ENGINE)
     fam = plan.family
-    baseline = plan.baseline
-    for k, (dm, name) in enumerate(evals):
-        if dm is not dtrain and offset is not None and dm.get_base_margin().size == 0:
+    _check_valid_offsets(call, plan)
+
+    # the engine's objective: the native twin, the Python objective, or the Python objective with leaf refit
+    guard, twin, rule = training_path(fam, _ENGINE, "XGBoost", step_limit, native, call.params, censored)
+    obj, feval = _plumb(call, fam, guard, metric_kind, twin, rule, plan.baseline,
+                        early_stopping_rounds, evals_result, verbose_eval)
+    run = _run(xgb, call, fam, guard, twin, rule, obj, feval, y, w, plan)
+
+    # the trained model: its training scores checked, its nuisance parameters fitted
+    fitted = _finish(call, fam, y, w, run)
+    return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, run.best, fit_info(twin, rule, guard))
+
+
+class _Call:
+    """The arguments of one ``train`` call, checked, with lossfam's own keywords taken out."""
+
+    def __init__(self, xgb, params, dtrain, num_boost_round, evals, nuisance_set, engine_kwargs):
+        if not isinstance(dtrain, xgb.DMatrix):
+            raise TypeError(f"train expects an xgboost.DMatrix, got {type(dtrain).__name__}")
+        params = dict(params or {})
+        owned = sorted(k for k in ("objective", "base_score", "boost_from_average", "obj") if k in params)
+        if owned:
+            raise ValueError(f"params {owned} are set by lossfam.xgboost.train (the family fixes the objective and "
+                             "the baseline)")
+        for key in ("obj", "maximize"):
+            if key in engine_kwargs:
+                raise ValueError(f"{key}= is set by lossfam.xgboost.train")
+        rounds = int(num_boost_round)
+        if rounds < 0:
+            raise ValueError(f"num_boost_round must be >= 0, got {num_boost_round}")
+        evals = list(evals or [])
+        for pair in evals:
+            if not (isinstance(pair, (tuple, list)) and len(pair) == 2 and isinstance(pair[0], xgb.DMatrix)):
+                raise TypeError("evals must be a list of (xgboost.DMatrix, name) pairs")
+        if nuisance_set is not None and not (0 <= int(nuisance_set) < len(evals)):
+            raise ValueError(f"nuisance_set={nuisance_set!r} is not an index into the {len(evals)} evals")
+        self.params, self.dtrain, self.rounds, self.evals = params, dtrain, rounds, evals
+        self.nuisance_set = None if nuisance_set is None else int(nuisance_set)
+        self.engine_kwargs = dict(engine_kwargs)
+        self.user_metric = None
+        self.kw = {}
+
+
+def _check_valid_offsets(call, plan):
+    """The validation sets' starts are their base margins shifted by the baseline (``_run``): when
+    training has an offset every other evaluation DMatrix must have one."""
+    if plan.offset is None:
+        return
+    for k, (dm, name) in enumerate(call.evals):
+        if dm is not call.dtrain and dm.get_base_margin().size == 0:
             raise ValueError(
                 f"training used an offset (base_margin) but evals[{k}] ({name!r}) has none: its metric would "
                 "score the rows without their offset (and mislead early stopping); give it a base_margin "
                 "(zeros where there truly is none)"
             )
 
-    guard = resolve_guard(fam, step_limit)
-    rule = facts.leaf_rule(fam)
-    twin = facts.chosen_twin(fam, _ENGINE, "XGBoost", native=native,
-                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
-    if censored:  # the censored likelihood: lossfam's gradients, Newton leaves (twins and leaf renewal see only y)
-        twin, rule = None, "newton"
-    params.setdefault("disable_default_eval_metric", 1)
-    user_metric = engine_kwargs.pop("custom_metric", None)
-    kw = dict(engine_kwargs, early_stopping_rounds=early_stopping_rounds, evals_result=evals_result,
-              verbose_eval=verbose_eval)
 
-    # base_margin replaces base_score: shift every offset by the baseline while training
+def _plumb(call, fam, guard, metric_kind, twin, rule, baseline, early_stopping_rounds, evals_result, verbose_eval):
+    """Set the engine parameters of the chosen path (twin, base_score, leaf clipping); the Python
+    objective (None under a twin) and the metric.  Collects the keywords for ``xgboost.train``."""
+    params = call.params
+    params.setdefault("disable_default_eval_metric", 1)
+    call.user_metric = call.engine_kwargs.pop("custom_metric", None)
+    call.kw = dict(call.engine_kwargs, early_stopping_rounds=early_stopping_rounds, evals_result=evals_result,
+                   verbose_eval=verbose_eval)
+    obj = None
+    if twin is not None:
+        params.update(twin)
+        params["base_score"] = float(_base_score_of(fam, baseline, True))
+    else:
+        params["base_score"] = baseline
+        if rule == "newton":
+            if guard.damping is not None:  # XGBoost's damped objective also clips each leaf at the same step
+                params.setdefault("max_delta_step", guard.damping)
+            obj = _Objective(fam, guard, check_start=False, engine_buffers=True)
+    feval = call.user_metric or _Metric(fam, metric_kind, from_output=twin is not None)
+    return obj, feval
+
+
+class _Run:
+    """What training produced: the booster (cut to its best round), the best round (None: no early
+    stop), the training rows' output (raw scores, or a twin's predictions) and the nuisance set's raw
+    scores (read while its base margin was shifted)."""
+
+    booster = None
+    best = None
+    train_raw = None
+    train_pred = None
+    nuisance_raw = None
+
+
+def _run(xgb, call, fam, guard, twin, rule, obj, feval, y, w, plan):
+    """Train with every offset shifted by the baseline as base_margin (put back afterwards, also on failure)."""
+    dtrain, evals = call.dtrain, call.evals
+    run = _Run()
     shifted = []
     try:
         for dm in [dtrain] + [d for d, _ in evals]:
@@ -446,53 +507,39 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
                 continue
             o, original = _offset_of(dm, fam)
             if o is not None:
-                dm.set_base_margin(o + baseline)
+                dm.set_base_margin(o + plan.baseline)
                 shifted.append((dm, original))
-        pred = None
-        if twin is not None:
-            params.update(twin)
-            params["base_score"] = float(_base_score_of(fam, baseline, True))
-            feval = user_metric or _Metric(fam, metric_kind, from_output=True)
-            booster, best, out = _train_engine(xgb, None, params, dtrain, num_boost_round, evals, feval, kw)
-            pred = out
-        elif rule == "newton":
-            params["base_score"] = baseline
-            if guard.damping is not None:  # XGBoost's damped objective also clips each leaf at the same step
-                params.setdefault("max_delta_step", guard.damping)
-            obj = _Objective(fam, guard, check_start=False, engine_buffers=True)
-            feval = user_metric or _Metric(fam, metric_kind)
-            booster, best, out = _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval, kw)
+        if twin is not None or rule == "newton":
+            booster, best, out = _train_engine(xgb, obj, call.params, dtrain, call.rounds, evals, feval, call.kw)
         else:
-            params["base_score"] = baseline
-            feval = user_metric or _Metric(fam, metric_kind)
-            booster, best, out = _train_refit(xgb, fam, guard, params, dtrain, y, w, plan.start, baseline,
-                                              num_boost_round, evals, feval, kw)
-        train_out = np.asarray(out, dtype=np.float64)
-        vraw = None
-        if nuisance_set is not None and fam.params:
-            vraw = np.asarray(booster.predict(evals[int(nuisance_set)][0], output_margin=True), dtype=np.float64)
+            booster, best, out = _train_refit(xgb, fam, guard, call.params, dtrain, y, w, plan.start, plan.baseline,
+                                              call.rounds, evals, feval, call.kw)
+        run.booster, run.best = booster, best
+        if twin is not None:
+            run.train_pred = np.asarray(out, dtype=np.float64)
+        else:
+            run.train_raw = np.asarray(out, dtype=np.float64)
+        if call.nuisance_set is not None and fam.params:
+            run.nuisance_raw = np.asarray(booster.predict(evals[call.nuisance_set][0], output_margin=True),
+                                          dtype=np.float64)
     finally:
         for dm, original in shifted:
             dm.set_base_margin(original)
+    return run
 
-    if pred is not None:
-        check_trained(fam, pred=train_out)
-        train_raw = raw_from_output(fam, train_out, overwrite=True) if fam.params else None
-    else:
-        check_trained(fam, raw=train_out)
-        train_raw = train_out
+
+def _finish(call, fam, y, w, run):
+    """Check the trained scores of the training rows; the family with its nuisance parameters fitted."""
+    train_raw = checked_training_raw(fam, run.train_raw, run.train_pred)
     if not fam.params:
-        fitted = fam
-    elif vraw is not None:
-        vy, vw = _dmatrix_targets(evals[int(nuisance_set)][0])
-        vy = fam.check_target(vy, for_nll=False)
-        vrows = vy.lower if isinstance(vy, IntervalTarget) else vy
-        fitted = fit_nuisance_or_keep(fam, vy, vraw, None if vw is None else _checks.check_weight(vw, vrows, fam.name))
-    else:
-        fitted = fit_nuisance_or_keep(fam, y, train_raw, w)
-    info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
-            "step_limit": guard.limit, "hessian_damping": guard.damping}
-    return BoostedFit(_ENGINE, booster, fam, baseline, fitted, best, info)
+        return fam
+    if run.nuisance_raw is None:
+        return fit_nuisance_or_keep(fam, y, train_raw, w)
+    vy, vw = _dmatrix_targets(call.evals[call.nuisance_set][0])
+    vy = fam.check_target(vy, for_nll=False)
+    vrows = vy.lower if isinstance(vy, IntervalTarget) else vy
+    return fit_nuisance_or_keep(fam, vy, run.nuisance_raw,
+                                None if vw is None else _checks.check_weight(vw, vrows, fam.name))
 
 
 def _train_engine(xgb, obj, params, dtrain, num_boost_round, evals, feval, kw):
@@ -551,11 +598,14 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
         params = {k: v for k, v in params.items() if k != "subsample"}
 
     booster = xgb.Booster(params, [dtrain] + [d for d, _ in evals])
-    raw = start.copy()
+    # median / quantile leaves renewed as XGBoost renews them: from its float32 scores (float32 sums of
+    # float32 leaves), so that the custom path follows the native twin round after round
+    scores = np.float32 if rule in ("median", "quantile") and definition in ENGINE_ARITHMETIC else np.float64
+    raw = start.astype(scores)
     eval_state = []
     for d, name in evals:
         o = d.get_base_margin()  # already shifted by the baseline
-        eval_state.append((d, name, np.full(d.num_row(), baseline) if o.size == 0 else o.astype(np.float64)))
+        eval_state.append((d, name, np.full(d.num_row(), baseline, dtype=scores) if o.size == 0 else o.astype(scores)))
     log = {name: {} for _, name in evals}
     tables = []
     best_score, best_iter = math.inf, None
@@ -570,11 +620,13 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
         lvs = [np.asarray(tree.predict(d, pred_leaf=True), dtype=np.intp).reshape(-1) for d, _, _ in eval_state]
         n_nodes = max([n_nodes] + [int(lv.max()) + 1 for lv in lvs if lv.size])
         values, has = leaf_table(rule, level, fam, leaves, y, raw, wi, n_nodes, eta, definition)
-        table = np.where(has, values, 0.0).astype(np.float32).astype(np.float64)
+        table32 = np.where(has, values, 0.0).astype(np.float32)
+        table = table32.astype(np.float64)
         tables.append(table)
-        raw += table[leaves]
+        step = table32 if scores is np.float32 else table
+        raw += step[leaves]
         for (d, name, r), lv in zip(eval_state, lvs):
-            r += table[lv]
+            r += step[lv]
         if evals:
             line = [f"[{i}]"]
             for d, name, r in eval_state:
@@ -639,14 +691,34 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, precision=np.float32,
                                 engine=_ENGINE)
     fam, baseline = plan.family, plan.baseline
-    guard, twin = cluster.cluster_path(fam, _ENGINE, "XGBoost", step_limit, native, params)
+    guard, twin = cluster.cluster_path(fam, _ENGINE, "XGBoost", step_limit, native, params,
+                                       refits=("median", "quantile"))
     rule = facts.leaf_rule(fam)
     valids = [plan.start_for(d, f"evals[{k}]") for k, (d, _) in enumerate(evals)]
     params.setdefault("disable_default_eval_metric", 1)
-    obj = None
+    obj, callbacks, engine_evals = None, None, True
     if twin is not None:
         params.update(twin)
         params["base_score"] = float(_base_score_of(fam, baseline, True))
+    elif rule in ("median", "quantile"):
+        # the refit on the workers (lossfam._xgboost_refit): leaves renewed to the residual quantile of the
+        # rows of every worker before each round; XGBoost's own scores miss the renewed leaves, so its
+        # metric would be wrong during training: the evals are scored by lossfam afterwards
+        if early_stopping_rounds:
+            raise ValueError(f"{fam.name} refits leaves on the cluster; early stopping is not supported on that path "
+                             "(train with native=True, or without early_stopping_rounds)")
+        if float(params.get("subsample", 1.0)) < 1.0 or int(params.get("num_parallel_tree", 1)) != 1 \
+                or params.get("booster", "gbtree") != "gbtree":
+            raise ValueError(f"{fam.name} refits leaves on the cluster: one tree per round on all rows "
+                             "(booster='gbtree', num_parallel_tree=1, no subsample)")
+        from . import _xgboost_refit
+
+        params["base_score"] = baseline
+        eta = float(params.get("learning_rate", params.get("eta", 0.3)))
+        obj, refit_cb = _xgboost_refit.make(rule, facts.leaf_level(fam), eta,
+                                            facts.renewal_definition(_ENGINE, weighted=plan.weight is not None),
+                                            baseline)
+        callbacks, engine_evals = [refit_cb], False
     else:
         params["base_score"] = baseline
         if guard.damping is not None:  # as in local training: the damped objective also clips each leaf
@@ -656,23 +728,29 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
     def dmatrix(X, y, w, o, start):  # base_margin replaces base_score: baseline + offset where there is an offset
         return dxgb.DaskDMatrix(client, X, y, weight=w, base_margin=None if o is None else start)
 
-    dtrain = dmatrix(plan.X, plan.y, plan.weight, plan.offset, plan.start)
-    dev = [(dmatrix(*v), name) for v, (_, name) in zip(valids, evals)]
-    out = dxgb.train(client, params, dtrain, int(num_boost_round), evals=dev, obj=obj,
-                     custom_metric=_Metric(fam, metric_kind, from_output=twin is not None) if dev else None,
-                     early_stopping_rounds=early_stopping_rounds,
-                     verbose_eval=engine_kwargs.get("verbose_eval", True))
+    with cluster.timed(plan.stats, "trees"):  # the engine's: its data objects and its training
+        dtrain = dmatrix(plan.X, plan.y, plan.weight, plan.offset, plan.start)
+        dev = [(dmatrix(*v), name) for v, (_, name) in zip(valids, evals)] if engine_evals else []
+        out = dxgb.train(client, params, dtrain, int(num_boost_round), evals=dev, obj=obj,
+                         custom_metric=_Metric(fam, metric_kind, from_output=twin is not None) if dev else None,
+                         early_stopping_rounds=early_stopping_rounds, callbacks=callbacks,
+                         verbose_eval=engine_kwargs.get("verbose_eval", True))
     booster = out["booster"]
+    if callbacks:  # the refit ran inside the engine's call: its seconds are lossfam's
+        secs, reductions = _xgboost_refit.take_timing(booster)
+        plan.stats["seconds"]["refit"] = secs
+        plan.stats["seconds"]["trees"] -= secs
+        plan.stats["refit_passes"] = reductions
     if engine_kwargs.get("evals_result") is not None:
         engine_kwargs["evals_result"].update(out["history"])
     best = _best_iteration(booster) if early_stopping_rounds else None
     if best is not None and best + 1 < booster.num_boosted_rounds():
         booster = booster[: best + 1]
-    info = {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
-            "step_limit": guard.limit, "hessian_damping": guard.damping}
+    info = fit_info(twin, rule, guard)
     fit = BoostedFit(_ENGINE, booster, fam, baseline, fam, best, info)
-    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind,
-                          _tree_range(booster))
+    with cluster.timed(plan.stats, "tree_range"):
+        tree_range = _tree_range(booster)
+    return cluster.finish(plan, fit, valids, [name for _, name in evals], nuisance_set, metric_kind, tree_range)
 
 
 def _tree_range(booster):

@@ -99,6 +99,12 @@ def test_cluster_train_matches_local(engine, case, client, tmp_path):
     assert fit.info["cluster"]["partitions"] >= 16 and fit.info["objective"] == local.info["objective"]
     # without a nuisance fit the trained scores are checked from the trees' range, with one by predicting the rows
     assert fit.info["cluster"]["trained_check"] == ("rows" if fam.params else "bounds")
+    # the timing of lossfam's own steps: known steps only, their sum, and the engine's call apart
+    info = fit.info["cluster"]
+    assert set(info["seconds"]) <= set(cluster.STEPS) and {"checks", "baseline", "trained_check"} <= set(info["seconds"])
+    assert info["lossfam_seconds"] == pytest.approx(sum(info["seconds"].values()), abs=1e-3)
+    assert info["engine_seconds"] > 0 and info["overhead"] == pytest.approx(info["lossfam_seconds"] / info["engine_seconds"],
+                                                                            rel=1e-3, abs=1e-4)
 
     # the baseline: the quantile by exact selection is the local number; the poisson mean (the root of
     # the summed gradient) agrees to rounding: its partition sums are added in another order
@@ -256,7 +262,7 @@ def test_bad_rows_are_named_and_refit_is_refused(client):
         lfx.train("poisson", PARAMS["xgboost"], lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 5,
                   client=client)
     Xd, yd, wd, _ = _delays(3, 1600)
-    with pytest.raises(ValueError, match="does not run on a Dask cluster"):
+    with pytest.raises(ValueError, match="does not run on a Dask cluster"):  # LightGBM: no refit on a cluster yet
         lfl.train("laplace", PARAMS["lightgbm"], lossfam.ClusterData(_dask(Xd), _dask(yd)), 5, native=False,
                   client=client)
 
@@ -281,3 +287,155 @@ def test_nuisance_set_evals_and_early_stopping(client):
     assert logged[fit.best_iteration] == pytest.approx(expect, rel=1e-5)
     assert fit.info["cluster"]["valid_metrics"]["valid"] == pytest.approx(expect, rel=1e-9)
     assert fit.fitted_family.scale == pytest.approx(fam.fit_nuisance(yv, raw_v, wv).scale, rel=1e-7)
+
+
+def test_best_round_is_lightgbms_early_stopping_rule():
+    """cluster.best_round replays lightgbm.early_stopping on metric curves: the round it keeps is the
+    one LightGBM's own callback picks when fed the same values (ties, min_delta, several valid sets,
+    no stop before the last round)."""
+    from lightgbm.callback import CallbackEnv, EarlyStopException
+
+    rng = np.random.default_rng(4)
+    cases = [[np.r_[5.0, 4.0, 4.0, 3.5, 3.6, 3.5, 3.7, 3.8, 3.9, 4.0, 4.1]],
+             [np.r_[3.0, 2.0, 1.5, 1.4, 1.3, 1.2, 1.1, 1.0]]]  # never stops: the last round's best
+    cases += [[np.cumsum(rng.normal(-0.05, 0.3, 60)) for _ in range(k)] for k in (1, 2, 3) for _ in range(3)]
+    for curves in cases:
+        for rounds, delta in ((3, 0.0), (5, 0.0), (4, 0.05)):
+            cb = lgb.early_stopping(rounds, min_delta=delta, verbose=False)
+            T = len(curves[0])
+            kept = None
+            for it in range(T):
+                env = CallbackEnv(model=None, params={}, iteration=it, begin_iteration=0, end_iteration=T,
+                                  evaluation_result_list=[lgb.EvalResult(f"v{i}", "nll", float(c[it]), False, None)
+                                                          for i, c in enumerate(curves)])
+                try:
+                    cb(env)
+                except EarlyStopException as stop:
+                    kept = stop.best_iteration
+                    break
+            assert cluster.best_round(curves, rounds, delta) == kept, (rounds, delta)
+
+
+def test_lightgbm_early_stopping_on_the_cluster(client, tmp_path):
+    """LightGBM on the cluster with a ClusterData valid set (its own offset) and early_stopping: the
+    per-round curve is lossfam's nll on all valid rows of the model cut after that round, the model
+    keeps the rounds up to the best one, and the file keeps best_iteration."""
+    fam = lossfam.family("poisson")
+    X, y, w, o = _claims(31, 4000)
+    Xv, yv, _, ov = _claims(32, 2000)
+    valid = lossfam.ClusterData(_dask(Xv), _dask(yv), offset=_dask(ov))
+    fit = lfl.train(fam, dict(PARAMS["lightgbm"], learning_rate=0.6, num_leaves=31, min_data_in_leaf=5),
+                    lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 150, valid_sets=[valid],
+                    valid_names=["valid"], callbacks=[lgb.early_stopping(5, verbose=False)], client=client)
+    info = fit.info["cluster"]
+    curve = np.asarray(info["valid_curves"]["valid"])
+    best = fit.best_iteration
+    assert info["rounds_trained"] == len(curve) == 150
+    assert best is not None and best + 5 < 150 and fit.booster.num_trees() == best + 1
+    assert best == cluster.best_round([curve], 5)
+    for r in sorted({0, best // 2, best}):
+        raw = fit.baseline + ov + fit.booster.predict(Xv, raw_score=True, num_iteration=r + 1)
+        assert curve[r] == pytest.approx(float(np.mean(fam.nll(yv, raw))), rel=1e-9), r
+    assert info["valid_metrics"]["valid"] == curve[best] == pytest.approx(fit.mean_loss(Xv, yv, offset=ov), rel=1e-9)
+    assert "best_round" in info["seconds"]
+    path = tmp_path / "stopped.json"
+    fit.save(path)
+    back = lossfam.load(path)
+    assert back.best_iteration == best
+    np.testing.assert_array_equal(back.predict_raw(Xv, ov), fit.predict_raw(Xv, ov))
+    with pytest.raises(ValueError, match="only callback accepted"):
+        lfl.train(fam, PARAMS["lightgbm"], lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 5,
+                  valid_sets=[valid], callbacks=[lgb.log_evaluation(1)], client=client)
+
+
+def _fake_workers(world, work):
+    """Run ``work(reduce, rank)`` on ``world`` threads whose ``reduce`` sums an array over them."""
+    import threading
+
+    barrier, box, out = threading.Barrier(world), [None] * world, [None] * world
+
+    def run(rank):
+        def reduce(a):
+            box[rank] = np.array(a, dtype=np.float64)
+            barrier.wait()
+            total = sum(box)
+            barrier.wait()
+            return total
+        out[rank] = work(reduce, rank)
+
+    threads = [threading.Thread(target=run, args=(r,)) for r in range(world)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    return out
+
+
+def test_leaf_quantiles_across_workers_equal_one_machine(monkeypatch):
+    """cluster.leaf_quantiles (rows split over 1-3 workers whose only exchange is summed arrays) gives,
+    per leaf, exactly lossfam._boost.quantiles.grouped_quantile of all rows, for every definition,
+    with ties and zero weights; a tiny gather limit forces several narrowing rounds."""
+    from lossfam._boost.quantiles import grouped_quantile
+
+    monkeypatch.setattr(cluster, "LEAF_GATHER", 8)
+    monkeypatch.setattr(cluster, "LEAF_PIVOTS", 4)
+    rng = np.random.default_rng(1)
+    for _ in range(6):
+        n, n_leaves, world = int(rng.integers(200, 3000)), int(rng.integers(1, 40)), int(rng.integers(1, 4))
+        leaf = rng.integers(0, n_leaves, n)
+        v = np.round(rng.normal(size=n) * 3, int(rng.integers(0, 3)))  # rounded: many ties
+        for definition, w in (("weibull", None), ("linear", None), ("lower", rng.integers(0, 4, n).astype(float)),
+                              ("midpoint", rng.uniform(0, 2, n)), ("midpoint", None)):
+            for q in (0.1, 0.5, 0.9, 0.37):
+                idx = np.split(np.arange(n), np.sort(rng.integers(0, n, world - 1)))
+                out = _fake_workers(world, lambda reduce, r: cluster.leaf_quantiles(
+                    reduce, r, world, leaf[idx[r]], v[idx[r]], None if w is None else w[idx[r]], n_leaves, q,
+                    definition))
+                ref, ref_has = grouped_quantile(leaf, v, w, q, n_leaves, definition)
+                for values, has, rounds in out:
+                    np.testing.assert_array_equal(has, ref_has)
+                    np.testing.assert_array_equal(values[has], ref[has], err_msg=f"{definition} q={q} world={world}")
+
+
+@pytest.mark.parametrize("name, params, weighted", [("asymmetric_laplace", {"quantile": 0.9}, True),
+                                                    pytest.param("laplace", {}, False, marks=pytest.mark.slow)])
+def test_xgboost_refit_path_on_the_cluster(client, tmp_path, name, params, weighted):
+    """XGBoost's custom path (native=False) on the cluster: leaves renewed to the residual quantile of
+    the rows of all workers each round; the held-out loss is within 1% of local training's custom
+    path on the same rows in 16 partitions, and the model saves and loads like any other."""
+    fam = lossfam.family(name, **params)
+    X, y, w, _ = _delays(41, N_TRAIN)
+    Xt, yt, wt, _ = _delays(42, N_TEST)
+    w, wt = (w, wt) if weighted else (None, None)
+    local = lfx.train(fam, PARAMS["xgboost"], xgb.DMatrix(X, y, weight=w), ROUNDS, native=False, verbose_eval=False)
+    fit = lfx.train(fam, PARAMS["xgboost"], lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w)), ROUNDS,
+                    native=False, client=client, verbose_eval=False)
+    assert fit.info["objective"] == local.info["objective"] == "custom"
+    assert fit.info["leaf_value"] == local.info["leaf_value"] == fam.leaf_value
+    info = fit.info["cluster"]
+    assert info["partitions"] >= 16 and info["refit_passes"] >= ROUNDS and "refit" in info["seconds"]
+    held_local, held = local.mean_loss(Xt, yt, weight=wt), fit.mean_loss(Xt, yt, weight=wt)
+    assert abs(held - held_local) <= 0.01 * held_local, (held, held_local)
+    # the first tree's leaves are eta times the residual quantile of all training rows in each leaf, by
+    # XGBoost's renewal definition, computed here on one machine: the same float32 numbers (the workers
+    # read the targets from XGBoost's DMatrix, which keeps them in single precision)
+    import json
+
+    from lossfam._boost import facts
+    from lossfam._boost.quantiles import grouped_quantile
+
+    tree = json.loads(bytes(fit.booster[0:1].save_raw("json")))["learner"]["gradient_booster"]["model"]["trees"][0]
+    is_leaf = np.asarray(tree["left_children"]) == -1
+    leaves = np.asarray(fit.booster[0:1].predict(xgb.DMatrix(X), pred_leaf=True), dtype=np.intp).reshape(-1)
+    y32 = y.astype(np.float32).astype(np.float64)
+    q, has = grouped_quantile(leaves, y32 - fit.baseline, w, facts.leaf_level(fam), is_leaf.size,
+                              facts.renewal_definition("xgboost", weighted=w is not None))
+    expect = (PARAMS["xgboost"]["eta"] * q).astype(np.float32)
+    got = np.asarray(tree["split_conditions"], dtype=np.float32)
+    assert has[is_leaf].all() and np.array_equal(got[is_leaf], expect[is_leaf])
+    assert fit.booster.num_boosted_rounds() == ROUNDS
+    path = tmp_path / "refit.json"
+    fit.save(path)
+    back = lossfam.load(path)
+    np.testing.assert_array_equal(back.predict_raw(Xt), fit.predict_raw(Xt))
+    assert back.booster.attr("lossfam_refit_seconds") is None

@@ -445,6 +445,30 @@ def test_sample_quantile_definitions_match_numpy():
                 assert values[k] == sample_quantile(x[group == k], 5.0 * ww[group == k], 0.3, definition)  # scale-free
 
 
+def test_engine_arithmetic_quantiles_per_group():
+    """grouped_engine_quantile: per group, XGBoost's float32 rule is single_precision_quantile's
+    (the engine's start, reproduced bit for bit below) on that group's float32 values; LightGBM's
+    double interpolation from the upper neighbour is numpy's "linear" quantile at the float32
+    level, to rounding."""
+    from lossfam._boost.quantiles import grouped_engine_quantile, single_precision_quantile
+
+    rng = np.random.default_rng(5)
+    for trial in range(6):
+        n_groups = 9
+        group = rng.integers(0, n_groups - 1, 3000)  # the last group stays empty
+        group[:40] = np.arange(40) % (n_groups - 1)
+        x = np.round(rng.gamma(2.0, 30.0, group.size)) if trial % 2 else rng.standard_normal(group.size) * 1e3
+        for q in (0.01, 0.05, 0.5, 0.9, 0.99):
+            v32, has = grouped_engine_quantile(group, x.astype(np.float32), q, n_groups, "weibull")
+            v64, has64 = grouped_engine_quantile(group, x, q, n_groups, "linear")
+            assert v32.dtype == np.float32 and has.tolist() == has64.tolist() == [True] * 8 + [False]
+            for k in range(n_groups - 1):
+                xs = x[group == k]
+                assert v32[k] == single_precision_quantile(xs.astype(np.float32), None, q, "weibull")
+                ref = np.quantile(xs, float(np.float32(q)), method="linear")
+                assert abs(v64[k] - ref) <= 1e-12 * max(1.0, abs(ref)), (trial, q, k)
+
+
 @pytest.mark.parametrize(("engine", "weighted"), [("lightgbm", False), ("xgboost", False), ("xgboost", True)],
                          ids=["lightgbm-unweighted", "xgboost-unweighted", "xgboost-weighted"])
 def test_engine_renewal_definitions_are_the_engines(engine, weighted):
@@ -502,3 +526,38 @@ def test_engine_starts_are_reproduced_bit_for_bit(engine, weighted):
                 config = json.loads(b.save_config())["learner"]["learner_model_param"]["base_score"]
                 theirs = float(np.float32(float(config.strip("[]"))))
             assert facts.engine_start(fam, engine, y, w) == theirs, (trial, n, tau)
+
+
+def test_line_search_leaves_cannot_diverge_from_far_residuals(rng):
+    # logistic errors have a bounded score: a bare Newton step from a residual z is s sinh(z),
+    # which overshoots and diverged (NaN leaves) for small leaves of far-off rows; each leaf's
+    # step is now halved until its nll does not rise, and the leaf still reaches its root
+    from lossfam._boost.leaves import grouped_line_search
+    fam = LogisticErrorsDeclared(scale=1.3)
+    n, n_leaves = 500, 20
+    leaf = rng.integers(0, n_leaves, n)
+    y = 2.0 * rng.logistic(size=n)
+    y[leaf == 3] += 40.0
+    raw, w = rng.normal(size=n), rng.uniform(0.0, 2.0, n)
+    c, has = grouped_line_search(fam, leaf, y, raw, w, n_leaves)
+    g, _ = fam._grad_hess(y, raw + c[leaf])
+    assert has.all() and np.isfinite(c).all()
+    np.testing.assert_allclose(np.bincount(leaf, weights=g * w, minlength=n_leaves), 0.0, atol=1e-10)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_line_search_with_bagging_weights_and_tiny_leaves_trains(engine, rng):
+    # the case that produced NaN leaves in XGBoost: depth 8, no minimum leaf weight, half the rows
+    # in the bag, user weights
+    X = rng.normal(size=(600, 4))
+    y = X[:, 0] + rng.logistic(size=600)
+    w = rng.uniform(0.2, 3.0, 600)
+    if engine == "xgboost":
+        fit = lossfam.xgboost.train(LogisticErrorsDeclared.name, dict(max_depth=8, eta=0.3, subsample=0.5, nthread=1,
+                                    seed=1, min_child_weight=0), xgb.DMatrix(X, y, weight=w), 30)
+    else:
+        fit = lossfam.lightgbm.train(LogisticErrorsDeclared.name, dict(num_leaves=64, learning_rate=0.3,
+                                     min_data_in_leaf=1, min_sum_hessian_in_leaf=0, bagging_fraction=0.5,
+                                     bagging_freq=1, verbosity=-1, num_threads=1, seed=1),
+                                     lgb.Dataset(X, y, weight=w), 30)
+    assert np.isfinite(fit.predict(X)).all()

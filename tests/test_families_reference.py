@@ -307,6 +307,49 @@ def test_huber_scale_is_the_mle(rng):
     assert f.delta == 1.2
 
 
+@pytest.mark.parametrize("weighted", [False, True])
+@pytest.mark.parametrize("delta", [0.5, 1.345, 3.0])
+def test_huber_location_and_scale_are_scipy_roots_on_diabetes_data(weighted, delta):
+    """The Huber location (fixed scale) and the scale (fixed raw scores) against scipy.optimize.brentq
+    on their score equations, to 1e-12: the Newton iterations stop where brentq does."""
+    from sklearn.datasets import load_diabetes
+
+    # data: scikit-learn's diabetes data (sklearn.datasets.load_diabetes; Efron, Hastie, Johnstone and
+    # Tibshirani, "Least angle regression", Ann. Statist. 32 (2004)), shipped with scikit-learn
+    X, y = load_diabetes(return_X_y=True)
+    w = 1.0 + (X[:, 0] - X[:, 0].min()) / np.ptp(X[:, 0]) if weighted else None  # weights from the age column
+    ww = np.ones_like(y) if w is None else w
+    s = 40.0
+    fam = lossfam.family("huber", delta=delta, scale=s)
+
+    def location_score(c):
+        return np.dot(ww, np.clip((y - c) / s, -delta, delta))
+
+    # outside reference: scipy.optimize.brentq on the location's score sum w psi((y - c) / s)
+    ref = optimize.brentq(location_score, y.min(), y.max(), xtol=1e-14 * s, rtol=4 * np.finfo(float).eps)
+    assert abs(fam.baseline(y, w) - ref) <= 1e-12 * s
+
+    A = np.column_stack([np.ones(y.size), X])
+    raw = A @ np.linalg.lstsq(A, y, rcond=None)[0]  # a linear fit: residuals of real data
+    r = y - raw
+
+    def scale_score(log_s):
+        u = r / np.exp(log_s)
+        return np.dot(ww, np.clip(u, -delta, delta) * u) / ww.sum() - 1.0
+
+    # outside reference: scipy.optimize.brentq on the scale's score mean_w psi(u) u = 1 in log s
+    ref_s = np.exp(optimize.brentq(scale_score, -5.0, 10.0, xtol=1e-14))
+    assert abs(fam.fit_nuisance(y, raw, w).scale - ref_s) <= 1e-12 * ref_s
+
+
+def test_huber_location_in_a_gap_between_rows_is_the_gap_midpoint():
+    # with no row inside the core, every c of the gap solves the score equation: the midpoint is returned
+    f = lossfam.family("huber", delta=1.0, scale=1.0)
+    assert f.baseline([0.0, 1.0, 100.0, 101.0]) == 50.5
+    assert f.baseline([-101.0, -100.0, -1.0, 0.0]) == -50.5
+    assert f.baseline([0.0, 1.0, 100.0, 101.0], [1.0, 3.0, 2.0, 2.0]) == 50.5
+
+
 def test_families_without_parameters_return_themselves(rng):
     f = lossfam.family("poisson")
     assert f.fit_nuisance(np.array([1.0, 2.0]), np.zeros(2)) is f

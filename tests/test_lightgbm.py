@@ -141,9 +141,9 @@ def test_refit_metric_log_matches_the_final_predictions():
 
 
 def test_refit_leaves_are_weighted_residual_quantiles_of_in_bag_rows():
-    # one tree, learning rate 1: each leaf holds the tau-quantile (numpy, "linear" rule: LightGBM's
-    # own renewal on unweighted rows) of y - baseline over the in-bag rows of that leaf; out-of-bag
-    # rows do not count
+    # one tree, learning rate 1: each leaf holds the tau-quantile (numpy, "linear" rule at the level
+    # float32(tau): LightGBM's own renewal on unweighted rows, its level a float) of y - baseline over
+    # the in-bag rows of that leaf; out-of-bag rows do not count
     Xtr, ytr, _, _ = _simulate("laplace", n_train=3000)
     tau = 0.8
     fam = lossfam.family("asymmetric_laplace", quantile=tau)
@@ -169,7 +169,7 @@ def test_refit_leaves_are_weighted_residual_quantiles_of_in_bag_rows():
     step = model.predict_raw(Xtr) - model.baseline
     for leaf in np.unique(leaves):
         rows = (leaves == leaf) & inbag
-        expected = np.quantile(ytr[rows] - model.baseline, tau, method="linear")
+        expected = np.quantile(ytr[rows] - model.baseline, float(np.float32(tau)), method="linear")
         np.testing.assert_allclose(step[leaves == leaf], expected, rtol=1e-9, atol=1e-9)
 
 

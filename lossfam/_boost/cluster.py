@@ -43,6 +43,17 @@ nuisance parameters
     Nelder-Mead) with one pass per evaluation.
 metric
     ``Scorer.sums`` per partition, added.
+best round (LightGBM early stopping)
+    ``round_curves``: the metric after every round from the rows' leaf indices,
+    one pass per valid set; ``best_round`` replays LightGBM's stopping rule.
+leaf refit (custom path, median / quantile leaves)
+    ``leaf_quantiles``: per leaf, the exact residual quantile over the rows of
+    all workers, inside the engine's rounds, by ``select_in_leaves`` (the
+    selection below, vectorised over leaves, its reductions summed arrays of
+    O(leaves x (LEAF_GATHER + LEAF_PIVOTS) x workers) numbers).
+
+Timing: ``timed`` adds each step's wall seconds to the plan's stats;
+``cluster_info`` puts them in ``fit.info["cluster"]["seconds"]``.
 
 Exact weighted quantile by selection (``weighted_quantile``).  The value
 ``x_lo`` is the smallest data value whose cumulative weight reaches ``q W``
@@ -76,6 +87,30 @@ SELECT_GATHER = 4096
 #: order statistics per partition and pass in the selection (at least 8)
 SELECT_PIVOTS = 1024
 NEWTON_STEPS = 100
+
+#: lossfam's own steps on a cluster, in the order they run (``fit.info["cluster"]["seconds"]``)
+STEPS = ("data", "checks", "baseline", "starts", "prefit", "valid_starts", "model", "tree_range", "trained_check",
+         "nuisance", "refit", "valid_metrics", "best_round")
+
+
+class timed:
+    """``with timed(stats, step):`` adds the block's wall seconds to ``stats["seconds"][step]``."""
+
+    def __init__(self, stats, step):
+        self.stats, self.step = stats, step
+
+    def __enter__(self):
+        import time
+
+        self.t0 = time.perf_counter()
+        return self
+
+    def __exit__(self, *exc):
+        import time
+
+        secs = self.stats.setdefault("seconds", {})
+        secs[self.step] = secs.get(self.step, 0.0) + time.perf_counter() - self.t0
+        return False
 
 
 def _dask():
@@ -191,7 +226,9 @@ def _tree_add(dask, parts):
 
 
 def _blocks(arr, k):
-    return [None] * k if arr is None else list(arr.to_delayed().ravel())
+    if arr is None:
+        return [None] * k
+    return list(arr.to_delayed()) if _is_frame(arr) else list(arr.to_delayed().ravel())
 
 
 def _quiet(fn):
@@ -297,6 +334,7 @@ def smooth_baseline(client, fam, y, w, o, stats=None, sums=None):
         stats["passes"] += 1
     c = _start_guess(client, fam, y, w, o, sums)
     lo, hi = -math.inf, math.inf  # G(lo) < 0 < G(hi)
+    last = None  # (c, H, step) of the previous pass
     for _ in range(NEWTON_STEPS):
         G, H = partition_sums(client, _gh_block, [y, w, o], fam, c)
         stats["passes"] += 1
@@ -308,9 +346,19 @@ def smooth_baseline(client, fam, y, w, o, stats=None, sums=None):
             lo = c
         else:
             hi = c
-        step = -G / H if H > 0 and math.isfinite(H) else -math.copysign(1.0, G)
-        if abs(step) <= 4 * np.spacing(max(abs(c), 1e-300)):
+        newton = H > 0 and math.isfinite(H)
+        step = -G / H if newton else -math.copysign(1.0, G)
+        ulp4 = 4 * np.spacing(max(abs(c), 1e-300))
+        if abs(step) <= ulp4:
             return c + step
+        if newton and last is not None and last[2] != 0 and abs(step) < 1e-3 * abs(last[2]):
+            # converging quadratically: the error left after this step is about |H'| step^2 / (2 H), H' the
+            # slope of the summed Hessian between the last two points; when that is below 4 ulp, the
+            # confirming pass would only move c by rounding (saves one pass of the usual 4-5)
+            slope = abs(H - last[1]) / abs(c - last[0])
+            if slope * step * step / (2 * H) <= ulp4 and lo < c + step < hi:
+                return c + step
+        last = (c, H, step) if newton else None
         new = c + step
         if not (lo < new < hi):
             if math.isinf(lo) or math.isinf(hi):  # expand towards the sign change
@@ -459,7 +507,7 @@ def _local_fit_block(y, w, raw, start, fam):
         return None
 
 
-def fit_nuisance(client, fam, y, w, raw, stats=None):
+def fit_nuisance(client, fam, y, w, raw, stats=None, first=None):
     """Maximum-likelihood nuisance parameters at the raw scores ``raw`` (Dask array), on the cluster.
 
     The parameters fitted are those the family's own fit returns (asymmetric
@@ -467,15 +515,18 @@ def fit_nuisance(client, fam, y, w, raw, stats=None):
     partition on a worker, which also gives the starting point.  Then the
     weighted mean nll over all partitions is minimised over their logs, one
     pass per evaluation.  Keeps the given parameters where no finite maximum
-    exists (as ``fit_nuisance_or_keep``)."""
+    exists (as ``fit_nuisance_or_keep``).  ``first``: that fit on the first partition when an
+    earlier pass has run it (``check_trained``)."""
     if not fam.params:
         return fam
     dask, _, _ = _dask()
     stats = {} if stats is None else stats
     stats.setdefault("nuisance_passes", 0)
     ys, ws, rs = y.to_delayed().ravel(), _blocks(w, y.numblocks[0]), raw.to_delayed().ravel()
-    local = None
-    for i in range(min(len(ys), 4)):  # the first partition where the family's own fit succeeds
+    local = first
+    for i in range(1 if first else 0, min(len(ys), 4)):  # the first partition where the family's own fit succeeds
+        if local:
+            break
         local = client.compute(dask.delayed(_local_fit_block, pure=True)(ys[i], ws[i], rs[i], 0, fam)).result()
         stats["nuisance_passes"] += 1
         if local:
@@ -545,6 +596,7 @@ def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
     eye = np.eye(d)
     f_x = None
     h_i = 0
+    last_size = None
     for _ in range(max_passes):
         h = FD_STEPS[h_i]
         pts = [x]
@@ -583,6 +635,11 @@ def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
                 h_i += 1  # close: the fine difference step from here on
         elif size <= NUISANCE_TOL:
             return x
+        elif last_size is not None and size < 1e-2 * last_size and size * size * size / (last_size * last_size) <= NUISANCE_TOL:
+            # converging quadratically (error_k+1 ~ C error_k^2, C ~ size / last_size^2): the step left after
+            # this one, about C size^2, is below the tolerance; the confirming pass is skipped
+            return x
+        last_size = size if h_i + 1 == len(FD_STEPS) else None
     return None
 
 
@@ -623,15 +680,30 @@ def _trained_block(raw, start, fam):
     return np.concatenate([[idx.size], (idx[:5] + start).astype(np.float64), np.full(5 - min(idx.size, 5), -1.0)])
 
 
-def check_trained(client, fam, raw):
-    """Refuse trained raw scores that are not finite or leave the link's range (rows named)."""
-    out = partition_results(client, _trained_block, [raw], fam)
+def _trained_fit_block(raw, y, w, start, fam, fit_first):
+    """``_trained_block``, and on the first partition (``fit_first``) the family's own nuisance fit there."""
+    bad = _trained_block(raw, start, fam)
+    return bad, (_local_fit_block(y, w, raw, start, fam) if fit_first and start == 0 else None)
+
+
+def check_trained(client, fam, raw, y=None, w=None):
+    """Refuse trained raw scores that are not finite or leave the link's range (rows named).
+
+    Given ``y`` (and ``w``), the same pass also runs the family's own nuisance fit on the first
+    partition and returns it (``fit_nuisance``'s ``first``); else returns None."""
+    if y is None:
+        out = partition_results(client, _trained_block, [raw], fam)
+        first = None
+    else:
+        both = partition_results(client, _trained_fit_block, [raw, y, w], fam, True)
+        out, first = [b for b, _ in both], both[0][1]
     count = int(sum(r[0] for r in out))
     if count:
         rows = [int(x) for r in out for x in r[1:] if x >= 0][:5]
         raise ValueError(f"{fam.name}: training diverged: the trained model's raw scores at {count} training rows "
                          f"(e.g. rows {rows}) are not finite or leave the {fam.link_function.name} link's range; "
                          "use a smaller learning rate (or a step_limit)")
+    return first
 
 
 # --------------------------------------------------------------------------- the plan
@@ -652,8 +724,9 @@ class ClusterPlan:
 
     def start_for(self, data: ClusterData, what):
         """(X, y, w, o, start) of a validation set: its start is baseline + its offset."""
-        X, y, w, o = data.aligned(self.client)
-        check_rows(self.client, self.family, y, w, o, what)
+        with timed(self.stats, "valid_starts"):
+            X, y, w, o = data.aligned(self.client)
+            check_rows(self.client, self.family, y, w, o, what)
         if self.offset is not None and o is None:
             raise ValueError(f"training used an offset but {what} has none: its metric would score the rows without "
                              "their offset; give it one (zeros where there truly is none)")
@@ -664,15 +737,16 @@ def starts_of(y, o, baseline):
     return (y * 0.0 + baseline) if o is None else (o + baseline)
 
 
-def cluster_path(fam, engine, engine_name, step_limit, native, params):
+def cluster_path(fam, engine, engine_name, step_limit, native, params, refits=()):
     """(guard, twin) of a cluster training: the step guard, and the native twin's parameters or None;
-    a family whose leaves need lossfam's refit (no twin used) is refused (``refuse_refit``)."""
+    a family whose leaves need lossfam's refit (no twin used) is refused (``refuse_refit``) unless
+    its leaf rule is in ``refits`` (the rules the engine adapter refits on the cluster)."""
     from .gradients import resolve_guard
 
     guard = resolve_guard(fam, step_limit)
     twin = facts.chosen_twin(fam, engine, engine_name, native=native,
                              guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
-    if twin is None and facts.leaf_rule(fam) != "newton":
+    if twin is None and facts.leaf_rule(fam) != "newton" and facts.leaf_rule(fam) not in refits:
         refuse_refit(fam, engine_name)
     return guard, twin
 
@@ -682,26 +756,23 @@ def cluster_plan(client, fam, data: ClusterData, level, *, prefit=True, precisio
     """Baseline given offset and weights, starting scores and the pre-fit, computed on the workers
     (as ``plan.start_plan``: with ``engine``, a median / quantile family starts where that engine's
     built-in starts).  ``drop_unit_weights``: weights that are all 1 count as none (LightGBM's rule)."""
-    import time
-
-    t0 = time.perf_counter()
     stats = {"passes": 0, "gathered": 0, "seconds": {}}
-    X, y, w, o = data.aligned(client)
-    sums = check_rows(client, fam, y, w, o, "data")
+    with timed(stats, "data"):
+        X, y, w, o = data.aligned(client)
+    with timed(stats, "checks"):
+        sums = check_rows(client, fam, y, w, o, "data")
     if drop_unit_weights and w is not None and sums[4] == 0:
         w = None
-    t1 = time.perf_counter()
-    own = engine_start(client, fam, engine, y, w, o, stats, int(sums[3]))
-    baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums) if own is None else own))
+    with timed(stats, "baseline"):
+        own = engine_start(client, fam, engine, y, w, o, stats, int(sums[3]))
+        baseline = float(precision(cluster_baseline(client, fam, y, w, o, level, stats, sums) if own is None else own))
     if not math.isfinite(baseline):
         raise ValueError(f"{fam.name}: no finite constant raw score minimises the nll for these targets")
-    start = client.persist(starts_of(y, o, baseline))
-    t2 = time.perf_counter()
+    with timed(stats, "starts"):
+        start = client.persist(starts_of(y, o, baseline))
     if prefit and fam.location_needs_nuisance and fam.params:
-        fam = fit_nuisance(client, fam, y, w, start, stats)
-    t3 = time.perf_counter()
-    stats["seconds"].update(checks=t1 - t0, baseline=t2 - t1, prefit=t3 - t2)
-    stats["plan_seconds"] = t3 - t0
+        with timed(stats, "prefit"):
+            fam = fit_nuisance(client, fam, y, w, start, stats)
     return ClusterPlan(client, fam, baseline, X, y, w, o, start, stats, (-float(sums[5]), float(sums[6])))
 
 
@@ -798,42 +869,111 @@ def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kin
     scores and that range, plus the baseline and the offsets' range, stays finite and inside the
     link's range, no row can fail the check, and the pass that predicts every training row is
     skipped (local training checks the engine's own training output, which costs nothing)."""
-    import time
-
-    t0 = time.perf_counter()
     client, fam, stats = plan.client, plan.family, plan.stats
     need_rows = bool(fam.params) and nuisance_set is None
-    if not need_rows and tree_range is not None and _range_is_fine(fam, plan, tree_range):
-        raw, stats["trained_check"] = None, "bounds"  # no row can be off: no pass over the rows needed
-    else:
-        raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
-        check_trained(client, fam, raw)
-        stats["trained_check"] = "rows"
-    t1 = time.perf_counter()
-    if not fam.params:
-        fitted = fam
-    elif nuisance_set is None:
-        fitted = fit_nuisance(client, fam, plan.y, plan.weight, raw, stats)
-    else:
-        X, y, w, o, _ = valids[int(nuisance_set)]
-        fitted = fit_nuisance(client, fam, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]), stats)
+    with timed(stats, "trained_check"):
+        if not need_rows and tree_range is not None and _range_is_fine(fam, plan, tree_range):
+            raw, stats["trained_check"] = None, "bounds"  # no row can be off: no pass over the rows needed
+        else:
+            raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
+            first = check_trained(client, fam, raw, *((plan.y, plan.weight) if need_rows else ()))
+            stats["trained_check"] = "rows"
+    with timed(stats, "nuisance"):
+        if not fam.params:
+            fitted = fam
+        elif nuisance_set is None:
+            fitted = fit_nuisance(client, fam, plan.y, plan.weight, raw, stats, first=first)
+        else:
+            X, y, w, o, _ = valids[int(nuisance_set)]
+            fitted = fit_nuisance(client, fam, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]), stats)
     fit.fitted_family = fitted
-    t2 = time.perf_counter()
-    metrics = {}
-    for (X, y, w, o, _), name in zip(valids, valid_names):
-        metrics[name] = mean_loss(client, fam, metric_kind, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]))
-    t3 = time.perf_counter()
-    stats["finish_seconds"] = t3 - t0
-    stats["seconds"].update(predict_and_check=t1 - t0, nuisance=t2 - t1, valid_metrics=t3 - t2)
-    fit.info["cluster"] = {
+    metrics = stats.pop("valid_metrics", None)
+    if metrics is None:  # (early stopping has scored them already, round by round)
+        metrics = {}
+        with timed(stats, "valid_metrics"):
+            for (X, y, w, o, _), name in zip(valids, valid_names):
+                metrics[name] = mean_loss(client, fam, metric_kind, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]))
+    fit.info["cluster"] = cluster_info(plan, client, metrics)
+    return fit
+
+
+# --------------------------------------------------------------------------- best round
+#: rows per block when a partition's raw scores are built round by round
+CURVE_ROWS = 8192
+
+
+def _curve_block(y, w, start, X, row0, leaves, tables, scorer):
+    """(sum w loss, sum w) after each round for one partition: ``leaves(X)`` gives the rows' leaf
+    index in every tree (n, T), ``tables[t]`` tree t's leaf values; the raw score after round t is
+    the start plus the cumulative sum of the rows' leaf values up to tree t."""
+    L = np.asarray(leaves(X))
+    y = np.asarray(y, dtype=np.float64)
+    start = np.asarray(start, dtype=np.float64)
+    T = len(tables)
+    out = np.zeros((T, 2))
+    for r0 in range(0, y.size, CURVE_ROWS):
+        sl = slice(r0, r0 + CURVE_ROWS)
+        raw = start[sl, None] + np.cumsum(np.column_stack([tables[t][L[sl, t]] for t in range(T)]), axis=1)
+        wb = None if w is None else np.asarray(w, dtype=np.float64)[sl]
+        for t in range(T):
+            out[t] += scorer.sums(y[sl], raw[:, t], wb)
+    return out.ravel()
+
+
+def round_curves(client, fam, kind, valid, leaves, tables):
+    """The weighted mean nll (or deviance) of a valid set (a ``ClusterPlan.start_for`` tuple) after
+    each round, in one pass over its partitions: only 2 numbers per round come back."""
+    dask, _, _ = _dask()
+    X, y, w, _, start = valid
+    leaves, tables = (dask.delayed(v, pure=True, traverse=False) for v in (leaves, tables))  # sent once, shared
+    sums = partition_sums(client, _curve_block, [y, w, start, X], leaves, tables, Scorer(fam, kind)).reshape(-1, 2)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return sums[:, 0] / sums[:, 1]
+
+
+def best_round(curves, stopping_rounds, min_delta=0.0):
+    """The round LightGBM's ``early_stopping`` callback keeps (0-based), replayed on per-round metric
+    curves (lower is better): per round and valid set in order, a score below the set's best minus
+    ``min_delta`` becomes its best; the first set whose best is ``stopping_rounds`` rounds old stops
+    training at its best; at the last round the first set's best is kept."""
+    T = len(curves[0])
+    best_score, best_iter = [None] * len(curves), [0] * len(curves)
+    for it in range(T):
+        for i, c in enumerate(curves):
+            if best_score[i] is None or c[it] < best_score[i] - min_delta:
+                best_score[i], best_iter[i] = c[it], it
+            if it - best_iter[i] >= stopping_rounds or it == T - 1:
+                return best_iter[i]
+    return None
+
+
+def cluster_info(plan, client, metrics):
+    """``fit.info["cluster"]``: where the work went.
+
+    ``seconds``: wall seconds of each of lossfam's own steps that ran (``STEPS``, in that order:
+    aligning/persisting the data, checking the rows, the baseline, the starting scores, the
+    nuisance pre-fit, the valid sets' checks and starts, fetching the model, reading the trees'
+    leaf range, checking the trained scores, the nuisance fit, leaf refits, the valid metrics, the
+    choice of the best round); ``lossfam_seconds`` their sum; ``engine_seconds`` the engine's
+    training call (``lightgbm.dask`` / ``xgboost.dask``: the trees, and with a Python objective
+    its gradients); ``overhead`` = lossfam_seconds / engine_seconds."""
+    stats = plan.stats
+    secs = stats.get("seconds", {})
+    engine = float(secs.pop("trees", float("nan")))
+    own = {k: round(float(secs[k]), 4) for k in STEPS if k in secs}
+    total = float(sum(secs[k] for k in STEPS if k in secs))
+    return {
         "partitions": int(plan.y.numblocks[0]), "workers": len(client.scheduler_info().get("workers", {})),
         "baseline_passes": int(stats.get("passes", 0)), "nuisance_passes": int(stats.get("nuisance_passes", 0)),
+        "refit_passes": int(stats.get("refit_passes", 0)),
         "gathered_rows": int(stats.get("gathered", 0)), "valid_metrics": metrics,
         "trained_check": stats.get("trained_check"),
-        "lossfam_seconds": float(stats["plan_seconds"] + stats["finish_seconds"]),
-        "seconds": {k: round(float(v), 4) for k, v in stats["seconds"].items()},
+        **({"valid_curves": stats["valid_curves"], "rounds_trained": stats["rounds_trained"]}
+           if "valid_curves" in stats else {}),
+        "lossfam_seconds": round(total, 4), "engine_seconds": round(engine, 4),
+        "overhead": total / engine if engine > 0 else float("nan"),
+        "seconds": own,
     }
-    return fit
 
 
 def refuse_refit(fam, engine_name):
@@ -841,3 +981,171 @@ def refuse_refit(fam, engine_name):
         f"{fam.name} would refit leaves in Python (native=False or a non-default step_limit), which lossfam does "
         f"not run on a Dask cluster; train with native=True and the default step_limit ({engine_name}'s built-in "
         "twin renews the leaves on the workers)")
+
+
+# --------------------------------------------------------------------------- leaf refit across workers
+#: a query's bracket rows are gathered once at most this many remain over all workers
+LEAF_GATHER = 64
+#: order statistics per worker, query and narrowing round
+LEAF_PIVOTS = 16
+
+
+class LeafRows:
+    """One worker's rows of one tree, sorted by (leaf, value): the local side of ``select_in_leaves``.
+    Rows of zero weight take no part (as in ``leaves.leaf_table``)."""
+
+    def __init__(self, leaf, v, w, n_leaves):
+        leaf = np.asarray(leaf, dtype=np.intp).reshape(-1)
+        v = np.asarray(v, dtype=np.float64).reshape(-1)
+        if w is not None:
+            w = np.asarray(w, dtype=np.float64).reshape(-1)
+            keep = w > 0
+            leaf, v, w = leaf[keep], v[keep], w[keep]
+        order = np.lexsort((v, leaf))
+        self.leaf, self.v = leaf[order], v[order]
+        self.w = np.ones_like(self.v) if w is None else w[order]
+        ids = np.arange(n_leaves)
+        self.starts = np.searchsorted(self.leaf, ids, side="left")
+        self.ends = np.searchsorted(self.leaf, ids, side="right")
+        self.cw = np.concatenate([[0.0], np.cumsum(self.w)])  # cw[i]: weight of sorted rows before i
+        self.n_leaves = n_leaves
+
+    def totals(self):
+        """(rows, weight) per leaf."""
+        return (self.ends - self.starts).astype(np.float64), self.cw[self.ends] - self.cw[self.starts]
+
+    def bounds(self, j, lo, hi):
+        """Index range of leaf ``j``'s rows with lo < v < hi."""
+        s, e = self.starts[j], self.ends[j]
+        seg = self.v[s:e]
+        return s + np.searchsorted(seg, lo, side="right"), s + np.searchsorted(seg, hi, side="left")
+
+    def weight_at_most(self, j, points):
+        """Weight of leaf ``j``'s rows with v <= each point."""
+        s, e = self.starts[j], self.ends[j]
+        return self.cw[s + np.searchsorted(self.v[s:e], points, side="right")] - self.cw[s]
+
+
+def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict):
+    """Exact selection for many (leaf, target) queries at once, over the rows of all workers.
+
+    Query k asks for the smallest value x among leaf ``qleaf[k]``'s rows whose cumulative weight
+    F(x) (all rows of the leaf with value <= x, on every worker) is >= ``target[k]`` (> when
+    ``strict[k]``); returns (x, F(x)) per query, (inf, nan) when no value qualifies.  The method
+    is the module's baseline selection, vectorised over the queries: a bracket (lo, hi) per query;
+    per round every worker sends, per query, all its rows in the bracket when at most
+    ``LEAF_GATHER`` remain over all workers, else ``LEAF_PIVOTS`` evenly spaced order statistics
+    of them; a second reduction counts the weight at or below each pivot, and the bracket shrinks
+    to neighbouring pivots.  ``reduce(array)`` sums an array over the workers (every worker calls
+    it with the same shapes, in the same order: the control flow depends on reduced values only);
+    the data sent per round is O(queries x (gather + pivots) x workers), independent of the rows."""
+    qleaf = np.asarray(qleaf, dtype=np.intp)
+    target = np.asarray(target, dtype=np.float64)
+    strict = np.asarray(strict, dtype=bool)
+    m = qleaf.size
+    lo, f_lo = np.full(m, -np.inf), np.zeros(m)
+    hi, f_hi = np.full(m, np.inf), np.full(m, np.nan)
+    x_out, f_out = np.full(m, np.inf), np.full(m, np.nan)
+    done = np.zeros(m, dtype=bool)
+    G, K = LEAF_GATHER, LEAF_PIVOTS
+
+    def ok(f, k):
+        return f > target[k] if strict[k] else f >= target[k]
+
+    rounds = 0
+    while not done.all():
+        rounds += 1
+        ab = [rows.bounds(qleaf[k], lo[k], hi[k]) if not done[k] else (0, 0) for k in range(m)]
+        count = reduce(np.array([b - a for a, b in ab], dtype=np.float64))
+        small = ~done & (count <= G)
+        big = ~done & ~small
+        vals, wts, cnt = np.zeros((world, m, G)), np.zeros((world, m, G)), np.zeros((world, m))
+        piv, pres = np.zeros((world, m, K)), np.zeros((world, m, K))
+        for k in np.flatnonzero(small):
+            a, b = ab[k]
+            vals[rank, k, :b - a], wts[rank, k, :b - a], cnt[rank, k] = rows.v[a:b], rows.w[a:b], b - a
+        for k in np.flatnonzero(big):
+            a, b = ab[k]
+            if b > a:
+                idx = np.unique(np.linspace(a, b - 1, K).round().astype(np.intp))
+                piv[rank, k, :idx.size], pres[rank, k, :idx.size] = rows.v[idx], 1.0
+        sizes = [vals.size, wts.size, cnt.size, piv.size]
+        got = reduce(np.concatenate([vals.ravel(), wts.ravel(), cnt.ravel(), piv.ravel(), pres.ravel()]))
+        vals, wts, cnt, piv, pres = (part.reshape(shape) for part, shape in zip(
+            np.split(got, np.cumsum(sizes)), [(world, m, G), (world, m, G), (world, m), (world, m, K), (world, m, K)]))
+        for k in np.flatnonzero(small):  # every bracket row is here: finish as on one machine
+            c = cnt[:, k].astype(np.intp)
+            v = np.concatenate([vals[r, k, :c[r]] for r in range(world)])
+            wk = np.concatenate([wts[r, k, :c[r]] for r in range(world)])
+            order = np.argsort(v, kind="stable")
+            v, cum = v[order], f_lo[k] + np.cumsum(wk[order])
+            last = np.r_[v[1:] != v[:-1], True] if v.size else np.zeros(0, dtype=bool)
+            good = np.flatnonzero(ok(cum[last], k)) if v.size else np.zeros(0, dtype=np.intp)
+            if good.size:
+                x_out[k], f_out[k] = v[last][good[0]], cum[last][good[0]]
+            else:
+                x_out[k], f_out[k] = hi[k], f_hi[k]
+            done[k] = True
+        if not big.any():
+            break
+        points = [np.unique(piv[:, k, :][pres[:, k, :] > 0]) if big[k] else np.zeros(0) for k in range(m)]
+        width = max(p.size for p in points)
+        below = np.zeros((m, width))
+        for k in np.flatnonzero(big):
+            below[k, :points[k].size] = rows.weight_at_most(qleaf[k], points[k])
+        below = reduce(below.ravel()).reshape(m, width)
+        for k in np.flatnonzero(big):
+            p, f = points[k], below[k, :points[k].size]
+            good = ok(f, k)
+            if good.any():
+                i = np.flatnonzero(good)[0]
+                hi[k], f_hi[k] = p[i], f[i]
+            bad = np.flatnonzero(~good & (p < hi[k]))
+            if bad.size:
+                lo[k], f_lo[k] = p[bad[-1]], f[bad[-1]]
+    return x_out, f_out, rounds
+
+
+def leaf_quantiles(reduce, rank, world, leaf, v, w, n_leaves, q, definition):
+    """Per leaf, the q-quantile of ``v`` over the rows of all workers by ``definition`` (the
+    definitions of ``lossfam._boost.quantiles.grouped_quantile``, the same numbers), exactly, by
+    ``select_in_leaves``; returns (values, has_rows, reduction rounds).  Leaves without rows of
+    positive weight get 0 and has_rows False."""
+    from .quantiles import DEFINITIONS, UNWEIGHTED_ONLY
+
+    if definition not in DEFINITIONS:
+        raise ValueError(f"unknown quantile definition {definition!r}; one of {DEFINITIONS}")
+    if definition in UNWEIGHTED_ONLY and w is not None:
+        wa = np.asarray(w)
+        if reduce(np.array([float(np.any((wa > 0) & (wa != 1.0)))]))[0] > 0:
+            raise ValueError(f"the {definition!r} quantile is defined for unit weights only")
+        w = None
+    rows = LeafRows(leaf, v, w, n_leaves)
+    n, total = (reduce(np.concatenate(rows.totals())).reshape(2, n_leaves))
+    has = total > 0
+    leaves = np.flatnonzero(has)
+    values = np.zeros(n_leaves)
+    if definition in UNWEIGHTED_ONLY:
+        nn = n[leaves]
+        h = (nn - 1.0) * q if definition == "linear" else (nn + 1.0) * q - 1.0
+        h = np.clip(h, 0.0, np.maximum(nn - 1.0, 0.0))
+        lo = np.floor(h)
+        frac = h - lo
+        r1 = np.minimum(lo + 1.0, nn - 1.0)
+        x, _, rounds = select_in_leaves(reduce, rank, world, rows, np.r_[leaves, leaves], np.r_[lo + 1.0, r1 + 1.0],
+                                        np.zeros(2 * leaves.size, dtype=bool))
+        a, b = x[:leaves.size], x[leaves.size:]
+        values[leaves] = np.where(frac < 0.5, a + (b - a) * frac, b - (b - a) * (1.0 - frac))
+        return values, has, rounds
+    target = q * total[leaves]
+    tol = TIE_TOL * total[leaves]
+    if definition == "lower":
+        x, _, rounds = select_in_leaves(reduce, rank, world, rows, leaves, target - tol, np.zeros(leaves.size, bool))
+        values[leaves] = x
+        return values, has, rounds
+    x, _, rounds = select_in_leaves(reduce, rank, world, rows, np.r_[leaves, leaves], np.r_[target - tol, target + tol],
+                                    np.r_[np.zeros(leaves.size, bool), np.ones(leaves.size, bool)])
+    a, b = x[:leaves.size], x[leaves.size:]
+    b = np.where(np.isinf(b), a, b)  # nothing beyond: the last value (as on one machine)
+    values[leaves] = 0.5 * (a + b)
+    return values, has, rounds

@@ -23,28 +23,53 @@ from __future__ import annotations
 
 import numpy as np
 
-from .quantiles import grouped_quantile
+from .quantiles import grouped_engine_quantile, grouped_quantile
 
 LINE_SEARCH_STEPS = 50
 LINE_SEARCH_TOL = 1e-10
+LINE_SEARCH_HALVINGS = 40
 
 
 def grouped_line_search(fam, leaf, y, raw, w, n_leaves):
-    """Per leaf, the constant c with sum over the leaf of w g(y, raw + c) = 0 (Newton / IRLS)."""
+    """Per leaf, the constant c with sum over the leaf of w g(y, raw + c) = 0: Newton / IRLS steps
+    on the family's own curvature, each halved (up to ``LINE_SEARCH_HALVINGS`` times) until the
+    leaf's weighted nll does not rise, so that a leaf of few far-off rows, where a bare Newton step
+    on a bounded score overshoots (logistic errors: s sinh(z) from a residual z), cannot diverge.
+    A leaf whose step cannot be made to lower its nll stops where it is."""
     wt = np.ones_like(y) if w is None else w
     mass = np.bincount(leaf, weights=wt, minlength=n_leaves)
     has = mass > 0
     c = np.zeros(n_leaves)
+
+    def leaf_nll(cv):
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            v = fam._nll(y, raw + cv[leaf]) * wt
+        v[wt == 0] = 0.0  # out-of-bag rows take no part, whatever their nll
+        return np.bincount(leaf, weights=v, minlength=n_leaves)
+
+    current = leaf_nll(c)
     for _ in range(LINE_SEARCH_STEPS):
         with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
             g, h = fam._grad_hess(y, raw + c[leaf])
-        G = np.bincount(leaf, weights=g * wt, minlength=n_leaves)
-        H = np.bincount(leaf, weights=h * wt, minlength=n_leaves)
-        with np.errstate(invalid="ignore", divide="ignore"):
+            G = np.bincount(leaf, weights=g * wt, minlength=n_leaves)
+            H = np.bincount(leaf, weights=h * wt, minlength=n_leaves)
             step = np.where(has & (H > 0), -G / H, 0.0)
-        if not np.all(np.isfinite(step)):
-            break
+        step[~np.isfinite(step)] = 0.0
+        moving = step != 0.0
+        worse = np.zeros(n_leaves, dtype=bool)
+        for _ in range(LINE_SEARCH_HALVINGS):
+            if not moving.any():
+                break
+            trial = leaf_nll(c + np.where(moving, step, 0.0))
+            worse = moving & ~(trial <= current + 1e-12 * np.abs(current))
+            if not worse.any():
+                break
+            step[worse] *= 0.5
+        else:
+            worse = moving & ~(trial <= current + 1e-12 * np.abs(current))
+        step[worse] = 0.0
         c += step
+        current = leaf_nll(c)
         if np.all(np.abs(step) <= LINE_SEARCH_TOL * (1.0 + np.abs(c))):
             break
     return c, has
@@ -55,8 +80,13 @@ def leaf_table(rule, level, fam, leaf, y, raw, w, n_leaves, learning_rate, defin
 
     ``definition``: the sample quantile definition of the median / quantile
     rules (``lossfam._boost.quantiles``); rows of zero weight (out of the
-    bag) are left out."""
+    bag) are left out.  Where the definition is an engine's own unit-weight
+    renewal ("weibull": XGBoost, "linear": LightGBM) and the rows carry no
+    other weights, the leaf is computed in that engine's arithmetic
+    (``engine_leaf_table``)."""
     leaf = np.asarray(leaf, dtype=np.intp).reshape(-1)
+    if rule in ("median", "quantile") and definition in ENGINE_ARITHMETIC and (w is None or _unit_or_zero(w)):
+        return engine_leaf_table(level, leaf, y, raw, w, n_leaves, learning_rate, definition)
     if rule in ("median", "quantile"):
         c, has = grouped_quantile(leaf, y - raw, w, level, n_leaves, definition)
     elif rule == "line_search":
@@ -64,6 +94,39 @@ def leaf_table(rule, level, fam, leaf, y, raw, w, n_leaves, learning_rate, defin
     else:  # pragma: no cover - the adapters only call this for refit rules
         raise ValueError(f"no leaf table for rule {rule!r}")
     return learning_rate * c, has
+
+
+#: the renewal definitions computed in the engine's own arithmetic (grouped_engine_quantile)
+ENGINE_ARITHMETIC = ("weibull", "linear")
+
+
+def _unit_or_zero(w):
+    """True when every weight is 1 or 0 (no weights, or lossfam's bag: out-of-bag rows weigh 0)."""
+    return bool(np.all((w == 1.0) | (w == 0.0)))
+
+
+def engine_leaf_table(level, leaf, y, raw, w, n_leaves, learning_rate, definition):
+    """The leaf table of the median / quantile rules in the arithmetic of the engine that renews by
+    ``definition``, so that the custom path keeps following the native twin over many rounds.
+
+    ``"weibull"`` (XGBoost): the residuals are float32 labels minus the engine's float32 scores
+    (``raw`` must be the scores as XGBoost holds them: float32 sums of float32 leaves), the
+    quantile in float32 (``grouped_engine_quantile``) and the leaf float32(q * float32(eta)).
+    ``"linear"`` (LightGBM): double residuals, the quantile as LightGBM interpolates it, the leaf
+    q * learning_rate in double.  Rows of zero weight (out of the bag) are left out.  Returns
+    float64 values (exactly the engine's) and ``has_rows``.
+    """
+    if w is not None:
+        keep = w > 0
+        leaf, y, raw = leaf[keep], y[keep], raw[keep]
+    if definition == "weibull":
+        f32 = np.float32
+        r = np.subtract(np.asarray(y, dtype=f32), np.asarray(raw, dtype=f32), dtype=f32)
+        q, has = grouped_engine_quantile(leaf, r, level, n_leaves, definition)
+        return np.multiply(q, f32(learning_rate), dtype=f32).astype(np.float64), has
+    r = np.asarray(y, dtype=np.float64) - np.asarray(raw, dtype=np.float64)
+    q, has = grouped_engine_quantile(leaf, r, level, n_leaves, definition)
+    return learning_rate * q, has
 
 
 class RowBag:

@@ -1,5 +1,11 @@
-"""The start plan (baseline, starting scores, nuisance pre-fit), the final nuisance fit and the
-check of the trained raw scores: the engine-neutral phases of ``train``."""
+"""The engine-neutral phases of ``train``: the start plan (baseline, starting scores, nuisance
+pre-fit), the training path (step guard, native twin or Python objective, leaf rule), the check of
+the trained raw scores, the final nuisance fit and the model's record of how it was trained.
+
+Both adapters run the same phases in the same order: their arguments checked (``_Call``), the
+start (``start_plan``), the validation sets' starts, the path (``training_path``), the engine's
+plumbing (objective, metric, callbacks), the run, and the finish (``checked_training_raw``, the
+nuisance fit, ``fit_info``)."""
 from __future__ import annotations
 
 import dataclasses
@@ -9,6 +15,8 @@ import numpy as np
 from .. import _checks
 from ..censoring import IntervalTarget
 from . import facts
+from .gradients import resolve_guard
+from .scoring import raw_from_output
 
 #: training passes on a censored target whose family fits nuisance parameters (see censored_passes)
 CENSORED_PASSES = 2
@@ -61,6 +69,42 @@ def start_plan(fam, y, w, offset=None, *, prefit=True, precision=np.float64, eng
     if prefit and (fam.location_needs_nuisance or (censored and fam.censored_fit)) and fam.params:
         fam = fit_nuisance_or_keep(fam, y, start, w)
     return StartPlan(fam, baseline, start, o)
+
+
+def training_path(fam, engine, engine_name, step_limit, native, params, censored):
+    """(guard, twin, rule): the step guard, the native twin's engine parameters (or None: the Python
+    objective) and the leaf-value rule of the Python objective.
+
+    The twin is taken where the family declares one for ``engine``, ``native`` is on and the guard is
+    the family's default (``facts.chosen_twin``).  A censored target trains on lossfam's censored
+    gradients with the engine's Newton leaves (the twins and the leaf rules read plain targets only).
+    """
+    guard = resolve_guard(fam, step_limit)
+    rule = facts.leaf_rule(fam)
+    twin = facts.chosen_twin(fam, engine, engine_name, native=native,
+                             guard_is_default=guard == resolve_guard(fam, "auto"), params=params)
+    if censored:
+        twin, rule = None, "newton"
+    return guard, twin, rule
+
+
+def fit_info(twin, rule, guard) -> dict:
+    """How a model was trained, as kept in ``BoostedFit.info`` and its file: the engine objective
+    ("custom" or the twin's), the leaf rule ("engine" under a twin), the step guard."""
+    return {"objective": twin["objective"] if twin else "custom", "leaf_value": rule if twin is None else "engine",
+            "step_limit": guard.limit, "hessian_damping": guard.damping}
+
+
+def checked_training_raw(fam, raw=None, pred=None):
+    """Check the trained scores of the training rows (``check_trained``): ``raw`` scores, or ``pred``,
+    a native twin's transformed predictions (overwritten).  Returns the training rows' raw scores
+    where the nuisance fit needs them: ``raw`` as given, or ``pred`` mapped back through the link
+    (None for a twin's predictions when the family has no nuisance parameters)."""
+    if pred is not None:
+        check_trained(fam, pred=pred)
+        return raw_from_output(fam, pred, overwrite=True) if fam.params else None
+    check_trained(fam, raw=raw)
+    return raw
 
 
 def fit_nuisance_or_keep(fam, y, raw, w):

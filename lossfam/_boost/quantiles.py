@@ -232,3 +232,62 @@ def single_precision_plan(definition, n, q):
         k = int(np.floor(t)) - 1
         return (k, min(k + 1, n - 1)), (lambda lo, hi: float(f32(float(lo) + (t - 1.0 - k) * float(f32(hi - lo)))))
     raise ValueError(f"no single-precision rule for the {definition!r} quantile")
+
+
+def grouped_engine_quantile(group, x, q, n_groups, definition):
+    """Per group, the ``q``-quantile of ``x`` (unit weights) in the arithmetic of the engine whose
+    built-in median / quantile objective renews leaves by ``definition`` (``facts.renewal_definition``).
+
+    ``"weibull"`` (XGBoost)
+        ``x`` are float32 residuals (the engine subtracts its float32 scores from the float32
+        labels); with ``p = float32(q)`` the rule of ``single_precision_quantile``: ``x_(1)``
+        for ``p <= 1/(n+1)``, ``x_(n)`` for ``p >= n/(n+1)``, else
+        ``float32(x_(k) + d * float32(x_(k+1) - x_(k)))``.  Returns float32 values.
+    ``"linear"`` (LightGBM)
+        ``x`` are float64 residuals (LightGBM keeps its scores in double); with
+        ``p = float32(q)`` (its quantile level is a float) and ``h = (n - 1)(1 - p)``
+        counted from the largest value, ``upper - (upper - lower)(h - floor h)`` in float64:
+        the start's rule (``single_precision_plan``) on doubles.
+
+    Mathematically these are ``grouped_quantile``'s definitions of the same names; only the
+    rounding differs, and over a thousand rounds of leaves that chase residuals of a few ulps
+    it decides the trees (the custom path then drifts away from the native twin).  Groups
+    without rows get 0 and ``has_rows`` False.
+    """
+    group = np.asarray(group, dtype=np.intp).reshape(-1)
+    order = np.lexsort((x, group))
+    gs, xs = group[order], x[order]
+    ids = np.arange(n_groups)
+    starts = np.searchsorted(gs, ids, side="left")
+    ends = np.searchsorted(gs, ids, side="right")
+    has = ends > starts
+    count = (ends - starts).astype(np.float64)
+    last = np.maximum(ends - 1, starts)
+    p = float(np.float32(q))
+    safe = np.where(has, starts, 0)
+
+    def at(i):
+        return xs[np.where(has, np.clip(i, starts, last), 0)] if xs.size else np.zeros(n_groups, x.dtype)
+
+    if not xs.size:
+        return np.zeros(n_groups, x.dtype), has
+    if definition == "weibull":
+        f32 = np.float32
+        t = p * (count + 1.0)
+        k = np.floor(t) - 1.0
+        d = (t - 1.0) - k
+        i0 = safe + np.maximum(k, 0).astype(np.intp)
+        lo, hi = at(i0), at(i0 + 1)
+        inner = (lo.astype(np.float64) + d * (hi - lo).astype(np.float64)).astype(f32)
+        with np.errstate(divide="ignore"):
+            values = np.where(p <= 1.0 / (count + 1.0), at(safe),
+                              np.where(p >= count / (count + 1.0), at(last), inner))
+        return np.where(has, values, f32(0.0)).astype(f32), has
+    if definition == "linear":
+        h = np.maximum(count - 1.0, 0.0) * (1.0 - p)
+        pos = np.floor(h)
+        upper = at(last - pos.astype(np.intp))
+        lower = at(np.maximum(last - pos.astype(np.intp) - 1, starts))
+        values = upper - (upper - lower) * (h - pos)
+        return np.where(has, values, 0.0), has
+    raise ValueError(f"no engine arithmetic for the {definition!r} quantile")

@@ -108,6 +108,12 @@ class SeveralScoreFamily:
     fisher_diagonal: ClassVar[bool] = False
     #: raw-score columns in which the nll has a kink (module docstring)
     kinked_scores: ClassVar[tuple] = ()
+    #: the nuisance parameter of ``constant_scale()`` that raw score 1 models through a log link
+    #: (the generic ``_start`` is then the one-score baseline and log of that parameter's MLE)
+    constant_param: ClassVar[str | None] = None
+    #: True when the location's constant MLE does not depend on the other raw scores (mean,
+    #: median, quantile): without an offset on the other columns ``_start`` is then the baseline
+    start_is_baseline: ClassVar[bool] = False
 
     def __post_init__(self):
         for f in dataclasses.fields(self):
@@ -208,17 +214,13 @@ class SeveralScoreFamily:
             raise ValueError(f"{self.name}: curvature must be one of {CURVATURES}, got {curvature!r}")
         y, raw, w = self._inputs(y, raw, weight, for_nll=False)
         with np.errstate(over="ignore", divide="ignore"):
-            g = self._gradient(y, raw)
-            if curvature == "newton":
-                d = self._newton_diagonal(y, raw)
-            elif curvature == "fisher":
-                d = self._fisher_diagonal(raw)
-            elif self.fisher_diagonal:
-                g = g / self._fisher_diagonal(raw)
+            if curvature == "natural":
+                g = self._natural_direction(y, raw)
                 d = np.ones_like(g)
+            elif curvature == "newton":
+                g, d = self._gradient(y, raw), self._newton_diagonal(y, raw)
             else:
-                g = self._natural_gradient(y, raw, g)
-                d = np.ones_like(g)
+                g, d = self._gradient(y, raw), self._fisher_diagonal(raw)
         if w is not None:
             g = g * w[:, None]
             d = d * w[:, None]
@@ -281,8 +283,16 @@ class SeveralScoreFamily:
     def _hessian(self, y, raw):  # pragma: no cover - abstract
         raise NotImplementedError(f"{type(self).__name__} must implement _hessian")
 
-    def _fisher(self, raw):  # pragma: no cover - abstract
-        raise NotImplementedError(f"{type(self).__name__} must implement _fisher")
+    def _fisher(self, raw):
+        """(n, k, k): from ``_fisher_diagonal`` when ``fisher_diagonal``; else subclasses implement it."""
+        if not self.fisher_diagonal or type(self)._fisher_diagonal is SeveralScoreFamily._fisher_diagonal:
+            raise NotImplementedError(f"{type(self).__name__} must implement _fisher (or declare "
+                                      "fisher_diagonal and implement _fisher_diagonal)")
+        d = self._fisher_diagonal(raw)
+        f = np.zeros(d.shape + (d.shape[1],))
+        idx = np.arange(d.shape[1])
+        f[:, idx, idx] = d
+        return f
 
     def _fisher_diagonal(self, raw):
         """(n, k): the diagonal of the Fisher information (a family may compute it directly)."""
@@ -297,6 +307,14 @@ class SeveralScoreFamily:
             d[rows] = np.where(bad[rows], self._fisher_diagonal(raw[rows]), d[rows])
         return d
 
+    def _natural_direction(self, y, raw):
+        """(n, k) F^{-1} g at (y, raw): the gradient divided by the Fisher diagonal when that matrix
+        is diagonal, else ``_natural_gradient``; families with a closed form override this."""
+        g = self._gradient(y, raw)
+        if self.fisher_diagonal:
+            return g / self._fisher_diagonal(raw)
+        return self._natural_gradient(y, raw, g)
+
     def _natural_gradient(self, y, raw, g):
         """(n, k) F^{-1} g per row (a k x k solve; families with a closed form override this)."""
         return np.linalg.solve(self._fisher(raw), g[:, :, None])[:, :, 0]
@@ -305,12 +323,26 @@ class SeveralScoreFamily:
         return np.asarray(self._distribution(raw).rvs(random_state=rng), dtype=float)
 
     def _start(self, y, w, offset):
-        """A starting raw-score vector for the baseline search (subclasses give a closed form)."""
-        return np.zeros(self.n_scores)
+        """A starting raw-score vector for the baseline search: with ``constant_param``, the
+        one-score family's baseline and the log of its nuisance MLE there; else zeros."""
+        if self.constant_param is None:
+            return np.zeros(self.n_scores)
+        one = self.constant_scale()
+        o0 = None if offset is None else offset[:, 0]
+        c0 = one._baseline(y, w, o0)
+        fitted = np.full(y.shape, c0) if o0 is None else c0 + o0
+        try:
+            p = one._fit_nuisance(y, fitted, w)[self.constant_param]
+        except ValueError as err:  # e.g. every residual zero: the likelihood has no finite maximum
+            raise ValueError(f"{self.name}: {err}") from None
+        return np.array([c0, np.log(p)])
 
     def _baseline(self, y, w, offset):
         """Generic: minimise the weighted mean nll over a constant k-vector (scipy's BFGS with the
-        analytic gradient), from ``_start``; subclasses with a closed form override this."""
+        analytic gradient), from ``_start``; ``start_is_baseline`` families without an offset on
+        the other columns take ``_start`` itself; subclasses with a closed form override this."""
+        if self.start_is_baseline and (offset is None or not np.any(offset[:, 1:])):
+            return self._start(y, w, offset)
         o = 0.0 if offset is None else offset
         sw = w.sum()
         n = y.shape[0]

@@ -95,6 +95,8 @@ class GammaSpread(SeveralScoreFamily):
     target_domain = POSITIVE
     prediction_kind = "mean"
     fisher_diagonal = True
+    constant_param = "shape"
+    start_is_baseline = True
     default_curvature = "natural"
 
     def constant_scale(self):
@@ -145,29 +147,6 @@ class GammaSpread(SeveralScoreFamily):
         with np.errstate(over="ignore"):
             k = np.exp(raw[:, 1])
         return np.column_stack([k, _f(k)])
-
-    def _fisher(self, raw):
-        d = self._fisher_diagonal(raw)
-        f = np.zeros((raw.shape[0], 2, 2))
-        f[:, 0, 0], f[:, 1, 1] = d[:, 0], d[:, 1]
-        return f
-
-    def _start(self, y, w, offset):
-        one = self.constant_scale()
-        o0 = None if offset is None else offset[:, 0]
-        c0 = one._baseline(y, w, o0)
-        fitted = np.full(y.shape, c0) if o0 is None else c0 + o0
-        try:
-            k = one._fit_nuisance(y, fitted, w)["shape"]
-        except ValueError as err:
-            raise ValueError(f"{self.name}: {err}") from None
-        return np.array([c0, np.log(k)])
-
-    def _baseline(self, y, w, offset):
-        start = self._start(y, w, offset)
-        if offset is None or not np.any(offset[:, 1]):
-            return start
-        return super()._baseline(y, w, offset)
 
     def _distribution(self, raw):
         with np.errstate(over="ignore"):

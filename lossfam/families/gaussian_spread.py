@@ -86,6 +86,16 @@ class GaussianSpread(SeveralScoreFamily):
         # F = diag(1/sigma^2, 2): F^{-1} g = (sigma^2 g0, g1 / 2)
         return np.column_stack([g[:, 0] * np.exp(2.0 * raw[:, 1]), 0.5 * g[:, 1]])
 
+    def _natural_direction(self, y, raw):
+        # F^{-1} g in closed form: (-(y - mu), (1 - z^2) / 2), one pass, no sigma^2 factors
+        out = np.empty((y.shape[0], 2))
+        r = np.subtract(y, raw[:, 0], out=out[:, 0])
+        z = r * np.exp(-raw[:, 1])
+        np.multiply(z, z, out=z)
+        np.multiply(np.subtract(1.0, z, out=z), 0.5, out=out[:, 1])
+        np.negative(r, out=r)
+        return out
+
     def _start(self, y, w, offset):
         t = y if offset is None else y - offset[:, 0]
         m = np.average(t, weights=w)

@@ -21,9 +21,12 @@ and psi(u) = clip(u, -delta, delta):
                positive and finite everywhere, continuous at |u| = delta.
     deviance = 2 s^2 rho_delta(u)                 (2 s^2 (nll - nll at raw = y))
     baseline = the weighted Huber M-estimate of location: the root of
-               sum w psi((y - c)/s) = 0 (monotone in c; scipy.optimize.brentq)
+               sum w psi((y - c)/s) = 0 (monotone and piecewise linear in c:
+               safeguarded Newton, location_m_estimate; in a gap between rows
+               where the score is 0 throughout, the gap's midpoint)
     s^       = root of sum w psi(u) u = sum w     (d/ds of the weighted nll; the
-               left side falls monotonically in s; brentq on log s)
+               left side falls monotonically in s: Newton from the Gaussian
+               scale, monotone, _scale_root)
 """
 from __future__ import annotations
 
@@ -35,7 +38,7 @@ from scipy import optimize, special
 from .. import _checks
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY
-from ._base import Family, by_row_blocks, residuals
+from ._base import BLOCK_ROWS, Family, by_row_blocks, residuals, sum_by_row_blocks
 
 
 def huber_rho(u, delta):
@@ -194,67 +197,178 @@ class Huber(Family):
 
     def _baseline(self, y, w, offset):
         t = y if offset is None else y - offset
-        s, d = self.scale, self.delta
-        psi = None  # psi((t - c) / s) per row, rewritten at every evaluation (no fresh arrays)
-
-        def fill(t, out):
-            np.subtract(t, c, out=out)
-            out /= s
-            np.clip(out, -d, d, out=out)
-
-        def score(x):
-            nonlocal psi, c
-            c = x
-            (psi,) = by_row_blocks(fill, (t,), n_out=1, out=None if psi is None else (psi,))
-            return float(np.dot(w, psi))
-
-        c = None
-
-        lo, hi = float(t.min()), float(t.max())
+        lo, hi = _checks._bounds(t)
         if lo == hi:
             return lo
-        try:  # a bracket as wide as 1e308 needs up to ~2100 halvings
-            # tolerance in units of the scale (the score's resolution), not of the widest target
-            return optimize.brentq(score, lo, hi, xtol=max(1e-14 * s, 1e-300),
-                                   rtol=4 * np.finfo(float).eps, maxiter=4000)
-        except RuntimeError:  # pragma: no cover - the score is too coarse in float64 to locate its root
-            raise ValueError("huber: the targets span too wide a range to locate the baseline in float64") from None
+        return location_m_estimate(t, None if _constant(w) else w, self.scale, self.delta, lo, hi)
 
     def _fit_nuisance(self, y, raw, w):
         r = residuals(y, raw)
         if not np.min(w) > 0:
             keep = w > 0
             r, w = r[keep], w[keep]
-        d = self.delta
-        sw = w.sum()
         lo, hi = _checks._bounds(_checks.finite_residuals(r, self.name))
         amax = max(hi, -lo)  # max |r|
         if not amax > 0:
             raise ValueError("huber: every residual is zero, so the maximum-likelihood scale is 0 (not a valid scale)")
-        r = np.divide(r, amax, out=r)  # solve for t = s / max|r|: residuals in [-1, 1], so u = r / t stays finite below
-        terms = None  # psi(u) u per row, rewritten at every evaluation (no fresh arrays)
-
-        def fill(r, out, u):
-            np.divide(r, e, out=u)
-            np.clip(u, -d, d, out=out)
-            out *= u
-
-        def excess(log_t):
-            nonlocal terms, e
-            e = np.exp(log_t)
-            (terms,) = by_row_blocks(fill, (r,), n_out=1, n_scratch=1, out=None if terms is None else (terms,))
-            return float(np.dot(w, terms) / sw) - 1.0
-
-        e = None
-
-        # psi(u) u <= u^2, so excess(0) <= mean r^2 - 1 <= 0; below, the tails grow like delta |r| / t
-        lo, hi = -50.0, 1.0
-        while excess(lo) < 0:
-            lo -= 50.0
-            if lo < -700.0:
-                raise ValueError("huber: the residuals span too many orders of magnitude to fit the scale in float64")
-        log_t = optimize.brentq(excess, lo, hi, xtol=1e-13)
-        return {"scale": float(amax * np.exp(log_t))}
+        # rho = |r| / max|r| in [0, 1] (overwriting r): z = max|r| / s is then the unknown, and u = rho z stays finite
+        rho = np.abs(r, out=r)
+        rho /= amax
+        return {"scale": float(amax / _scale_root(rho, None if _constant(w) else w, self.delta))}
 
     def _distribution(self, raw):
         return HuberLaw(raw, self.scale, self.delta)
+
+
+def _constant(w):
+    """True when every weight is the same (only relative weights matter: then none are needed)."""
+    lo, hi = _checks._bounds(w)
+    return lo == hi
+
+
+#: |S| below FLAT_TOL d W counts as zero where no row lies in the core (location_m_estimate)
+FLAT_TOL = 1e-9
+#: iterations of the safeguarded root finders below (far more than they take: 3-10 on real data)
+MAX_ITERATIONS = 4000
+
+
+def location_m_estimate(t, w, s, d, lo, hi):
+    """The Huber M-estimate of location c: the root of S(c) = sum w psi((t - c) / s), psi = clip(., -d, d).
+
+    S falls monotonically in c and is piecewise linear: with the core rows
+    |t - c| < d s fixed it is sum_core w (t - c) / s + d (sum w over rows above
+    the core - sum w below), of slope -D / s, D = sum_core w.  Newton's step
+    c + s S(c) / D therefore lands exactly on the root once the core is right.
+    Safeguard: the bracket [lo, hi] (S(lo) >= 0 >= S(hi)) shrinks with every
+    evaluation, and a Newton step that leaves it, or that is not below half
+    the step two evaluations back, is replaced by bisection.  Stops when the step is below
+    1e-14 s (the score's resolution) + 4 eps |c|, as brentq did before
+    (|c| the smaller end of the bracket).  One
+    pass over the rows per evaluation (``sum_by_row_blocks``), no row-sized
+    temporaries; ``w=None`` means equal weights.
+
+    Where no row lies in the core, S is constant, d (W above - W below),
+    between the nearest rows below and above c (one more pass finds them).
+    When that constant is zero (to 1e-9 d W: rounding of the sum), every c
+    of the gap is a root, and the midpoint of the two rows is returned (so the
+    estimate of -t is minus that of t); otherwise the bracket jumps past the
+    gap.
+    """
+    def kernel(t, w, u, m):
+        np.subtract(t, c, out=u)
+        u /= s
+        np.maximum(u, -d, out=u)
+        np.minimum(u, d, out=u)
+        np.less(np.abs(u, out=m), d, out=m)  # m: 1.0 in the core, 0.0 outside (float, for the dot below)
+        if w is None:
+            return float(u.sum()), float(m.sum())
+        return float(np.dot(w, u)), float(np.dot(w, m))
+
+    tol_abs = max(1e-14 * s, 1e-300)
+    total = float(t.size) if w is None else float(w.sum())
+    with np.errstate(over="ignore"):
+        c = float(np.dot(w, t) / w.sum()) if w is not None else float(np.mean(t))
+    if not lo < c < hi:  # the mean overflowed, or the rows are too few to place it inside
+        c = lo / 2 + hi / 2
+    steps = []
+    for _ in range(MAX_ITERATIONS):
+        score, core = sum_by_row_blocks(kernel, (t, w), n_scratch=2)
+        if score == 0.0 and core > 0:
+            return c
+        if score > 0:
+            lo = c
+        else:
+            hi = c
+        if core == 0:  # a gap between rows, where S is constant
+            below, above = _neighbours(t, w, c)
+            if abs(score) <= FLAT_TOL * d * total:
+                return below / 2 + above / 2
+            if score > 0:
+                lo = max(lo, above - d * s)
+            else:
+                hi = min(hi, below + d * s)
+        tol = tol_abs + 4 * np.finfo(float).eps * min(abs(lo), abs(hi))
+        if hi - lo <= tol:
+            return c if lo <= c <= hi else lo / 2 + hi / 2
+        step = s * score / core if core > 0 else np.nan
+        new = c + step
+        # bisect when Newton leaves the bracket or its steps have not halved in two evaluations
+        if lo <= new <= hi and abs(step) <= tol:
+            return new
+        if not lo < new < hi or (len(steps) > 1 and abs(step) > 0.5 * abs(steps[-2])):
+            new = lo / 2 + hi / 2
+            step = new - c
+            if abs(step) <= tol:
+                return new
+        steps.append(step)
+        c = new
+    raise ValueError("huber: the targets span too wide a range to locate the baseline in float64")  # pragma: no cover
+
+
+def _neighbours(t, w, c):
+    """The largest t below c and the smallest above it, among rows of positive weight (one pass)."""
+    def kernel(t, w):
+        keep = True if w is None else w > 0
+        return (float(np.max(t, where=keep & (t < c), initial=-np.inf)),
+                float(np.min(t, where=keep & (t > c), initial=np.inf)))
+
+    below = above = None
+    for start in range(0, t.size, BLOCK_ROWS):
+        rows = slice(start, start + BLOCK_ROWS)
+        b, a = kernel(t[rows], None if w is None else w[rows])
+        below = b if below is None else max(below, b)
+        above = a if above is None else min(above, a)
+    return below, above
+
+
+def _scale_root(rho, w, d):
+    """The root z of F(z) = mean_w psi(rho z) rho z = 1 (rho = |r| / max|r|, z = max|r| / s).
+
+    F is the weighted mean of min(u, d) u, u = rho z: the scale's score
+    equation (d/ds of the weighted nll, times s).  Per row, F / z is rho^2 z
+    in the core (u <= d) and d rho beyond: increasing and concave in z, so
+    h(z) = (F(z) - 1) / z is increasing and concave, with slope
+    h'(z) = (K + 1) / z^2, K the weighted mean of u^2 over the core.  Newton's
+    step on h is
+
+        z <- z (1 + (1 - F) / (1 + K)).
+
+    On a concave increasing function every Newton iterate lands at or left of
+    the root, so from the left the iterates rise monotonically to it, without
+    a bracket (quadratically once the core stops changing).  The start is the
+    Gaussian scale's z0 = 1 / sqrt(mean_w rho^2), where F(z0) <= 1 because
+    min(u, d) u <= u^2.  Stops when a step is below 1e-15 relative (or stalls
+    in rounding).  One pass over the rows per step (``sum_by_row_blocks``),
+    no row-sized temporaries; ``w=None`` means equal weights.
+    """
+    def kernel(rho, w, u, c):
+        np.multiply(rho, z, out=u)
+        np.minimum(u, d, out=c)  # psi(u) for u >= 0
+        return float(np.dot(c, u)), float(np.dot(c, c)), float(np.count_nonzero(u > d))
+
+    def weighted_kernel(rho, w, u, c, wc):
+        np.multiply(rho, z, out=u)
+        np.minimum(u, d, out=c)
+        np.multiply(c, w, out=wc)
+        return float(np.dot(wc, u)), float(np.dot(wc, c)), float(np.add.reduce(w, where=u > d))
+
+    total = float(rho.size) if w is None else float(w.sum())
+    (mean_sq,) = sum_by_row_blocks(lambda rho, w: (float(np.dot(rho, rho) if w is None else np.dot(w * rho, rho)),),
+                                   (rho, w))
+    z = 1.0 / np.sqrt(mean_sq / total)
+    for _ in range(MAX_ITERATIONS):
+        if not z < 1e300:
+            raise ValueError("huber: the residuals span too many orders of magnitude to fit the scale in float64")
+        if w is None:
+            p, s2, w_tail = sum_by_row_blocks(kernel, (rho, None), n_scratch=2)
+        else:
+            p, s2, w_tail = sum_by_row_blocks(weighted_kernel, (rho, w), n_scratch=3)
+        f = p / total
+        k = max((s2 - d * d * w_tail) / total, 0.0)  # the core's share of sum w c^2
+        if not f < 1.0:
+            return z
+        new = z * (1.0 + (1.0 - f) / (1.0 + k))
+        if not new > z * (1.0 + 1e-15):
+            return new if new > z else z
+        z = new
+    raise ValueError("huber: the scale's root finding did not converge")  # pragma: no cover

@@ -50,6 +50,8 @@ class LaplaceSpread(SeveralScoreFamily):
     target_domain = REAL
     prediction_kind = "median"
     fisher_diagonal = True
+    constant_param = "scale"
+    start_is_baseline = True
     default_curvature = "natural"
     kinked_scores = (0,)
 
@@ -90,31 +92,9 @@ class LaplaceSpread(SeveralScoreFamily):
         inv_b = np.exp(-raw[:, 1])
         return np.column_stack([inv_b * inv_b, np.ones(raw.shape[0])])
 
-    def _fisher(self, raw):
-        d = self._fisher_diagonal(raw)
-        f = np.zeros((raw.shape[0], 2, 2))
-        f[:, 0, 0], f[:, 1, 1] = d[:, 0], d[:, 1]
-        return f
-
     def _newton_diagonal(self, y, raw):
         _, a, inv_b = self._parts(y, raw)
         return np.column_stack([inv_b * inv_b, np.where(a > 0, a, 1.0)])
-
-    def _start(self, y, w, offset):
-        one = Laplace()
-        o0 = None if offset is None else offset[:, 0]
-        c0 = one._baseline(y, w, o0)
-        try:
-            b = one._fit_nuisance(y, c0 if o0 is None else c0 + o0, w)["scale"]
-        except ValueError as err:  # every residual is zero: the likelihood has no finite maximum
-            raise ValueError(f"{self.name}: {err}") from None
-        return np.array([c0, np.log(b)])
-
-    def _baseline(self, y, w, offset):
-        start = self._start(y, w, offset)
-        if offset is None or not np.any(offset[:, 1]):
-            return start
-        return super()._baseline(y, w, offset)
 
     def _distribution(self, raw):
         return laplace_law(loc=raw[:, 0], scale=np.exp(raw[:, 1]))

@@ -183,12 +183,6 @@ class NegativeBinomialSpread(SeveralScoreFamily):
         f00 = r * expit(t)  # mu / (1 + alpha mu)
         return np.column_stack([f00, _expected_c(self, raw)])
 
-    def _fisher(self, raw):
-        d = self._fisher_diagonal(raw)
-        f = np.zeros((raw.shape[0], 2, 2))
-        f[:, 0, 0], f[:, 1, 1] = d[:, 0], d[:, 1]
-        return f
-
     def _start(self, y, w, offset):
         one = self.constant_scale()
         o0 = None if offset is None else offset[:, 0]

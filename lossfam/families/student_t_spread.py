@@ -121,12 +121,6 @@ class StudentTSpread(SeveralScoreFamily):
             f0 = (nu + 1.0) / (nu + 3.0) * inv_s * inv_s
         return np.column_stack([f0, np.full(raw.shape[0], 2.0 * nu / (nu + 3.0))])
 
-    def _fisher(self, raw):
-        d = self._fisher_diagonal(raw)
-        f = np.zeros((raw.shape[0], 2, 2))
-        f[:, 0, 0], f[:, 1, 1] = d[:, 0], d[:, 1]
-        return f
-
     def _start(self, y, w, offset):
         one = self.constant_scale()
         o0 = None if offset is None else offset[:, 0]
