@@ -45,7 +45,11 @@ training fold); it has no constant nuisance parameters to fit afterwards.  ``spr
 the spread version of each candidate after it, so the constant-scale and the scale-varying model
 of one law are scored on the same held-out rows: the ``behind_best`` distance between the two,
 with its paired standard error, says whether the varying scale is worth modelling.  The boosting
-engines list such families as failed for now (the linear engine fits them).
+engines train them with ``train`` of the engine (one tree per raw score and round, the family's
+default curvature), with the same booster settings, held-back slice and early stopping on the
+held-back nll as the one-score families; the held-out rows are scored by the per-row laws.
+A family over unordered class labels (``multinomial``) is listed as failed: the ranking's PIT,
+residuals and interval coverage do not exist for it.
 
 Nuisance parameters: fitted on rows the model did not train on
 --------------------------------------------------------------
@@ -171,11 +175,12 @@ def _fit_engine(engine, fam, X, y, w, *, seed, rounds, options, keep_params=Fals
     ``hold`` = (X, y, w, offset) of the held-back rows: the validation set of
     early stopping on the family's nll (boosting engines).
     """
+    if isinstance(fam, SeveralScoreFamily) and not fam.ordered_values:
+        raise ValueError(f"{fam.name}'s law is over unordered class labels: the ranking's PIT, residuals and "
+                         "interval coverage do not exist for it; compare K-class models by held-out log loss "
+                         "(lossfam.sklearn.MultinomialLikelihoodClassifier, the engines' train)")
     if engine == "linear":
         return _fit_linear(fam, X, y, w, offset, options, seed), None
-    if isinstance(fam, SeveralScoreFamily):
-        raise ValueError(f"the {engine} engine does not train families with several raw scores per row "
-                         "here yet; rank them with engine='linear'")
     if engine == "lightgbm":
         import lightgbm as lgb
 

@@ -258,3 +258,60 @@ def test_poisson_quantiles_where_scipy_fails_are_the_summed_laws():
         z = stats.norm.ppf(qs)
         assert np.all(np.isfinite(k)) and np.all(np.diff(k) >= 0)
         assert np.all(np.abs(k - (m + z * np.sqrt(m))) <= (z * z + 1) / 6 + 1 + 4 * np.spacing(m))
+
+
+def test_spread_negative_binomial_law_at_tiny_dispersion_is_the_families_and_poissons():
+    # per-row dispersions from exp(-37) (size ~1e16, where scipy.stats.nbinom's logpmf and cdf have
+    # lost every digit) down to exp(-800) (alpha underflows to 0); means 0.2 to 40
+    fam = lossfam.family("negative_binomial_spread")
+    log_alpha = np.repeat([-37.0, -45.0, -60.0, -800.0], 3)
+    mu = np.tile([0.2, 5.0, 40.0], 4)
+    raw = np.column_stack([np.log(mu), log_alpha])
+    law = fam.distribution(raw)
+    pois = stats.poisson(mu)  # scipy.stats.poisson as the outside reference (the alpha -> 0 limit)
+    for y in (np.zeros(12), np.round(mu), np.round(mu) + 7.0, np.round(3 * mu + 10)):
+        np.testing.assert_allclose(law.logpmf(y), pois.logpmf(y), rtol=1e-12, atol=1e-13)
+        np.testing.assert_allclose(law.cdf(y), pois.cdf(y), rtol=1e-12, atol=1e-15)
+        np.testing.assert_allclose(law.sf(y), pois.sf(y), rtol=1e-10, atol=1e-300)
+        # the law's mass is the family's own nll where that is finite (alpha not underflowed)
+        fin = log_alpha > -700
+        np.testing.assert_allclose(-law.logpmf(y)[fin], fam.nll(y[fin], raw[fin]), rtol=1e-12, atol=1e-13)
+    for q in (0.05, 0.5, 0.95, 0.999):
+        np.testing.assert_array_equal(law.ppf(np.full(12, q)), pois.ppf(q))
+    lo, hi = law.interval(0.9)
+    np.testing.assert_array_equal(lo, pois.ppf(0.05))
+    np.testing.assert_array_equal(hi, pois.ppf(0.95))
+    np.testing.assert_allclose(law.mean(), mu, rtol=1e-15)
+    draws = law.rvs(random_state=0)
+    assert draws.shape == (12,) and np.all(np.isfinite(draws)) and np.all(draws >= 0)
+
+
+def test_spread_negative_binomial_law_mixes_poisson_and_overdispersed_rows():
+    # one law with rows on both sides of the Poisson switch: each row as its own law
+    fam = lossfam.family("negative_binomial_spread")
+    raw = np.array([[np.log(4.0), np.log(0.5)], [np.log(4.0), -60.0], [np.log(30.0), np.log(2.0)],
+                    [np.log(30.0), -50.0]])
+    law = fam.distribution(raw)
+    y = np.array([2.0, 2.0, 30.0, 30.0])
+    alpha = np.exp(raw[:, 1])
+    # scipy.stats.nbinom where it is accurate (alpha of order 1), scipy.stats.poisson where alpha ~ 0
+    ref_cdf = [_scipy_nbinom(raw[0, 0], alpha[0]).cdf(2.0), stats.poisson(4.0).cdf(2.0),
+               _scipy_nbinom(raw[2, 0], alpha[2]).cdf(30.0), stats.poisson(30.0).cdf(30.0)]
+    np.testing.assert_allclose(law.cdf(y), ref_cdf, rtol=1e-10)
+    np.testing.assert_allclose(-law.logpmf(y), fam.nll(y, raw), rtol=1e-12)
+    ref_q = [_scipy_nbinom(raw[0, 0], alpha[0]).ppf(0.9), stats.poisson(4.0).ppf(0.9),
+             _scipy_nbinom(raw[2, 0], alpha[2]).ppf(0.9), stats.poisson(30.0).ppf(0.9)]
+    np.testing.assert_array_equal(law.ppf(np.full(4, 0.9)), ref_q)
+    np.testing.assert_allclose(law.var(), np.exp(raw[:, 0]) * (1 + alpha * np.exp(raw[:, 0])), rtol=1e-14)
+
+
+def test_poisson_switch_point_is_where_the_laws_agree_to_rounding():
+    # just above the switch (alpha (1 + mu) = 1e-19, the negative binomial forms) and just below
+    # it (the Poisson law) the probabilities agree with scipy.stats.poisson to float64 rounding
+    mu = np.array([0.5, 3.0, 50.0])
+    y = np.array([1.0, 6.0, 70.0])
+    for scale in (10.0, 0.1):
+        law = NegativeBinomialLaw(np.log(mu), scale * 1e-20 / (1.0 + mu))
+        assert (law._poisson is not None) == (scale < 1)
+        np.testing.assert_allclose(law.logpmf(y), stats.poisson(mu).logpmf(y), rtol=1e-13)
+        np.testing.assert_allclose(law.cdf(y), stats.poisson(mu).cdf(y), rtol=1e-12)

@@ -97,6 +97,9 @@ class SeveralScoreFamily:
     #: True when adding one constant to every raw score of a row changes nothing (softmax): the
     #: Hessian and Fisher matrices are then singular along (1, ..., 1)
     raw_shift_invariant: ClassVar[bool] = False
+    #: True when the law is over ordered values (it has a cdf, quantiles and central intervals, so
+    #: PIT values, quantile residuals and interval coverage exist); False for unordered class labels
+    ordered_values: ClassVar[bool] = True
     #: the engines' curvature when the user gives none ("newton", "fisher" or "natural"): families
     #: with a cheap closed-form Fisher matrix declare "natural" (measured steadier on the scale
     #: columns; README, "Several raw scores per row")

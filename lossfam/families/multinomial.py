@@ -54,6 +54,7 @@ class Multinomial(SeveralScoreFamily):
     discrete = True
     prediction_kind = "probabilities"
     raw_shift_invariant = True
+    ordered_values = False  # class labels: no cdf, PIT, quantile residual or interval
     native_twins = {"lightgbm": {"objective": "multiclass", "num_class": FromParam("n_classes")},
                     "xgboost": {"objective": "multi:softprob", "num_class": FromParam("n_classes")}}
 

@@ -77,6 +77,17 @@ def log_binomial_term(y, size):
     return np.where(pos, -np.log(safe) - lb, 0.0)
 
 
+def nll_at(y, t, size):
+    """The nll at t = log(alpha mu) and size r = 1/alpha (scalars or arrays, broadcast):
+    (y + r) log(1 + e^t) - y t - log C(y, r) = y log(1 + e^-t) + r log(1 + e^t) - log C(y, r),
+    two terms >= 0 (no inf - inf)."""
+    return -log_binomial_term(y, size) + y * np.logaddexp(0.0, -t) + np.logaddexp(0.0, t) * size
+
+
+#: rows with alpha (1 + mu) at most this follow the Poisson law (NegativeBinomialLaw docstring)
+POISSON_SWITCH = 1e-20
+
+
 @dataclass(frozen=True)
 class NegativeBinomial(Family):
     dispersion: float = 1.0
@@ -91,10 +102,7 @@ class NegativeBinomial(Family):
 
     def _nll(self, y, raw):
         alpha = self.dispersion
-        la = np.log(alpha)
-        t = raw + la
-        # (y + r) log(1 + e^t) - y t = y log(1 + e^-t) + r log(1 + e^t): two terms >= 0, no inf - inf
-        return -log_binomial_term(y, 1.0 / alpha) + y * np.logaddexp(0.0, -t) + np.logaddexp(0.0, t) / alpha
+        return nll_at(y, raw + np.log(alpha), 1.0 / alpha)
 
     def _grad_hess(self, y, raw):
         g, h = by_row_blocks(self._fill_grad_hess, (y, raw), n_out=2, n_scratch=1)
@@ -204,8 +212,8 @@ def _log_beta(a, b):
 def _tails(b, size, t):
     """(I_p(r, b), 1 - I_p(r, b)) for real b >= 1: P(Y <= b - 1) and P(Y >= b), p = 1 / (1 + e^t),
     t = log(alpha mu); NaN where none of the forms of :class:`NegativeBinomialLaw` holds."""
-    b, t = np.broadcast_arrays(np.asarray(b, dtype=float), np.asarray(t, dtype=float))
-    r = size
+    b, t, r = np.broadcast_arrays(np.asarray(b, dtype=float), np.asarray(t, dtype=float),
+                                  np.asarray(size, dtype=float))
     with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
         log_p = -np.logaddexp(0.0, t)
         log_1mp = -np.logaddexp(0.0, -t)
@@ -220,14 +228,15 @@ def _tails(b, size, t):
         # p below ~1e-300 (subnormal or 0): the leading term of the series in p
         tiny = (t > 700.0) & ((r + b) * np.exp(-t) < 1e-17)
         if np.any(tiny):
-            log_lower = r * log_p[tiny] - np.log(r) - _log_beta(r, b[tiny])
+            rt = r[tiny]
+            log_lower = rt * log_p[tiny] - np.log(rt) - _log_beta(rt, b[tiny])
             lower[tiny] = np.exp(log_lower)
             upper[tiny] = -np.expm1(log_lower)
-        far = (b >= 1e20 * max(1.0, r)) & (~(np.isfinite(lower) & np.isfinite(upper)) | ((t > 700.0) & ~tiny))
+        far = (b >= 1e20 * np.maximum(1.0, r)) & (~(np.isfinite(lower) & np.isfinite(upper)) | ((t > 700.0) & ~tiny))
         if np.any(far):
             x = np.exp(np.log(b[far]) - t[far])  # b s, s = p / (1 - p) = 1 / (alpha mu)
-            lower[far] = special.gammainc(r, x)
-            upper[far] = special.gammaincc(r, x)
+            lower[far] = special.gammainc(r[far], x)
+            upper[far] = special.gammaincc(r[far], x)
     return lower, upper
 
 
@@ -272,6 +281,22 @@ class NegativeBinomialLaw:
     dispersion <= 1e-20, far below any fitted one), tails and quantiles raise ValueError naming
     the rows.
 
+    The Poisson rows.  The dispersion may be one number or one per row (broadcast against raw;
+    ``negative_binomial_spread``).  Rows with alpha (1 + mu) <= ``POISSON_SWITCH`` = 1e-20
+    (alpha that underflowed to 0 included) are given the Poisson(mu) law (scipy.stats.poisson).
+    Why there: from P(y) = mu^y / y! prod_{j<y} (1 + alpha j) (1 + alpha mu)^-(r + y),
+
+        log P_NB(y) - log P_Poisson(y) = sum_{j<y} log1p(alpha j) - (r + y) log1p(alpha mu) + mu
+                                       = alpha ((y - mu)^2 - y) / 2 + O(alpha^2 (y + mu)^3),
+
+    the higher terms smaller by factors alpha (y + mu) (below 1e-16 here).  On every count with
+    (y - mu)^2 + y <= 1e4 (1 + mu) (about 100 standard deviations either side of the mean; the
+    Poisson mass beyond is far below any probability float64 can add to 1) this is at most
+    1e4 alpha (1 + mu) / 2 <= 5e-17, under half a unit in the last
+    place of float64 (1.1e-16): the two laws give the same numbers.  The switch also covers
+    alpha = 0 after underflow (log alpha below -745, r = inf), where the negative binomial forms
+    are inf - inf.  Where alpha (1 + mu) is above it, the forms above apply.
+
     Quantiles.  ppf(q) is the smallest integer k >= 0 with P(Y <= k) >= q (scipy's convention
     for discrete laws: -1 at q = 0, inf at q = 1); isf(q) the smallest with P(Y > k) <= q.  The
     continuous root b* of I_p(r, b) = q is bracketed (b = 1 below, a bracket doubled in log b
@@ -282,24 +307,52 @@ class NegativeBinomialLaw:
     (mu near overflow) is inf.
     """
 
-    def __init__(self, raw, dispersion):
+    def __init__(self, raw, dispersion=None, *, log_dispersion=None):
+        """``dispersion`` (one number or one per row), or its log ``log_dispersion`` (then the size
+        and log(alpha mu) are formed as a family with a log-dispersion raw score forms them)."""
+        if (dispersion is None) == (log_dispersion is None):
+            raise TypeError("NegativeBinomialLaw: give dispersion or log_dispersion")
         self.raw = np.asarray(raw, dtype=float)
-        self.dispersion = float(dispersion)
-        self.size = 1.0 / self.dispersion
-        self._t = self.raw + np.log(self.dispersion)  # log(alpha mu)
-        with np.errstate(over="ignore"):
+        with np.errstate(over="ignore", under="ignore", divide="ignore"):
+            if log_dispersion is None:
+                d = np.asarray(dispersion, dtype=float)
+                self.dispersion = float(d) if d.ndim == 0 else d  # one number, or one per row
+                log_d = np.log(self.dispersion)
+                self.size = 1.0 / self.dispersion
+            else:
+                log_d = np.asarray(log_dispersion, dtype=float)
+                self.dispersion = np.exp(log_d)
+                self.size = np.exp(-log_d)
+            self._t = self.raw + log_d  # log(alpha mu)
             self.mu = np.exp(self.raw)
             self.p = np.exp(-np.logaddexp(0.0, self._t))  # 1 / (1 + alpha mu), subnormal rather than 0
+            # alpha (1 + mu) <= POISSON_SWITCH, in logs (class docstring)
+            pois = log_d + np.logaddexp(0.0, self.raw) <= np.log(POISSON_SWITCH)
+        self._poisson = pois if np.any(pois) else None
+
+    def _split(self, method, x):
+        """``method`` at x, row by row: the Poisson law on the Poisson rows, this law elsewhere."""
+        x, raw, log_d, pois = np.broadcast_arrays(np.asarray(x, dtype=float), self.raw, self._t - self.raw,
+                                                  self._poisson)
+        out = np.empty(x.shape)
+        nb = ~pois
+        if np.any(nb):
+            out[nb] = getattr(NegativeBinomialLaw(raw[nb], log_dispersion=log_d[nb]), method)(x[nb])
+        with np.errstate(over="ignore"):
+            out[pois] = getattr(stats.poisson(np.exp(raw[pois])), method)(x[pois])
+        return out[()]
 
     # ------------------------------------------------------------------ mass and moments
     def logpmf(self, k):
         """log P(Y = k) = -nll: the family's cancellation-free form (scipy's forms 1 - p, which
         loses digits when alpha mu is small); -inf off the non-negative integers."""
-        k, raw = np.broadcast_arrays(np.asarray(k, dtype=float), self.raw)
+        if self._poisson is not None:
+            return self._split("logpmf", k)
+        k, t, size = np.broadcast_arrays(np.asarray(k, dtype=float), self._t, self.size)
         ok = (k >= 0) & (np.floor(k) == k)
         out = np.full(k.shape, -np.inf)
         with np.errstate(over="ignore", invalid="ignore"):
-            out[ok] = -NegativeBinomial(dispersion=self.dispersion)._nll(k[ok], raw[ok])
+            out[ok] = -nll_at(k[ok], t[ok], size[ok])
         out[np.isnan(k)] = np.nan
         return out[()]
 
@@ -321,18 +374,25 @@ class NegativeBinomialLaw:
         with a ValueError; its own negative_binomial would return an overflowed integer)."""
         rng = random_state if isinstance(random_state, np.random.Generator) else np.random.default_rng(random_state)
         shape = self.mu.shape if size is None else size
-        lam = rng.gamma(self.size, np.broadcast_to(self.mu / self.size, shape))
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            r, mu = np.broadcast_arrays(np.broadcast_to(self.size, shape), np.broadcast_to(self.mu, shape))
+            pois = r == np.inf  # alpha = 0 after underflow: no frailty
+            lam = np.where(pois, mu, rng.gamma(np.where(pois, 1.0, r), np.where(pois, 1.0, mu / r)))
         return rng.poisson(lam).astype(float)
 
     # ------------------------------------------------------------------ tails
     def _refuse(self, bad, what):
         rows = np.flatnonzero(bad)
+        d = np.broadcast_to(self.dispersion, bad.shape)[bad] if np.ndim(self.dispersion) else self.dispersion
+        at = f"{self.dispersion:g}" if np.ndim(d) == 0 else f"e.g. {np.unique(d)[:3].tolist()}"
         raise ValueError(
-            f"negative_binomial: the law's {what} cannot be computed at dispersion {self.dispersion:g} for "
+            f"negative_binomial: the law's {what} cannot be computed at dispersion {at} for "
             f"{rows.size} row(s), e.g. rows {rows[:5].tolist()}: scipy's incomplete beta function fails there "
             "and its gamma limit needs counts far above 1 / dispersion")
 
     def _both(self, k):
+        if self._poisson is not None:
+            return self._split("cdf", k), self._split("sf", k)
         k = np.floor(np.asarray(k, dtype=float))
         b = np.where(k < 0, 1.0, k + 1.0)
         lower, upper = _tails(b, self.size, self._t)
@@ -360,10 +420,14 @@ class NegativeBinomialLaw:
 
     # ------------------------------------------------------------------ quantiles
     def ppf(self, q):
+        if self._poisson is not None:
+            return self._split("ppf", q)
         q = np.asarray(q, dtype=float)
         return self._quantile(q, np.where(q >= 0.5, 1.0 - q, np.nan), upper_given=False)
 
     def isf(self, q):
+        if self._poisson is not None:
+            return self._split("isf", q)
         q = np.asarray(q, dtype=float)
         return self._quantile(np.where(q >= 0.5, 1.0 - q, np.nan), q, upper_given=True)
 
@@ -380,7 +444,7 @@ class NegativeBinomialLaw:
         """Smallest integer k >= 0 with P(Y <= k) >= lower_q, i.e. P(Y > k) <= upper_q; one of the
         two is given exactly, the other is its complement where that is exact (>= 1/2) else NaN."""
         given = upper_q if upper_given else lower_q
-        given, t, lower_q, upper_q = np.broadcast_arrays(given, self._t, lower_q, upper_q)
+        given, t, lower_q, upper_q, size = np.broadcast_arrays(given, self._t, lower_q, upper_q, self.size)
         out = np.full(given.shape, np.nan)
         low_end, high_end = (1.0, 0.0) if upper_given else (0.0, 1.0)
         out[given == low_end] = -1.0
@@ -388,9 +452,8 @@ class NegativeBinomialLaw:
         todo = (given > 0) & (given < 1)
         if not np.any(todo):
             return out[()]
-        t, lq, uq = t[todo], lower_q[todo], upper_q[todo]
+        t, lq, uq, r = t[todo], lower_q[todo], upper_q[todo], size[todo]
         from_upper = uq < 0.5  # also where lq is NaN
-        r = self.size
         args = (r, t, lq, uq, from_upper)
         k = np.zeros(t.shape)
         up = _gap(1.0, *args) < 0  # k = 0 unless P(Y = 0) < q
@@ -408,11 +471,11 @@ class NegativeBinomialLaw:
         if np.any(go):
             a = tuple(v[go] if np.ndim(v) else v for v in args)
             # find_root passes its own (shrinking) slices of the arrays in args
-            res = elementwise.find_root(lambda x, *z: _gap(np.exp(x), r, *z), (np.zeros(int(go.sum())), log_hi[go]),
-                                        args=a[1:], tolerances={"xatol": 1e-3, "xrtol": 0.0})
+            res = elementwise.find_root(lambda x, *z: _gap(np.exp(x), *z), (np.zeros(int(go.sum())), log_hi[go]),
+                                        args=a, tolerances={"xatol": 1e-3, "xrtol": 0.0})
             lo_b, hi_b = np.exp(res.bracket[0]), np.exp(res.bracket[1])
-            res = elementwise.find_root(lambda x, *z: _gap(x, r, *z), (lo_b, np.maximum(hi_b, lo_b)),
-                                        args=a[1:], tolerances={"xatol": 0.25, "xrtol": 4.0 * np.finfo(float).eps})
+            res = elementwise.find_root(lambda x, *z: _gap(x, *z), (lo_b, np.maximum(hi_b, lo_b)),
+                                        args=a, tolerances={"xatol": 0.25, "xrtol": 4.0 * np.finfo(float).eps})
             kk = np.maximum(np.ceil(res.x) - 1.0, 0.0)
             for _ in range(8):  # P(Y <= k) >= q > P(Y <= k'), k' the integer (float above 2**53) below k
                 exact = kk < _EXACT_INTEGERS

@@ -71,9 +71,11 @@ T = d1 + d2/2 + d3/6 - d5/30 + d7/42 - d9/30 with d_m = r^-m - (y + r)^-m = -r^-
 log1p(y/r)) (Abramowitz and Stegun, Handbook of Mathematical Functions, eqs. 6.3.18 and 6.4.12):
 the plain differences lose digits when r >> y (small alpha).  Checked against mpmath.
 
-Predictive law: scipy.stats.nbinom(n = r, p = 1 / (1 + alpha mu)) with per-row arguments (the
-one-score family's NegativeBinomialLaw takes one dispersion for all rows; scipy's tails and
-quantiles are slow or fail for means beyond ~1e150, see that class).
+Predictive law: the one-score family's NegativeBinomialLaw with one dispersion per row: its mass
+is exp(-nll) of the same form, its tails and quantiles hold for every mean and size, and rows with
+alpha (1 + mu) <= 1e-20 get the Poisson law (the switch and its justification: that class).
+scipy.stats.nbinom(n = r, p) is not used: it forms p = 1 / (1 + alpha mu) and its logpmf and cdf
+lose every digit once r ~ 1e13 (log alpha = -37, mean 5: -logpmf 18.6 against the nll's 1.69).
 
 Newton's diagonal: the base rule (d2/dr1^2 is negative for some rows; then the Fisher entry).
 Baseline: r0 = the one-score baseline (log of the weighted mean count: the r0-score of a constant
@@ -93,7 +95,7 @@ from .._checks import NONNEGATIVE, NONNEGATIVE_INTEGER
 from ..links import LOG
 from ._several import SeveralScoreFamily
 from .gamma_spread import _f
-from .negative_binomial import NegativeBinomial, log_binomial_term
+from .negative_binomial import NegativeBinomial, NegativeBinomialLaw, log_binomial_term, nll_at
 
 #: windows with at most this many counts are summed exactly
 _EXACT_TERMS = 4096
@@ -146,7 +148,7 @@ class NegativeBinomialSpread(SeveralScoreFamily):
         t = raw[:, 0] + r1
         with np.errstate(over="ignore"):
             size = np.exp(-r1)
-        return -log_binomial_term(y, size) + y * np.logaddexp(0.0, -t) + np.logaddexp(0.0, t) * size
+        return nll_at(y, t, size)
 
     def _pieces(self, y, raw):
         t = raw[:, 0] + raw[:, 1]
@@ -200,9 +202,9 @@ class NegativeBinomialSpread(SeveralScoreFamily):
         return super()._baseline(y, w, offset)
 
     def _distribution(self, raw):
-        # p = 1 / (1 + alpha mu) = expit(-t), formed without rounding 1 + alpha mu
-        with np.errstate(over="ignore"):
-            return stats.nbinom(n=np.exp(-raw[:, 1]), p=expit(-(raw[:, 0] + raw[:, 1])))
+        # the one-score family's law with one dispersion per row (its mass from the same nll, its
+        # tails and quantiles accurate at every size, the Poisson law where alpha is negligible)
+        return NegativeBinomialLaw(raw[:, 0], log_dispersion=raw[:, 1])
 
 
 def _c_at(y, raw):
