@@ -79,8 +79,15 @@ def register_user_families():
     lossfam.register(NormalLogVariance, replace=True)
 
 
-register_user_families()
-FAMILIES = sorted(set(lossfam.available(scores="several")))
+@pytest.fixture(autouse=True, scope="module")
+def _user_family():
+    """Registered for this module only (other modules see the built-in registry)."""
+    register_user_families()
+    yield
+    lossfam.unregister(NormalLogVariance.name)
+
+
+FAMILIES = sorted(set(lossfam.available(scores="several")) | {NormalLogVariance.name})
 
 
 def _draw(name, n=400, seed=0, p=3):
@@ -280,6 +287,7 @@ def saved_models(tmp_path_factory):
         sys.path.insert(0, {str(Path(__file__).parent)!r})
         import lossfam
         import test_several_boosting
+        test_several_boosting.register_user_families()
         root = {str(root)!r}
         out = {{}}
         for engine in {list(ENGINES)!r}:
