@@ -115,8 +115,16 @@ def test_fit_is_stationary_and_recovers_the_coefficients(name, request, rng):
     scores = range(1, fam.n_scores) if fam.kinked_scores else range(fam.n_scores)
     for j in scores:
         np.testing.assert_allclose(Z.T @ g[:, j], 0.0, atol=1e-7, err_msg=f"{name}: raw score {j}")
-    np.testing.assert_allclose(m.coef_, true, atol=0.15, err_msg=name)
-    np.testing.assert_allclose(m.intercept_, icpt, atol=0.15, err_msg=name)
+    # recovery within 5 standard errors of maximum likelihood (the inverse expected information
+    # at the fit: a sampling bound, not a fixed number, since a dispersion's coefficient is far
+    # noisier than a mean's); the standard errors themselves must be small at n = 4000
+    F = fam.fisher(m.predict_raw(X))
+    info = np.einsum("ijl,ia,ib->jalb", F, Z, Z).reshape(fam.n_scores * 3, fam.n_scores * 3)
+    se = np.sqrt(np.diag(np.linalg.inv(info))).reshape(fam.n_scores, 3)
+    assert se.max() < 0.1, (name, se)
+    est = np.column_stack([m.coef_, m.intercept_])
+    want = np.column_stack([true, icpt])
+    assert np.all(np.abs(est - want) <= 5 * se), (name, est, want, se)
 
 
 def test_user_family_in_the_ranking(user_family, rng):
