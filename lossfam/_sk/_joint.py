@@ -206,9 +206,11 @@ def joint_newton(fam, X, y, v, offset, masks, alpha, fit_intercept, max_iter, to
     return JointFit(coefs, intercepts, raw, it, F, gnorm, converged, fisher_steps)
 
 
-class _FixedLocation:
-    """A several-score family with its location raw score held at ``raw0`` (offset included): the
-    hooks the solver calls see only the other raw scores.  Used only inside a fit."""
+class FirstScoreFixed:
+    """A several-score family with its first raw score held at ``raw0`` (per row): the hooks the
+    solver calls see only the other raw scores (the full ones with row and column 0 dropped).
+    Used only inside a fit: the location held while the scale is fitted, or the multinomial's
+    reference class at 0."""
 
     def __init__(self, fam, raw0):
         self.family, self.raw0 = fam, raw0
@@ -268,7 +270,7 @@ def kinked_location_alternation(fam, X, y, v, offset, masks, alpha, fit_intercep
             loc = ridge_pinball(Xl, y, c, o0, tau, factor, alpha, fit_intercept)
         else:
             loc = quantile_lp(Xl, y, c, o0, tau, fit_intercept)
-        view = _FixedLocation(fam, loc.raw)
+        view = FirstScoreFixed(fam, loc.raw)
         sc = joint_newton(view, X, y, v, o_rest, rest, alpha, fit_intercept, max_iter, tol,
                           np.asarray(start[1:], dtype=float), theta0=scale_theta)
         total_iter += 1 + sc.n_iter

@@ -282,32 +282,6 @@ def _several_names():
     return available(scores="several")
 
 
-class _ReferenceClassView:
-    """The multinomial family with the raw score of class 0 fixed at 0: the K - 1 free raw scores
-    (log-odds against class 0) are the columns of ``r``; the hooks the joint solver calls return
-    the nll and the derivatives in those columns (the full ones with row and column 0 dropped).
-    Not a family: used only inside a fit."""
-
-    def __init__(self, fam):
-        self.family = fam
-
-    @staticmethod
-    def _full(r):
-        return np.column_stack([np.zeros(r.shape[0]), r])
-
-    def _nll(self, y, r):
-        return self.family._nll(y, self._full(r))
-
-    def _gradient(self, y, r):
-        return self.family._gradient(y, self._full(r))[:, 1:]
-
-    def _hessian(self, y, r):
-        return self.family._hessian(y, self._full(r))[:, 1:, 1:]
-
-    def _fisher(self, r):
-        return self.family._fisher(self._full(r))[:, 1:, 1:]
-
-
 class MultinomialLikelihoodClassifier(ClassifierMixin, BaseEstimator):
     """Multinomial logit regression: the ``multinomial`` family's linear classifier.
 
@@ -372,7 +346,8 @@ class MultinomialLikelihoodClassifier(ClassifierMixin, BaseEstimator):
         else:
             start = np.zeros(K - 1)
         masks = [np.ones(p, dtype=bool)] * (K - 1)
-        fit = _joint.joint_newton(_ReferenceClassView(fam), X, codes, w / w.sum(), None, masks,
+        # the reference class's raw score fixed at 0: the K - 1 free raw scores are log-odds against it
+        fit = _joint.joint_newton(_joint.FirstScoreFixed(fam, np.zeros(X.shape[0])), X, codes, w / w.sum(), None, masks,
                                   float(self.alpha), self.fit_intercept, self.max_iter, self.tol, start)
         self.coef_ = np.vstack([np.zeros(p)] + [c for c in fit.coefs])
         self.intercept_ = np.concatenate([[0.0], fit.intercepts])

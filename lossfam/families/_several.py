@@ -68,6 +68,7 @@ from scipy import optimize
 from .. import _checks
 from .._checks import Domain
 from ..links import Link
+from ._base import Family
 
 CURVATURES = ("newton", "fisher", "natural")
 
@@ -115,31 +116,16 @@ class SeveralScoreFamily:
     #: median, quantile): without an offset on the other columns ``_start`` is then the baseline
     start_is_baseline: ClassVar[bool] = False
 
-    def __post_init__(self):
-        for f in dataclasses.fields(self):
-            dom = self.param_domains.get(f.name)
-            if dom is not None:
-                v = _checks.check_param(f.name, getattr(self, f.name), dom, self.name)
-                object.__setattr__(self, f.name, v)
+    # the fixed parameters are validated, listed and replaced as a one-score family's are
+    __post_init__ = Family.__post_init__
+    params = Family.params
+    with_params = Family.with_params
 
     # ------------------------------------------------------------------ info
     @property
     def n_scores(self) -> int:
         """k, the number of raw scores per row."""
         return len(self.score_names)
-
-    @property
-    def params(self) -> dict:
-        """The fixed parameters as a plain dict (empty when there are none)."""
-        return {f.name: getattr(self, f.name) for f in dataclasses.fields(self)}
-
-    def with_params(self, **params) -> "SeveralScoreFamily":
-        """A copy with some fixed parameters replaced (validated)."""
-        unknown = set(params) - set(self.params)
-        if unknown:
-            raise ValueError(f"{self.name}: unknown parameter(s) {sorted(unknown)}; "
-                             f"valid parameters: {sorted(self.params) or 'none'}")
-        return dataclasses.replace(self, **params)
 
     def constant_scale(self):
         """The one-score family of the same law with constant nuisance parameters, or None."""
