@@ -16,8 +16,8 @@ returns a gradient and a diagonal curvature of the same shape.  What they share 
 ``check_trained_several``
     the trained raw scores are finite.
 
-The curvature is one ``train`` argument of the same name in both engines ("newton" default,
-"fisher", "natural"; ``lossfam.families._several``).  Nothing here imports an engine.
+The curvature is one ``train`` argument of the same name in both engines ("newton", "fisher",
+"natural"; None, the default, takes the family's ``default_curvature``; ``lossfam.families._several``).  Nothing here imports an engine.
 """
 from __future__ import annotations
 
