@@ -977,10 +977,16 @@ def cluster_info(plan, client, metrics):
 
 
 def refuse_refit(fam, engine_name):
+    """The median / quantile leaf refit across workers needs a reduction between rounds: XGBoost's
+    Python package exposes its collective ``allreduce`` to the objective (``_xgboost_refit``),
+    LightGBM's exposes none of its network, so on a LightGBM cluster such leaves are refused."""
+    twin = bool((fam.native_twins or {}).get(engine_name.lower()))
+    how = (f"train with native=True and the default step_limit ({engine_name}'s built-in twin renews the leaves "
+           "on the workers)" if twin else f"{fam.name} has no {engine_name} twin")
+    other = "; lossfam.xgboost.train refits these leaves on the cluster" if engine_name == "LightGBM" else ""
     raise ValueError(
-        f"{fam.name} would refit leaves in Python (native=False or a non-default step_limit), which lossfam does "
-        f"not run on a Dask cluster; train with native=True and the default step_limit ({engine_name}'s built-in "
-        "twin renews the leaves on the workers)")
+        f"{fam.name} would refit leaves in Python (native=False, a non-default step_limit or no native twin), "
+        f"which lossfam does not run on a {engine_name} Dask cluster: {how}{other}")
 
 
 # --------------------------------------------------------------------------- leaf refit across workers
