@@ -91,6 +91,9 @@ def scaled_residual(y, loc, log_scale, power=1.0):
     with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
         d = y - loc
         out = d * np.exp(-power * log_scale)
+        # fast exit (engines call this every round): every product finite, and 0 only where d is
+        if np.isfinite(np.sum(out)) and np.count_nonzero(out) == np.count_nonzero(d):
+            return out
         redo = ~np.isfinite(out) | ((out == 0) & (d != 0))
         if np.any(redo):
             out[redo] = np.sign(d[redo]) * np.exp(_log_abs_diff(y[redo], loc[redo]) - power * log_scale[redo])

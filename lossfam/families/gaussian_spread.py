@@ -91,8 +91,11 @@ class GaussianSpread(SeveralScoreFamily):
     def _natural_direction(self, y, raw):
         # F^{-1} g in closed form: (-(y - mu), (1 - z^2) / 2), one pass, no sigma^2 factors
         out = np.empty((y.shape[0], 2))
-        r = np.subtract(y, raw[:, 0], out=out[:, 0])
-        z = self._z(y, raw)
+        with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+            r = np.subtract(y, raw[:, 0], out=out[:, 0])
+            z = r * np.exp(-raw[:, 1])
+            if not (np.isfinite(np.sum(z)) and np.count_nonzero(z) == np.count_nonzero(r)):
+                z = self._z(y, raw)  # a product that is not the exact value to rounding (scaled_residual)
         np.multiply(z, z, out=z)
         np.multiply(np.subtract(1.0, z, out=z), 0.5, out=out[:, 1])
         np.negative(r, out=r)

@@ -83,9 +83,10 @@ class StudentTSpread(SeveralScoreFamily):
                 lg[far] = np.logaddexp(0.0, x)
             return 0.5 * (nu + 1.0) * lg + (raw[:, 1] + _log_norm(nu))
 
-    def _pieces(self, y, raw):
-        """(a u^2, p = nu / (nu + u^2), q = u^2 / (nu + u^2), a u / s) without overflow of u^2
-        and without 0 * inf (module docstring, "Far raw scores"), and 1 / s^2."""
+    def _pieces(self, y, raw, with_aus=True):
+        """(a u^2, p = nu / (nu + u^2), q = u^2 / (nu + u^2), a u / s (None without ``with_aus``),
+        y - mu on the rows with |u| >= 1, those rows, 1 / s^2, u) without overflow of u^2 and
+        without 0 * inf (module docstring, "Far raw scores")."""
         nu = self.df
         u = scaled_residual(y, raw[:, 0], raw[:, 1])
         with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
@@ -98,18 +99,20 @@ class StudentTSpread(SeveralScoreFamily):
             q = np.where(far, 1.0 / (1.0 + nu_u2), un * un / (nu + un * un))
             # a u / s: near, (nu+1) / (nu + u^2) (y - mu) / s^2; far, (nu+1) q / (y - mu)
             d = np.where(far, y - raw[:, 0], 1.0)
-            z2 = np.where(far, 0.0, scaled_residual(y, raw[:, 0], raw[:, 1], 2.0))
-            aus = np.where(far, (nu + 1.0) * q / d, (nu + 1.0) / (nu + un * un) * z2)
+            aus = None
+            if with_aus:
+                z2 = np.where(far, 0.0, scaled_residual(y, raw[:, 0], raw[:, 1], 2.0))
+                aus = np.where(far, (nu + 1.0) * q / d, (nu + 1.0) / (nu + un * un) * z2)
             inv_s2 = np.exp(-2.0 * raw[:, 1])
-        return au2, p, q, aus, d, far, inv_s2
+        return au2, p, q, aus, d, far, inv_s2, u
 
     def _gradient(self, y, raw):
-        au2, _, _, aus, _, _, _ = self._pieces(y, raw)
+        au2, _, _, aus, _, _, _, _ = self._pieces(y, raw)
         return np.column_stack([-aus, 1.0 - au2])
 
     def _hessian(self, y, raw):
         nu = self.df
-        au2, p, q, aus, d, far, inv_s2 = self._pieces(y, raw)
+        au2, p, q, aus, d, far, inv_s2, _ = self._pieces(y, raw)
         h = np.empty((y.shape[0], 2, 2))
         with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
             # (nu+1)(nu - u^2) / (s^2 (nu + u^2)^2) = (nu+1) (p - q) / (s^2 (nu + u^2)): near,
@@ -127,8 +130,7 @@ class StudentTSpread(SeveralScoreFamily):
         # (for |u| < 1; for |u| >= 1, -(nu+3) q s / u, s / u = e^{r1 - log|u|}), and
         # d/dr1 / (2 nu / (nu+3)): no inf / inf where 1/s^2 overflows
         nu = self.df
-        u = scaled_residual(y, raw[:, 0], raw[:, 1])
-        au2, _, q, _, _, far, _ = self._pieces(y, raw)
+        au2, _, q, _, _, far, _, u = self._pieces(y, raw, with_aus=False)
         with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
             un = np.where(far, 0.0, u)
             near0 = -(nu + 3.0) * np.where(far, 0.0, y - raw[:, 0]) / (nu + un * un)
