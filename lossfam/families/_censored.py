@@ -283,6 +283,10 @@ class TailLaw:
         """(``tail(z, upper)``, ``pdf(z)``): a law may share work between the two."""
         return self.tail(z, upper), self.pdf(z)
 
+    def tail_pdf_score(self, z, upper):
+        """(``tail(z, upper)``, ``pdf(z)``, ``score(z)``), new arrays: a law may share work."""
+        return (*self.tail_pdf(z, upper), self.score(z))
+
     def right(self, z):
         """(r, c) of right-censored rows from the sf (generic; NaN where S0 < TINY)."""
         tail = self.sf(z)
@@ -460,8 +464,8 @@ def _closed(law, s, tl, th, raw):
         return g, h, None
     upper = zl + zh
     upper = upper > 2.0 * law.median
-    t_lo, a = law.tail_pdf(zl, upper)
-    t_hi, b_hi = law.tail_pdf(zh, upper)
+    t_lo, a, psi_lo = law.tail_pdf_score(zl, upper)
+    t_hi, b_hi, psi_hi = law.tail_pdf_score(zh, upper)
     big = np.where(upper, t_lo, t_hi)
     p = np.where(upper, t_hi, t_lo)
     np.subtract(big, p, out=p)
@@ -473,9 +477,9 @@ def _closed(law, s, tl, th, raw):
     a = b_hi  # f0(z_hi) / (s P)
     a /= p
     g = a - b
-    ea = law.score(zh)
+    ea = psi_hi
     ea *= a
-    eb = law.score(zl)
+    eb = psi_lo
     eb *= b
     h = np.subtract(eb, ea, out=ea)  # (psi_lo b - psi_hi a), times 1 / s below
     if s != 1.0:
