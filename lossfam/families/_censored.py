@@ -56,8 +56,9 @@ target with no censored row gives today's numbers bit for bit.
 
 The gradient and Hessian, fast
 ------------------------------
-The log-space terms above serve the nll, and the gradient and Hessian of families that declare
-only their pieces.  A family that also declares its standard law in linear space
+The log-space terms above serve the nll (of one-sided rows only where the law has no
+``TailLaw.log_tail``: one log tail per row, e.g. ``log_ndtr``, is far cheaper than four pieces
+at two bounds), and the gradient and Hessian of families that declare only their pieces.  A family that also declares its standard law in linear space
 (``Family._tail_law``, a :class:`TailLaw`) gets ``censored_grad_hess`` by kind of row: the
 family's own kernel over all rows (censored rows given a stand-in y, then overwritten), the
 one-sided rows by their hazard ratio alone, the closed intervals by the difference of their
