@@ -139,6 +139,7 @@ class IntegerGammaLaw(LogGammaLaw):
         self.n = n
         fact = [math.factorial(j) for j in range(n)]
         self.inv_fact = 1.0 / fact[n - 1]
+        self.fact = float(fact[n - 1])
         self.t_coef = tuple(1.0 / f for f in fact)
         self.n_coef = tuple((n - j) / fact[j] for j in range(n))
         self.u_coef = tuple(1.0 / fact[n - 1 - i] for i in range(n))
@@ -202,7 +203,7 @@ class IntegerGammaLaw(LogGammaLaw):
             xf = x[far]
             y = 1.0 / xf
             u = _horner(self.u_coef, y)
-            r[far] = xf / u * self.inv_fact
+            r[far] = xf / (u * self.fact)  # (k-1)! U(y) ~ 1: no overflow before r itself
             c[far] = _horner(self.v_coef, y) / u
         return r, c
 
