@@ -427,7 +427,8 @@ def test_fast_kernel_agrees_with_the_log_space_terms(key):
     # number (larger tail) / P of that difference (1e6 on student_t's (1e6, 1e6 + 0.7))
     law = scipy_law(fam, r4)
     with np.errstate(all="ignore"):
-        log_big = np.minimum(law.logsf(np.where(np.isfinite(lo), lo, 1.0)), law.logcdf(np.where(np.isfinite(hi), hi, 1.0)))
+        log_big = np.minimum(law.logsf(np.where(np.isfinite(lo), lo, 1.0)),
+                             law.logcdf(np.where(np.isfinite(hi), hi, 1.0)))
         cond = np.where(np.isfinite(lo) & np.isfinite(hi) & (lo < hi) & (lo > 0 if pos else True),
                         np.exp(np.minimum(log_big + nll, 700.0)), 1.0)
     ok_g = (np.abs(g - g0) <= (1e-9 + 64 * np.finfo(float).eps * cond) * np.abs(g0) + 1e-300) | ~trusted

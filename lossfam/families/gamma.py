@@ -41,6 +41,8 @@ from the series P = x^k e^-x / Gamma(k+1) sum_n x^n / ((k+1)...(k+n)) (x < k the
 the continued fraction of Q evaluated by the modified Lentz method (x > k there) (Press,
 Teukolsky, Vetterling and Flannery, Numerical Recipes, 3rd ed., 2007, section 6.2, recalled from
 memory; both checked against mpmath in the tests).
+The censored gradient and Hessian at an integer shape from 2 to 30 use the Poisson sum of the
+survival instead of ``gammainc`` / ``gammaincc`` (IntegerGammaLaw).
 """
 from __future__ import annotations
 
