@@ -52,8 +52,8 @@ leaf refit (custom path, median / quantile leaves)
     leaf's rows down to one bucket that holds the answer (``leaf_cut``, no
     sort), then ``select_in_leaves`` (the selection below, vectorised over
     leaves) finishes on the rows of that bucket; three reductions per tree
-    when the buckets are small, of at most ``LEAF_CUT_NUMBERS`` and
-    O(leaves x LEAF_GATHER x workers) numbers.
+    when the buckets are small, each of at most ``LEAF_NUMBERS`` numbers
+    (and O(leaves x LEAF_PIVOTS x workers) per narrowing round).
 
 Timing: ``timed`` adds each step's wall seconds to the plan's stats;
 ``cluster_info`` puts them in ``fit.info["cluster"]["seconds"]``.
@@ -993,13 +993,15 @@ def refuse_refit(fam, engine_name):
 
 
 # --------------------------------------------------------------------------- leaf refit across workers
-#: a query's bracket rows are gathered once at most this many remain over all workers
+#: a query's bracket rows are gathered once at most this many remain over all workers (fewer when
+#: the gather of all queries from all workers would pass ``LEAF_NUMBERS``)
 LEAF_GATHER = 256
 #: order statistics per worker, query and narrowing round
 LEAF_PIVOTS = 16
-#: numbers per reduction of the first cut (its histogram: two per bucket and query), and the most
-#: buckets one query gets
-LEAF_CUT_NUMBERS = 1 << 16
+#: the most numbers per reduction of the first cut (its histogram: two per bucket and leaf) and of
+#: the gather (two per row slot, query and worker)
+LEAF_NUMBERS = 1 << 16
+#: the most buckets per leaf in the first cut
 LEAF_CUT_BUCKETS = 1024
 
 
@@ -1047,7 +1049,8 @@ def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict,
     ``strict[k]``); returns (x, F(x)) per query, (inf, nan) when no value qualifies.  The method
     is the module's baseline selection, vectorised over the queries: a bracket (lo, hi) per query;
     per round every worker sends, per query, all its rows in the bracket when at most
-    ``LEAF_GATHER`` remain over all workers, else ``LEAF_PIVOTS`` evenly spaced order statistics
+    ``LEAF_GATHER`` remain over all workers (fewer with many queries and workers: ``LEAF_NUMBERS``),
+    else ``LEAF_PIVOTS`` evenly spaced order statistics
     of them; a second reduction counts the weight at or below each pivot, and the bracket shrinks
     to neighbouring pivots.  ``reduce(array)`` sums an array over the workers (every worker calls
     it with the same shapes, in the same order: the control flow depends on reduced values only);
@@ -1070,7 +1073,7 @@ def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict,
     if start is not None:
         f_lo, known, done = (np.array(a, dtype=t) for a, t in zip(start, (np.float64, np.float64, bool)))
     below_cut = f_lo.copy()  # the weight under the rows ``rows`` holds for each query
-    G, K = LEAF_GATHER, LEAF_PIVOTS
+    G, K = max(1, min(LEAF_GATHER, LEAF_NUMBERS // (2 * world * max(m, 1)))), LEAF_PIVOTS
 
     def ok(f, k):
         return f > target[k] if strict[k] else f >= target[k]
@@ -1174,7 +1177,7 @@ def leaf_cut(reduce, leaf, v, w, n_leaves, moments, qleaf, target, strict):
     m = qleaf.size
     ul, first = np.unique(qleaf, return_index=True)
     nl = ul.size
-    B = int(min(LEAF_CUT_BUCKETS, max(2, LEAF_CUT_NUMBERS // (2 * max(nl, 1)))))
+    B = int(min(LEAF_CUT_BUCKETS, max(2, LEAF_NUMBERS // (2 * max(nl, 1)))))
     W = w_l[ul]
     with np.errstate(all="ignore"):
         mu = s1[ul] / W
