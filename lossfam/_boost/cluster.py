@@ -1065,7 +1065,6 @@ def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict,
     strict = np.asarray(strict, dtype=bool)
     m = qleaf.size
     lo, f_lo = np.full(m, -np.inf), np.zeros(m)
-    below_cut = np.zeros(m)
     hi, f_hi = np.full(m, np.inf), np.full(m, np.nan)
     x_out, f_out = np.full(m, np.inf), np.full(m, np.nan)
     done = np.zeros(m, dtype=bool)
