@@ -79,7 +79,7 @@ import numpy as np
 from . import _checks
 from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
-from ._boost.gradients import warn_if_far_from_baseline
+from ._boost.gradients import openmp_default_threads, warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
 from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
@@ -149,24 +149,36 @@ def _call_style(a, b, c):
     return b, a, c, None
 
 
-class _Objective:
-    """The family's gradient and Hessian as a LightGBM custom objective (see ``objective``)."""
+def _engine_threads(params):
+    """The number of threads LightGBM trains with under ``params`` (0 or less: OpenMP's default)."""
+    v = int(_param(params, _THREAD_NAMES, 0) or 0)
+    return v if v > 0 else openmp_default_threads()
 
-    def __init__(self, fam, guard, check_start=True, engine_buffers=False):
+
+class _Objective:
+    """The family's gradient and Hessian as a LightGBM custom objective (see ``objective``).
+
+    ``workers``: threads that assemble the gradients of a large call (``Gradients``; ``train``
+    passes the engine's own thread count)."""
+
+    def __init__(self, fam, guard, check_start=True, engine_buffers=False, workers=1):
         self.family = fam
-        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers)
+        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers, workers=workers)
         self.check_start = check_start
         self._cache = TargetCache()
+        self._dataset_type = _lgb().Dataset
 
     def __call__(self, a, b, c=None, d=None):
-        raw, y, w, data = _call_style(a, b, c)
-        narrow = self.grads.engine_buffers
-        if data is not None:
+        if isinstance(b, self._dataset_type):  # lgb.train: (preds, Dataset)
+            raw, data = a, b
             y64, w64 = self._cache.get(self.family, (data,), lambda: (_target_of(data), data.get_weight()),
-                                       for_nll=False, narrow=narrow)
-        else:
-            y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=False, narrow=narrow)
-        raw = np.asarray(raw, dtype=np.float64)
+                                       for_nll=False, narrow=self.grads.engine_buffers)
+        else:  # scikit-learn classes: (y_true, y_pred, weight, group)
+            raw = b
+            y64, w64 = self._cache.get(self.family, (a, c), lambda: (a, c), for_nll=False,
+                                       narrow=self.grads.engine_buffers)
+        if not (type(raw) is np.ndarray and raw.dtype == np.float64):
+            raw = np.asarray(raw, dtype=np.float64)
         if raw.shape != y64.shape:
             raise ValueError(
                 f"{self.family.name} objective: got {raw.size} raw scores for {y64.size} targets "
@@ -382,7 +394,7 @@ class _Refit:
         self.level = facts.leaf_level(fam)
         # LightGBM's own renewal definition, so that the custom path grows the native twin's model
         self.definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
-        self.grads = Gradients(fam, guard, engine_buffers=True)
+        self.grads = Gradients(fam, guard, engine_buffers=True, workers=_engine_threads(predict_kw))
         self.lr = lr
         self.y, self.w = y, w
         self.X, self.raw, self.datasets = [X_train], [start.copy()], []
@@ -630,7 +642,8 @@ def _plumb(call, fam, guard, metric_kind, twin, rule, y, w, plan, valid):
     elif twin is not None:
         params.update(twin)
     else:
-        params["objective"] = _Objective(fam, guard, check_start=False, engine_buffers=True)
+        params["objective"] = _Objective(fam, guard, check_start=False, engine_buffers=True,
+                                         workers=_engine_threads(params))
     params.setdefault("metric", "None")
     return refit
 

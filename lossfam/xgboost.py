@@ -70,7 +70,7 @@ import numpy as np
 from . import _checks
 from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
-from ._boost.gradients import warn_if_far_from_baseline
+from ._boost.gradients import openmp_default_threads, warn_if_far_from_baseline
 from ._boost.leaves import ENGINE_ARITHMETIC, RowBag, leaf_table
 from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
@@ -127,13 +127,20 @@ def censored_dmatrix(data, target, **kwargs):
     return dm
 
 
+def _engine_threads(params):
+    """The number of threads XGBoost trains with under ``params`` (unset or 0 or less: OpenMP's default)."""
+    v = params.get("nthread", params.get("n_jobs"))
+    v = int(v) if v is not None else 0
+    return v if v > 0 else openmp_default_threads()
+
+
 class _Objective:
     """Gradient and Hessian of a family's nll for XGBoost (see ``objective``)."""
 
-    def __init__(self, fam, guard, check_start=True, engine_buffers=False):
+    def __init__(self, fam, guard, check_start=True, engine_buffers=False, workers=1):
         self.family = fam
         self.guard = guard
-        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers)
+        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers, workers=workers)
         self.engine_buffers = engine_buffers
         self.check_start = check_start
         self.__name__ = f"{fam.name}_objective"
@@ -143,10 +150,11 @@ class _Objective:
 
     def __getstate__(self):  # picklable for xgboost.dask: drop the engine class and the cache
         return {"family": self.family, "guard": self.guard, "check_start": self.check_start,
-                "engine_buffers": self.engine_buffers}
+                "engine_buffers": self.engine_buffers, "workers": self.grads.workers}
 
     def __setstate__(self, state):
-        self.__init__(state["family"], state["guard"], state["check_start"], state.get("engine_buffers", False))
+        self.__init__(state["family"], state["guard"], state["check_start"], state.get("engine_buffers", False),
+                      state.get("workers", 1))
 
     def __call__(self, first, second, sample_weight=None):
         fam = self.family
@@ -479,7 +487,7 @@ def _plumb(call, fam, guard, metric_kind, twin, rule, baseline, early_stopping_r
         if rule == "newton":
             if guard.damping is not None:  # XGBoost's damped objective also clips each leaf at the same step
                 params.setdefault("max_delta_step", guard.damping)
-            obj = _Objective(fam, guard, check_start=False, engine_buffers=True)
+            obj = _Objective(fam, guard, check_start=False, engine_buffers=True, workers=_engine_threads(params))
     feval = call.user_metric or _Metric(fam, metric_kind, from_output=twin is not None)
     return obj, feval
 
@@ -590,7 +598,7 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
     rule, level = facts.leaf_rule(fam), facts.leaf_level(fam)
     # XGBoost's own renewal definition, so that the custom path grows the native twin's model
     definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
-    grads = Gradients(fam, guard, engine_buffers=True)
+    grads = Gradients(fam, guard, engine_buffers=True, workers=_engine_threads(params))
     bag = None
     fraction = float(params.get("subsample", 1.0))
     if fraction < 1.0:
