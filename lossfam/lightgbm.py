@@ -79,7 +79,7 @@ import numpy as np
 from . import _checks
 from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
-from ._boost.gradients import openmp_default_threads, warn_if_far_from_baseline
+from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import RowBag, leaf_table
 from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
@@ -149,17 +149,11 @@ def _call_style(a, b, c):
     return b, a, c, None
 
 
-def _engine_threads(params):
-    """The number of threads LightGBM trains with under ``params`` (0 or less: OpenMP's default)."""
-    v = int(_param(params, _THREAD_NAMES, 0) or 0)
-    return v if v > 0 else openmp_default_threads()
-
-
 class _Objective:
     """The family's gradient and Hessian as a LightGBM custom objective (see ``objective``).
 
-    ``workers``: threads that assemble the gradients of a large call (``Gradients``; ``train``
-    passes the engine's own thread count)."""
+    ``workers``: threads that assemble the gradients of a large call (``Gradients``; 1 in
+    ``train``: more were not measured faster on a shared machine)."""
 
     def __init__(self, fam, guard, check_start=True, engine_buffers=False, workers=1):
         self.family = fam
@@ -394,7 +388,7 @@ class _Refit:
         self.level = facts.leaf_level(fam)
         # LightGBM's own renewal definition, so that the custom path grows the native twin's model
         self.definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
-        self.grads = Gradients(fam, guard, engine_buffers=True, workers=_engine_threads(predict_kw))
+        self.grads = Gradients(fam, guard, engine_buffers=True)
         self.lr = lr
         self.y, self.w = y, w
         self.X, self.raw, self.datasets = [X_train], [start.copy()], []
@@ -642,8 +636,7 @@ def _plumb(call, fam, guard, metric_kind, twin, rule, y, w, plan, valid):
     elif twin is not None:
         params.update(twin)
     else:
-        params["objective"] = _Objective(fam, guard, check_start=False, engine_buffers=True,
-                                         workers=_engine_threads(params))
+        params["objective"] = _Objective(fam, guard, check_start=False, engine_buffers=True)
     params.setdefault("metric", "None")
     return refit
 

@@ -70,7 +70,7 @@ import numpy as np
 from . import _checks
 from ._boost import cluster, facts
 from ._boost.gradients import STEP_LIMIT_DEFAULT, Gradients, TargetCache, growth_gradients, resolve_guard
-from ._boost.gradients import openmp_default_threads, warn_if_far_from_baseline
+from ._boost.gradients import warn_if_far_from_baseline
 from ._boost.leaves import ENGINE_ARITHMETIC, RowBag, leaf_table
 from ._boost.model import BoostedFit, SeveralScoreFit
 from ._boost.model import load as _load
@@ -125,13 +125,6 @@ def censored_dmatrix(data, target, **kwargs):
     dm.set_float_info("label_lower_bound", target.lower)
     dm.set_float_info("label_upper_bound", target.upper)
     return dm
-
-
-def _engine_threads(params):
-    """The number of threads XGBoost trains with under ``params`` (unset or 0 or less: OpenMP's default)."""
-    v = params.get("nthread", params.get("n_jobs"))
-    v = int(v) if v is not None else 0
-    return v if v > 0 else openmp_default_threads()
 
 
 class _Objective:
@@ -487,7 +480,7 @@ def _plumb(call, fam, guard, metric_kind, twin, rule, baseline, early_stopping_r
         if rule == "newton":
             if guard.damping is not None:  # XGBoost's damped objective also clips each leaf at the same step
                 params.setdefault("max_delta_step", guard.damping)
-            obj = _Objective(fam, guard, check_start=False, engine_buffers=True, workers=_engine_threads(params))
+            obj = _Objective(fam, guard, check_start=False, engine_buffers=True)
     feval = call.user_metric or _Metric(fam, metric_kind, from_output=twin is not None)
     return obj, feval
 
@@ -598,7 +591,7 @@ def _train_refit(xgb, fam, guard, params, dtrain, y, w, start, baseline, num_boo
     rule, level = facts.leaf_rule(fam), facts.leaf_level(fam)
     # XGBoost's own renewal definition, so that the custom path grows the native twin's model
     definition = facts.renewal_definition(_ENGINE, weighted=w is not None)
-    grads = Gradients(fam, guard, engine_buffers=True, workers=_engine_threads(params))
+    grads = Gradients(fam, guard, engine_buffers=True)
     bag = None
     fraction = float(params.get("subsample", 1.0))
     if fraction < 1.0:

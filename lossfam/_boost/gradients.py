@@ -40,7 +40,6 @@ from __future__ import annotations
 
 import dataclasses
 import math
-import os
 import warnings
 import weakref
 from concurrent.futures import ThreadPoolExecutor
@@ -102,7 +101,8 @@ class Gradients:
     the GIL inside each operation), so that the objective uses the cores the engine uses.  Every
     row is computed by the same operations whichever thread takes it, so the result does not
     depend on ``workers``.  The family's ``_grad_hess`` is then called on different row blocks
-    at once: it must keep no state between calls (the base class's contract).
+    at once: it must keep no state between calls.  The engine adapters use one worker: two were
+    not measured faster on a shared, loaded 2-core machine (benchmarks/objective_call.py).
     """
 
     _BLOCK = 1 << 15  # rows per block of the engine buffers (a few float64 blocks stay in L2)
@@ -262,18 +262,6 @@ class Gradients:
     def __setstate__(self, state):
         self.__init__(state["family"], state["guard"], engine_buffers=state.get("engine_buffers", False),
                       workers=state.get("workers", 1))
-
-
-def openmp_default_threads():
-    """The engines' thread count when none is set (OpenMP's default): ``OMP_NUM_THREADS``, else one per
-    core this process may run on."""
-    env = os.environ.get("OMP_NUM_THREADS", "").split(",")[0].strip()
-    if env.isdigit() and int(env) > 0:
-        return int(env)
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # pragma: no cover - platforms without sched_getaffinity
-        return os.cpu_count() or 1
 
 
 def _plausible(g, h):
