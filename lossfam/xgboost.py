@@ -805,22 +805,16 @@ def _margin_several(fit, X, offset):
 
 
 class _SeveralObjective:
-    """The custom objective of a several-score family: (n, k) margins in, (n, k) float32 out."""
+    """The custom objective of a several-score family: (n, k) float32 margins in, (n, k) float32 out
+    (C order: XGBoost reads them through the array interface without a copy)."""
 
     def __init__(self, fam, curvature, y, w):
-        self.grads = _several.SeveralGradients(fam, curvature)
+        self.grads = _several.SeveralGradients(fam, curvature, order="C")
         self.y, self.w = y, w
         self.k = fam.n_scores
-        self._buf = None
 
     def __call__(self, preds, dtrain):
-        raw = np.asarray(preds).reshape(-1, self.k)
-        if raw.dtype != np.float64:  # float32 margins: widen into a reused buffer
-            if self._buf is None or self._buf.shape != raw.shape:
-                self._buf = np.empty(raw.shape)
-            np.copyto(self._buf, raw)
-            raw = self._buf
-        return self.grads(self.y, raw, self.w)
+        return self.grads(self.y, np.asarray(preds).reshape(-1, self.k), self.w)
 
 
 def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curvature=None, native=True,

@@ -98,33 +98,87 @@ def several_plan(fam, y, w, offset=None, *, precision=np.float64) -> SeveralPlan
 
 
 class SeveralGradients:
-    """``fam.grad_hess(y, raw, w, curvature=)`` as the engines' float32 (n, k) buffers, checked.
+    """The family's direction and diagonal curvature at the engine's raw scores, as the engines'
+    float32 (n, k) buffers, checked.
 
-    ``order="F"`` returns column-major buffers (LightGBM reads its multi-score gradients one
-    score column after another, so it then takes them without a copy)."""
+    The values are those of ``fam.grad_hess(y, raw, w, curvature=)`` rounded to float32 (the same
+    numpy operations, through the family's ``_direction_curvature``), computed
+
+    * without validating the targets and weights again (the caller validated them once, before
+      training) nor the raw scores (the engine's own; a raw score that ran off shows up as a
+      gradient that is not finite, which is checked);
+    * block by block of rows, so that the family's intermediates stay in cache and main memory
+      is read once for the inputs and written once for the outputs;
+    * straight into two float32 buffers reused from round to round, in the layout the engine
+      reads: ``order="F"`` (LightGBM reads its multi-score gradients one score column after
+      another, so it takes the buffers without a copy) or "C" (XGBoost's (n, k) rows);
+    * the natural gradient's curvature, the row weight (1 without weights), only once.
+
+    A gradient that is not finite, or a curvature that is not finite and positive, at a row of
+    positive weight raises ValueError naming the rows.  Rows of zero weight count for nothing:
+    their gradient and curvature are 0 (a value that is not finite there would otherwise reach
+    the engine as inf times 0).  The caller hands the buffers to the engine before the next call.
+    """
+
+    #: values (rows x k) per block: a few float64 blocks of the family's intermediates fit in L2
+    BLOCK_VALUES = 1 << 15
 
     def __init__(self, fam, curvature=None, order="C"):
         self.family = fam
         self.curvature = check_curvature(fam, curvature)
         self.order = order
+        self._out = None
+        self._unit_written = False
+
+    def _buffers(self, n, k, w):
+        if self._out is None or self._out[0].shape != (n, k):
+            self._out = tuple(np.empty((n, k), dtype=np.float32, order=self.order) for _ in range(2))
+            self._unit_written = False
+        if self.curvature == "natural" and not self._unit_written:
+            self._out[1][...] = 1.0 if w is None else np.asarray(w)[:, None]
+            self._unit_written = True
+        return self._out
 
     def __call__(self, y, raw, w):
-        fam = self.family
-        g, h = fam.grad_hess(y, raw, w, curvature=self.curvature)
-        g32 = np.asarray(g, dtype=np.float32, order=self.order)
-        h32 = np.asarray(h, dtype=np.float32, order=self.order)
-        lo_g, hi_g = float(g32.min(initial=0.0)), float(g32.max(initial=0.0))
-        lo_h, hi_h = float(h32.min(initial=1.0)), float(h32.max(initial=1.0))
-        if not (np.isfinite(lo_g) and np.isfinite(hi_g) and np.isfinite(hi_h) and lo_h > 0):
-            bad = ~np.isfinite(g32).all(axis=1) | ~(np.isfinite(h32) & (h32 > 0)).all(axis=1)
+        """(g, h) float32 (n, k) at validated float64 targets ``y`` (n,), the engine's raw scores
+        (n, k) and validated weights ``w`` (n,) or None."""
+        fam, curvature = self.family, self.curvature
+        n, k = raw.shape
+        g32, h32 = self._buffers(n, k, w)
+        step = max(1, self.BLOCK_VALUES // k)
+        bad_rows = []
+        for i in range(0, n, step):
+            rows = slice(i, i + step)
+            r = raw[rows]
+            if r.dtype != np.float64:  # XGBoost's float32 margins
+                r = r.astype(np.float64)
+            gb, hb = g32[rows], h32[rows]
+            with np.errstate(over="ignore", divide="ignore", invalid="ignore"):  # checked below
+                g, d = fam._direction_curvature(y[rows], r, curvature)
+                if w is not None:
+                    wb = w[rows, None]
+                    g = g * wb
+                    if d is not None:
+                        d = d * wb
+                gb[...] = g
+                if d is not None:
+                    hb[...] = d
+                if np.isfinite(gb.sum()) and (d is None or (hb.min() > 0 and np.isfinite(hb.max()))):
+                    continue
+                bad = ~np.isfinite(gb).all(axis=1) | ~(np.isfinite(hb) & (hb > 0)).all(axis=1)
             if w is not None:
-                bad &= np.asarray(w) > 0
+                idle = w[rows] == 0
+                gb[idle] = 0.0
+                hb[idle] = 0.0
+                bad &= ~idle
             if bad.any():
-                rows = np.flatnonzero(bad)
-                raise ValueError(
-                    f"{fam.name}: the gradient or curvature ({self.curvature}) is not finite and positive at "
-                    f"{bad.sum()} row(s) (rows {rows[:10].tolist()}{' ...' if rows.size > 10 else ''}); the raw "
-                    "scores have run off (use a smaller learning rate)")
+                bad_rows.append(i + np.flatnonzero(bad))
+        if bad_rows:
+            rows = np.concatenate(bad_rows)
+            raise ValueError(
+                f"{fam.name}: the gradient or curvature ({curvature}) is not finite and positive at "
+                f"{rows.size} row(s) (rows {rows[:10].tolist()}{' ...' if rows.size > 10 else ''}); the raw "
+                "scores have run off (use a smaller learning rate)")
         return g32, h32
 
 

@@ -49,6 +49,11 @@ objectives take one gradient and one Hessian value per row and output), so they 
                         (``fisher_diagonal = True``, with ``_fisher_diagonal``): the natural
                         gradient is then g / diag(F), the same numbers without a k x k solve.
 
+``_direction_curvature(y, raw, curvature)`` is the one place where a curvature name becomes these
+hook calls (the natural gradient's unit curvature comes back as None, so the engines write it
+once); a family whose hooks share work may override it with the same numbers computed once
+(multinomial: one softmax).
+
 Kinks.  Where the nll has a kink in a raw score (laplace and asymmetric laplace in the location)
 the family lists that column in ``kinked_scores``: its exact second derivative is 0 almost
 everywhere, its gradient is a subgradient (0 at the kink), and a minimiser (the baseline) only
@@ -227,13 +232,9 @@ class SeveralScoreFamily:
             raise ValueError(f"{self.name}: curvature must be one of {CURVATURES}, got {curvature!r}")
         y, raw, w = self._inputs(y, raw, weight, for_nll=False)
         with np.errstate(over="ignore", divide="ignore"):
-            if curvature == "natural":
-                g = self._natural_direction(y, raw)
-                d = np.ones_like(g)
-            elif curvature == "newton":
-                g, d = self._gradient(y, raw), self._newton_diagonal(y, raw)
-            else:
-                g, d = self._gradient(y, raw), self._fisher_diagonal(raw)
+            g, d = self._direction_curvature(y, raw, curvature)
+        if d is None:
+            d = np.ones_like(g)
         if w is not None:
             with np.errstate(over="ignore"):
                 g = g * w[:, None]
@@ -320,6 +321,19 @@ class SeveralScoreFamily:
         if rows.any():  # the Fisher diagonal of those rows only (it may be costly to compute)
             d[rows] = np.where(bad[rows], self._fisher_diagonal(raw[rows]), d[rows])
         return d
+
+    def _direction_curvature(self, y, raw, curvature):
+        """(direction (n, k), diagonal curvature (n, k) or None) of ``curvature`` at valid (y, raw),
+        unweighted; None stands for the unit curvature of the natural gradient.
+
+        The one place where a curvature name becomes hook calls (``grad_hess`` and the engines'
+        per-round buffers both come here).  A family whose hooks share work (e.g. one softmax for
+        the gradient and its diagonal) may override this with the same numbers, computed once."""
+        if curvature == "natural":
+            return self._natural_direction(y, raw), None
+        if curvature == "newton":
+            return self._gradient(y, raw), self._newton_diagonal(y, raw)
+        return self._gradient(y, raw), self._fisher_diagonal(raw)
 
     def _natural_direction(self, y, raw):
         """(n, k) F^{-1} g at (y, raw): the gradient divided by the Fisher diagonal when that matrix

@@ -92,9 +92,13 @@ class Multinomial(SeveralScoreFamily):
         return special.logsumexp(raw, axis=1) - raw[np.arange(raw.shape[0]), idx]
 
     def _gradient(self, y, raw):
-        g = self._probabilities(raw)
-        g[np.arange(raw.shape[0]), y.astype(np.intp)] -= 1.0
-        return g
+        return self._minus_indicator(self._probabilities(raw), y)
+
+    @staticmethod
+    def _minus_indicator(p, y):
+        """p - e_y, in place of p."""
+        p[np.arange(p.shape[0]), y.astype(np.intp)] -= 1.0
+        return p
 
     def _hessian(self, y, raw):
         return self._fisher(raw)
@@ -106,19 +110,34 @@ class Multinomial(SeveralScoreFamily):
         f[:, d, d] += p
         return f
 
-    def _newton_diagonal(self, y, raw):
-        p = self._probabilities(raw)
+    @staticmethod
+    def _diagonal(p):
+        """p_j (1 - p_j), floored (the Hessian's and the Fisher matrix's diagonal)."""
         return np.maximum(p * (1.0 - p), _PROB_FLOOR)
+
+    def _newton_diagonal(self, y, raw):
+        return self._diagonal(self._probabilities(raw))
 
     def _fisher_diagonal(self, raw):
-        p = self._probabilities(raw)
-        return np.maximum(p * (1.0 - p), _PROB_FLOOR)
+        return self._diagonal(self._probabilities(raw))
 
-    def _natural_gradient(self, y, raw, g):
-        p = np.maximum(self._probabilities(raw), _PROB_FLOOR)
-        x = g / p
+    @staticmethod
+    def _pseudo_inverse_times(g, p):
+        """x = g / p - mean(g / p) per row, p floored (module docstring)."""
+        x = g / np.maximum(p, _PROB_FLOOR)
         x -= x.mean(axis=1, keepdims=True)
         return x
+
+    def _natural_gradient(self, y, raw, g):
+        return self._pseudo_inverse_times(g, self._probabilities(raw))
+
+    def _direction_curvature(self, y, raw, curvature):
+        # one softmax for the direction and its curvature (the same numbers as the separate hooks)
+        p = self._probabilities(raw)
+        if curvature == "natural":
+            return self._pseudo_inverse_times(self._minus_indicator(p.copy(), y), p), None
+        d = self._diagonal(p)
+        return self._minus_indicator(p, y), d
 
     def _baseline(self, y, w, offset):
         if offset is not None:
