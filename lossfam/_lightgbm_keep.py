@@ -93,8 +93,10 @@ class KeepScores:
         y = np.asarray(self.y, dtype=np.float64).reshape(-1)
         if out.size != y.size:
             return
-        with np.errstate(divide="ignore", invalid="ignore"):
-            raw = np.log(out) if self.inverse == "log" else out.copy()
+        if self.inverse == "log":
+            with np.errstate(divide="ignore", invalid="ignore"):
+                out = np.log(out)  # (a mean of 0 gives -inf: the check finds the row, the prediction pass names it)
+        raw = out
         start = np.zeros(y.size) if self.init_score is None else np.asarray(self.init_score, dtype=np.float64).reshape(-1)
         rows = np.unique(np.linspace(0, y.size - 1, min(SAMPLE_ROWS, y.size)).round().astype(np.intp))
         sample = self.X.iloc[rows] if hasattr(self.X, "iloc") else self.X[rows]

@@ -28,7 +28,10 @@ grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
 (``lossfam._boost.cluster``).  Native twins and the Python objective only (no
 refit path); ``valid_sets`` are scored after training, and one
 ``lightgbm.early_stopping`` callback is honoured by scoring every round on all
-valid rows afterwards and cutting the model at the best one.
+valid rows afterwards and cutting the model at the best one.  The check of the
+trained scores and the nuisance fit read the trained scores LightGBM leaves on
+each worker (``lossfam._lightgbm_keep``) instead of predicting every training
+row, unless the model was cut or a worker lacks them.
 
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian

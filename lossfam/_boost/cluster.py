@@ -41,6 +41,12 @@ nuisance parameters
     student_t, negative_binomial and tweedie, in 4 passes after the start).
     Where the curvature is not positive, a derivative-free search (Brent,
     Nelder-Mead) with one pass per evaluation.
+trained scores (check, nuisance fit)
+    Where the engine's training left each worker's trained raw scores behind
+    (LightGBM: ``lossfam._lightgbm_keep`` keeps them with ``keep_scores``),
+    ``KeptRows`` runs the check and the nuisance passes as one task per worker
+    on those arrays; otherwise, or when they do not cover every row of the
+    final model, ``PartitionRows`` runs them per partition on predicted scores.
 metric
     ``Scorer.sums`` per partition, added.
 best round (LightGBM early stopping)
