@@ -19,8 +19,11 @@ each run trains one contender once in a fresh child process:
 
 Only the training call is timed: data are simulated, and the ``lightgbm.Dataset`` (binned)
 or ``xgboost.DMatrix`` built, before the clock starts.  The time of a cell is the minimum
-over ``--repeats`` runs; within each repeat the contenders run one after the other, in
-alternating order, so that load from other processes hits all of them alike.  With ``--inline``
+(``--stat median``: the median) over ``--repeats`` runs; within each repeat the contenders run
+one after the other, in alternating order, so that load from other processes hits all of them
+alike.  ``--clock cpu`` times the process's CPU time instead of the wall clock: at 1 thread on a
+loaded machine it leaves out the time spent waiting for a core (at more threads it sums them,
+so it says nothing about wall time there).  With ``--inline``
 the timed runs share this process (no start-up per run, for a heavily loaded machine) and each
 contender's peak memory comes from one extra child process.  The child also
 reports its peak resident memory (``ru_maxrss``: data, engine and training) and the part of it
@@ -53,6 +56,9 @@ import time
 FAMILIES = ("gaussian", "laplace", "asymmetric_laplace:0.9", "bernoulli", "poisson", "gamma", "huber", "tweedie:1.5")
 SIZES = ("1000000x100:1.05", "10000x1000:1.10")
 CONTENDERS = ("builtin", "train", "custom", "floor")
+#: ``--clock``: wall time, or the process's CPU time (all its threads: meaningful at 1 thread only, where
+#: it leaves out the time the process waits for a core on a loaded machine)
+CLOCKS = {"wall": time.perf_counter, "cpu": time.process_time}
 
 
 def has_twin(engine, name):
@@ -186,34 +192,34 @@ def measure(spec, data_sets=None):
         start = np.full(n, fam.baseline(y))
         g, h = (a.astype(np.float32) for a in fam.grad_hess(y, start))
     before = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    t0 = time.perf_counter()
+    t0 = CLOCKS[spec.get("clock", "wall")]()
     if side in ("train", "custom"):
         fit = adapter.train(fam, params, data, rounds, native=(side == "train"))
-        seconds = time.perf_counter() - t0
+        seconds = CLOCKS[spec.get("clock", "wall")]() - t0
         trained = fit.family
         raw = fit.predict_raw(Xt)
     elif engine == "lightgbm":
         if side == "builtin":
             booster = lgb.train({**params, **twin(engine, name, tau, trained)}, data, rounds)
-            seconds = time.perf_counter() - t0
+            seconds = CLOCKS[spec.get("clock", "wall")]() - t0
             raw = None
             mean = booster.predict(Xt)
         else:
             data.set_init_score(start)
             booster = lgb.train({**params, "objective": lambda preds, ds: (g, h)}, data, rounds)
-            seconds = time.perf_counter() - t0
+            seconds = CLOCKS[spec.get("clock", "wall")]() - t0
             raw = start[0] + booster.predict(Xt, raw_score=True)
     else:
         if side == "builtin":
             booster = xgb.train({**params, **twin(engine, name, tau, trained)}, data, rounds)
-            seconds = time.perf_counter() - t0
+            seconds = CLOCKS[spec.get("clock", "wall")]() - t0
             raw = None
             mean = booster.inplace_predict(Xt)
         else:
             data.set_base_margin(start)
             booster = xgb.train({**params, "disable_default_eval_metric": 1}, data, rounds,
                                 obj=lambda preds, dm: (g, h))
-            seconds = time.perf_counter() - t0
+            seconds = CLOCKS[spec.get("clock", "wall")]() - t0
             raw = booster.inplace_predict(Xt, base_margin=np.full(len(Xt), start[0]), predict_type="margin")
     if raw is not None:
         mean = inverse(np.asarray(raw, dtype=np.float64))
@@ -254,19 +260,20 @@ def fmt(x, spec=".2f"):
     return "—" if x is None else format(x, spec)
 
 
-def summarise(runs):
+def summarise(runs, stat="min"):
     ok = [r for r in runs if "error" not in r]
     if not ok:
         return None
     mem = [r for r in ok if r.get("peak_mib") is not None]
-    return {"seconds": min(r["seconds"] for r in ok),
+    timed = [r["seconds"] for r in ok if r["seconds"] != float("inf")]  # inline: the memory-only run has inf
+    return {"seconds": (min if stat == "min" else statistics.median)(timed),
             "peak_mib": statistics.median(r["peak_mib"] for r in mem) if mem else None,
             "score": statistics.median(r["score"] for r in ok) if ok[0]["score"] is not None else None}
 
 
-def table_row(engine, name, tau, n, rounds, limit, runs, others):
+def table_row(engine, name, tau, n, rounds, limit, runs, others, stat="min"):
     """One markdown row: seconds and ratios to the built-in, held-out scores, peak memory ratios."""
-    cell = {c: summarise(v) for c, v in runs.items()}
+    cell = {c: summarise(v, stat) for c, v in runs.items()}
     b = cell["builtin"]
     row = [engine, label(name, tau), f"{n:.0e} × {rounds}", fmt(b and b["seconds"])]
     for c in others:
@@ -293,6 +300,9 @@ def main(argv=None):
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--features", type=int, default=20)
     ap.add_argument("--threads", type=int, default=2)
+    ap.add_argument("--clock", choices=sorted(CLOCKS), default="wall",
+                    help="cpu: the process's CPU time instead of the wall clock (1 thread on a loaded machine)")
+    ap.add_argument("--stat", choices=("min", "median"), default="min", help="of the repeats, per cell")
     ap.add_argument("--inline", action="store_true",
                     help="time in this process (no per-run start-up: for a loaded machine); peak memory "
                          "then comes from one extra child process per contender")
@@ -313,7 +323,8 @@ def main(argv=None):
         ap.error("--contenders must include builtin (every ratio is against it)")
 
     print(f"lightgbm {lightgbm.__version__}, xgboost {xgboost.__version__}, numpy {numpy.__version__}; "
-          f"{args.features} features, {args.threads} threads; time = min of {args.repeats} alternated runs "
+          f"{args.features} features, {args.threads} threads; time = {args.stat} of {args.repeats} alternated runs "
+          f"({'CPU time' if args.clock == 'cpu' else 'wall clock'}) "
           + ("in this process; peak memory = peak RSS of one more child process per contender\n" if args.inline else
              "(fresh process each); peak memory = median peak RSS of those processes\n"))
     others = [c for c in contenders if c != "builtin"]
@@ -331,7 +342,7 @@ def main(argv=None):
                     continue
                 runs = {c: [] for c in contenders}
                 case = {"engine": engine, "family": name, "tau": tau, "rows": n, "rounds": rounds,
-                        "features": args.features, "threads": args.threads}
+                        "features": args.features, "threads": args.threads, "clock": args.clock}
                 data_sets = sample(case) if args.inline else None
                 for r in range(args.repeats):
                     for c in (contenders if r % 2 == 0 else contenders[::-1]):
@@ -343,7 +354,7 @@ def main(argv=None):
                     for c in contenders:
                         runs[c].append({**run_child({**case, "side": c}), "seconds": float("inf")})
                 results.append((engine, name, tau, n, rounds, runs))
-                print(table_row(engine, name, tau, n, rounds, limit, runs, others), flush=True)
+                print(table_row(engine, name, tau, n, rounds, limit, runs, others, args.stat), flush=True)
 
     print("\nAll runs (seconds, in run order):")
     for engine, name, tau, n, rounds, runs in results:

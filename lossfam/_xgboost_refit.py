@@ -45,7 +45,7 @@ class _Worker:
         self.dtrain = None
         self.y = self.w = self.raw = None
         self.tables = []
-        self.rounds = 0
+        self.reductions = 0
         self.seconds = 0.0
 
 
@@ -79,12 +79,12 @@ def catch_up(obj, st):
     for t in range(len(st.tables), st.booster.num_boosted_rounds()):
         leaves = np.asarray(st.booster[t:t + 1].predict(st.dtrain, pred_leaf=True), dtype=np.intp).reshape(-1)
         n_nodes = int(_reduce(np.array([leaves.max() + 1.0 if leaves.size else 0.0]), collective.Op.MAX)[0])
-        values, has, rounds = cluster.leaf_quantiles(_reduce, rank, world, leaves, st.y - st.raw, st.w, n_nodes,
+        values, has, reductions = cluster.leaf_quantiles(_reduce, rank, world, leaves, st.y - st.raw, st.w, n_nodes,
                                                      obj.level, obj.definition)
         table = np.where(has, obj.eta * values, 0.0).astype(np.float32).astype(np.float64)
         st.tables.append(table)
         st.raw += table[leaves]
-        st.rounds += rounds
+        st.reductions += reductions
     st.seconds += time.perf_counter() - t0
 
 
@@ -110,12 +110,12 @@ class RefitCallback(xgb.callback.TrainingCallback):
         catch_up(self.objective, st)
         out = _write_leaf_values(xgb, model, st.tables)
         # read (and removed) by the client: the refit's share of the engine's training call
-        out.set_attr(lossfam_refit_seconds=repr(st.seconds), lossfam_refit_reductions=str(st.rounds))
+        out.set_attr(lossfam_refit_seconds=repr(st.seconds), lossfam_refit_reductions=str(st.reductions))
         return out
 
 
 def take_timing(booster):
-    """(seconds, selection rounds) the workers' refit took (this worker's), removed from the booster."""
+    """(seconds, reductions) the workers' refit took (this worker's), removed from the booster."""
     secs, rounds = booster.attr("lossfam_refit_seconds"), booster.attr("lossfam_refit_reductions")
     booster.set_attr(lossfam_refit_seconds=None, lossfam_refit_reductions=None)
     return float(secs or 0.0), int(rounds or 0)

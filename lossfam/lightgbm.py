@@ -153,23 +153,29 @@ def _call_style(a, b, c):
 
 
 class _Objective:
-    """The family's gradient and Hessian as a LightGBM custom objective (see ``objective``)."""
+    """The family's gradient and Hessian as a LightGBM custom objective (see ``objective``).
 
-    def __init__(self, fam, guard, check_start=True, engine_buffers=False):
+    ``workers``: threads that assemble the gradients of a large call (``Gradients``; 1 in
+    ``train``: more were not measured faster on a shared machine)."""
+
+    def __init__(self, fam, guard, check_start=True, engine_buffers=False, workers=1):
         self.family = fam
-        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers)
+        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers, workers=workers)
         self.check_start = check_start
         self._cache = TargetCache()
+        self._dataset_type = _lgb().Dataset
 
     def __call__(self, a, b, c=None, d=None):
-        raw, y, w, data = _call_style(a, b, c)
-        narrow = self.grads.engine_buffers
-        if data is not None:
+        if isinstance(b, self._dataset_type):  # lgb.train: (preds, Dataset)
+            raw, data = a, b
             y64, w64 = self._cache.get(self.family, (data,), lambda: (_target_of(data), data.get_weight()),
-                                       for_nll=False, narrow=narrow)
-        else:
-            y64, w64 = self._cache.get(self.family, (y, w), lambda: (y, w), for_nll=False, narrow=narrow)
-        raw = np.asarray(raw, dtype=np.float64)
+                                       for_nll=False, narrow=self.grads.engine_buffers)
+        else:  # scikit-learn classes: (y_true, y_pred, weight, group)
+            raw = b
+            y64, w64 = self._cache.get(self.family, (a, c), lambda: (a, c), for_nll=False,
+                                       narrow=self.grads.engine_buffers)
+        if not (type(raw) is np.ndarray and raw.dtype == np.float64):
+            raw = np.asarray(raw, dtype=np.float64)
         if raw.shape != y64.shape:
             raise ValueError(
                 f"{self.family.name} objective: got {raw.size} raw scores for {y64.size} targets "

@@ -130,10 +130,10 @@ def censored_dmatrix(data, target, **kwargs):
 class _Objective:
     """Gradient and Hessian of a family's nll for XGBoost (see ``objective``)."""
 
-    def __init__(self, fam, guard, check_start=True, engine_buffers=False):
+    def __init__(self, fam, guard, check_start=True, engine_buffers=False, workers=1):
         self.family = fam
         self.guard = guard
-        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers)
+        self.grads = Gradients(fam, guard, engine_buffers=engine_buffers, workers=workers)
         self.engine_buffers = engine_buffers
         self.check_start = check_start
         self.__name__ = f"{fam.name}_objective"
@@ -143,10 +143,11 @@ class _Objective:
 
     def __getstate__(self):  # picklable for xgboost.dask: drop the engine class and the cache
         return {"family": self.family, "guard": self.guard, "check_start": self.check_start,
-                "engine_buffers": self.engine_buffers}
+                "engine_buffers": self.engine_buffers, "workers": self.grads.workers}
 
     def __setstate__(self, state):
-        self.__init__(state["family"], state["guard"], state["check_start"], state.get("engine_buffers", False))
+        self.__init__(state["family"], state["guard"], state["check_start"], state.get("engine_buffers", False),
+                      state.get("workers", 1))
 
     def __call__(self, first, second, sample_weight=None):
         fam = self.family

@@ -20,6 +20,21 @@ CENSORING = ["gaussian", "lognormal", "weibull", "gamma", "laplace", "student_t"
 POSITIVE = {"lognormal", "weibull", "gamma"}
 PARAMS = {"gaussian": {"scale": 1.7}, "lognormal": {"scale": 0.6}, "weibull": {"shape": 1.8},
           "gamma": {"shape": 2.5}, "laplace": {"scale": 0.8}, "student_t": {"df": 3.0, "scale": 1.4}}
+#: parameter values served by closed forms of their own in the censored kernel (integer gamma
+#: shapes, integer student_t df; PARAMS' df = 3 is one too), and student_t at df = 2.5, which
+#: keeps scipy's special functions: checked by the same tests as PARAMS
+CLOSED_FORMS = {"gamma_k2": ("gamma", {"shape": 2.0}), "gamma_k7": ("gamma", {"shape": 7.0}),
+                "student_t_df4": ("student_t", {"df": 4.0, "scale": 1.4}),
+                "student_t_df2": ("student_t", {"df": 2.0, "scale": 0.7}),
+                "student_t_df2.5": ("student_t", {"df": 2.5, "scale": 1.2})}
+
+
+def family_for(key):
+    """A family from a name of CENSORING (with PARAMS) or a key of CLOSED_FORMS."""
+    if key in CLOSED_FORMS:
+        name, params = CLOSED_FORMS[key]
+        return lossfam.family(name, **params)
+    return lossfam.family(key, **PARAMS[key])
 
 
 def scipy_law(fam, raw):
@@ -218,9 +233,10 @@ def censored_case(draw, name):
     return interval_target(lo, np.maximum(hi, lo)), raw
 
 
-@pytest.mark.parametrize("name", CENSORING)
-def test_censored_gradient_and_hessian_match_finite_differences(name):
-    fam = lossfam.family(name, **PARAMS[name])
+@pytest.mark.parametrize("key", CENSORING + list(CLOSED_FORMS))
+def test_censored_gradient_and_hessian_match_finite_differences(key):
+    fam = family_for(key)
+    name = fam.name
 
     @settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow])
     @given(censored_case(name))
@@ -376,14 +392,14 @@ def test_a_user_family_gets_the_censored_likelihood_from_its_tail_pieces(rng):
 
 
 # ---------------------------------------------------------------------------- the fast kernel
-@pytest.mark.parametrize("name", CENSORING + ["gamma_k1"])
-def test_fast_kernel_agrees_with_the_log_space_terms(name):
+@pytest.mark.parametrize("key", CENSORING + ["gamma_k1"] + list(CLOSED_FORMS))
+def test_fast_kernel_agrees_with_the_log_space_terms(key):
     # the linear-space formulas (TailLaw) and the log-space pieces are two writings of the same
     # derivatives: they must agree row by row, from the bulk to far tails, on every kind of row
     from lossfam.families._censored import _grad_hess_log_space, censored_grad_hess
 
-    fam = (lossfam.family("gamma", shape=1.0) if name == "gamma_k1"
-           else lossfam.family(name, **PARAMS[name]))
+    fam = lossfam.family("gamma", shape=1.0) if key == "gamma_k1" else family_for(key)
+    name = fam.name
     pos = fam.support_edges[0] == 0
     z = np.concatenate([np.linspace(-12.0, 12.0, 97), [-40.0, -30.0, -8.0, 8.0, 30.0, 40.0]])
     if name == "student_t":
@@ -405,8 +421,17 @@ def test_fast_kernel_agrees_with_the_log_space_terms(name):
     # the log-space terms lose about eps * nll of relative accuracy (exp(log D - log P) with both
     # logs of the size of the nll): compare where that is below 1e-13, i.e. nll < 1e3; the Hessian
     # is a difference of terms of the size of g^2 in both writings, so it is compared to that size
-    trusted = fam.nll(t, r4) < 1e3
-    ok_g = np.isclose(g, g0, rtol=1e-9, atol=1e-300) | ~trusted
+    nll = fam.nll(t, r4)
+    trusted = nll < 1e3
+    # a closed interval's P is a difference of tails: both writings lose eps times the condition
+    # number (larger tail) / P of that difference (1e6 on student_t's (1e6, 1e6 + 0.7))
+    law = scipy_law(fam, r4)
+    with np.errstate(all="ignore"):
+        log_big = np.minimum(law.logsf(np.where(np.isfinite(lo), lo, 1.0)),
+                             law.logcdf(np.where(np.isfinite(hi), hi, 1.0)))
+        cond = np.where(np.isfinite(lo) & np.isfinite(hi) & (lo < hi) & (lo > 0 if pos else True),
+                        np.exp(np.minimum(log_big + nll, 700.0)), 1.0)
+    ok_g = (np.abs(g - g0) <= (1e-9 + 64 * np.finfo(float).eps * cond) * np.abs(g0) + 1e-300) | ~trusted
     ok_h = (np.abs(h - h0) <= 1e-7 * np.abs(h0) + 1e-11 * g0 * g0) | ~trusted
     # where the log-space Hessian is lost to cancellation it takes the surrogate g^2; the linear
     # space keeps the exact value there: check it against finite differences of the gradient
@@ -451,3 +476,123 @@ def test_extreme_value_left_ratio_against_mpmath():
         qq = x * mpmath.e ** (-x) / -mpmath.expm1(-x)
         assert qi == pytest.approx(float(qq), rel=1e-14, abs=1e-300)
         assert ci == pytest.approx(float(qq - 1 + x), rel=1e-13)
+
+
+# ---------------------------------------------------------------------------- closed forms of the tails
+def _gamma_z_law(k, z):
+    """(S0, F0, f0) of z = log(G / k), G ~ Gamma(k, 1), from scipy.stats.gamma (logs exponentiated)."""
+    x = k * np.exp(z)
+    law = stats.gamma(k)
+    log_f0 = law.logpdf(x) + np.log(x)
+    return np.exp(law.logsf(x)), np.exp(law.logcdf(x)), np.exp(log_f0), law.logsf(x), law.logcdf(x), log_f0
+
+
+@pytest.mark.parametrize("k", [2.0, 3.0, 7.0, 30.0])
+def test_integer_gamma_tails_against_scipy(k):
+    # outside reference: scipy.stats.gamma logsf / logcdf / logpdf at x = k e^z, from the lower
+    # tail where F rounds to 0 (the series) to the upper tail where F rounds to 1
+    from lossfam.families.gamma import IntegerGammaLaw
+
+    law = IntegerGammaLaw(k)
+    z = np.concatenate([np.linspace(-30.0, 4.0, 341), [np.log(law.x0 / k) + d for d in (-1e-9, 0.0, 1e-9)]])
+    s0, f0_cdf, f0, log_s, log_f, log_pdf = _gamma_z_law(k, z)
+    upper = np.arange(z.size) % 2 == 0
+    with np.errstate(all="ignore"):
+        tail, pdf = law.tail_pdf(z, upper)
+        r, c_right = law.right(z)
+        q, c_left = law.left(z)
+    ok = pdf > 1e-300
+    assert np.allclose(pdf[ok], f0[ok], rtol=1e-12, atol=0)
+    ref = np.where(upper, s0, f0_cdf)
+    ok = ref > 1e-280
+    assert np.allclose(tail[ok], ref[ok], rtol=1e-12, atol=0)
+    # the hazard and the reversed hazard against exp of scipy's log differences
+    with np.errstate(all="ignore"):
+        r_ref = np.exp(log_pdf - log_s)
+        q_ref = np.exp(log_pdf - log_f)
+    ok = np.isfinite(log_s) & np.isfinite(log_pdf) & (r_ref > 1e-300)
+    assert ok.sum() > 200
+    assert np.allclose(r[ok], r_ref[ok], rtol=1e-10, atol=0)
+    ok = np.isfinite(log_f) & np.isfinite(log_pdf) & (q_ref > 1e-300)
+    assert ok.sum() > 200
+    assert np.allclose(q[ok], q_ref[ok], rtol=1e-10, atol=0)
+
+
+@pytest.mark.parametrize("k", [2.0, 7.0])
+def test_integer_gamma_curvature_terms_against_mpmath(k):
+    # outside reference: mpmath at 50 digits, r + psi and q - psi (psi = k - x) from the regularised
+    # incomplete gamma functions; these are differences of close terms in float64
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 50
+    from lossfam.families.gamma import IntegerGammaLaw
+
+    law = IntegerGammaLaw(k)
+    z = np.array([-40.0, -12.0, -3.0, np.log(law.x0 / k) - 1e-9, np.log(law.x0 / k), -0.2, 0.0, 0.5, 2.0, 4.0, 25.0])
+    with np.errstate(all="ignore"):
+        r, c_right = law.right(z)
+        q, c_left = law.left(z)
+    kk = mpmath.mpf(k)
+    for i, zi in enumerate(z):
+        x = kk * mpmath.e ** mpmath.mpf(zi)
+        f0 = x ** kk * mpmath.e ** (-x) / mpmath.gamma(kk)
+        s0 = mpmath.gammainc(kk, x, mpmath.inf, regularized=True)
+        f_0 = mpmath.gammainc(kk, 0, x, regularized=True)
+        assert c_right[i] == pytest.approx(float(f0 / s0 + kk - x), rel=1e-12), zi
+        if zi < 5:  # beyond, q underflows and c = x - k
+            assert c_left[i] == pytest.approx(float(f0 / f_0 - kk + x), rel=1e-11), zi
+    assert np.all(np.isfinite(r[:-1])) and np.all(np.isfinite(q)) and np.all(np.isfinite(c_left))
+    # right-censored where x = k e^z is near the top of float64: r = x - (k - 1) + O(1/x) = x
+    # in float64 (the asymptotic of the hazard), finite, c -> 1
+    r, c = law.right(np.array([700.0]))
+    assert r[0] == pytest.approx(k * np.exp(700.0), rel=1e-13) and c[0] == pytest.approx(1.0, rel=1e-13)
+
+
+@pytest.mark.parametrize("df", [1.0, 2.0, 3.0, 4.0, 5.0, 9.0, 10.0, 60.0])
+def test_integer_df_student_t_tails_against_scipy(df):
+    # outside reference: scipy.stats.t logsf / logcdf / logpdf, from the bulk to |z| = 1e6 where
+    # F rounds to 1 (compared through logsf / logcdf, never 1 - cdf)
+    from lossfam.families.student_t import EvenStudentTTails, OddStudentTTails
+
+    law = (EvenStudentTTails if df % 2 == 0 else OddStudentTTails)(df)
+    assert type(lossfam.family("student_t", df=df)._tail_law()[0]) is type(law)
+    z = np.concatenate([np.linspace(-60.0, 60.0, 481), [-1e6, -1e3, 1e3, 1e6]])
+    ref = stats.t(df)
+    upper = np.arange(z.size) % 2 == 0
+    with np.errstate(all="ignore"):
+        tail, pdf = law.tail_pdf(z, upper)
+        r, c = law.right(z)
+    log_tail = np.where(upper, ref.logsf(z), ref.logcdf(z))
+    ok = log_tail > np.log(1e-300)
+    assert np.allclose(np.log(tail[ok]), log_tail[ok], rtol=0, atol=1e-10)
+    ok = pdf > 1e-300
+    assert np.allclose(np.log(pdf[ok]), ref.logpdf(z[ok]), rtol=0, atol=1e-10)
+    r_ref = np.exp(ref.logpdf(z) - ref.logsf(z))
+    ok = r_ref > 1e-300
+    assert ok.sum() > 400
+    assert np.allclose(r[ok], r_ref[ok], rtol=1e-10, atol=0)
+    # c = r + psi where it is kept (else 0: the surrogate), against the same reference
+    psi = -(df + 1.0) * z / (df + z * z)
+    c_ref = r_ref + psi
+    size = r_ref + np.abs(psi)  # c is a difference of terms of this size: compared to it
+    kept = (c > 0) & ok
+    assert np.all(np.abs(c[kept] - c_ref[kept]) <= 1e-10 * np.abs(c_ref[kept]) + 1e-13 * size[kept])
+    dropped = (c == 0) & ok
+    assert np.all(c_ref[dropped] <= 1e-8 * size[dropped])
+
+
+def test_closed_forms_serve_the_declared_parameters_only():
+    # the closed forms are chosen from the family's own parameter: integer gamma shapes from 2,
+    # even student_t df up to 60, odd up to 9; other values keep scipy's special functions
+    from lossfam.families.gamma import IntegerGammaLaw
+    from lossfam.families.student_t import EvenStudentTTails
+    from lossfam.families.weibull import EXTREME_VALUE
+
+    assert isinstance(lossfam.family("gamma", shape=3.0)._tail_law()[0], IntegerGammaLaw)
+    assert not isinstance(lossfam.family("gamma", shape=2.5)._tail_law()[0], IntegerGammaLaw)
+    assert lossfam.family("gamma", shape=1.0)._tail_law()[0] is EXTREME_VALUE
+    from lossfam.families.student_t import OddStudentTTails
+
+    assert isinstance(lossfam.family("student_t", df=4.0)._tail_law()[0], EvenStudentTTails)
+    assert isinstance(lossfam.family("student_t", df=3.0)._tail_law()[0], OddStudentTTails)
+    for df in (4.5, 0.5, 62.0, 11.0, 59.0):
+        assert type(lossfam.family("student_t", df=df)._tail_law()[0]).__name__ == "StudentTTails"

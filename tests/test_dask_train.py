@@ -401,6 +401,45 @@ def test_leaf_quantiles_across_workers_equal_one_machine(monkeypatch):
                     np.testing.assert_array_equal(values[has], ref[has], err_msg=f"{definition} q={q} world={world}")
 
 
+@pytest.mark.parametrize("small", [False, True])
+def test_leaf_quantiles_equal_the_sorted_selection(monkeypatch, small):
+    """The selection with its first cut by histogram returns, bit for bit, the leaf values of the
+    selection it replaced (every worker sorting its rows by leaf and value; kept in
+    tests/leaf_selection_sorted.py): random cases with weights, zero weights, ties, empty leaves,
+    heavy tails, 1-3 workers, every definition; ``small`` shrinks the histogram, the gather limit
+    and the pivots so that the narrowing rounds after the cut run too."""
+    import leaf_selection_sorted as before
+
+    if small:
+        monkeypatch.setattr(cluster, "LEAF_GATHER", 8)
+        monkeypatch.setattr(cluster, "LEAF_PIVOTS", 4)
+        monkeypatch.setattr(cluster, "LEAF_CUT_BUCKETS", 4)
+    rng = np.random.default_rng(7 + small)
+    narrowed = 0
+    for case in range(8):
+        n, n_leaves, world = int(rng.integers(1, 1500)), int(rng.integers(1, 50)), int(rng.integers(1, 4))
+        leaf = rng.integers(0, n_leaves, n) // (2 if case % 3 == 0 else 1)  # the upper half of the leaves empty
+        v = (np.round(rng.normal(size=n) * 3, int(rng.integers(0, 3))), rng.gamma(0.5, 2.0, n) ** 3,
+             rng.standard_cauchy(n), np.full(n, 1.25))[case % 4]
+        for definition, w in (("weibull", None), ("linear", None), ("weibull", np.ones(n)), ("lower", None),
+                              ("lower", rng.integers(0, 4, n).astype(float)),
+                              ("lower", rng.uniform(0, 2, n) * (rng.random(n) < 0.7)),
+                              ("midpoint", rng.uniform(0, 2, n)), ("midpoint", None)):
+            for q in (0.1, 0.5, 0.999) if case % 2 else (0.37, 0.9):
+                idx = np.split(np.arange(n), np.sort(rng.integers(0, n, world - 1)))
+
+                def part(r):
+                    return leaf[idx[r]], v[idx[r]], None if w is None else w[idx[r]], n_leaves, q, definition
+                old = _fake_workers(world, lambda reduce, r: before.leaf_quantiles(reduce, r, world, *part(r)))
+                new = _fake_workers(world, lambda reduce, r: cluster.leaf_quantiles(reduce, r, world, *part(r)))
+                for (v_old, has_old, _), (v_new, has_new, reductions) in zip(old, new):
+                    np.testing.assert_array_equal(has_new, has_old)
+                    np.testing.assert_array_equal(v_new, v_old, err_msg=f"{definition} q={q} world={world}")
+                    narrowed += reductions > 3 + (definition in ("linear", "weibull") and w is not None)
+    if small:  # the small settings do reach the narrowing rounds
+        assert narrowed > 0
+
+
 @pytest.mark.parametrize("name, params, weighted", [("asymmetric_laplace", {"quantile": 0.9}, True),
                                                     pytest.param("laplace", {}, False, marks=pytest.mark.slow)])
 def test_xgboost_refit_path_on_the_cluster(client, tmp_path, name, params, weighted):

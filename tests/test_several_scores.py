@@ -2,11 +2,16 @@
 
 Parametrised over ``lossfam.available(scores="several")``: a family added to the registry is
 checked here without a new test."""
+import warnings
+
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from scipy import stats
 
 import lossfam
+from lossfam.families._several import CURVATURES
 
 SEVERAL = lossfam.available(scores="several")
 
@@ -196,3 +201,102 @@ def test_bad_raw_shapes_and_rows_are_named():
         fam.grad_hess(y, np.zeros((3, 2)), curvature="exact")
     with pytest.raises(ValueError, match="scale is 0"):
         fam.baseline(np.full(4, 2.0))
+
+
+# ---------------------------------------------------------------------- the whole range of legal input
+# Raw scores anywhere a boosting run or a user may put them (log-scale scores to +-1e4, identity-link
+# locations over all of float64, softmax scores to +-1e4) and targets anywhere in the family's
+# domain: nothing may come back NaN or raise a NumPy warning; +-inf only where the exact value is
+# beyond float64 (each family's module docstring says where); and on rows whose parameters and
+# targets lie within 1e-50 .. 1e50 in magnitude every output is finite.
+FAST = settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.too_slow], derandomize=True)
+LOG_EDGES = [-1e4, -1e3, -800.0, -746.0, -745.0, -710.0, -709.0, -373.0, -40.0, 0.0, 40.0, 373.0, 709.0,
+             710.0, 745.0, 800.0, 1e3, 1e4]
+BAND = 1e50
+
+
+def _score(link):
+    """One raw-score column: a log-link (or softmax) score to +-1e4, an identity-link one anywhere."""
+    wide = st.one_of(st.sampled_from(LOG_EDGES), st.floats(-1e4, 1e4), st.floats(-3.0, 3.0))
+    if link is lossfam.links.IDENTITY:
+        return st.one_of(wide, st.floats(allow_nan=False, allow_infinity=False),
+                         st.sampled_from([-1.7e308, -1e200, 1e200, 1.7e308]))
+    return wide
+
+
+def _targets(fam):
+    if fam.raw_shift_invariant:
+        return st.integers(0, fam.n_scores - 1).map(float)
+    rule = (fam.nll_domain or fam.target_domain).rule
+    if rule == "a non-negative integer":
+        return st.one_of(st.integers(0, 50).map(float), st.floats(0, 1.7e308).map(np.floor),
+                         st.sampled_from([1e15, 1e300]))
+    if rule.startswith("finite and > 0"):
+        return st.one_of(st.floats(5e-324, 1.7e308), st.floats(0.1, 10.0), st.sampled_from([5e-324, 1e-300, 1e300]))
+    return st.one_of(st.floats(allow_nan=False, allow_infinity=False), st.floats(-10.0, 10.0),
+                     st.sampled_from([0.0, -1.7e308, 1.7e308, 1e-300]))
+
+
+def _fixed_params(name):
+    """The family with its fixed parameters drawn within their domains (default where none)."""
+    fam = lossfam.family(name)
+    draws = {"quantile": st.floats(1e-3, 1 - 1e-3), "df": st.sampled_from([0.5, 1.0, 4.0, 30.0, 1e6]),
+             "n_classes": st.integers(2, 5)}
+    fields = [f for f in fam.params if f in draws]
+    return st.fixed_dictionaries({f: draws[f] for f in fields}).map(lambda p: fam.with_params(**p) if p else fam)
+
+
+@st.composite
+def _wide_case(draw, name, n_max=6):
+    fam = draw(_fixed_params(name))
+    n = draw(st.integers(1, n_max))
+    links = fam.links or (None,) * fam.n_scores
+    raw = np.array([[draw(_score(link)) for link in links] for _ in range(n)])
+    y = np.array([draw(_targets(fam)) for _ in range(n)])
+    w = np.array([draw(st.floats(0.1, 10.0)) for _ in range(n)])
+    return fam, y, raw, w
+
+
+def _in_band(fam, y, raw):
+    """Rows whose parameters and targets all lie within 1e-50 .. 1e50 in magnitude."""
+    ok = np.ones(y.shape[0], dtype=bool)
+    for j in range(fam.n_scores):
+        link = fam.links[j] if fam.links else None
+        bound = BAND if link is lossfam.links.IDENTITY else np.log(BAND)
+        ok &= np.abs(raw[:, j]) <= bound
+    if not fam.raw_shift_invariant:
+        ok &= (np.abs(y) <= BAND) & ((y == 0) | (np.abs(y) >= 1 / BAND))
+    return ok
+
+
+def _check_wide(fam, y, raw, w):
+    band = _in_band(fam, y, raw)
+    outs = {}
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        outs["nll"] = fam.nll(y, raw)
+        outs["gradient"] = fam.gradient(y, raw, w)
+        outs["hessian"] = fam.hessian(y, raw, w)
+        outs["fisher"] = fam.fisher(raw, w)
+        outs["parameters"] = fam.parameters(raw)
+        outs["location"] = fam.location(raw)
+        for curvature in CURVATURES:
+            g, d = fam.grad_hess(y, raw, w, curvature=curvature)
+            outs[f"{curvature} gradient"], outs[f"{curvature} curvature"] = g, d
+            assert np.all(d >= 0), (fam, curvature, y, raw, d)
+            assert np.all(d[band] > 0), (fam, curvature, y, raw, d)
+        for what, a in outs.items():
+            assert not np.isnan(a).any(), (fam, what, y, raw, a)
+            assert np.isfinite(a[band]).all(), (fam, what, y[band], raw[band], a[band])
+        assert np.all(outs["nll"] > -np.inf), (fam, y, raw)
+        for offset in (None, raw):
+            try:
+                c = fam.baseline(y, w, offset=offset)
+            except ValueError:
+                continue
+            assert np.isfinite(c).all(), (fam, y, offset, c)
+
+
+@pytest.mark.parametrize("name", SEVERAL)
+def test_legal_input_anywhere_gives_no_nan(name):
+    FAST(given(_wide_case(name))(lambda c: _check_wide(*c)))()

@@ -380,3 +380,122 @@ def test_negative_binomial_spread_near_normal_expansion_matches_the_exact_sum():
     hi = np.ceil(mu + 10 * sd + 40 / np.logaddexp(0.0, -t))
     exact = nbs._exact_window(fam, raw, lo, (hi - lo + 1).astype(np.int64))[0]
     np.testing.assert_allclose(fam.fisher(raw)[:, 1, 1], exact, rtol=1e-7)
+
+
+# ---------------------------------------------------------------------- far raw scores, exact limits
+@pytest.mark.parametrize("log_alpha", [-40.0, -100.0, -700.0, -709.5, -710.0, -746.0, -800.0, -1e4])
+def test_negative_binomial_spread_tends_to_the_poisson_law(log_alpha):
+    # outside reference: scipy.stats.poisson (the alpha -> 0 limit of NB2; the two nlls differ by
+    # alpha ((y - mu)^2 - y) / 2 to first order, below 1e-11 of the nll on these rows)
+    fam = lossfam.family("negative_binomial_spread")
+    mu = np.repeat([1e-3, 0.2, 5.0, 40.0, 1e3], 4)
+    y = np.column_stack([np.zeros(5), np.round(mu[::4]), np.round(mu[::4]) + 7, np.round(3 * mu[::4] + 10)]).ravel()
+    raw = np.column_stack([np.log(mu), np.full(mu.size, log_alpha)])
+    np.testing.assert_allclose(fam.nll(y, raw), -stats.poisson.logpmf(y, mu), rtol=1e-10)
+    g = fam.gradient(y, raw)
+    # (mu - y) / (1 + alpha mu), formed from terms of size y + mu: within 1e-13 (y + mu)
+    assert np.all(np.abs(g[:, 0] - (mu - y)) <= 1e-12 * np.abs(mu - y) + 1e-13 * (mu + y))
+    # d nll / d log alpha -> -alpha ((y - mu)^2 - y) / 2 (0 once alpha underflows)
+    lead = -np.exp(log_alpha) * ((y - mu) ** 2 - y) / 2
+    np.testing.assert_allclose(g[:, 1], lead, rtol=1e-8, atol=1e-300)
+    h = fam.hessian(y, raw)
+    np.testing.assert_allclose(h[:, 0, 0], mu, rtol=1e-12)
+    np.testing.assert_allclose(h[:, 1, 1], lead, rtol=1e-8, atol=1e-300)
+    f = fam.fisher(raw)
+    np.testing.assert_allclose(f[:, 0, 0], mu, rtol=1e-12)
+    # alpha (1 + mu) <= 1e-8 here: the leading term (module docstring)
+    np.testing.assert_allclose(f[:, 1, 1], np.exp(2 * log_alpha) * mu**2 / 2, rtol=1e-8, atol=1e-300)
+    for curvature in ("newton", "fisher", "natural"):
+        gc, d = fam.grad_hess(y, raw, curvature=curvature)
+        assert not np.isnan(gc).any() and not np.isnan(d).any() and np.all(d >= 0), curvature
+    nat, _ = fam.grad_hess(y, raw, curvature="natural")
+    np.testing.assert_allclose(nat[:, 0], 1 - y / mu, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("alpha", [0.5, 0.05, 0.0499, 1e-2, 1e-3])
+def test_negative_binomial_spread_nll_is_scipy_nbinom_on_both_sides_of_the_small_dispersion_forms(alpha):
+    # outside reference: scipy.stats.nbinom(n = 1/alpha, p = 1/(1 + alpha mu)) (accurate at these
+    # sizes, r <= 1e3); the forms in alpha start at r = 20 (alpha = 0.05)
+    fam = lossfam.family("negative_binomial_spread")
+    mu = np.array([0.3, 4.0, 60.0, 900.0])
+    for y in (np.zeros(4), np.round(mu), np.round(2.5 * mu + 6)):
+        raw = np.column_stack([np.log(mu), np.full(4, np.log(alpha))])
+        ref = -stats.nbinom.logpmf(y, 1 / alpha, 1 / (1 + alpha * mu))
+        np.testing.assert_allclose(fam.nll(y, raw), ref, rtol=1e-10)
+
+
+def _nb_nll_mp(mp, y, r0, r1):
+    # the NB2 nll at 150 digits from its definition (mpmath loggamma), for the derivative checks
+    r = mp.exp(-r1)
+    mu = mp.exp(r0)
+    return -(mp.loggamma(y + r) - mp.loggamma(r) - mp.loggamma(y + 1) + r * mp.log(r / (r + mu))
+             + y * mp.log(mu / (r + mu)))
+
+
+@pytest.mark.parametrize("r1", [-3.5, -10.0, -30.0, -100.0, 18.5, 25.0, 100.0, 800.0])
+def test_negative_binomial_spread_far_dispersion_against_mpmath(r1):
+    # outside reference: mpmath's loggamma and numerical differentiation at 150 digits; r1 < -3
+    # exercises the forms in alpha, r1 > 18.4 (r < 1e-8) the forms in r
+    mp = pytest.importorskip("mpmath")
+    mp.mp.dps = 150  # derivatives of order alpha = e^{-100} under an nll of order 1
+    fam = lossfam.family("negative_binomial_spread")
+    rows = [(0.0, np.log(2.0)), (3.0, np.log(2.0)), (50.0, np.log(40.0)), (1.0, np.log(0.01)), (7.0, np.log(7.0))]
+    y = np.array([a for a, _ in rows])
+    raw = np.array([[b, r1] for _, b in rows])
+    nll, g, h = fam.nll(y, raw), fam.gradient(y, raw), fam.hessian(y, raw)
+    for i, (yy, r0) in enumerate(rows):
+        f0 = lambda a, b: _nb_nll_mp(mp, mp.mpf(yy), a, b)  # noqa: E731
+        a, b = mp.mpf(r0), mp.mpf(r1)
+        want = [float(f0(a, b)), float(mp.diff(f0, (a, b), (1, 0))), float(mp.diff(f0, (a, b), (0, 1))),
+                float(mp.diff(f0, (a, b), (0, 2))), float(mp.diff(f0, (a, b), (1, 1)))]
+        got = [nll[i], g[i, 1], h[i, 1, 1]]
+        np.testing.assert_allclose(got, [want[0], want[2], want[3]], rtol=1e-8, atol=1e-300,
+                                   err_msg=f"y={yy}, r0={r0}, r1={r1}")
+        # the r0 column (mu - y) / (1 + alpha mu) and its r1 derivative alpha mu (y - mu) / (1 + alpha mu)^2
+        # carry the rounding of mu = e^{r0} in float64: within 1e-13 (y + mu) absolute
+        tol = 1e-8 * np.abs([want[1], want[4]]) + 1e-13 * (yy + np.exp(r0))
+        assert np.all(np.abs(np.array([g[i, 0], h[i, 0, 1]]) - [want[1], want[4]]) <= tol), (yy, r0, r1)
+
+
+def test_gamma_spread_at_an_overflowing_shape_keeps_its_limits():
+    # k = e^{r1} beyond float64: m(k) -> 1/2, f(k) -> 1/2, c(k) = (log(2 pi) - r1)/2 (Stirling)
+    fam = lossfam.family("gamma_spread")
+    y = np.array([1.0, 2.0, 0.5])
+    raw = np.array([[0.0, 800.0], [0.0, 800.0], [np.log(0.5), 1e4]])
+    g = fam.gradient(y, raw)
+    assert g[0, 1] == -0.5 and g[2, 1] == -0.5 and g[1, 1] == np.inf
+    assert g[0, 0] == 0.0 and g[1, 0] == -np.inf
+    np.testing.assert_allclose(fam.nll(y[[0, 2]], raw[[0, 2]]),
+                               [0.5 * (np.log(2 * np.pi) - 800.0), np.log(0.5) + 0.5 * (np.log(2 * np.pi) - 1e4)],
+                               rtol=1e-14)
+    nat, ones = fam.grad_hess(y, raw, curvature="natural")
+    np.testing.assert_allclose(nat, [[0.0, -1.0], [-1.0, np.inf], [0.0, -1.0]], rtol=1e-14)
+    # and at a shape that underflows: the natural step of the mean is 1 - y / mu whatever k
+    nat, _ = fam.grad_hess(y, np.array([[0.0, -800.0], [0.0, -1e4], [1.0, -800.0]]), curvature="natural")
+    np.testing.assert_allclose(nat[:, 0], 1 - y / np.exp([0.0, 0.0, 1.0]), rtol=1e-14)
+
+
+@pytest.mark.parametrize("name", ["gaussian_spread", "laplace_spread", "asymmetric_laplace_spread", "student_t_spread"])
+def test_location_scale_rows_at_scales_beyond_float64(name):
+    # sigma = e^{r1} far below (or above) float64's range, and a difference y - mu that overflows:
+    # each value is its exact limit (0, the sign, the scale column's constant) or +-inf beyond float64
+    fam = lossfam.family(name)
+    y = np.array([1.0, 0.0, 1.7e308, 1e-300, 5e-324])
+    raw = np.array([[0.0, -1e4], [0.0, -1e4], [-1.7e308, 1e4], [0.0, -700.0], [0.0, 1.0]])
+    g = fam.gradient(y, raw)
+    nll = fam.nll(y, raw)
+    assert not np.isnan(g).any() and not np.isnan(nll).any()
+    assert nll[1] == pytest.approx(-1e4 + fam.nll(np.zeros(1), np.zeros((1, 2)))[0], rel=1e-12)  # y = mu
+    assert g[1, 0] == 0.0 and np.isfinite(g[1, 1])
+    # a difference of 3.4e308 over e^{1e4}: z = 0 (to float64), the scale column at its z = 0 value
+    np.testing.assert_allclose(g[2], fam.gradient(np.zeros(1), np.zeros((1, 2)))[0], atol=1e-300)
+    if fam.kinked_scores:  # a subnormal residual at an ordinary scale keeps its sign (its subgradient)
+        assert g[4, 0] < 0
+    if name == "student_t_spread":
+        # |u| = e^{1e4}: d/dr0 = -(nu + 1) q / (y - mu) -> -(nu + 1) / (y - mu), not 0 * inf
+        assert g[0, 0] == pytest.approx(-(fam.df + 1.0), rel=1e-12)
+        h = fam.hessian(y, raw)
+        assert h[0, 0, 0] == pytest.approx(-(fam.df + 1.0), rel=1e-12)
+        # |u| = 1e-300 e^{700} ~ 1e4 (e^{700} itself finite): the same as the plain forms
+        u = 1e-300 * np.exp(700.0)
+        assert g[3, 0] == pytest.approx(-(fam.df + 1) * u / (fam.df + u * u) * np.exp(700.0), rel=1e-12)

@@ -54,9 +54,12 @@ best round (LightGBM early stopping)
     one pass per valid set; ``best_round`` replays LightGBM's stopping rule.
 leaf refit (custom path, median / quantile leaves)
     ``leaf_quantiles``: per leaf, the exact residual quantile over the rows of
-    all workers, inside the engine's rounds, by ``select_in_leaves`` (the
-    selection below, vectorised over leaves, its reductions summed arrays of
-    O(leaves x (LEAF_GATHER + LEAF_PIVOTS) x workers) numbers).
+    all workers, inside the engine's rounds: a histogram per leaf cuts each
+    leaf's rows down to one bucket that holds the answer (``leaf_cut``, no
+    sort), then ``select_in_leaves`` (the selection below, vectorised over
+    leaves) finishes on the rows of that bucket; three reductions per tree
+    when the buckets are small, each of at most ``LEAF_NUMBERS`` numbers
+    (and O(leaves x LEAF_PIVOTS x workers) per narrowing round).
 
 Timing: ``timed`` adds each step's wall seconds to the plan's stats;
 ``cluster_info`` puts them in ``fit.info["cluster"]["seconds"]``.
@@ -1185,10 +1188,16 @@ def refuse_refit(fam, engine_name):
 
 
 # --------------------------------------------------------------------------- leaf refit across workers
-#: a query's bracket rows are gathered once at most this many remain over all workers
-LEAF_GATHER = 64
+#: a query's bracket rows are gathered once at most this many remain over all workers (fewer when
+#: the gather of all queries from all workers would pass ``LEAF_NUMBERS``)
+LEAF_GATHER = 256
 #: order statistics per worker, query and narrowing round
 LEAF_PIVOTS = 16
+#: the most numbers per reduction of the first cut (its histogram: two per bucket and leaf) and of
+#: the gather (two per row slot, query and worker)
+LEAF_NUMBERS = 1 << 16
+#: the most buckets per leaf in the first cut
+LEAF_CUT_BUCKETS = 1024
 
 
 class LeafRows:
@@ -1227,7 +1236,7 @@ class LeafRows:
         return self.cw[s + np.searchsorted(self.v[s:e], points, side="right")] - self.cw[s]
 
 
-def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict):
+def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict, start=None):
     """Exact selection for many (leaf, target) queries at once, over the rows of all workers.
 
     Query k asks for the smallest value x among leaf ``qleaf[k]``'s rows whose cumulative weight
@@ -1235,11 +1244,17 @@ def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict)
     ``strict[k]``); returns (x, F(x)) per query, (inf, nan) when no value qualifies.  The method
     is the module's baseline selection, vectorised over the queries: a bracket (lo, hi) per query;
     per round every worker sends, per query, all its rows in the bracket when at most
-    ``LEAF_GATHER`` remain over all workers, else ``LEAF_PIVOTS`` evenly spaced order statistics
+    ``LEAF_GATHER`` remain over all workers (fewer with many queries and workers: ``LEAF_NUMBERS``),
+    else ``LEAF_PIVOTS`` evenly spaced order statistics
     of them; a second reduction counts the weight at or below each pivot, and the bracket shrinks
     to neighbouring pivots.  ``reduce(array)`` sums an array over the workers (every worker calls
     it with the same shapes, in the same order: the control flow depends on reduced values only);
-    the data sent per round is O(queries x (gather + pivots) x workers), independent of the rows."""
+    the data sent per round is O(queries x (gather + pivots) x workers), independent of the rows.
+
+    ``start``: (weight below, rows over all workers, done) per query when ``rows`` holds, for each
+    query, only the rows above a known cut (``leaf_cut``): F counts from the weight below, the
+    first round needs no reduction for the counts, and done queries (no value qualifies) are
+    skipped.  Returns (x, F(x), reductions)."""
     qleaf = np.asarray(qleaf, dtype=np.intp)
     target = np.asarray(target, dtype=np.float64)
     strict = np.asarray(strict, dtype=bool)
@@ -1248,45 +1263,72 @@ def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict)
     hi, f_hi = np.full(m, np.inf), np.full(m, np.nan)
     x_out, f_out = np.full(m, np.inf), np.full(m, np.nan)
     done = np.zeros(m, dtype=bool)
-    G, K = LEAF_GATHER, LEAF_PIVOTS
+    known = None
+    if start is not None:
+        f_lo, known, done = (np.array(a, dtype=t) for a, t in zip(start, (np.float64, np.float64, bool)))
+    below_cut = f_lo.copy()  # the weight under the rows ``rows`` holds for each query
+    G, K = max(1, min(LEAF_GATHER, LEAF_NUMBERS // (2 * world * max(m, 1)))), LEAF_PIVOTS
 
     def ok(f, k):
         return f > target[k] if strict[k] else f >= target[k]
 
-    rounds = 0
+    reductions = 0
     while not done.all():
-        rounds += 1
-        ab = [rows.bounds(qleaf[k], lo[k], hi[k]) if not done[k] else (0, 0) for k in range(m)]
-        count = reduce(np.array([b - a for a, b in ab], dtype=np.float64))
+        if np.all(np.isneginf(lo) & np.isposinf(hi)):  # (no bracket yet: every row of the leaf)
+            ab = [(s, e) if not d else (0, 0) for s, e, d in zip(rows.starts[qleaf], rows.ends[qleaf], done)]
+        else:
+            ab = [rows.bounds(qleaf[k], lo[k], hi[k]) if not done[k] else (0, 0) for k in range(m)]
+        if known is None:
+            count = reduce(np.array([b - a for a, b in ab], dtype=np.float64))
+            reductions += 1
+        else:
+            count, known = known, None
         small = ~done & (count <= G)
         big = ~done & ~small
         vals, wts, cnt = np.zeros((world, m, G)), np.zeros((world, m, G)), np.zeros((world, m))
         piv, pres = np.zeros((world, m, K)), np.zeros((world, m, K))
-        for k in np.flatnonzero(small):
-            a, b = ab[k]
-            vals[rank, k, :b - a], wts[rank, k, :b - a], cnt[rank, k] = rows.v[a:b], rows.w[a:b], b - a
+        a_all = np.array([a for a, _ in ab], dtype=np.intp)
+        n_all = np.array([b - a for a, b in ab], dtype=np.intp)
+        sk = np.flatnonzero(small)
+        if sk.size:  # every small query's bracket rows, into its slots (vectorised over the queries)
+            cnt[rank, sk] = n_all[sk]
+            qk = np.repeat(sk, n_all[sk])
+            pos = np.arange(qk.size) - np.repeat(np.cumsum(n_all[sk]) - n_all[sk], n_all[sk])
+            src = np.repeat(a_all[sk], n_all[sk]) + pos
+            vals[rank, qk, pos], wts[rank, qk, pos] = rows.v[src], rows.w[src]
         for k in np.flatnonzero(big):
             a, b = ab[k]
             if b > a:
                 idx = np.unique(np.linspace(a, b - 1, K).round().astype(np.intp))
                 piv[rank, k, :idx.size], pres[rank, k, :idx.size] = rows.v[idx], 1.0
-        sizes = [vals.size, wts.size, cnt.size, piv.size]
-        got = reduce(np.concatenate([vals.ravel(), wts.ravel(), cnt.ravel(), piv.ravel(), pres.ravel()]))
-        vals, wts, cnt, piv, pres = (part.reshape(shape) for part, shape in zip(
-            np.split(got, np.cumsum(sizes)), [(world, m, G), (world, m, G), (world, m), (world, m, K), (world, m, K)]))
-        for k in np.flatnonzero(small):  # every bracket row is here: finish as on one machine
-            c = cnt[:, k].astype(np.intp)
-            v = np.concatenate([vals[r, k, :c[r]] for r in range(world)])
-            wk = np.concatenate([wts[r, k, :c[r]] for r in range(world)])
-            order = np.argsort(v, kind="stable")
-            v, cum = v[order], f_lo[k] + np.cumsum(wk[order])
-            last = np.r_[v[1:] != v[:-1], True] if v.size else np.zeros(0, dtype=bool)
-            good = np.flatnonzero(ok(cum[last], k)) if v.size else np.zeros(0, dtype=np.intp)
-            if good.size:
-                x_out[k], f_out[k] = v[last][good[0]], cum[last][good[0]]
-            else:
-                x_out[k], f_out[k] = hi[k], f_hi[k]
-            done[k] = True
+        if big.any():
+            sizes = [vals.size, wts.size, cnt.size, piv.size]
+            got = reduce(np.concatenate([vals.ravel(), wts.ravel(), cnt.ravel(), piv.ravel(), pres.ravel()]))
+            vals, wts, cnt, piv, pres = (part.reshape(shape) for part, shape in zip(
+                np.split(got, np.cumsum(sizes)),
+                [(world, m, G), (world, m, G), (world, m), (world, m, K), (world, m, K)]))
+        else:  # (nothing to narrow: the pivots are not sent)
+            sizes = [vals.size, wts.size]
+            got = reduce(np.concatenate([vals.ravel(), wts.ravel(), cnt.ravel()]))
+            vals, wts, cnt = (part.reshape(shape) for part, shape in zip(
+                np.split(got, np.cumsum(sizes)), [(world, m, G), (world, m, G), (world, m)]))
+        reductions += 1
+        if sk.size:  # every bracket row of a small query is here: finish as on one machine
+            c = cnt[:, sk].astype(np.intp)  # (world, queries)
+            # per query, its rows from every worker in (worker, slot) order; empty slots last after sorting
+            V = vals[:, sk, :].transpose(1, 0, 2).reshape(sk.size, world * G)
+            Wt = wts[:, sk, :].transpose(1, 0, 2).reshape(sk.size, world * G)
+            empty = (np.arange(G)[None, None, :] >= c.T[:, :, None]).reshape(sk.size, world * G)
+            order = np.lexsort((empty, V), axis=-1)  # by value, then rows before empty slots, then position
+            V, Wt, empty = (np.take_along_axis(a, order, axis=1) for a in (V, Wt, empty))
+            cum = f_lo[sk, None] + np.cumsum(np.where(empty, 0.0, Wt), axis=1)
+            last = ~empty & np.c_[(V[:, 1:] != V[:, :-1]) | empty[:, 1:], np.ones((sk.size, 1), dtype=bool)]
+            good = last & np.where(strict[sk, None], cum > target[sk, None], cum >= target[sk, None])
+            at = good.argmax(axis=1)
+            found = good[np.arange(sk.size), at]
+            x_out[sk] = np.where(found, V[np.arange(sk.size), at], hi[sk])
+            f_out[sk] = np.where(found, cum[np.arange(sk.size), at], f_hi[sk])
+            done[sk] = True
         if not big.any():
             break
         points = [np.unique(piv[:, k, :][pres[:, k, :] > 0]) if big[k] else np.zeros(0) for k in range(m)]
@@ -1295,8 +1337,9 @@ def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict)
         for k in np.flatnonzero(big):
             below[k, :points[k].size] = rows.weight_at_most(qleaf[k], points[k])
         below = reduce(below.ravel()).reshape(m, width)
+        reductions += 1
         for k in np.flatnonzero(big):
-            p, f = points[k], below[k, :points[k].size]
+            p, f = points[k], below_cut[k] + below[k, :points[k].size]
             good = ok(f, k)
             if good.any():
                 i = np.flatnonzero(good)[0]
@@ -1304,28 +1347,124 @@ def select_in_leaves(reduce, rank, world, rows: LeafRows, qleaf, target, strict)
             bad = np.flatnonzero(~good & (p < hi[k]))
             if bad.size:
                 lo[k], f_lo[k] = p[bad[-1]], f[bad[-1]]
-    return x_out, f_out, rounds
+    return x_out, f_out, reductions
+
+
+def leaf_cut(reduce, leaf, v, w, n_leaves, moments, qleaf, target, strict):
+    """The first step of the selection, on rows in any order: per leaf asked about, a histogram of
+    its rows (weight and count per bucket, summed over the workers in one reduction) over a value
+    range that holds its first query's target, and for each query the rows of the bucket where the
+    cumulative weight reaches its target.
+
+    Leaf l's buckets: ``floor((v - a_l) s_l)`` clipped to ``[0, B - 1]``, a non-decreasing function
+    of v, so each bucket holds the rows of an interval of values and the answer lies in the first
+    bucket whose cumulative weight qualifies.  The range ``[a_l, a_l + B / s_l]`` comes from the
+    leaf's weighted mean mu and standard deviation sd (``moments``: rows, weight, sum w v and sum
+    w v^2 per leaf, over all workers): at the level p = target / weight, Cantelli's inequality
+    puts the p-quantile within ``[mu - sd sqrt((1 - p) / p), mu + sd sqrt(p / (1 - p))]``, widened
+    by 1%.  The range decides only how few rows the chosen bucket keeps, never the answer: rows
+    outside it fall into the end buckets.
+
+    Returns (LeafRows of the chosen buckets' rows with the query as leaf, the ``select_in_leaves``
+    start: weight below each chosen bucket, its rows over all workers, queries no value satisfies)."""
+    _, w_l, s1, s2 = moments
+    m = qleaf.size
+    ul, first = np.unique(qleaf, return_index=True)
+    nl = ul.size
+    B = int(min(LEAF_CUT_BUCKETS, max(2, LEAF_NUMBERS // (2 * max(nl, 1)))))
+    W = w_l[ul]
+    with np.errstate(all="ignore"):
+        mu = s1[ul] / W
+        sd = np.sqrt(np.maximum(s2[ul] / W - mu * mu, 0.0))
+        p = np.clip(target[first] / W, 1e-3, 1.0 - 1e-3)
+        a, b = mu - sd * np.sqrt((1.0 - p) / p), mu + sd * np.sqrt(p / (1.0 - p))
+        a, b = a - 0.01 * (b - a), b + 0.01 * (b - a)
+        scale = B / (b - a)
+    usable = np.isfinite(a) & np.isfinite(scale) & (scale > 0)
+    a, scale = np.where(usable, a, 0.0), np.where(usable, scale, 0.0)  # else one bucket: all rows in bucket 0
+    slot = np.full(n_leaves, -1, dtype=np.intp)
+    slot[ul] = np.arange(nl)
+    k = slot[leaf]
+    if (k < 0).any():  # (rows of leaves nobody asks about)
+        keep = np.flatnonzero(k >= 0)
+        k, v, w = k[keep], v[keep], None if w is None else w[keep]
+    with np.errstate(all="ignore"):
+        x = (v - a[k]) * scale[k]
+    np.clip(x, 0.0, B - 1.0, out=x)
+    cell = k * B + x.astype(np.intp)
+    hn = np.bincount(cell, minlength=nl * B).astype(np.float64)
+    hw = hn if w is None else np.bincount(cell, weights=w, minlength=nl * B)
+    got = reduce(np.concatenate([hw, hn]))
+    hw, hn = got[:nl * B].reshape(nl, B), got[nl * B:].reshape(nl, B)
+    cum = np.cumsum(hw, axis=1)
+    j = slot[qleaf]  # each query's histogram
+    good = np.where(strict[:, None], cum[j] > target[:, None], cum[j] >= target[:, None])
+    found = good.any(axis=1)
+    chosen = good.argmax(axis=1)
+    below = np.where(chosen > 0, cum[j, np.maximum(chosen - 1, 0)], 0.0)
+    count = np.where(found, hn[j, chosen], 0.0)
+    # the rows of each query's chosen bucket, the queries of one leaf taken one at a time
+    by_leaf = np.argsort(qleaf, kind="stable")
+    sl = qleaf[by_leaf]
+    copy = np.empty(m, dtype=np.intp)
+    copy[by_leaf] = np.arange(m) - np.searchsorted(sl, sl, side="left")
+    parts = []
+    for c in range(int(copy.max()) + 1 if m else 0):
+        qs = np.flatnonzero((copy == c) & found)
+        want, query = np.full(nl, -1, dtype=np.intp), np.zeros(nl, dtype=np.intp)
+        want[j[qs]], query[j[qs]] = j[qs] * B + chosen[qs], qs
+        sel = np.flatnonzero(cell == want[k])
+        parts.append((query[k[sel]], v[sel], None if w is None else w[sel]))
+    qk = np.concatenate([p[0] for p in parts]) if parts else np.zeros(0, dtype=np.intp)
+    vk = np.concatenate([p[1] for p in parts]) if parts else np.zeros(0)
+    wk = None if w is None else (np.concatenate([p[2] for p in parts]) if parts else np.zeros(0))
+    return LeafRows(qk, vk, wk, m), (below, count, ~found)
 
 
 def leaf_quantiles(reduce, rank, world, leaf, v, w, n_leaves, q, definition):
     """Per leaf, the q-quantile of ``v`` over the rows of all workers by ``definition`` (the
-    definitions of ``lossfam._boost.quantiles.grouped_quantile``, the same numbers), exactly, by
-    ``select_in_leaves``; returns (values, has_rows, reduction rounds).  Leaves without rows of
-    positive weight get 0 and has_rows False."""
+    definitions of ``lossfam._boost.quantiles.grouped_quantile``, the same numbers), exactly:
+    one reduction for the leaves' rows, weights and first two moments, the cut by histogram
+    (``leaf_cut``, one reduction) and ``select_in_leaves`` on the rows it keeps (one reduction
+    when they are few, as they are unless the values crowd into one bucket).  Returns (values,
+    has_rows, reductions).  Leaves without rows of positive weight get 0 and has_rows False."""
     from .quantiles import DEFINITIONS, UNWEIGHTED_ONLY
 
     if definition not in DEFINITIONS:
         raise ValueError(f"unknown quantile definition {definition!r}; one of {DEFINITIONS}")
-    if definition in UNWEIGHTED_ONLY and w is not None:
-        wa = np.asarray(w)
-        if reduce(np.array([float(np.any((wa > 0) & (wa != 1.0)))]))[0] > 0:
-            raise ValueError(f"the {definition!r} quantile is defined for unit weights only")
-        w = None
-    rows = LeafRows(leaf, v, w, n_leaves)
-    n, total = (reduce(np.concatenate(rows.totals())).reshape(2, n_leaves))
+    calls = [0]
+
+    def counted(a):
+        calls[0] += 1
+        return reduce(a)
+
+    leaf = np.asarray(leaf, dtype=np.intp).reshape(-1)
+    v = np.asarray(v, dtype=np.float64).reshape(-1)
+    if w is not None:
+        w = np.asarray(w, dtype=np.float64).reshape(-1)
+        keep = w > 0
+        if definition in UNWEIGHTED_ONLY:
+            if counted(np.array([float(np.any(keep & (w != 1.0)))]))[0] > 0:
+                raise ValueError(f"the {definition!r} quantile is defined for unit weights only")
+        if not keep.all():
+            leaf, v, w = leaf[keep], v[keep], w[keep]
+        if definition in UNWEIGHTED_ONLY or not (w != 1.0).any():
+            w = None  # (unit weights: the counts are the weights)
+    n_loc = np.bincount(leaf, minlength=n_leaves).astype(np.float64)
+    wv = v if w is None else w * v
+    moments = counted(np.concatenate([n_loc, n_loc if w is None else np.bincount(leaf, weights=w, minlength=n_leaves),
+                                      np.bincount(leaf, weights=wv, minlength=n_leaves),
+                                      np.bincount(leaf, weights=wv * v, minlength=n_leaves)])).reshape(4, n_leaves)
+    n, total = moments[0], moments[1]
     has = total > 0
     leaves = np.flatnonzero(has)
     values = np.zeros(n_leaves)
+
+    def select(qleaf, target, strict):
+        rows, start = leaf_cut(counted, leaf, v, w, n_leaves, moments, qleaf, target, strict)
+        x, _, _ = select_in_leaves(counted, rank, world, rows, np.arange(qleaf.size), target, strict, start)
+        return x
+
     if definition in UNWEIGHTED_ONLY:
         nn = n[leaves]
         h = (nn - 1.0) * q if definition == "linear" else (nn + 1.0) * q - 1.0
@@ -1333,20 +1472,18 @@ def leaf_quantiles(reduce, rank, world, leaf, v, w, n_leaves, q, definition):
         lo = np.floor(h)
         frac = h - lo
         r1 = np.minimum(lo + 1.0, nn - 1.0)
-        x, _, rounds = select_in_leaves(reduce, rank, world, rows, np.r_[leaves, leaves], np.r_[lo + 1.0, r1 + 1.0],
-                                        np.zeros(2 * leaves.size, dtype=bool))
+        x = select(np.r_[leaves, leaves], np.r_[lo + 1.0, r1 + 1.0], np.zeros(2 * leaves.size, dtype=bool))
         a, b = x[:leaves.size], x[leaves.size:]
         values[leaves] = np.where(frac < 0.5, a + (b - a) * frac, b - (b - a) * (1.0 - frac))
-        return values, has, rounds
+        return values, has, calls[0]
     target = q * total[leaves]
     tol = TIE_TOL * total[leaves]
     if definition == "lower":
-        x, _, rounds = select_in_leaves(reduce, rank, world, rows, leaves, target - tol, np.zeros(leaves.size, bool))
-        values[leaves] = x
-        return values, has, rounds
-    x, _, rounds = select_in_leaves(reduce, rank, world, rows, np.r_[leaves, leaves], np.r_[target - tol, target + tol],
-                                    np.r_[np.zeros(leaves.size, bool), np.ones(leaves.size, bool)])
+        values[leaves] = select(leaves, target - tol, np.zeros(leaves.size, bool))
+        return values, has, calls[0]
+    x = select(np.r_[leaves, leaves], np.r_[target - tol, target + tol],
+               np.r_[np.zeros(leaves.size, bool), np.ones(leaves.size, bool)])
     a, b = x[:leaves.size], x[leaves.size:]
     b = np.where(np.isinf(b), a, b)  # nothing beyond: the last value (as on one machine)
     values[leaves] = 0.5 * (a + b)
-    return values, has, rounds
+    return values, has, calls[0]

@@ -42,6 +42,7 @@ import dataclasses
 import math
 import warnings
 import weakref
+from concurrent.futures import ThreadPoolExecutor
 
 import numpy as np
 
@@ -88,21 +89,35 @@ class Gradients:
 
     ``engine_buffers=True`` (for the engines' training loops): the result goes, row block by
     row block, into two float32 arrays that are reused from call to call (LightGBM and
-    XGBoost take float32 gradients; the values are those of the float64 result rounded as the
-    engines round them, so nothing changes but the time and the memory).  The caller must
-    hand them to the engine before the next call.
+    XGBoost take float32 gradients): each block is assembled in float64 by the same operations
+    as the whole arrays, while it is in cache, then rounded into the buffers, so the values are
+    those of the float64 result rounded as the engines round them, bit for bit.  The checks
+    apply to the values the engine receives: one that is finite in float64 but beyond float32's
+    range counts as infinite.  The caller must hand the buffers to the engine before the next
+    call.
+
+    ``workers`` (engine buffers only): with more than one, the row blocks of a large call are
+    shared among that many threads (the caller's and ``workers - 1`` pooled ones; numpy releases
+    the GIL inside each operation), so that the objective uses the cores the engine uses.  Every
+    row is computed by the same operations whichever thread takes it, so the result does not
+    depend on ``workers``.  The family's ``_grad_hess`` is then called on different row blocks
+    at once: it must keep no state between calls.  The engine adapters use one worker: two were
+    not measured faster on a shared, loaded 2-core machine (benchmarks/objective_call.py).
     """
 
-    _BLOCK = 1 << 16  # rows per block of the cap's scratch array, and of the engine buffers
+    _BLOCK = 1 << 15  # rows per block of the engine buffers (a few float64 blocks stay in L2)
+    _MIN_BLOCKS_PER_WORKER = 2  # fewer rows than this many blocks per worker: one thread
 
-    def __init__(self, fam, guard: Guard, *, engine_buffers=False):
+    def __init__(self, fam, guard: Guard, *, engine_buffers=False, workers=1):
         self.family = fam
         self.guard = guard
         self.unit = facts.dispersion_unit(fam)
         self.factor = math.exp(guard.damping) if guard.damping is not None else 1.0
         self.engine_buffers = engine_buffers
-        self._tmp = None
+        self.workers = max(1, int(workers))
         self._out = None
+        self._scratch = {}
+        self._pool = None
 
     def __call__(self, y, raw, w):
         """(g, h) at validated float64 ``y`` (float32 with ``engine_buffers``), ``raw`` (float64) and
@@ -121,6 +136,10 @@ class Gradients:
                 g, h = censored_grad_hess(self.family, y, raw)
             else:
                 g, h = self.family._grad_hess(y, raw)
+        return self._scaled(g, h, w)
+
+    def _scaled(self, g, h, w):
+        """The family's (g, h) times the unit, guarded and weighted, in place."""
         if self.unit != 1.0:
             g *= self.unit
             h *= self.unit
@@ -128,12 +147,10 @@ class Gradients:
             h *= self.factor
         if self.guard.limit is not None:
             inv = 1.0 / self.guard.limit
-            n = min(g.size, self._BLOCK)
-            if self._tmp is None or self._tmp.size != n:
-                self._tmp = np.empty(n)
+            tmp = np.empty(min(g.size, self._BLOCK))  # |g| / limit, a block at a time
             for i in range(0, g.size, self._BLOCK):
                 gb, hb = g[i:i + self._BLOCK], h[i:i + self._BLOCK]
-                a = np.abs(gb, out=self._tmp[:gb.size])
+                a = np.abs(gb, out=tmp[:gb.size])
                 a *= inv
                 np.maximum(hb, a, out=hb)  # NaN propagates and is caught below
         if w is not None:
@@ -141,41 +158,110 @@ class Gradients:
             h *= w
         return g, h
 
+    # ------------------------------------------------------------------ engine buffers
     def _into_buffers(self, y, raw, w):
         n = y.size
-        if self._out is None or self._out[0].size != n:
-            self._out = (np.empty(n, dtype=np.float32), np.empty(n, dtype=np.float32))
-        g32, h32 = self._out
-        for i in range(0, n, self._BLOCK):
-            rows = slice(i, i + self._BLOCK)
-            g, h = self._assemble(y[rows].astype(np.float64, copy=False), raw[rows], None if w is None else w[rows])
-            if not _plausible(g, h):
-                if _invalid(g, h).any():
-                    # the error names rows of the whole set: let the whole-array path raise it
-                    whole_g, whole_h = self._assemble(np.asarray(y, dtype=np.float64), raw, w)
-                    self._repair(whole_g, whole_h, raw)
-                self._repair(g, h, raw[rows])  # rows with h = 0 only
-            g32[rows] = g
-            h32[rows] = h
-        return g32, h32
+        if self._out is None or self._out[0].shape[1] != n:
+            # one array holds the gradient row and the Hessian row (each contiguous), so that one
+            # reduction checks both; the row views are what the engine receives
+            both = np.empty((2, n), dtype=np.float32)
+            self._out = (both, both[0], both[1])
+        block = self._BLOCK
+        if n <= block:  # one block: no slicing (this runs once per round, and matters on small data)
+            with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+                mask = self._fill_block(y, raw, w, *self._out, 0)
+            bad = [] if mask is None else [(0, mask)]
+        else:
+            k = min(self.workers, n // (block * self._MIN_BLOCKS_PER_WORKER))
+            blocks = -(-n // block)
+            cut = [blocks * j // max(k, 1) * block for j in range(max(k, 1))] + [n]  # contiguous runs of blocks
+            jobs = [self._worker_pool().submit(self._fill_rows, y, raw, w, cut[j], cut[j + 1], j)
+                    for j in range(1, k)]
+            bad = self._fill_rows(y, raw, w, 0, cut[1], 0)
+            for job in jobs:
+                bad += job.result()
+        if bad:
+            rows = np.zeros(n, dtype=bool)
+            for start, mask in bad:
+                rows[start:start + mask.size] = mask
+            raise self._invalid_error(rows, raw)
+        return self._out[1], self._out[2]
+
+    def _fill_rows(self, y, raw, w, lo, hi, slot):
+        """Fill the engine buffers on rows lo:hi, block by block; the (start, mask) of each block with
+        invalid rows."""
+        both, g32, h32 = self._out
+        block = self._BLOCK
+        bad = []
+        with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
+            for i in range(lo, hi, block):
+                j = min(i + block, hi)
+                mask = self._fill_block(y[i:j], raw[i:j], None if w is None else w[i:j], both[:, i:j], g32[i:j],
+                                        h32[i:j], slot)
+                if mask is not None:
+                    bad.append((i, mask))
+        return bad
+
+    def _fill_block(self, y, raw, w, both, g32, h32, slot):
+        """One block of rows into the buffers (``both`` = the block's gradient and Hessian rows), in
+        the caller's error state; None, or the mask of the block's invalid rows.  Dead rows are
+        repaired in place."""
+        if y.dtype != np.float64:  # float32 labels: widened exactly into a reused array of the thread's
+            y64 = self._scratch.get(slot)
+            if y64 is None or y64.size < y.size:
+                y64 = self._scratch[slot] = np.empty(max(y.size, min(self._BLOCK, 1 << 12)))
+            y64 = y64[:y.size]
+            y64[:] = y
+            y = y64
+        g, h = self._scaled(*self.family._grad_hess(y, raw), w)
+        g32[:] = g
+        h32[:] = h
+        # quick check, two reductions: every h > 0, and a finite sum of g and h proves both finite
+        if np.minimum.reduce(h32) > 0 and math.isfinite(np.add.reduce(both, axis=None)):
+            return None
+        return self._check_block(y, raw, w, g32, h32)
+
+    def _check_block(self, y, raw, w, g32, h32):
+        """The exact check of one block that failed the quick one: its float64 values recomputed and
+        checked as ``_repair`` checks them, plus float32 overflow; the mask of invalid rows, or None
+        after repairing the dead rows (h = 0, g != 0) in the buffers."""
+        g, h = self._assemble(y, raw, w)
+        bad = _invalid(g, h) | _invalid(g32, h32)
+        if bad.any():
+            return bad
+        dead = (h32 == 0) & (g32 != 0)
+        if dead.any():
+            h32[dead] = np.abs(g32[dead])
+        return None
+
+    def _worker_pool(self):
+        if self._pool is None:
+            self._pool = ThreadPoolExecutor(max_workers=self.workers - 1, thread_name_prefix="lossfam-gradients")
+        return self._pool
+
+    # ------------------------------------------------------------------ checks
+    def _invalid_error(self, bad, raw):
+        return ValueError(
+            f"{self.family.name}: the gradient or Hessian is NaN, infinite or negative at "
+            f"{_checks._describe_rows(bad, raw).replace(' outside', '')} (raw scores); the raw scores have "
+            "left the range where the nll is finite: use a smaller learning rate, or a step_limit"
+        )
 
     def _repair(self, g, h, raw):
         bad = _invalid(g, h)
         if bad.any():
-            raise ValueError(
-                f"{self.family.name}: the gradient or Hessian is NaN, infinite or negative at "
-                f"{_checks._describe_rows(bad, raw).replace(' outside', '')} (raw scores); the raw scores have "
-                "left the range where the nll is finite: use a smaller learning rate, or a step_limit"
-            )
+            raise self._invalid_error(bad, raw)
         dead = (h == 0) & (g != 0)
         if dead.any():
             h[dead] = np.abs(g[dead])
 
     def __getstate__(self):
-        return {"family": self.family, "guard": self.guard, "engine_buffers": self.engine_buffers}
+        return {"family": self.family, "guard": self.guard, "engine_buffers": self.engine_buffers,
+                "workers": self.workers}
 
     def __setstate__(self, state):
-        self.__init__(state["family"], state["guard"], engine_buffers=state.get("engine_buffers", False))
+        self.__init__(state["family"], state["guard"], engine_buffers=state.get("engine_buffers", False),
+                      workers=state.get("workers", 1))
 
 
 def _plausible(g, h):
@@ -234,8 +320,9 @@ class TargetCache:
     def get(self, fam, keys, read, *, for_nll, narrow=False):
         """``narrow=True``: float32 targets are validated in float64 but kept in float32 (half the
         memory; widening them again is exact), for ``Gradients(engine_buffers=True)``."""
-        if self._refs is not None and len(self._refs) == len(keys) and all(
-                r() is k for r, k in zip(self._refs, keys)):
+        refs = self._refs
+        if refs is not None and len(refs) == len(keys) and (
+                refs[0]() is keys[0] if len(keys) == 1 else all(r() is k for r, k in zip(refs, keys))):
             return self._y, self._w
         y, w = read()
         if isinstance(y, IntervalTarget):

@@ -133,8 +133,12 @@ def by_row_blocks(fill, inputs, n_out, n_scratch=0, rows=BLOCK_ROWS, out=None):
     arrays of the inputs' length, e.g. buffers reused across calls) when given.
     """
     first = inputs[0]
-    same = all(isinstance(a, np.ndarray) and a.ndim == 1 and a.dtype == np.float64
-               and a.shape == first.shape for a in inputs)
+    shape = first.shape if isinstance(first, np.ndarray) else None
+    same = shape is not None and len(shape) == 1
+    for a in inputs:  # a plain loop: this runs once per boosting round, and a generator costs more
+        if not (same and isinstance(a, np.ndarray) and a.dtype == np.float64 and a.shape == shape):
+            same = False
+            break
     if not same:
         shape = np.broadcast_shapes(*(np.shape(a) for a in inputs))
         dtype = np.result_type(*inputs, 1.0)
@@ -142,10 +146,13 @@ def by_row_blocks(fill, inputs, n_out, n_scratch=0, rows=BLOCK_ROWS, out=None):
             list(out) + [np.empty(shape, dtype) for _ in range(n_scratch)])
         fill(*inputs, *outs)
         return outs[:n_out]
-    n = first.shape[0]
+    n = shape[0]
     outs = [np.empty(n) for _ in range(n_out)] if out is None else list(out)
     if n <= rows:
-        fill(*inputs, *outs, *(np.empty(n) for _ in range(n_scratch)))
+        if n_scratch:
+            fill(*inputs, *outs, *(np.empty(n) for _ in range(n_scratch)))
+        else:
+            fill(*inputs, *outs)
         return outs
     scratch = [np.empty(rows) for _ in range(n_scratch)]
     for start in range(0, n, rows):

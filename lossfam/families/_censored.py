@@ -56,8 +56,9 @@ target with no censored row gives today's numbers bit for bit.
 
 The gradient and Hessian, fast
 ------------------------------
-The log-space terms above serve the nll, and the gradient and Hessian of families that declare
-only their pieces.  A family that also declares its standard law in linear space
+The log-space terms above serve the nll (of one-sided rows only where the law has no
+``TailLaw.log_tail``: one log tail per row, e.g. ``log_ndtr``, is far cheaper than four pieces
+at two bounds), and the gradient and Hessian of families that declare only their pieces.  A family that also declares its standard law in linear space
 (``Family._tail_law``, a :class:`TailLaw`) gets ``censored_grad_hess`` by kind of row: the
 family's own kernel over all rows (censored rows given a stand-in y, then overwritten), the
 one-sided rows by their hazard ratio alone, the closed intervals by the difference of their
@@ -174,12 +175,36 @@ def _split(target):
 
 
 def censored_nll(fam, target, raw):
+    """The censored nll per row: exact rows by the family's ``_nll``, closed intervals by the
+    log-space terms (``interval_terms``), one-sided rows by the law's own log tail where its
+    TailLaw has one (``TailLaw.log_tail``: -log S0 or -log F0 at z, one function call), else by
+    the log-space terms too."""
     ex, ce, y_ex, lo, hi = _split(target)
     out = np.empty(target.size)
     if ex.size:
         out[ex] = fam._nll(y_ex, raw[ex])
-    if ce.size:
+    if not ce.size:
+        return out
+    law_s = fam._tail_law()
+    if law_s is None or law_s[0].log_tail is None:
         out[ce] = interval_terms(fam, lo, hi, raw[ce], derivatives=False)[0]
+        return out
+    law, s = law_s
+    s = float(s)
+    rows = _rows_for(fam, target, law)
+    with np.errstate(over="ignore", under="ignore", divide="ignore", invalid="ignore"):
+        for kind, upper in (("right", True), ("left", False)):
+            idx = rows.idx[kind]
+            if idx.size:
+                z = np.subtract(rows.t_lo[kind] if upper else rows.t_hi[kind], raw[idx])
+                if s != 1.0:
+                    z /= s
+                out[idx] = np.negative(law.log_tail(z, upper))
+        idx = rows.idx["closed"]
+        if idx.size:
+            out[idx] = interval_terms(fam, rows.lo["closed"], rows.hi["closed"], raw[idx], derivatives=False)[0]
+        if rows.idx["void"].size:
+            out[rows.idx["void"]] = 0.0
     return out
 
 
@@ -230,6 +255,9 @@ class TailLaw:
     #: None, or ``closed(z_lo, z_hi)`` -> (s g, s^2 h) of closed intervals in closed form (no
     #: rows left for the log-space path)
     closed = None
+    #: None, or ``log_tail(z, upper)`` -> log S0(z) where ``upper`` (a bool for all rows), else
+    #: log F0(z), accurate in both tails (for the nll of one-sided rows)
+    log_tail = None
 
     def pdf(self, z):  # pragma: no cover - abstract
         raise NotImplementedError
@@ -256,6 +284,10 @@ class TailLaw:
         """(``tail(z, upper)``, ``pdf(z)``): a law may share work between the two."""
         return self.tail(z, upper), self.pdf(z)
 
+    def tail_pdf_score(self, z, upper):
+        """(``tail(z, upper)``, ``pdf(z)``, ``score(z)``), new arrays: a law may share work."""
+        return (*self.tail_pdf(z, upper), self.score(z))
+
     def right(self, z):
         """(r, c) of right-censored rows from the sf (generic; NaN where S0 < TINY)."""
         tail = self.sf(z)
@@ -275,6 +307,28 @@ class TailLaw:
             np.copyto(c, 0.0, where=~(c > ROUNDING * (r + np.abs(psi))))
         r[~(tail >= TINY)] = np.nan
         return r, c
+
+
+def int_power(x, m):
+    """x ** m for an integer m >= 1 by repeated squaring (numpy's power calls pow for m > 2)."""
+    out = None
+    sq = x
+    while True:
+        if m & 1:
+            out = sq.copy() if out is None else np.multiply(out, sq, out=out)
+        m >>= 1
+        if not m:
+            return out
+        sq = sq * sq
+
+
+def horner(coef, x):
+    """sum_j coef[j] x^j (coef a tuple of floats, lowest degree first)."""
+    out = np.full(x.shape, coef[-1])
+    for a in coef[-2::-1]:
+        out *= x
+        out += a
+    return out
 
 
 class NormalLaw(TailLaw):
@@ -310,6 +364,11 @@ class NormalLaw(TailLaw):
 
     def cdf(self, z):
         return ndtr(z)
+
+    @staticmethod
+    def log_tail(z, upper):
+        """log S0(z) = log_ndtr(-z) or log F0(z) = log_ndtr(z) (scipy.special.log_ndtr)."""
+        return log_ndtr(np.negative(z) if upper else z)
 
     def right(self, z):
         far = z > self.FAR
@@ -406,8 +465,8 @@ def _closed(law, s, tl, th, raw):
         return g, h, None
     upper = zl + zh
     upper = upper > 2.0 * law.median
-    t_lo, a = law.tail_pdf(zl, upper)
-    t_hi, b_hi = law.tail_pdf(zh, upper)
+    t_lo, a, psi_lo = law.tail_pdf_score(zl, upper)
+    t_hi, b_hi, psi_hi = law.tail_pdf_score(zh, upper)
     big = np.where(upper, t_lo, t_hi)
     p = np.where(upper, t_hi, t_lo)
     np.subtract(big, p, out=p)
@@ -419,9 +478,9 @@ def _closed(law, s, tl, th, raw):
     a = b_hi  # f0(z_hi) / (s P)
     a /= p
     g = a - b
-    ea = law.score(zh)
+    ea = psi_hi
     ea *= a
-    eb = law.score(zl)
+    eb = psi_lo
     eb *= b
     h = np.subtract(eb, ea, out=ea)  # (psi_lo b - psi_hi a), times 1 / s below
     if s != 1.0:

@@ -60,6 +60,7 @@ share the registry (``lossfam.available(scores="several")`` lists these).
 from __future__ import annotations
 
 import dataclasses
+import warnings
 from typing import ClassVar
 
 import numpy as np
@@ -69,8 +70,34 @@ from .. import _checks
 from .._checks import Domain
 from ..links import Link
 from ._base import Family
+from .student_t import _log_abs_diff
 
 CURVATURES = ("newton", "fisher", "natural")
+
+
+def scaled_residual(y, loc, log_scale, power=1.0):
+    r"""(y - loc) e^{-power log_scale} for a log-scale raw score, without NaN.
+
+    The plain product is exact to rounding wherever the difference and e^{-power log_scale} are
+    both finite and the product is finite and not 0 (or the difference is 0).  Elsewhere (the
+    difference overflows, e^{-power log_scale} overflows or underflows, so 0 * inf or inf * 0
+    could arise, or a finite exact value would round to +-inf or 0 in the product) it is
+
+        sign(y - loc) exp(log|y - loc| - power log_scale),
+
+    with log|y - loc| = log 2 + log|y/2 - loc/2| where the difference overflows: +-inf only where
+    the exact value is beyond float64, 0 only where it is below the smallest subnormal or the
+    difference is 0."""
+    with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+        d = y - loc
+        out = d * np.exp(-power * log_scale)
+        # fast exit (engines call this every round): every product finite, and 0 only where d is
+        if np.isfinite(np.sum(out)) and np.count_nonzero(out) == np.count_nonzero(d):
+            return out
+        redo = ~np.isfinite(out) | ((out == 0) & (d != 0))
+        if np.any(redo):
+            out[redo] = np.sign(d[redo]) * np.exp(_log_abs_diff(y[redo], loc[redo]) - power * log_scale[redo])
+    return out
 
 
 @dataclasses.dataclass(frozen=True)
@@ -170,16 +197,16 @@ class SeveralScoreFamily:
     def gradient(self, y, raw, weight=None) -> np.ndarray:
         """(n, k): d (weight * nll) / d raw."""
         y, raw, w = self._inputs(y, raw, weight, for_nll=False)
-        with np.errstate(over="ignore"):
+        with np.errstate(over="ignore"):  # +-inf only where the exact value is beyond float64
             g = self._gradient(y, raw)
-        return g if w is None else g * w[:, None]
+            return g if w is None else g * w[:, None]
 
     def hessian(self, y, raw, weight=None) -> np.ndarray:
         """(n, k, k): the exact matrix of second derivatives of weight * nll in raw."""
         y, raw, w = self._inputs(y, raw, weight, for_nll=False)
         with np.errstate(over="ignore"):
             h = self._hessian(y, raw)
-        return h if w is None else h * w[:, None, None]
+            return h if w is None else h * w[:, None, None]
 
     def fisher(self, raw, weight=None) -> np.ndarray:
         """(n, k, k): the expected information E_y[d^2 nll / d raw d raw^T] at raw."""
@@ -187,7 +214,7 @@ class SeveralScoreFamily:
         w = None if weight is None else _checks.check_weight(weight, raw[:, 0], self.name)
         with np.errstate(over="ignore"):
             f = self._fisher(raw)
-        return f if w is None else f * w[:, None, None]
+            return f if w is None else f * w[:, None, None]
 
     def grad_hess(self, y, raw, weight=None, *, curvature: str | None = None):
         """(gradient (n, k), diagonal curvature (n, k)) of weight * nll, as the engines use them.
@@ -208,8 +235,9 @@ class SeveralScoreFamily:
             else:
                 g, d = self._gradient(y, raw), self._fisher_diagonal(raw)
         if w is not None:
-            g = g * w[:, None]
-            d = d * w[:, None]
+            with np.errstate(over="ignore"):
+                g = g * w[:, None]
+                d = d * w[:, None]
         return g, d
 
     def baseline(self, y, weight=None, *, offset=None) -> np.ndarray:
@@ -337,10 +365,19 @@ class SeveralScoreFamily:
             raw = np.broadcast_to(c, (n, self.n_scores)) + o
             f = float(np.dot(w, self._nll(y, raw)) / sw)
             g = (w @ self._gradient(y, np.ascontiguousarray(raw))) / sw
+            if not (np.isfinite(f) and np.isfinite(g).all()):  # a trial point whose nll leaves float64
+                return np.inf, np.zeros_like(c)
             return f, g
 
-        res = optimize.minimize(value_grad, self._start(y, w, offset), jac=True, method="BFGS",
-                                options={"gtol": 1e-10})
+        start = self._start(y, w, offset)
+        # far offsets can put the search's trial points where the nll is beyond float64: those are
+        # rejected (infinite value) without warnings, and the answer is checked below
+        with np.errstate(all="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            res = optimize.minimize(value_grad, start, jac=True, method="BFGS", options={"gtol": 1e-10})
+            f_end = value_grad(res.x)[0]
+        if not np.isfinite(f_end):
+            raise ValueError(f"{self.name}: no constant raw scores give a finite nll with these offsets")
         return res.x
 
     def _distribution(self, raw):  # pragma: no cover - abstract

@@ -18,7 +18,8 @@ check function rho_tau(u) = u (tau - 1[u < 0]).  With v = rho_tau(y - mu) / b >=
                rate tau and v = tau (y - mu) / b), independent of the side.  So
                E[d/dr0^2] = tau (1 - tau) / b^2,  E[d/dr1^2] = Var(v) = 1,
                E[d/dr0 d/dr1] = E[1[y < mu] - tau] E[1 - v] / b = 0:
-               the Fisher matrix is diagonal, diag(tau (1 - tau) / b^2, 1).
+               the Fisher matrix is diagonal, diag(tau (1 - tau) / b^2, 1), and the natural gradient is
+               ((1[y < mu] - tau) b / (tau (1 - tau)), 1 - v).
 
 Newton's diagonal (``_newton_diagonal``): the exact d2/dr0^2 is 0, so the location column takes
 the Fisher entry tau (1 - tau) / b^2 (a group's Newton step is then b (mean of tau - 1[y < mu])
@@ -29,6 +30,11 @@ tau-quantile of y - o0 (the midpoint rule of the one-score family, whatever b), 
 weighted mean of rho_tau(y - o0 - r0) (d/dr1 of the weighted nll is sum w (1 - v) = 0), i.e.
 (asymmetric_laplace baseline, log of its fitted scale).  With an offset on the scale column the
 generic search (BFGS) is used from there.
+
+Far raw scores.  z = (y - mu) / b comes from ``scaled_residual`` (no 0 * inf where e^{-r1}
+overflows or underflows or y - mu overflows), and v = rho_tau(z) (rho_tau is positively
+homogeneous): values are finite, or +-inf exactly where they are beyond float64; the location
+curvature tau (1 - tau) / b^2 underflows to 0 for r1 > 372.5.
 
 Predictive law: scipy.stats.laplace_asymmetric(kappa, loc=mu, scale=b / sqrt(tau (1 - tau))),
 kappa = sqrt(tau / (1 - tau)), as the one-score family.
@@ -42,7 +48,7 @@ from scipy import stats
 
 from .._checks import OPEN_UNIT, REAL
 from ..links import IDENTITY, LOG
-from ._several import SeveralScoreFamily
+from ._several import SeveralScoreFamily, scaled_residual
 from .asymmetric_laplace import AsymmetricLaplace, pinball
 
 
@@ -69,10 +75,11 @@ class AsymmetricLaplaceSpread(SeveralScoreFamily):
         """(1[y < mu] - tau, with 1/2 - tau at the kink; v; 1 / b)."""
         t = self.quantile
         inv_b = np.exp(-raw[:, 1])
-        d = y - raw[:, 0]
-        with np.errstate(invalid="ignore"):
-            v = np.where(d == 0, 0.0, pinball(d, t) * inv_b)  # 0 * inf when e^{-r1} overflows
-        return 0.5 * (1.0 - np.sign(d)) - t, v, inv_b
+        # rho_tau is positively homogeneous: rho_tau(y - mu) / b = rho_tau(z), z = (y - mu) / b
+        z = scaled_residual(y, raw[:, 0], raw[:, 1])
+        with np.errstate(over="ignore"):
+            side = np.sign(y - raw[:, 0])  # the sign of y - mu even where z underflows
+        return 0.5 * (1.0 - side) - t, pinball(z, t), inv_b
 
     def _nll(self, y, raw):
         t = self.quantile
@@ -105,6 +112,15 @@ class AsymmetricLaplaceSpread(SeveralScoreFamily):
         t = self.quantile
         _, v, inv_b = self._parts(y, raw)
         return np.column_stack([t * (1.0 - t) * inv_b * inv_b, np.where(v > 0, v, 1.0)])
+
+    def _natural_direction(self, y, raw):
+        # F^{-1} g in closed form, ((1[y < mu] - tau) b / (tau (1 - tau)), 1 - v): no inf / inf
+        # where 1/b overflows, 0 at the kink at tau = 1/2 even where b overflows
+        t = self.quantile
+        s, v, _ = self._parts(y, raw)
+        with np.errstate(over="ignore", invalid="ignore"):
+            b = np.exp(raw[:, 1])
+            return np.column_stack([np.where(s == 0, 0.0, s * b / (t * (1.0 - t))), 1.0 - v])
 
     def _distribution(self, raw):
         t = self.quantile

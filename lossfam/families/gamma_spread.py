@@ -31,7 +31,9 @@ Accuracy (each quantity is a small difference of large terms somewhere):
     Stirling's series c(k) = (log(2 pi) - r1) / 2 + 1/(12k) - 1/(360k^3) + 1/(1260k^5)
     - 1/(1680k^7) (A&S eq. 6.1.41; truncation ~1e-14 absolute at k = 16), so a huge shape does
     not lose the nll to the cancellation of lgamma(k) and k log k.
-Where e^{+-raw} leaves float64 the values are +-inf, never NaN (0 * inf is taken in logs).
+Where e^{+-raw} leaves float64 the values are +-inf, never NaN (0 * inf is taken in logs): m(k)
+is 1/2 where k = e^{r1} overflows; the natural gradient's mean column is -expm1(l) (k cancelled);
+the Fisher entry k (and Newton's k e^l) underflows to 0 for r1 below about -745.
 
 Newton's diagonal: the base rule (d2/dr1^2 may be negative for rows near the mean; then f(k)).
 Baseline: r0 = the one-score gamma baseline, log(sum w y e^{-o0} / sum w) (the r0-score
@@ -57,10 +59,13 @@ _HALF_LOG_2PI = 0.5 * float(np.log(2.0 * np.pi))
 
 
 def _m(k, r1):
-    """m(k) = k (log k - digamma(k)) (module docstring), r1 = log k."""
+    """m(k) = k (log k - digamma(k)) (module docstring), r1 = log k; 1/2 where k overflows (the
+    series m(k) = 1/2 + 1/(12k) - ..., with 1/(12k) below 1e-309 there)."""
     small = k < 1.0
     ks = np.where(small, k, 0.5)
-    return np.where(small, 1.0 + ks * (r1 - digamma(ks + 1.0)), k * _log_minus_digamma(np.where(small, 1.0, k)))
+    kb = np.where(small | np.isinf(k), 1.0, k)
+    return np.where(small, 1.0 + ks * (r1 - digamma(ks + 1.0)),
+                    np.where(np.isinf(k), 0.5, kb * _log_minus_digamma(kb)))
 
 
 def _f(k):
@@ -108,8 +113,8 @@ class GammaSpread(SeveralScoreFamily):
         with np.errstate(over="ignore", invalid="ignore", under="ignore"):
             out = np.exp(r1) * x
             bad = np.isnan(out)
-            if np.any(bad):
-                out[bad] = np.sign(x[bad]) * np.exp(r1[bad] + log_x[bad])
+            if np.any(bad):  # 0 where x = 0 (k x = 0 for every finite k, its limit as k -> inf)
+                out[bad] = np.where(x[bad] == 0, 0.0, np.sign(x[bad]) * np.exp(r1[bad] + log_x[bad]))
         return out
 
     def _pieces(self, y, raw):
@@ -147,6 +152,16 @@ class GammaSpread(SeveralScoreFamily):
         with np.errstate(over="ignore"):
             k = np.exp(raw[:, 1])
         return np.column_stack([k, _f(k)])
+
+    def _natural_direction(self, y, raw):
+        # g / diag(F) with the shape cancelled in the mean column: k (1 - e^l) / k = -expm1(l)
+        # (no 0 / 0 or inf / inf where k = e^{r1} underflows or overflows); g1 / f(k), f in [1/2, 1]
+        g = self._gradient(y, raw)
+        with np.errstate(over="ignore"):
+            k = np.exp(raw[:, 1])
+            g[:, 0] = -np.expm1(np.log(y) - raw[:, 0])
+        g[:, 1] /= _f(k)
+        return g
 
     def _distribution(self, raw):
         with np.errstate(over="ignore"):

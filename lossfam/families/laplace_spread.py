@@ -23,6 +23,11 @@ the Fisher entry 1 / b^2 (a Newton step on a group of rows is then b times the m
 residuals: it has the units of y); the scale column takes |z|, or the Fisher entry 1 where
 |z| = 0 (a row exactly at the median).
 
+Far raw scores.  |z| comes from ``scaled_residual`` (no 0 * inf where e^{-r1} overflows or
+underflows or y - mu overflows): values are finite, or +-inf exactly where they are beyond float64
+(|z| for |y - mu| / b > 1.8e308, 1 / b for r1 < -709.78, 1 / b^2 for r1 < -354.9); the location
+curvature 1 / b^2 underflows to 0 for r1 > 372.5.
+
 Baseline (closed form, the maximum-likelihood pair for a constant row): r0 = the weighted median of
 y - o0 (any b; the midpoint rule of the one-score laplace), r1 = log(sum w |y - o0 - r0| / sum w)
 (d/dr1 of the weighted nll is sum w (1 - |z|) = 0), i.e. (laplace baseline, log of its fitted
@@ -36,7 +41,7 @@ import numpy as np
 
 from .._checks import REAL
 from ..links import IDENTITY, LOG
-from ._several import SeveralScoreFamily
+from ._several import SeveralScoreFamily, scaled_residual
 from .laplace import Laplace, laplace_law
 
 _LOG2 = float(np.log(2.0))
@@ -59,17 +64,13 @@ class LaplaceSpread(SeveralScoreFamily):
         return Laplace()
 
     def _nll(self, y, raw):
-        with np.errstate(invalid="ignore"):
-            a = np.abs(y - raw[:, 0]) * np.exp(-raw[:, 1])
-        a = np.where(y == raw[:, 0], 0.0, a)  # 0 * inf when e^{-r1} overflows at a zero residual
-        return a + raw[:, 1] + _LOG2
+        return np.abs(scaled_residual(y, raw[:, 0], raw[:, 1])) + raw[:, 1] + _LOG2
 
     def _parts(self, y, raw):
         inv_b = np.exp(-raw[:, 1])
-        d = y - raw[:, 0]
-        with np.errstate(invalid="ignore"):
-            a = np.where(d == 0, 0.0, np.abs(d) * inv_b)
-        return np.sign(d), a, inv_b
+        z = scaled_residual(y, raw[:, 0], raw[:, 1])
+        with np.errstate(over="ignore"):
+            return np.sign(y - raw[:, 0]), np.abs(z), inv_b  # the sign of y - mu even where z underflows
 
     @staticmethod
     def _sign_over_b(s, inv_b):
@@ -95,6 +96,13 @@ class LaplaceSpread(SeveralScoreFamily):
     def _newton_diagonal(self, y, raw):
         _, a, inv_b = self._parts(y, raw)
         return np.column_stack([inv_b * inv_b, np.where(a > 0, a, 1.0)])
+
+    def _natural_direction(self, y, raw):
+        # F^{-1} g in closed form, (-b sign(z), 1 - |z|): no inf / inf where 1/b overflows
+        s, a, _ = self._parts(y, raw)
+        with np.errstate(over="ignore", invalid="ignore"):
+            b = np.exp(raw[:, 1])
+            return np.column_stack([np.where(s == 0, 0.0, -s * b), 1.0 - a])
 
     def _distribution(self, raw):
         return laplace_law(loc=raw[:, 0], scale=np.exp(raw[:, 1]))

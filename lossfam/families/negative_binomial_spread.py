@@ -71,6 +71,48 @@ T = d1 + d2/2 + d3/6 - d5/30 + d7/42 - d9/30 with d_m = r^-m - (y + r)^-m = -r^-
 log1p(y/r)) (Abramowitz and Stegun, Handbook of Mathematical Functions, eqs. 6.3.18 and 6.4.12):
 the plain differences lose digits when r >> y (small alpha).  Checked against mpmath.
 
+Small dispersion (r = 1/alpha >= 20, up to r = inf where alpha = e^{r1} underflows).  The plain
+forms above difference terms of size y and mu (r D ~ y, r L ~ mu, g0 ~ mu - y) into results of
+order alpha (y^2 + mu^2), and at r = inf give inf - inf.  From the series for D and T (below), with
+x = alpha y, z = alpha mu, w = (x - z) / (1 + z) and phi(w) = w - log1p(w) >= 0:
+  * log C(y, r) + lgamma(y + 1) - y log r = B(y, r) = lgamma(y + r) - lgamma(r) - y log r
+    = (y + r - 1/2) log1p(x) - y - d1/12 + d3/360 - d5/1260 + d7/1680
+    = y G(x) - log1p(x)/2 - d1/12 + ...,   G(x) = (1 + 1/x) log1p(x) - 1 = x/2 - x^2/6 + ...
+    (Stirling's series for both lgammas, A&S eq. 6.1.41), so
+        nll = lgamma(y + 1) - B(y, r) + y log(alpha + 1/mu) + r log(1 + alpha mu),
+    which at r = inf is lgamma(y + 1) - y log mu + mu, the Poisson nll (checked against
+    scipy.stats.poisson and scipy.stats.nbinom); used for y <= 1e15 (and every y at r = inf),
+    the plain form beyond (there lgamma(y + 1) and B are both of size y log y);
+  * r log((1 + x)/(1 + z)) = r log1p(w) and g0 = r (z - x) / (1 + z) = -r w, so
+        d/dr1 = -r phi(w) + x / (2 (1 + x)) + r (d2/12 - d4/120 + d6/252 - d8/240),
+    r phi(w) = r w^2 (1/2 - w/3 + w^2/4 - ...) for |w| < 0.1 with r w^2 = alpha (y - mu)^2 /
+    (1 + z)^2 formed in logs; leading term -alpha ((y - mu)^2 - y) / 2, 0 at alpha = 0;
+  * with y/(1 + x) - y (1 - q)^2 - r q^2 = -alpha (y - mu)^2 / ((1 + x)(1 + z)^2) = -r w^2 / (1 + x),
+        d2/dr1^2 = r (phi(w) - w^2 / (1 + x)) - x / (2 (1 + x)) - r (d2/12 - ...) + r^2 (d2/2
+                   + d3/6 - d5/30 + d7/42 - d9/30),
+    with r d_m = alpha^(m-1) (1 - (1 + x)^-m) and r^2 d_m = alpha^(m-2) (1 - (1 + x)^-m);
+  * where r = inf or q is subnormal (t < -700): r q = mu / (1 + alpha mu) = exp(r0 - log(1 + e^t))
+    in g0, h00 and the Fisher entry; everywhere d2/dr0 dr1 = h00 - r q = -q g0 (no cancellation);
+  * r log(1 + alpha mu) = e^{r0} where t < -700 (log(1 + e^t) = e^t to float64), in logs where
+    e^{-r1} overflows (``_size_softplus``);
+  * E[C(Y)] on the nearly Poisson rows, alpha (1 + mu) <= 1e-8: the leading term alpha^2 mu^2 / 2,
+    relative error O(alpha (1 + mu)).  The exact sum loses it to cancellation there (terms C(y) of
+    size alpha y |mu - y| summing to alpha^2 mu^2 / 2: measured negative, -1.3e-13 for 9e-30, at
+    alpha = e^-40, mu = 1e3); the two errors, about 1e-16 / (alpha sqrt(mu)) and alpha (1 + mu),
+    cross near the switch, where both are of order 1e-8 (a documented approximation);
+  * the natural gradient where that entry underflows: -2 v / (alpha mu^2), v = ((y - mu)^2 - y) / 2,
+    the ratio of the leading terms, in logs (+-inf where it is beyond float64, as it is for any
+    alpha below about e^{-709}); its mean column is (mu - y) / mu where mu / (1 + alpha mu) leaves
+    float64.
+Large dispersion (r < 1e-8, down to r = 0 where e^{-r1} underflows).  digamma(r) = digamma(1 + r)
+- 1/r and trigamma(r) = trigamma(1 + r) + 1/r^2 give, for y > 0,
+    r D = 1 + r (digamma(y + r) - digamma(1 + r)),   r^2 T = 1 + r^2 (trigamma(1 + r) - trigamma(y + r))
+(0 at y = 0), so d/dr1 = r D - r L + g0 with no 0 * inf; and for r < 1e-299, log C(y, r) = log r -
+log y + O(r log y) (Gamma(r) = Gamma(1 + r) / r), so nll = r1 + log y + y log(1 + e^-t) + r L for
+y > 0.  Where the window of E[C(Y)] leaves float64 (mu or alpha overflows, r underflows) the
+mixing-law value q^2 r (r trigamma(r) - 1) below is used.
+Every value is then finite, or +-inf exactly where it is beyond float64 (e.g. mu for r0 > 709.78).
+
 Predictive law: the one-score family's NegativeBinomialLaw with one dispersion per row: its mass
 is exp(-nll) of the same form, its tails and quantiles hold for every mean and size, and rows with
 alpha (1 + mu) <= 1e-20 get the Poisson law (the switch and its justification: that class).
@@ -89,13 +131,13 @@ from dataclasses import dataclass
 
 import numpy as np
 from scipy import stats
-from scipy.special import digamma, expit, polygamma
+from scipy.special import digamma, expit, gammaln, polygamma
 
 from .._checks import NONNEGATIVE, NONNEGATIVE_INTEGER
 from ..links import LOG
 from ._several import SeveralScoreFamily
 from .gamma_spread import _f
-from .negative_binomial import NegativeBinomial, NegativeBinomialLaw, log_binomial_term, nll_at
+from .negative_binomial import NegativeBinomial, NegativeBinomialLaw, log_binomial_term
 
 #: windows with at most this many counts are summed exactly
 _EXACT_TERMS = 4096
@@ -104,6 +146,8 @@ _HEAD_TERMS = 4096
 _PANELS = 1024
 #: wide rows per block (their nodes take _WIDE_BLOCK * (_PANELS + 1) floats per array)
 _WIDE_BLOCK = 256
+#: rows with alpha (1 + mu) at most this take the leading term of E[C(Y)] (module docstring)
+_NEARLY_POISSON = 1e-8
 #: (mean, size) from which the expansion for nearly normal laws is used (module docstring)
 _NEAR_NORMAL = (3e4, 1e4)
 
@@ -129,6 +173,117 @@ def digamma_trigamma_differences(y, r):
     return np.where(big, d_big, d_small), np.where(big, t_big, t_small)
 
 
+#: sizes r = 1/alpha from which the forms in alpha are used (module docstring, "Small dispersion")
+_BIG_SIZE = 20.0
+#: sizes below which the forms in r are used (module docstring, "Large dispersion")
+_SMALL_SIZE = 1e-8
+#: log sizes above which log C(y, r) = log r - log y (module docstring, "Large dispersion")
+_NEG_LOG_TINY_SIZE = 690.0
+
+
+def _series(x, coef):
+    """sum_i coef[i] x^i by Horner's rule."""
+    out = np.full(np.shape(x), coef[-1])
+    for c in coef[-2::-1]:
+        out = out * x + c
+    return out
+
+
+#: (1 + 1/x) log1p(x) - 1 = sum_{n>=2} (-1)^n x^{n-1} / (n (n-1)), for x < 0.1 (terms to n = 18)
+_G_COEF = tuple((-1.0) ** n / (n * (n - 1.0)) for n in range(2, 19))
+#: (w - log1p(w)) / w^2 = sum_{n>=2} (-1)^n w^{n-2} / n, for |w| < 0.1 (terms to n = 18)
+_PHI_COEF = tuple((-1.0) ** n / n for n in range(2, 19))
+
+
+def _size_softplus(r0, r1):
+    """r log(1 + alpha mu) = e^{-r1} log(1 + e^t), t = r0 + r1, with no 0 * inf: the plain product;
+    e^{r0} where t < -700 (log(1 + e^t) = e^t (1 + O(e^t)), e^t < 1e-304, and e^{-r1} e^t = e^{r0});
+    exp(log log(1 + e^t) - r1) where e^{-r1} overflows and the product may not."""
+    t = r0 + r1
+    sp = np.logaddexp(0.0, t)
+    with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+        out = np.exp(-r1) * sp
+        far = t < -700.0
+        out = np.where(far, np.exp(r0), out)
+        big = ~far & ~np.isfinite(out)
+        out = np.where(big, np.exp(np.log(sp) - r1), out)
+    return out
+
+
+def _alpha_pieces(y, raw):
+    """The quantities of the forms in alpha (module docstring, "Small dispersion"), per row:
+    x = alpha y, lp = log1p(x), w = (x - z) / (1 + z) (z = alpha mu) with r w^2 and r phi(w),
+    phi(w) = w - log1p(w), all without overflow of e^{r0} or e^{-r1}."""
+    r0, r1 = raw[:, 0], raw[:, 1]
+    t = r0 + r1
+    sp = np.logaddexp(0.0, t)  # log(1 + z)
+    with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+        log_y = np.log(y)
+        x = np.exp(r1 + log_y)
+        lp = np.log1p(x)
+        mu = np.exp(r0)
+        # log|y - mu|: directly where mu is finite, else r0 + log(1 - y / mu) from logs
+        log_gap = np.where(np.isfinite(mu), np.log(np.abs(y - mu)), r0 + np.log(-np.expm1(log_y - r0)))
+        sign = np.sign(y - mu)
+        w = sign * np.exp(r1 + log_gap - sp)
+        rw2 = np.exp(r1 + 2.0 * log_gap - 2.0 * sp)  # r w^2 = alpha (y - mu)^2 / (1 + z)^2
+        small = np.abs(w) < 0.1
+        ws = np.where(small, w, 0.0)
+        r = np.exp(-r1)
+        phi_large = w - (lp - sp)  # w - log1p(w), log1p(w) = log((1 + x) / (1 + z))
+        rphi = np.where(small, rw2 * _series(ws, _PHI_COEF), r * phi_large)
+        # r (phi(w) - w^2 / (1 + x)), for the Hessian (no inf - inf where r and r w^2 overflow)
+        rphi_h = np.where(small, rw2 * (_series(ws, _PHI_COEF) - 1.0 / (1.0 + x)),
+                          r * (phi_large - w * w / (1.0 + x)))
+    return x, lp, rphi, rphi_h
+
+
+def _g1_h11_in_alpha(y, raw):
+    """(d nll / d r1, d2 nll / d r1^2) for r >= 20 (module docstring, "Small dispersion")."""
+    r1 = raw[:, 1]
+    x, lp, rphi, rphi_h = _alpha_pieces(y, raw)
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        def rd(m, power):  # r^power d_m = alpha^(m - power) (1 - (1 + x)^-m)
+            return np.exp((m - power) * r1) * -np.expm1(-m * lp)
+
+        s_r = rd(2, 1) / 12.0 - rd(4, 1) / 120.0 + rd(6, 1) / 252.0 - rd(8, 1) / 240.0
+        r_t = 0.5 * rd(2, 2) + rd(3, 2) / 6.0 - rd(5, 2) / 30.0 + rd(7, 2) / 42.0 - rd(9, 2) / 30.0
+        half = x / (2.0 * (1.0 + x))  # r d_1 / 2
+        g1 = -rphi + half + s_r
+        h11 = rphi_h - half - s_r + r_t
+    return g1, h11
+
+
+def _lgamma1_plus(y, slope):
+    """lgamma(y + 1) + y slope, with Stirling's series for y > 1e15 (A&S eq. 6.1.41; the next term
+    1/(360 y^3) is below 1e-47) written as y (log y - 1 + slope) + log(2 pi y) / 2 + 1/(12 y), so
+    that the two large terms are differenced before they are formed."""
+    big = y > 1e15
+    yb = np.where(big, y, 1e15)
+    with np.errstate(over="ignore", invalid="ignore"):
+        stirling = yb * (np.log(yb) - 1.0 + slope) + 0.5 * np.log(2.0 * np.pi * yb) + 1.0 / (12.0 * yb)
+        near = gammaln(np.where(big, 0.0, y) + 1.0) + np.where(big, 0.0, y) * slope
+    return np.where(big, stirling, near)
+
+
+def _log_rising_over_power(y, r1):
+    """B(y, r) = lgamma(y + r) - lgamma(r) - y log r for r = e^{-r1} >= 20, r = inf included
+    (module docstring, "Small dispersion"): y G(x) - log1p(x) / 2 - d1/12 + d3/360 - d5/1260
+    + d7/1680, x = alpha y, G(x) = (1 + 1/x) log1p(x) - 1."""
+    with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+        x = np.exp(r1 + np.log(y))
+        lp = np.log1p(x)
+        small = x < 0.1
+        xs = np.where(small, x, 0.0)
+        xl = np.where(small, 1.0, x)
+        g = np.where(small, xs * _series(xs, _G_COEF), (1.0 + 1.0 / xl) * np.log1p(xl) - 1.0)
+
+        def d(m):  # r^-m - (y + r)^-m = alpha^m (1 - (1 + x)^-m)
+            return np.exp(m * r1) * -np.expm1(-m * lp)
+
+        return y * g - 0.5 * lp - d(1) / 12.0 + d(3) / 360.0 - d(5) / 1260.0 + d(7) / 1680.0
+
+
 @dataclass(frozen=True)
 class NegativeBinomialSpread(SeveralScoreFamily):
     name = "negative_binomial_spread"
@@ -144,44 +299,118 @@ class NegativeBinomialSpread(SeveralScoreFamily):
         return NegativeBinomial()
 
     def _nll(self, y, raw):
-        r1 = raw[:, 1]
-        t = raw[:, 0] + r1
+        r0, r1 = raw[:, 0], raw[:, 1]
+        t = r0 + r1
         with np.errstate(over="ignore"):
             size = np.exp(-r1)
-        return nll_at(y, t, size)
+        # (y + r) log(1 + alpha mu) - y t - log C(y, r) = y log(1 + e^-t) + r log(1 + e^t) - log C
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+            r_soft = _size_softplus(r0, r1)
+            y_soft = y * np.logaddexp(0.0, -t)
+            big = (size >= _BIG_SIZE) & ((y <= 1e15) | np.isinf(size))
+            tiny = r1 > _NEG_LOG_TINY_SIZE
+            mid = ~big & ~tiny
+            out = np.empty(y.shape)
+            if np.any(mid):
+                out[mid] = -log_binomial_term(y[mid], size[mid]) + y_soft[mid] + r_soft[mid]
+            if np.any(big):  # lgamma(y + 1) - B(y, r) + y log(alpha + 1/mu) + r log(1 + alpha mu)
+                yb = y[big]
+                slope = np.logaddexp(r1[big], -r0[big])
+                out[big] = _lgamma1_plus(yb, slope) - _log_rising_over_power(yb, r1[big]) + r_soft[big]
+            if np.any(tiny):  # log C(y, r) = log r - log y for y > 0 (r < 1e-299)
+                yt = y[tiny]
+                lead = np.where(yt > 0, r1[tiny] + np.log(np.where(yt > 0, yt, 1.0)), 0.0)
+                out[tiny] = lead + y_soft[tiny] + r_soft[tiny]
+        return out
 
-    def _pieces(self, y, raw):
-        t = raw[:, 0] + raw[:, 1]
-        with np.errstate(over="ignore"):
-            r = np.exp(-raw[:, 1])
-        q, q1 = expit(t), expit(-t)
-        g0 = (y + r) * q - y
-        h00 = (y + r) * q * q1
-        return t, r, q, g0, h00
+    def _derivatives(self, y, raw, hessian=True):
+        """(gradient (n, 2), and with ``hessian`` the entries h00, h01, h11), by the forms of the
+        module docstring: the forms in r below r = 1e-8, the plain forms up to r = 20, the forms
+        in alpha from there (r = inf, an underflowed alpha, included)."""
+        r0, r1 = raw[:, 0], raw[:, 1]
+        t = r0 + r1
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+            r = np.exp(-r1)
+            q, q1 = expit(t), expit(-t)
+            g0 = (y + r) * q - y
+            h00 = (y + r) * q * q1
+            h01 = -q * g0  # h00 - r q = q ((y + r)(1 - q) - r) = -q g0, free of the cancellation of h00 - r q
+            inf_r = np.isinf(r) | (t < -700.0)  # r overflows, or q = e^t (1 + O(e^t)) is subnormal
+            if np.any(inf_r):  # r q = mu / (1 + alpha mu) = exp(r0 - log(1 + e^t)); h01 = -q g0,
+                # with q r q = exp(2 r0 + r1 - 2 log(1 + e^t)) (no 0 * inf)
+                sp = np.logaddexp(0.0, t[inf_r])
+                rq = np.exp(r0[inf_r] - sp)
+                yq = y[inf_r] * q1[inf_r]
+                g0[inf_r] = rq - yq
+                # (y q + r q) (1 - q) = y e^{t - 2 sp} + e^{r0 - 2 sp}, 1 - q = e^{-sp}
+                h00[inf_r] = y[inf_r] * np.exp(t[inf_r] - 2.0 * sp) + np.exp(r0[inf_r] - 2.0 * sp)
+                h01[inf_r] = q[inf_r] * yq - np.exp(2.0 * r0[inf_r] + r1[inf_r] - 2.0 * sp)
+            g1 = np.empty(y.shape)
+            h11 = np.empty(y.shape)
+            big = r >= _BIG_SIZE
+            small = r < _SMALL_SIZE
+            mid = ~big & ~small
+            if np.any(mid):
+                s = mid
+                D, T = digamma_trigamma_differences(y[s], r[s])
+                L = np.logaddexp(0.0, t[s])
+                g1[s] = r[s] * (D - L) + g0[s]
+                h11[s] = -r[s] * (D - L) + r[s] * r[s] * T - 2.0 * r[s] * q[s] + h00[s]
+            if np.any(big):
+                g1[big], h11[big] = _g1_h11_in_alpha(y[big], raw[big])
+            if np.any(small):  # r D and r^2 T in r (module docstring, "Large dispersion")
+                s = small
+                ys, rs = y[s], r[s]
+                pos = ys > 0
+                yp = np.where(pos, ys, 1.0)
+                # r D - 1[y > 0] and r^2 T - 1[y > 0], the 1s kept apart (they cancel in d2/dr1^2)
+                r_d1 = np.where(pos, rs * (digamma(yp + rs) - digamma(1.0 + rs)), 0.0)
+                r2_t1 = np.where(pos, rs * rs * (polygamma(1, 1.0 + rs) - polygamma(1, yp + rs)), 0.0)
+                r_l = _size_softplus(r0[s], r1[s])
+                g1[s] = pos + r_d1 - r_l + g0[s]
+                h11[s] = -r_d1 + r2_t1 + r_l - 2.0 * rs * q[s] + h00[s]
+        g = np.column_stack([g0, g1])
+        return (g, h00, h01, h11) if hessian else g
 
     def _gradient(self, y, raw):
-        t, r, q, g0, _ = self._pieces(y, raw)
-        D, _ = digamma_trigamma_differences(y, r)
-        L = np.logaddexp(0.0, t)
-        return np.column_stack([g0, r * (D - L) + g0])
+        return self._derivatives(y, raw, hessian=False)
 
     def _hessian(self, y, raw):
-        t, r, q, g0, h00 = self._pieces(y, raw)
-        D, T = digamma_trigamma_differences(y, r)
-        L = np.logaddexp(0.0, t)
+        _, h00, h01, h11 = self._derivatives(y, raw)
         h = np.empty((y.shape[0], 2, 2))
         h[:, 0, 0] = h00
-        h[:, 0, 1] = h[:, 1, 0] = h00 - r * q
-        h[:, 1, 1] = -r * (D - L) + r * r * T - 2.0 * r * q + h00
+        h[:, 0, 1] = h[:, 1, 0] = h01
+        h[:, 1, 1] = h11
         return h
 
     def _fisher_diagonal(self, raw):
         t = raw[:, 0] + raw[:, 1]
-        with np.errstate(over="ignore"):
-            mu = np.exp(raw[:, 0])
+        with np.errstate(over="ignore", invalid="ignore"):
             r = np.exp(-raw[:, 1])
-        f00 = r * expit(t)  # mu / (1 + alpha mu)
+            f00 = r * expit(t)  # mu / (1 + alpha mu)
+            f00 = np.where(np.isinf(r) | (t < -700.0), np.exp(raw[:, 0] - np.logaddexp(0.0, t)), f00)
         return np.column_stack([f00, _expected_c(self, raw)])
+
+    def _natural_direction(self, y, raw):
+        """g / diag(F), with the limits where an entry of F leaves float64: the mean column
+        (mu - y) / mu = -expm1(log y - r0) (the factor 1 / (1 + alpha mu) cancels); the
+        dispersion column, where E[C(Y)] underflows (only on the nearly Poisson rows,
+        alpha^2 mu^2 / 2 below 1e-323), the ratio of the leading terms -alpha v / (alpha^2 mu^2 / 2) =
+        -2 v / (alpha mu^2), v = ((y - mu)^2 - y) / 2, formed in logs."""
+        g = self._gradient(y, raw)
+        f = self._fisher_diagonal(raw)
+        r0, r1 = raw[:, 0], raw[:, 1]
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+            ok0 = np.isfinite(f[:, 0]) & (f[:, 0] > 0)
+            n0 = np.where(ok0, g[:, 0] / np.where(ok0, f[:, 0], 1.0), -np.expm1(np.log(y) - r0))
+            ok1 = f[:, 1] > 0
+            n1 = g[:, 1] / np.where(ok1, f[:, 1], 1.0)
+            if not np.all(ok1):
+                mu = np.exp(r0)
+                v = 0.5 * ((y - mu) ** 2 - y)
+                lead = -np.sign(v) * np.exp(np.log(2.0 * np.abs(v)) - r1 - 2.0 * r0)
+                n1 = np.where(ok1, n1, lead)
+        return np.column_stack([n0, n1])
 
     def _start(self, y, w, offset):
         one = self.constant_scale()
@@ -208,10 +437,18 @@ class NegativeBinomialSpread(SeveralScoreFamily):
 
 
 def _c_at(y, raw):
-    """C(y) = r^2 T(y) - y / (1 + alpha mu) (module docstring), directly."""
+    """C(y) = r^2 T(y) - y / (1 + alpha mu) (module docstring), directly; for r < 1e-8,
+    r^2 T = 1[y > 0] + r^2 (trigamma(1 + r) - trigamma(y + r)) (no inf - inf of trigamma(r))."""
     r = np.exp(-raw[:, 1])
-    _, T = digamma_trigamma_differences(y, r)
-    return r * r * T - y * expit(-(raw[:, 0] + raw[:, 1]))
+    small = r < _SMALL_SIZE
+    rs = np.where(small, 1.0, r)
+    _, T = digamma_trigamma_differences(y, rs)
+    r2t = rs * rs * T
+    if np.any(small):
+        yp = np.where(y > 0, y, 1.0)
+        rr = r[small]
+        r2t[small] = np.where(y[small] > 0, 1.0 + rr * rr * (polygamma(1, 1.0 + rr) - polygamma(1, yp[small] + rr)), 0.0)
+    return r2t - y * expit(-(raw[:, 0] + raw[:, 1]))
 
 
 def _log_mass(fam, y, raw):
@@ -223,7 +460,7 @@ def _expected_c(fam, raw):
     n = raw.shape[0]
     r1 = raw[:, 1]
     t = raw[:, 0] + r1
-    with np.errstate(over="ignore"):
+    with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
         mu = np.exp(raw[:, 0])
         alpha = np.exp(r1)
         r = np.exp(-r1)
@@ -233,14 +470,25 @@ def _expected_c(fam, raw):
         hi = np.ceil(mu + 10.0 * sd + 40.0 * decay)
     width = hi - lo + 1.0
     out = np.empty(n)
-    near_normal = (mu >= _NEAR_NORMAL[0]) & (r >= _NEAR_NORMAL[1])
+    # the nearly Poisson rows (alpha (1 + mu) <= 1e-8, alpha = 0 after underflow included): the
+    # leading term alpha^2 mu^2 / 2, relative error O(alpha (1 + mu)) (module docstring)
+    poisson = r1 + np.logaddexp(0.0, raw[:, 0]) <= np.log(_NEARLY_POISSON)
+    if np.any(poisson):
+        with np.errstate(under="ignore"):
+            out[poisson] = 0.5 * np.exp(2.0 * t[poisson])
+    near_normal = (mu >= _NEAR_NORMAL[0]) & (r >= _NEAR_NORMAL[1]) & ~poisson
     if np.any(near_normal):
         q = expit(t[near_normal])
         out[near_normal] = q * q * (0.5 + (2.0 * q / 3.0 - 0.5) / r[near_normal])
-    narrow = (width <= _EXACT_TERMS) & ~near_normal
+    # no window in float64 (the mean or alpha overflows, r underflows): the mixing-law value
+    outside = ~poisson & ~near_normal & ~(np.isfinite(hi) & np.isfinite(mu) & np.isfinite(r) & (r > 0))
+    if np.any(outside):
+        q = expit(t[outside])
+        out[outside] = q * q * _f(r[outside])
+    narrow = (width <= _EXACT_TERMS) & ~near_normal & ~poisson & ~outside
     if np.any(narrow):
         out[narrow] = _exact_window(fam, raw[narrow], lo[narrow], width[narrow].astype(np.int64))[0]
-    wide = ~narrow & ~near_normal
+    wide = ~narrow & ~near_normal & ~poisson & ~outside
     if np.any(wide):
         out[wide] = _wide_window(fam, raw[wide], lo[wide], hi[wide])
     return out

@@ -29,6 +29,14 @@ a u^2 = (nu+1) / (1 + nu/u^2), and the Hessian with nu/u^2 in place of nu: no u^
 and a far outlier's gradient tends to (0, -nu).  Where u^2 overflows, log1p(u^2/nu) is
 log1p(e^x) with x = 2 (log|y - mu| - r1) - log nu (the one-score family's overflow-free form).
 
+Far raw scores.  u comes from ``scaled_residual`` (no 0 * inf where e^{-r1} overflows or
+underflows or y - mu overflows), and the terms with a power of 1/s are formed without a separate
+1/s factor: for |u| < 1, a u / s = (nu+1) / (nu + u^2) (y - mu) / s^2 (again ``scaled_residual``);
+for |u| >= 1, a u / s = (nu+1) q / (y - mu) and (nu+1) (p - q) / (s^2 (nu + u^2)) =
+(nu+1) (p - q) q / (y - mu)^2 (s u = y - mu), so a row at a scale below e^{-709} keeps the
+gradient -(nu+1) / (y - mu) of its exact value instead of 0 * inf.  Values are finite, or +-inf
+exactly where they are beyond float64; the location curvatures underflow to 0 for r1 > 372.5.
+
 Baseline: no closed form (the joint location-scale t likelihood); the generic BFGS search from
 the one-score family's baseline (its weighted M-estimate at the default scale) and the fitted
 log scale at that location.  No maximum exists when a weight share above nu / (nu + 1) sits on
@@ -44,7 +52,7 @@ from scipy import stats
 
 from .._checks import POSITIVE, REAL
 from ..links import IDENTITY, LOG
-from ._several import SeveralScoreFamily
+from ._several import SeveralScoreFamily, scaled_residual
 from .student_t import StudentT, _log_abs_diff, _log_norm
 
 
@@ -67,7 +75,7 @@ class StudentTSpread(SeveralScoreFamily):
     def _nll(self, y, raw):
         nu = self.df
         with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
-            u = np.where(y == raw[:, 0], 0.0, (y - raw[:, 0]) * np.exp(-raw[:, 1]))
+            u = scaled_residual(y, raw[:, 0], raw[:, 1])
             lg = np.log1p(u * u / nu)
             far = ~np.isfinite(lg)
             if np.any(far):  # u^2 overflows: log1p(e^x), x = log(u^2 / nu) from logs
@@ -75,44 +83,60 @@ class StudentTSpread(SeveralScoreFamily):
                 lg[far] = np.logaddexp(0.0, x)
             return 0.5 * (nu + 1.0) * lg + (raw[:, 1] + _log_norm(nu))
 
-    def _pieces(self, y, raw):
-        """(u, a u, a u^2, nu / (nu + u^2) and u^2 / (nu + u^2)) without overflow of u^2."""
+    def _pieces(self, y, raw, with_aus=True):
+        """(a u^2, p = nu / (nu + u^2), q = u^2 / (nu + u^2), a u / s (None without ``with_aus``),
+        y - mu on the rows with |u| >= 1, those rows, 1 / s^2, u) without overflow of u^2 and
+        without 0 * inf (module docstring, "Far raw scores")."""
         nu = self.df
-        inv_s = np.exp(-raw[:, 1])
+        u = scaled_residual(y, raw[:, 0], raw[:, 1])
         with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
-            u = (y - raw[:, 0]) * inv_s
-            u = np.where(y == raw[:, 0], 0.0, u)  # 0 * inf when e^{-r1} overflows
             far = np.abs(u) >= 1.0
             uf = np.where(far, u, 1.0)
+            un = np.where(far, 0.0, u)
             nu_u2 = nu / (uf * uf)  # nu / u^2 where |u| >= 1
-            au = np.where(far, (nu + 1.0) / (uf + nu / uf), (nu + 1.0) * u / (nu + u * u))
-            au2 = np.where(far, (nu + 1.0) / (1.0 + nu_u2), (nu + 1.0) * u * u / (nu + u * u))
-            # p = nu / (nu + u^2), q = u^2 / (nu + u^2) = 1 - p
-            p = np.where(far, nu_u2 / (1.0 + nu_u2), nu / (nu + u * u))
-            q = np.where(far, 1.0 / (1.0 + nu_u2), u * u / (nu + u * u))
-        return u, au, au2, p, q, inv_s
+            au2 = np.where(far, (nu + 1.0) / (1.0 + nu_u2), (nu + 1.0) * un * un / (nu + un * un))
+            p = np.where(far, nu_u2 / (1.0 + nu_u2), nu / (nu + un * un))
+            q = np.where(far, 1.0 / (1.0 + nu_u2), un * un / (nu + un * un))
+            # a u / s: near, (nu+1) / (nu + u^2) (y - mu) / s^2; far, (nu+1) q / (y - mu)
+            d = np.where(far, y - raw[:, 0], 1.0)
+            aus = None
+            if with_aus:
+                z2 = np.where(far, 0.0, scaled_residual(y, raw[:, 0], raw[:, 1], 2.0))
+                aus = np.where(far, (nu + 1.0) * q / d, (nu + 1.0) / (nu + un * un) * z2)
+            inv_s2 = np.exp(-2.0 * raw[:, 1])
+        return au2, p, q, aus, d, far, inv_s2, u
 
     def _gradient(self, y, raw):
-        _, au, au2, _, _, inv_s = self._pieces(y, raw)
-        with np.errstate(over="ignore", under="ignore", invalid="ignore"):
-            g0 = np.where(au == 0, 0.0, -au * inv_s)
-        return np.column_stack([g0, 1.0 - au2])
+        au2, _, _, aus, _, _, _, _ = self._pieces(y, raw)
+        return np.column_stack([-aus, 1.0 - au2])
 
     def _hessian(self, y, raw):
         nu = self.df
-        u, au, au2, p, q, inv_s = self._pieces(y, raw)
+        au2, p, q, aus, d, far, inv_s2, _ = self._pieces(y, raw)
         h = np.empty((y.shape[0], 2, 2))
-        with np.errstate(over="ignore", under="ignore", invalid="ignore"):
-            # (nu+1)(nu - u^2)/(nu+u^2)^2 = (nu+1) (p - q) / (nu + u^2) = a (p - q)
-            a = (nu + 1.0) * p / nu  # (nu+1) / (nu + u^2)
-            h00 = a * (p - q) * inv_s * inv_s
-            h[:, 0, 0] = np.where(a == 0, 0.0, h00)
-            # 2 nu (nu+1) u / (nu+u^2)^2 = 2 (a u) p
-            h01 = 2.0 * au * p * inv_s
-            h[:, 0, 1] = h[:, 1, 0] = np.where(au == 0, 0.0, h01)
-            # 2 nu (nu+1) u^2 / (nu+u^2)^2 = 2 (a u^2) p
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+            # (nu+1)(nu - u^2) / (s^2 (nu + u^2)^2) = (nu+1) (p - q) / (s^2 (nu + u^2)): near,
+            # with 1 / s^2; far, = (nu+1) (p - q) q / (y - mu)^2 (s^2 u^2 = (y - mu)^2)
+            near00 = np.where(p == q, 0.0, (nu + 1.0) * p / nu * (p - q) * inv_s2)  # (nu+1) p / nu = a
+            h[:, 0, 0] = np.where(far, np.where(p == q, 0.0, (nu + 1.0) * (p - q) * q / (d * d)), near00)
+            # 2 nu (nu+1) u / (s (nu + u^2)^2) = 2 p (a u / s)
+            h[:, 0, 1] = h[:, 1, 0] = 2.0 * p * aus
+            # 2 nu (nu+1) u^2 / (nu + u^2)^2 = 2 (a u^2) p
             h[:, 1, 1] = 2.0 * au2 * p
         return h
+
+    def _natural_direction(self, y, raw):
+        # F^{-1} g in closed form: d/dr0 / ((nu+1) / ((nu+3) s^2)) = -(nu+3) (y - mu) / (nu + u^2)
+        # (for |u| < 1; for |u| >= 1, -(nu+3) q s / u, s / u = e^{r1 - log|u|}), and
+        # d/dr1 / (2 nu / (nu+3)): no inf / inf where 1/s^2 overflows
+        nu = self.df
+        au2, _, q, _, _, far, _, u = self._pieces(y, raw, with_aus=False)
+        with np.errstate(over="ignore", under="ignore", invalid="ignore", divide="ignore"):
+            un = np.where(far, 0.0, u)
+            near0 = -(nu + 3.0) * np.where(far, 0.0, y - raw[:, 0]) / (nu + un * un)
+            far0 = -(nu + 3.0) * q * np.sign(u) * np.exp(raw[:, 1] - np.log(np.abs(np.where(far, u, 1.0))))
+            n0 = np.where(far, far0, near0)
+        return np.column_stack([n0, (1.0 - au2) * (nu + 3.0) / (2.0 * nu)])
 
     def _fisher_diagonal(self, raw):
         nu = self.df

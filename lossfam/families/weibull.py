@@ -84,6 +84,15 @@ class ExtremeValueLaw(TailLaw):
         x = np.exp(z)
         return np.where(upper, np.exp(-x), -np.expm1(-x))
 
+    @staticmethod
+    def log_tail(z, upper):
+        """log S0(z) = -e^z, or log F0(z) = log(-expm1(-e^z)), = z - e^z / 2 below z = -20 (the
+        same terms as ``Weibull._tail_pieces``)."""
+        x = np.exp(z)
+        if upper:
+            return np.negative(x, out=x)
+        return np.where(z < -20.0, z - 0.5 * x, np.log(-np.expm1(-x)))
+
     def right(self, z):
         return np.exp(z), np.ones(z.shape)
 
