@@ -66,6 +66,9 @@ def main():
                     help="local trainings per cell (default: --repeats); fewer on a loaded machine")
     ap.add_argument("--engines", nargs="+", default=["xgboost", "lightgbm"])
     ap.add_argument("--cases", nargs="+", default=list(CASES), help=f"of {list(CASES)}")
+    ap.add_argument("--also-predicted", action="store_true",
+                    help="LightGBM: also time each cell with the training rows predicted instead of LightGBM's kept "
+                         "trained scores (alternating with the default, extra rows marked 'rows predicted')")
     args = ap.parse_args()
     warnings.filterwarnings("ignore", message="Sending large graph")  # the data, sent once before timing
     warnings.filterwarnings("ignore", message="Parameter n_jobs will be ignored")
@@ -81,7 +84,7 @@ def main():
 
     import os
 
-    from lossfam._boost.cluster import STEPS
+    from lossfam._boost.cluster import STEPS, KeptRows
 
     n = int(args.rows)
     rows = -(-n // args.partitions)
@@ -129,30 +132,39 @@ def main():
 
                     def remote():
                         return lfx.train(fam, dict(p, nthread=1), data, args.rounds, client=client, native=native)
-                t_loc, t_cl, infos = [], [], []
+                variants = [""] + ([" (rows predicted)"] if args.also_predicted and engine == "lightgbm" else [])
+                t_loc, t_cl, infos, fcs = [], {v: [] for v in variants}, {v: [] for v in variants}, {}
                 for r in range(args.repeats):
                     if r < (args.repeats if args.local_repeats is None else args.local_repeats):
                         t0 = time.perf_counter()
                         fl = local()
                         t_loc.append(time.perf_counter() - t0)
-                    t0 = time.perf_counter()
-                    fc = remote()
-                    t_cl.append(time.perf_counter() - t0)
-                    infos.append(fc.info["cluster"])
-                info = infos[-1]
-                held = fc.mean_loss(Xt, yt, weight=wt, offset=ot) / fl.mean_loss(Xt, yt, weight=wt, offset=ot)
-                eng = med(i["engine_seconds"] for i in infos)
-                own = med(i["lossfam_seconds"] for i in infos)
-                share = med(i["overhead"] for i in infos)
-                print(f"| {engine} | {case} | {med(t_loc):.2f} | {med(t_cl):.2f} | {med(t_cl) / med(t_loc):.2f} | "
-                      f"{eng:.2f} | {own:.2f} | {100 * share:.1f}% | {info['baseline_passes']}, "
-                      f"{info['nuisance_passes']} | {held:.4f} |", flush=True)
-                steps = {k: med(i["seconds"].get(k, 0.0) for i in infos) for k in STEPS}
-                steps_share = {k: med(i["seconds"].get(k, 0.0) / i["engine_seconds"] for i in infos) for k in STEPS}
-                cells.append((engine, case, steps, steps_share))
-                print("  steps, median s (share of engine time): " + ", ".join(
-                    f"{k} {steps[k]:.3f} ({100 * steps_share[k]:.1f}%)" for k in STEPS if steps[k] > 0)
-                    + "; load %.1f" % os.getloadavg()[0], flush=True)
+                    for v in variants:
+                        if v:  # the kept scores refused: every training row predicted, as before they were kept
+                            check, KeptRows.check = KeptRows.check, lambda self, fam, n, need, stats: (False, None)
+                        try:
+                            t0 = time.perf_counter()
+                            fcs[v] = remote()
+                            t_cl[v].append(time.perf_counter() - t0)
+                        finally:
+                            if v:
+                                KeptRows.check = check
+                        infos[v].append(fcs[v].info["cluster"])
+                for v in variants:
+                    info, fc = infos[v][-1], fcs[v]
+                    held = fc.mean_loss(Xt, yt, weight=wt, offset=ot) / fl.mean_loss(Xt, yt, weight=wt, offset=ot)
+                    eng = med(i["engine_seconds"] for i in infos[v])
+                    own = med(i["lossfam_seconds"] for i in infos[v])
+                    share = med(i["overhead"] for i in infos[v])
+                    print(f"| {engine} | {case}{v} | {med(t_loc):.2f} | {med(t_cl[v]):.2f} | "
+                          f"{med(t_cl[v]) / med(t_loc):.2f} | {eng:.2f} | {own:.2f} | {100 * share:.1f}% | "
+                          f"{info['baseline_passes']}, {info['nuisance_passes']} | {held:.4f} |", flush=True)
+                    steps = {k: med(i["seconds"].get(k, 0.0) for i in infos[v]) for k in STEPS}
+                    steps_share = {k: med(i["seconds"].get(k, 0.0) / i["engine_seconds"] for i in infos[v]) for k in STEPS}
+                    cells.append((engine, case + v, steps, steps_share))
+                    print("  steps, median s (share of engine time): " + ", ".join(
+                        f"{k} {steps[k]:.3f} ({100 * steps_share[k]:.1f}%)" for k in STEPS if steps[k] > 0)
+                        + f"; trained check: {info['trained_check']}; load %.1f" % os.getloadavg()[0], flush=True)
     print("load average after (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
     used = [k for k in STEPS if any(c[2][k] > 0 for c in cells)]
     print("\nlossfam's steps: median seconds (share of the engine's training time)")

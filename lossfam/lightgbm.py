@@ -28,7 +28,10 @@ grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
 (``lossfam._boost.cluster``).  Native twins and the Python objective only (no
 refit path); ``valid_sets`` are scored after training, and one
 ``lightgbm.early_stopping`` callback is honoured by scoring every round on all
-valid rows afterwards and cutting the model at the best one.
+valid rows afterwards and cutting the model at the best one.  The check of the
+trained scores and the nuisance fit read the trained scores LightGBM leaves on
+each worker (``lossfam._lightgbm_keep``) instead of predicting every training
+row, unless the model was cut or a worker lacks them.
 
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian
@@ -835,31 +838,72 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     params.setdefault("metric", "None")
     params.setdefault("verbosity", -1)
     est = ldask.DaskLGBMRegressor(client=client, n_estimators=int(num_boost_round), **params)
-    with cluster.timed(plan.stats, "trees"):
-        est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
-    with cluster.timed(plan.stats, "model"):
-        booster = _lgb().Booster(model_str=est.booster_.model_to_string())
-    best = None
-    if stopping is not None:
-        # lightgbm.dask scores a valid set on each worker's part only, so the workers could not agree on
-        # when to stop: all rounds are trained, then lossfam's metric on all valid rows after every round
-        # (one pass per valid set) replays LightGBM's early-stopping rule and the model keeps the rounds
-        # up to the best one (the trees of those rounds do not depend on later ones)
-        with cluster.timed(plan.stats, "best_round"):
-            tables = _leaf_tables(booster)
-            curves = [cluster.round_curves(client, fam, metric_kind, v, functools.partial(_pred_leaves, booster), tables)
-                      for v in valids]
-            if tables:
-                best = cluster.best_round(curves, *stopping)
-                plan.stats["valid_metrics"] = {name: float(c[best]) for name, c in zip(names, curves)}
-                plan.stats["valid_curves"] = {name: [float(x) for x in c] for name, c in zip(names, curves)}
-                plan.stats["rounds_trained"] = len(tables)
-                if best + 1 < len(tables):
-                    booster = _lgb().Booster(model_str=booster.model_to_string(num_iteration=best + 1))
-    fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, best, fit_info(twin, rule, guard))
-    with cluster.timed(plan.stats, "tree_range"):
-        tree_range = _tree_range(booster)
-    return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, tree_range)
+    kept, factory, keep = _keeping(ldask, client, plan, params["objective"], bool(fam.params) and nuisance_set is None)
+    try:
+        with cluster.timed(plan.stats, "trees"):
+            if kept is None:
+                est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
+            else:  # the same training, by a model factory that keeps each worker's trained scores
+                est._lgb_dask_fit(model_factory=factory, X=plan.X, y=plan.y, sample_weight=plan.weight,
+                                  init_score=plan.start, keep=(kept.token, *keep))
+        with cluster.timed(plan.stats, "model"):
+            booster = _lgb().Booster(model_str=est.booster_.model_to_string())
+        best = None
+        if stopping is not None:
+            # lightgbm.dask scores a valid set on each worker's part only, so the workers could not agree on
+            # when to stop: all rounds are trained, then lossfam's metric on all valid rows after every round
+            # (one pass per valid set) replays LightGBM's early-stopping rule and the model keeps the rounds
+            # up to the best one (the trees of those rounds do not depend on later ones)
+            with cluster.timed(plan.stats, "best_round"):
+                tables = _leaf_tables(booster)
+                curves = [cluster.round_curves(client, fam, metric_kind, v, functools.partial(_pred_leaves, booster),
+                                               tables) for v in valids]
+                if tables:
+                    best = cluster.best_round(curves, *stopping)
+                    plan.stats["valid_metrics"] = {name: float(c[best]) for name, c in zip(names, curves)}
+                    plan.stats["valid_curves"] = {name: [float(x) for x in c] for name, c in zip(names, curves)}
+                    plan.stats["rounds_trained"] = len(tables)
+                    if best + 1 < len(tables):
+                        booster = _lgb().Booster(model_str=booster.model_to_string(num_iteration=best + 1))
+                        if kept is not None:
+                            kept.unusable = "early stopping cut the model"
+        if kept is not None:
+            kept.rounds = int(booster.current_iteration())
+        fit = BoostedFit(_ENGINE, booster, fam, plan.baseline, fam, best, fit_info(twin, rule, guard))
+        with cluster.timed(plan.stats, "tree_range"):
+            tree_range = _tree_range(booster)
+        return cluster.finish(plan, fit, valids, names, nuisance_set, metric_kind, tree_range, kept)
+    finally:
+        if kept is not None:
+            kept.drop()
+
+
+def _keeping(ldask, client, plan, objective, targets):
+    """(``cluster.KeptRows``, the model factory, its ``keep`` arguments after the token) when this
+    training can keep LightGBM's own trained scores on the workers (``lossfam._lightgbm_keep``),
+    else (None, None, None) with the reason in
+    ``plan.stats["kept"]``: ``lightgbm.dask``'s private ``_lgb_dask_fit`` takes no
+    ``model_factory`` (its internals changed), or the objective's output cannot be turned back
+    into raw scores to rounding."""
+    import inspect
+    import uuid
+
+    fit_parts = getattr(ldask.DaskLGBMRegressor, "_lgb_dask_fit", None)
+    try:
+        takes_factory = fit_parts is not None and "model_factory" in inspect.signature(fit_parts).parameters
+    except (TypeError, ValueError):
+        takes_factory = False
+    if not takes_factory:
+        plan.stats["kept"] = "lightgbm.dask takes no model_factory"
+        return None, None, None
+    from . import _lightgbm_keep
+
+    inverse = _lightgbm_keep.inverse_for(objective)
+    if inverse is None:
+        plan.stats["kept"] = f"LightGBM's {objective} output is not kept"
+        return None, None, None
+    kept = cluster.KeptRows(client, uuid.uuid4().hex, plan.y.chunks[0][0])
+    return kept, _lightgbm_keep.KeepingRegressor, (inverse, targets)
 
 
 def _tree_range(booster):

@@ -97,11 +97,14 @@ def test_cluster_train_matches_local(engine, case, client, tmp_path):
     fit = _cluster(engine, fam, X, y, w, o, client)
     assert type(fit) is type(local) is lossfam.BoostedFit
     assert fit.info["cluster"]["partitions"] >= 16 and fit.info["objective"] == local.info["objective"]
-    # without a nuisance fit the trained scores are checked from the trees' range, with one by predicting the rows
-    assert fit.info["cluster"]["trained_check"] == ("rows" if fam.params else "bounds")
+    # without a nuisance fit the trained scores are checked from the trees' range; with one, LightGBM's
+    # own trained scores kept on the workers are checked, XGBoost's rows are predicted
+    assert fit.info["cluster"]["trained_check"] == (("kept" if engine == "lightgbm" else "rows") if fam.params
+                                                    else "bounds")
     # the timing of lossfam's own steps: known steps only, their sum, and the engine's call apart
     info = fit.info["cluster"]
-    assert set(info["seconds"]) <= set(cluster.STEPS) and {"checks", "baseline", "trained_check"} <= set(info["seconds"])
+    assert set(info["seconds"]) <= set(cluster.STEPS) and {"checks", "baseline"} <= set(info["seconds"])
+    assert {"trained_check", "kept_scores"} & set(info["seconds"])
     assert info["lossfam_seconds"] == pytest.approx(sum(info["seconds"].values()), abs=1e-3)
     assert info["engine_seconds"] > 0 and info["overhead"] == pytest.approx(info["lossfam_seconds"] / info["engine_seconds"],
                                                                             rel=1e-3, abs=1e-4)
@@ -479,3 +482,119 @@ def test_xgboost_refit_path_on_the_cluster(client, tmp_path, name, params, weigh
     back = lossfam.load(path)
     np.testing.assert_array_equal(back.predict_raw(Xt), fit.predict_raw(Xt))
     assert back.booster.attr("lossfam_refit_seconds") is None
+
+
+# ----------------------------------------------------------------------------- LightGBM's kept training scores
+def _store_sizes(client):
+    return sorted(client.run(lambda: len(cluster._KEPT)).values())
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_lightgbm_kept_scores_are_the_predicted_ones(case, client, monkeypatch):
+    """LightGBM's own trained scores, kept on each worker, are the model's predicted raw scores of the
+    training rows (init score and offset included; poisson's buffer holds e^raw) to 1e-12 relative,
+    with the float64 targets and weights handed to training; the scale fitted on them is the one the
+    prediction path fits on the same model; and the workers' store is empty afterwards."""
+    name, params, make = CASES[case]
+    fam = lossfam.family(name, **params)
+    X, y, w, o = make(51, N_TRAIN)
+    seen = {}
+    drop = cluster.KeptRows.drop
+
+    def look_then_drop(self):  # what the workers hold, just before it is dropped
+        if not self.dropped:
+            seen.update(client.run(lambda token: (lambda k: None if k is None else (k.raw, k.y, k.w))(
+                next((v for (t, _), v in cluster._KEPT.items() if t == token), None)), self.token))
+        drop(self)
+    monkeypatch.setattr(cluster.KeptRows, "drop", look_then_drop)
+    data = lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w), offset=_dask(o))
+    fit = lfl.train(fam, PARAMS["lightgbm"], data, ROUNDS, client=client)
+    info = fit.info["cluster"]
+    assert _store_sizes(client) == [0, 0]
+    parts = [v for v in seen.values() if v is not None]
+    assert len(parts) == 2 and sum(p[0].size for p in parts) == N_TRAIN
+    kept_raw = np.sort(np.concatenate([p[0] for p in parts]))
+    predicted = np.sort(fit.predict_raw(X, o))
+    np.testing.assert_allclose(kept_raw, predicted, rtol=1e-12, atol=1e-12)
+    if not fam.params:  # nothing needs the rows: the trees' range suffices, the targets were not kept
+        assert info["trained_check"] == "bounds" and all(p[1] is None for p in parts)
+        return
+    assert info["trained_check"] == "kept" and info["kept_scores"] == "used"
+    assert "kept_scores" in info["seconds"] and "trained_check" not in info["seconds"]
+    # the targets and weights as handed to LightGBM, in float64 (its own Dataset keeps float32)
+    np.testing.assert_array_equal(np.sort(np.concatenate([p[1] for p in parts])), np.sort(y))
+    np.testing.assert_array_equal(np.sort(np.concatenate([p[2] for p in parts])), np.sort(w))
+    # the prediction path's nuisance fit on the same model (same start: the family's own fit on a
+    # block of the first partition's size; then passes over all rows, summed in another order)
+    yd, wd = data.aligned(client)[1:3]
+    by_prediction = cluster.fit_nuisance(client, fam, yd, wd, fit.predict_raw(data.X, data.offset))
+    assert fit.fitted_family.scale == pytest.approx(by_prediction.scale, rel=1e-8)
+    assert fit.fitted_family.scale == pytest.approx(fam.fit_nuisance(y, fit.predict_raw(X, o), w).scale, rel=1e-7)
+
+    # forced onto the prediction path (as when a worker lost its kept rows): the rows are predicted
+    monkeypatch.setattr(cluster.KeptRows, "check", lambda self, fam, n, need, stats: (
+        stats.__setitem__("kept", "incomplete"), (False, None))[1])
+    again = lfl.train(fam, PARAMS["lightgbm"], data, ROUNDS, client=client)
+    assert again.info["cluster"]["trained_check"] == "rows" and again.info["cluster"]["kept_scores"] == "incomplete"
+    assert again.fitted_family.scale == pytest.approx(
+        fam.fit_nuisance(y, again.predict_raw(X, o), w).scale, rel=1e-7)
+    assert _store_sizes(client) == [0, 0]
+
+
+def test_lightgbm_kept_scores_fall_back_after_early_stopping(client):
+    """A model cut by early stopping is not the one whose scores were kept: the rows are predicted."""
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    X, y, w, _ = _delays(61, 3000)
+    Xv, yv, wv, _ = _delays(62, 1500)
+    fit = lfl.train(fam, dict(PARAMS["lightgbm"], learning_rate=0.8, num_leaves=31, min_data_in_leaf=5),
+                    lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w)), 80,
+                    valid_sets=[lossfam.ClusterData(_dask(Xv), _dask(yv), weight=_dask(wv))],
+                    callbacks=[lgb.early_stopping(3, verbose=False)], client=client)
+    info = fit.info["cluster"]
+    assert fit.best_iteration is not None and fit.booster.num_trees() == fit.best_iteration + 1 < 80
+    assert info["trained_check"] == "rows" and info["kept_scores"] == "early stopping cut the model"
+    assert fit.fitted_family.scale == pytest.approx(fam.fit_nuisance(y, fit.predict_raw(X), w).scale, rel=1e-7)
+    assert _store_sizes(client) == [0, 0]
+
+
+def test_bad_kept_scores_are_named_by_the_prediction_pass(client, monkeypatch):
+    """Rows whose trained raw score leaves the log link's range (an offset of -800: e^raw is 0) are
+    found in the kept scores; the prediction pass then names them, and the store is emptied."""
+    X, y, _, o = _claims(71, 1600)
+    o[[1234, 1300]] = -800.0
+    y[[1234, 1300]] = 0.0
+    reasons = []
+    check = cluster.KeptRows.check
+
+    def spy(self, fam, n, need, stats):
+        out = check(self, fam, n, need, stats)
+        reasons.append(stats.get("kept"))
+        return out
+    monkeypatch.setattr(cluster.KeptRows, "check", spy)
+    with pytest.raises(ValueError, match=r"diverged.* at 2 training rows \(e.g. rows \[1234, 1300\]\)"):
+        lfl.train("poisson", PARAMS["lightgbm"], lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 5,
+                  native=False, client=client)
+    assert reasons == ["bad rows"]
+    assert _store_sizes(client) == [0, 0]
+
+
+def test_kept_scores_need_lightgbm_dasks_model_factory():
+    """The private entry point is guarded: without its model_factory argument nothing is kept (the
+    rows are predicted), and an objective whose output cannot be mapped back keeps nothing."""
+    from lossfam import _lightgbm_keep
+
+    class Plan:
+        stats = {}
+
+    class OldDask:
+        class DaskLGBMRegressor:
+            def _lgb_dask_fit(self, X, y, **kwargs):
+                pass
+
+    assert lfl._keeping(OldDask, None, Plan, "quantile", True) == (None, None, None)
+    assert Plan.stats["kept"] == "lightgbm.dask takes no model_factory"
+    import lightgbm.dask as ldask
+
+    assert lfl._keeping(ldask, None, Plan, "binary", False) == (None, None, None)
+    assert Plan.stats["kept"] == "LightGBM's binary output is not kept"
+    assert _lightgbm_keep.inverse_for("poisson") == "log" and _lightgbm_keep.inverse_for(lambda *a: None) == "identity"

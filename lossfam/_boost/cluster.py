@@ -41,6 +41,12 @@ nuisance parameters
     student_t, negative_binomial and tweedie, in 4 passes after the start).
     Where the curvature is not positive, a derivative-free search (Brent,
     Nelder-Mead) with one pass per evaluation.
+trained scores (check, nuisance fit)
+    Where the engine's training left each worker's trained raw scores behind
+    (LightGBM: ``lossfam._lightgbm_keep`` keeps them with ``keep_scores``),
+    ``KeptRows`` runs the check and the nuisance passes as one task per worker
+    on those arrays; otherwise, or when they do not cover every row of the
+    final model, ``PartitionRows`` runs them per partition on predicted scores.
 metric
     ``Scorer.sums`` per partition, added.
 best round (LightGBM early stopping)
@@ -92,8 +98,8 @@ SELECT_PIVOTS = 1024
 NEWTON_STEPS = 100
 
 #: lossfam's own steps on a cluster, in the order they run (``fit.info["cluster"]["seconds"]``)
-STEPS = ("data", "checks", "baseline", "starts", "prefit", "valid_starts", "model", "tree_range", "trained_check",
-         "nuisance", "refit", "valid_metrics", "best_round")
+STEPS = ("data", "checks", "baseline", "starts", "prefit", "valid_starts", "model", "tree_range", "kept_scores",
+         "trained_check", "nuisance", "refit", "valid_metrics", "best_round")
 
 
 class timed:
@@ -510,7 +516,30 @@ def _local_fit_block(y, w, raw, start, fam):
         return None
 
 
-def fit_nuisance(client, fam, y, w, raw, stats=None, first=None):
+class PartitionRows:
+    """The training rows as Dask arrays ``y``, ``w`` (or None), ``raw`` with the same row chunks:
+    each pass is one task per partition (``partition_sums``)."""
+
+    def __init__(self, client, y, w, raw):
+        self.client, self.y, self.w, self.raw = client, y, w, raw
+
+    def sums(self, fn, *extra):
+        """sum over partitions of ``fn(y, w, raw, start_row, *extra)``."""
+        return partition_sums(self.client, fn, [self.y, self.w, self.raw], *extra)
+
+    @property
+    def blocks(self):
+        return self.y.numblocks[0]
+
+    def own_fit(self, fam, i):
+        """The family's own nuisance fit on partition ``i`` (None when it fails)."""
+        dask, _, _ = _dask()
+        blocks = [self.y.to_delayed().ravel()[i], _blocks(self.w, self.y.numblocks[0])[i],
+                  self.raw.to_delayed().ravel()[i]]
+        return self.client.compute(dask.delayed(_local_fit_block, pure=True)(*blocks, 0, fam)).result()
+
+
+def fit_nuisance(client, fam, y, w, raw, stats=None, first=None, rows=None):
     """Maximum-likelihood nuisance parameters at the raw scores ``raw`` (Dask array), on the cluster.
 
     The parameters fitted are those the family's own fit returns (asymmetric
@@ -519,30 +548,29 @@ def fit_nuisance(client, fam, y, w, raw, stats=None, first=None):
     weighted mean nll over all partitions is minimised over their logs, one
     pass per evaluation.  Keeps the given parameters where no finite maximum
     exists (as ``fit_nuisance_or_keep``).  ``first``: that fit on the first partition when an
-    earlier pass has run it (``check_trained``)."""
+    earlier pass has run it (``check_trained``).  ``rows``: where the passes run, a
+    ``PartitionRows`` (the default, from ``y``, ``w``, ``raw``) or the ``KeptRows`` of a training
+    (then ``y``, ``w``, ``raw`` are not used)."""
     if not fam.params:
         return fam
-    dask, _, _ = _dask()
     stats = {} if stats is None else stats
     stats.setdefault("nuisance_passes", 0)
-    ys, ws, rs = y.to_delayed().ravel(), _blocks(w, y.numblocks[0]), raw.to_delayed().ravel()
+    rows = PartitionRows(client, y, w, raw) if rows is None else rows
     local = first
-    for i in range(1 if first else 0, min(len(ys), 4)):  # the first partition where the family's own fit succeeds
+    for i in range(1 if first else 0, min(rows.blocks, 4)):  # the first block where the family's own fit succeeds
         if local:
             break
-        local = client.compute(dask.delayed(_local_fit_block, pure=True)(ys[i], ws[i], rs[i], 0, fam)).result()
+        local = rows.own_fit(fam, i)
         stats["nuisance_passes"] += 1
-        if local:
-            break
     if not local:
         return fam
     names = sorted(local)
     start = np.array([math.log(float(local[n])) if float(local[n]) > 0 else math.log(float(fam.params[n]))
                       for n in names])
 
-    best = _newton_fd(client, fam, names, start, y, w, raw, stats)
+    best = _newton_fd(rows, fam, names, start, stats)
     if best is None:  # no convergence by Newton steps: a derivative-free search, one pass per evaluation
-        best = _search(client, fam, names, start, y, w, raw, stats)
+        best = _search(rows, fam, names, start, stats)
     if best is None or not np.all(np.isfinite(best)):
         return fam
     try:
@@ -568,15 +596,15 @@ def _nll_many_block(y, w, raw, start, fams):
     return out
 
 
-def _mean_nll_at(client, fam, names, points, y, w, raw, stats):
-    """The weighted mean nll at several log-parameter points, in one pass."""
+def _mean_nll_at(rows, fam, names, points, stats):
+    """The weighted mean nll at several log-parameter points, in one pass over ``rows``."""
     fams = []
     for p in points:
         try:
             fams.append(fam.with_params(**dict(zip(names, np.exp(p)))))
         except ValueError:
             fams.append(None)
-    sums = partition_sums(client, _nll_many_block, [y, w, raw], fams)
+    sums = rows.sums(_nll_many_block, fams)
     stats["nuisance_passes"] += 1
     with np.errstate(invalid="ignore"):
         vals = sums[:-1] / sums[-1]
@@ -588,7 +616,7 @@ FD_STEPS = (1e-2, 1e-4)
 NUISANCE_TOL = 1e-9
 
 
-def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
+def _newton_fd(rows, fam, names, start, stats, max_passes=30):
     """Newton steps on the log-parameters with central-difference derivatives of the mean nll; the
     1 + 2d + 2d(d-1) evaluations of one step take one pass.  The central differences are off by
     O(h^2) in the derivatives, so the fine step h = 1e-4 places the minimum to about 1e-8 in
@@ -609,7 +637,7 @@ def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
             for j in range(i + 1, d):
                 for si, sj in ((1, 1), (1, -1), (-1, 1), (-1, -1)):
                     pts.append(x + h * (si * eye[i] + sj * eye[j]))
-        v = _mean_nll_at(client, fam, names, pts, y, w, raw, stats)
+        v = _mean_nll_at(rows, fam, names, pts, stats)
         if f_x is not None and v[0] > f_x:  # the last step went uphill: go back half-way
             x = 0.5 * (x + x_prev)
             continue
@@ -646,11 +674,11 @@ def _newton_fd(client, fam, names, start, y, w, raw, stats, max_passes=30):
     return None
 
 
-def _search(client, fam, names, start, y, w, raw, stats):
+def _search(rows, fam, names, start, stats):
     from scipy import optimize
 
     def objective(logp):
-        return float(_mean_nll_at(client, fam, names, [np.atleast_1d(logp)], y, w, raw, stats)[0])
+        return float(_mean_nll_at(rows, fam, names, [np.atleast_1d(logp)], stats)[0])
 
     if len(names) == 1:
         res = optimize.minimize_scalar(lambda t: objective(np.array([t])), bracket=(start[0] - 0.1, start[0] + 0.1),
@@ -707,6 +735,154 @@ def check_trained(client, fam, raw, y=None, w=None):
                          f"(e.g. rows {rows}) are not finite or leave the {fam.link_function.name} link's range; "
                          "use a smaller learning rate (or a step_limit)")
     return first
+
+
+# --------------------------------------------------------------------------- scores kept from the engine's training
+#: per process: (training token, worker address) -> ``Kept``, filled on the workers during an engine's
+#: training (``keep_scores``), read by ``KeptRows``' tasks, emptied by ``KeptRows.drop``.  The address
+#: is part of the key: ``LocalCluster(processes=False)`` runs several workers in one process.
+_KEPT = {}
+
+
+@dataclasses.dataclass
+class Kept:
+    """One worker's training rows as its engine trained them, float64: the trained raw scores (start
+    and offset included); the targets and weights handed to the engine (y None: not kept; w None:
+    unweighted); the model rounds the scores include."""
+
+    raw: np.ndarray
+    y: object
+    w: object
+    rounds: int
+
+
+def _worker_address():
+    try:
+        from distributed import get_worker
+
+        return get_worker().address
+    except (ImportError, ValueError):
+        return None
+
+
+def keep_scores(token, raw, y, w, rounds):
+    """On a worker, inside the engine's training: keep its rows' trained raw scores (and ``y``, ``w``)
+    under ``token``.  Returns False (nothing kept) outside a dask worker."""
+    address = _worker_address()
+    if address is None:
+        return False
+    _KEPT[(token, address)] = Kept(np.asarray(raw, dtype=np.float64), y, w, int(rounds))
+    return True
+
+
+def _kept_census(token, dask_worker=None):
+    kept = _KEPT.get((token, dask_worker.address))
+    return None if kept is None else (int(kept.raw.size), kept.rounds, kept.y is not None)
+
+
+def _kept_drop(token, dask_worker=None):
+    _KEPT.pop((token, dask_worker.address), None)
+
+
+def _kept_arrays(token, lo, hi):
+    kept = _KEPT.get((token, _worker_address()))
+    if kept is None:  # (the census found it; only a restarted worker loses it)
+        raise RuntimeError("the trained scores kept on this worker are gone")
+    sl = slice(lo, hi)
+    return (None if kept.y is None else kept.y[sl]), (None if kept.w is None else kept.w[sl]), kept.raw[sl]
+
+
+def _kept_sums(token, fn, extra):
+    y, w, raw = _kept_arrays(token, None, None)
+    return np.asarray(fn(y, w, raw, 0, *extra), dtype=np.float64)
+
+
+def _kept_fit(token, lo, hi, fam):
+    y, w, raw = _kept_arrays(token, lo, hi)
+    return _local_fit_block(y, w, raw, 0, fam)
+
+
+def _kept_check(token, fam, fit_rows):
+    """A worker's count of bad trained scores, and with ``fit_rows`` the family's own nuisance fit on
+    its first ``fit_rows`` rows."""
+    y, w, raw = _kept_arrays(token, None, None)
+    bad = int(_trained_block(raw, 0, fam)[0])
+    if not fit_rows or bad:
+        return bad, None
+    return bad, _local_fit_block(y[:fit_rows], None if w is None else w[:fit_rows], raw[:fit_rows], 0, fam)
+
+
+class KeptRows:
+    """The training rows as the engine's training left them on the workers (``keep_scores``): the
+    trained raw scores with the float64 targets and weights, one array each per worker.  Used in
+    place of ``PartitionRows`` with the raw scores predicted: a pass is one task per worker, pinned
+    to it.  ``block_rows``: rows per block of the family's own nuisance fit (the first partition's
+    length, as on the partition path).  ``drop`` empties the workers' store (always call it)."""
+
+    def __init__(self, client, token, block_rows):
+        self.client, self.token, self.block_rows = client, token, max(int(block_rows), 1)
+        self.rounds = None  # the rounds of the final model (set by the engine adapter after training)
+        self.unusable = None  # or why the adapter knows the kept scores do not fit the final model
+        self.sizes = {}
+        self.dropped = False
+
+    def _submit(self, address, fn, *args):
+        return self.client.submit(fn, self.token, *args, workers=[address], allow_other_workers=False, pure=False)
+
+    def check(self, fam, n, need_targets, stats):
+        """Check the kept scores of all ``n`` training rows (``check_trained``'s test) and, with
+        ``need_targets``, run the family's own nuisance fit on the first worker's first block in
+        the same pass.  Returns (True, that fit) when the kept rows can stand in for the predicted
+        ones, else (False, None), with the reason in ``stats["kept"]``: ``unusable`` set by the
+        adapter (e.g. early stopping cut the model); some worker lacks its kept rows or they belong
+        to a model of other rounds ("incomplete"); a row is bad ("bad rows": the prediction pass
+        then names the rows)."""
+        if self.unusable is not None or self.rounds is None:
+            stats["kept"] = self.unusable or "incomplete"
+            return False, None
+        census = self.client.run(_kept_census, self.token)
+        held = {a: c for a, c in census.items() if c is not None and c[0] > 0}
+        if (sum(c[0] for c in held.values()) != n
+                or any(c[1] != self.rounds or (need_targets and not c[2]) for c in held.values())):
+            stats["kept"] = "incomplete"
+            return False, None
+        self.sizes = {a: held[a][0] for a in sorted(held)}
+        first = next(iter(self.sizes))
+        futures = [self._submit(a, _kept_check, fam, self.block_rows if need_targets and a == first else 0)
+                   for a in self.sizes]
+        out = self.client.gather(futures)
+        if sum(bad for bad, _ in out):
+            stats["kept"] = "bad rows"
+            return False, None
+        stats["kept"] = "used"
+        return True, out[0][1]
+
+    @property
+    def blocks(self):
+        """Blocks of ``block_rows`` rows, over the workers in turn (``own_fit``)."""
+        return sum(-(-size // self.block_rows) for size in self.sizes.values())
+
+    def own_fit(self, fam, i):
+        """The family's own nuisance fit on block ``i``: worker ``i % workers``, its rows
+        ``[k m, (k + 1) m)`` with k = i // workers, m = ``block_rows`` (None when it fails or
+        that worker has fewer rows)."""
+        addresses = list(self.sizes)
+        address, k = addresses[i % len(addresses)], i // len(addresses)
+        lo = k * self.block_rows
+        if lo >= self.sizes[address]:
+            return None
+        return self._submit(address, _kept_fit, lo, lo + self.block_rows, fam).result()
+
+    def sums(self, fn, *extra):
+        """sum over workers of ``fn(y, w, raw, 0, *extra)`` on each worker's kept rows."""
+        parts = self.client.gather([self._submit(a, _kept_sums, fn, extra) for a in self.sizes])
+        return np.sum(parts, axis=0)
+
+    def drop(self):
+        """Remove the kept arrays from every worker (once)."""
+        if not self.dropped:
+            self.client.run(_kept_drop, self.token)
+            self.dropped = True
 
 
 # --------------------------------------------------------------------------- the plan
@@ -862,7 +1038,7 @@ def _range_is_fine(fam, plan, tree_range):
         return bool(np.all(link.prediction_domain.inside(link.inverse(np.array([lo, hi])))))
 
 
-def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kind, tree_range=None):
+def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kind, tree_range=None, kept=None):
     """Check the trained scores, fit the nuisance parameters (training rows, or the valid set
     ``nuisance_set``) and score the valid sets, all on the workers; sets ``fit.fitted_family`` and
     ``fit.info["cluster"]``.  ``valids``: list of ``ClusterPlan.start_for`` tuples.
@@ -871,24 +1047,43 @@ def finish(plan: ClusterPlan, fit, valids, valid_names, nuisance_set, metric_kin
     engine adapter reads it from the model).  When no nuisance fit needs the training rows' raw
     scores and that range, plus the baseline and the offsets' range, stays finite and inside the
     link's range, no row can fail the check, and the pass that predicts every training row is
-    skipped (local training checks the engine's own training output, which costs nothing)."""
+    skipped (local training checks the engine's own training output, which costs nothing).
+
+    ``kept``: the ``KeptRows`` of this training (the engine's own trained scores left on the
+    workers), used in place of predicting every training row when they cover all rows of the
+    final model and pass the check (else the rows are predicted, and a bad row is named as
+    always); dropped from the workers here, also on errors."""
     client, fam, stats = plan.client, plan.family, plan.stats
     need_rows = bool(fam.params) and nuisance_set is None
-    with timed(stats, "trained_check"):
+    try:
+        rows = first = None
         if not need_rows and tree_range is not None and _range_is_fine(fam, plan, tree_range):
-            raw, stats["trained_check"] = None, "bounds"  # no row can be off: no pass over the rows needed
+            with timed(stats, "trained_check"):
+                stats["trained_check"] = "bounds"  # no row can be off: no pass over the rows needed
         else:
-            raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
-            first = check_trained(client, fam, raw, *((plan.y, plan.weight) if need_rows else ()))
-            stats["trained_check"] = "rows"
-    with timed(stats, "nuisance"):
-        if not fam.params:
-            fitted = fam
-        elif nuisance_set is None:
-            fitted = fit_nuisance(client, fam, plan.y, plan.weight, raw, stats, first=first)
-        else:
-            X, y, w, o, _ = valids[int(nuisance_set)]
-            fitted = fit_nuisance(client, fam, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]), stats)
+            if kept is not None:
+                with timed(stats, "kept_scores"):
+                    usable, first = kept.check(fam, int(plan.y.shape[0]), need_rows, stats)
+                if usable:
+                    rows, stats["trained_check"] = kept, "kept"
+            if rows is None:
+                with timed(stats, "trained_check"):
+                    raw = client.persist(predict_raw(fit, plan.X, plan.offset, lengths=plan.y.chunks[0]))
+                    first = check_trained(client, fam, raw, *((plan.y, plan.weight) if need_rows else ()))
+                    stats["trained_check"] = "rows"
+                rows = PartitionRows(client, plan.y, plan.weight, raw)
+        with timed(stats, "nuisance"):
+            if not fam.params:
+                fitted = fam
+            elif nuisance_set is None:
+                fitted = fit_nuisance(client, fam, plan.y, plan.weight, None, stats, first=first, rows=rows)
+            else:
+                X, y, w, o, _ = valids[int(nuisance_set)]
+                fitted = fit_nuisance(client, fam, y, w, predict_raw(fit, X, o, lengths=y.chunks[0]), stats)
+    finally:
+        if kept is not None:
+            with timed(stats, "kept_scores"):
+                kept.drop()
     fit.fitted_family = fitted
     metrics = stats.pop("valid_metrics", None)
     if metrics is None:  # (early stopping has scored them already, round by round)
@@ -970,7 +1165,7 @@ def cluster_info(plan, client, metrics):
         "baseline_passes": int(stats.get("passes", 0)), "nuisance_passes": int(stats.get("nuisance_passes", 0)),
         "refit_passes": int(stats.get("refit_passes", 0)),
         "gathered_rows": int(stats.get("gathered", 0)), "valid_metrics": metrics,
-        "trained_check": stats.get("trained_check"),
+        "trained_check": stats.get("trained_check"), "kept_scores": stats.get("kept"),
         **({"valid_curves": stats["valid_curves"], "rounds_trained": stats["rounds_trained"]}
            if "valid_curves" in stats else {}),
         "lossfam_seconds": round(total, 4), "engine_seconds": round(engine, 4),
