@@ -679,3 +679,57 @@ def test_censored_math_is_never_nan_far_in_the_tails(name):
         assert np.all(np.isfinite(g[near])) and np.all(np.isfinite(h[near])), (g, h, *rows)
 
     check()
+
+
+@pytest.mark.parametrize("df", [0.3, 1.0, 2.5, 4.0, 9.0])
+def test_student_t_far_tail_against_mpmath(df):
+    # outside reference: mpmath at 50 digits, F0(z) = I_x(nu/2, 1/2) / 2 with x = nu / (nu + z^2)
+    # (scipy.stats.t.logcdf returns -inf once F0 underflows, e.g. df = 2 at z = -1e155)
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 50
+    fam = lossfam.family("student_t", df=df)
+    for z in (-3e8, -1e155, -1.7e308):
+        zz = mpmath.mpf(z)
+        x = df / (df + zz * zz)
+        ref = mpmath.log(mpmath.betainc(mpmath.mpf(df) / 2, mpmath.mpf(1) / 2, 0, x, regularized=True) / 2)
+        left = fam.nll(interval_target([-np.inf], [z]), np.zeros(1))[0]
+        right = fam.nll(interval_target([-z], [np.inf]), np.zeros(1))[0]
+        assert left == pytest.approx(-float(ref), rel=1e-12) and right == pytest.approx(-float(ref), rel=1e-12)
+        g, h = fam.grad_hess(interval_target([-np.inf], [z]), np.zeros(1))
+        assert np.isfinite(g[0]) and np.isfinite(h[0]) and h[0] >= 0
+
+
+def test_intervals_whose_log_tails_round_equal_or_underflow():
+    # gaussian [-1, 0] at raw -1e15: P = S(z_lo) (1 - e^(-1e15)) is S(z_lo) to rounding, z_lo = 1e15 - 1:
+    # the right-censored row's g = -r(z_lo), r = z + 1/z - ... (the Mills ratio, A&S 26.2.12, recalled
+    # from memory), h = r (r - z) -> 1
+    fam = lossfam.family("gaussian")
+    g, h = fam.grad_hess(interval_target([-1.0], [0.0]), np.array([-1e15]))
+    assert g[0] == pytest.approx(-(1e15 - 1.0), rel=1e-14) and h[0] == pytest.approx(1.0, rel=1e-9)
+    # at raw -1e16 the two bounds give the same z: P = f(m) w to rounding (m the midpoint, w = 1)
+    t = interval_target([-1.0], [0.0])
+    nll = fam.nll(t, np.array([-1e16]))[0]
+    assert nll == pytest.approx(0.5 * (1e16 - 0.5) ** 2 + 0.5 * np.log(2 * np.pi), rel=1e-15)
+    g, h = fam.grad_hess(t, np.array([-1e16]))
+    assert g[0] == pytest.approx(-1e16, rel=1e-15) and h[0] == 1.0
+    # gaussian [1.7e214, 3.9e245] at raw 4.85: -log P ~ z^2 / 2 exceeds float64 (+inf); the gradient
+    # is the hazard at the near bound, -z_lo (finite)
+    t = interval_target([1.7e214], [3.9e245])
+    assert fam.nll(t, np.array([4.85]))[0] == np.inf
+    g, h = fam.grad_hess(t, np.array([4.85]))
+    assert g[0] == pytest.approx(-1.7e214, rel=1e-14) and h[0] == pytest.approx(1.0, rel=1e-9)
+    # laplace [-1e200, 1e200] at raw 1e300: log F(hi) and log F(lo) round equal; -log P = |z_hi| + log 2
+    # to rounding (1e300), g = 1 / s
+    lap = lossfam.family("laplace", scale=2.0)
+    t = interval_target([-1e200], [1e200])
+    assert lap.nll(t, np.array([1e300]))[0] == pytest.approx(0.5e300, rel=1e-15)
+    g, h = lap.grad_hess(t, np.array([1e300]))
+    assert g[0] == 0.5 and np.isfinite(h[0]) and h[0] >= 0
+    # a subnormal width: P = f(0) 5e-324 (student_t df = 1: f(0) = 1 / pi)
+    t1 = lossfam.family("student_t", df=1.0)
+    assert t1.nll(interval_target([0.0], [5e-324]), np.zeros(1))[0] == pytest.approx(np.log(np.pi) - np.log(5e-324), rel=1e-12)
+    # weibull [1, 10] at raw -355: -log P = (e^355)^2 exceeds float64, and so do g and h: the limits
+    w = lossfam.family("weibull", shape=2.0)
+    t = interval_target([1.0], [10.0])
+    assert w.nll(t, np.array([-355.0]))[0] == np.inf
+    assert w.grad_hess(t, np.array([-355.0]))[0][0] == -np.inf and w.grad_hess(t, np.array([-355.0]))[1][0] == np.inf

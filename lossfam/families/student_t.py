@@ -68,22 +68,24 @@ DF_RANGE = (0.05, 1e6)
 
 #: beyond this |z| the censored pieces use the far-tail forms (_log_t_tail, _log1p_sq, _t_score)
 _T_FAR = 1e8
+#: beyond this |z|, z^2 is near overflow: log1p(z^2 / nu) and psi are written without z^2
+_T_HUGE = 1e100
 
 
 def _log1p_sq(z, nu):
-    """log(1 + z^2 / nu), written 2 log|z| - log nu + log1p(nu / z^2) for |z| > 1 (z^2 may overflow)."""
+    """log(1 + z^2 / nu), written 2 log|z| - log nu + log1p(nu / z^2) for |z| > 1e100 (z^2 may overflow)."""
     z = np.asarray(z, dtype=float)
     with np.errstate(over="ignore", divide="ignore"):
         a = np.abs(z)
-        big = a > 1.0
+        big = a > _T_HUGE
         safe = np.where(big, a, 1.0)
         return np.where(big, 2.0 * np.log(safe) - np.log(nu) + np.log1p(nu / (safe * safe)), np.log1p(z * z / nu))
 
 
 def _t_score(z, nu):
-    """psi(z) = -(nu + 1) z / (nu + z^2), written -(nu + 1) / (z + nu / z) for |z| > 1 (no inf / inf)."""
+    """psi(z) = -(nu + 1) z / (nu + z^2), written -(nu + 1) / (z + nu / z) for |z| > 1e100 (no inf / inf)."""
     z = np.asarray(z, dtype=float)
-    big = np.abs(z) > 1.0
+    big = np.abs(z) > _T_HUGE
     safe = np.where(big, z, 1.0)
     return np.where(big, -(nu + 1.0) / (safe + nu / safe), -(nu + 1.0) * z / (nu + z * z))
 
