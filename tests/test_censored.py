@@ -427,7 +427,8 @@ def test_fast_kernel_agrees_with_the_log_space_terms(key):
     # number (larger tail) / P of that difference (1e6 on student_t's (1e6, 1e6 + 0.7))
     law = scipy_law(fam, r4)
     with np.errstate(all="ignore"):
-        log_big = np.minimum(law.logsf(np.where(np.isfinite(lo), lo, 1.0)), law.logcdf(np.where(np.isfinite(hi), hi, 1.0)))
+        log_big = np.minimum(law.logsf(np.where(np.isfinite(lo), lo, 1.0)),
+                             law.logcdf(np.where(np.isfinite(hi), hi, 1.0)))
         cond = np.where(np.isfinite(lo) & np.isfinite(hi) & (lo < hi) & (lo > 0 if pos else True),
                         np.exp(np.minimum(log_big + nll, 700.0)), 1.0)
     ok_g = (np.abs(g - g0) <= (1e-9 + 64 * np.finfo(float).eps * cond) * np.abs(g0) + 1e-300) | ~trusted
@@ -540,6 +541,10 @@ def test_integer_gamma_curvature_terms_against_mpmath(k):
         if zi < 5:  # beyond, q underflows and c = x - k
             assert c_left[i] == pytest.approx(float(f0 / f_0 - kk + x), rel=1e-11), zi
     assert np.all(np.isfinite(r[:-1])) and np.all(np.isfinite(q)) and np.all(np.isfinite(c_left))
+    # right-censored where x = k e^z is near the top of float64: r = x - (k - 1) + O(1/x) = x
+    # in float64 (the asymptotic of the hazard), finite, c -> 1
+    r, c = law.right(np.array([700.0]))
+    assert r[0] == pytest.approx(k * np.exp(700.0), rel=1e-13) and c[0] == pytest.approx(1.0, rel=1e-13)
 
 
 @pytest.mark.parametrize("df", [1.0, 2.0, 3.0, 4.0, 5.0, 9.0, 10.0, 60.0])

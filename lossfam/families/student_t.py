@@ -43,6 +43,8 @@ for the best steps.
 Censored rows (lossfam.families._censored): the standard t law of z = (y - raw) / s, log tails
 from scipy.stats.t.logcdf / logsf, score psi = -(nu+1) z / (nu + z^2).  The censored Hessian is
 negative for some rows (the t density is not log-concave); there the surrogate g^2 is used.
+The censored gradient and Hessian at an integer df (even up to 60, odd up to 9) use the t
+cdf's finite sums in closed form instead of ``stdtr`` (EvenStudentTTails, OddStudentTTails).
 """
 from __future__ import annotations
 
