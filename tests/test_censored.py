@@ -738,3 +738,22 @@ def test_intervals_whose_log_tails_round_equal_or_underflow():
     t = interval_target([1.0], [10.0])
     assert w.nll(t, np.array([-355.0]))[0] == np.inf
     assert w.grad_hess(t, np.array([-355.0]))[0][0] == -np.inf and w.grad_hess(t, np.array([-355.0]))[1][0] == np.inf
+
+
+@pytest.mark.parametrize("k", [0.3, 2.5, 9.3, 29.5])
+def test_gamma_right_censored_far_tail_against_mpmath(k):
+    # outside reference: mpmath at 80 digits, Gamma(k, x) = x^k E_(1-k)(x) (mpmath.expint): the
+    # hazard r = x^k e^-x / Gamma(k, x) and c = r + k - x of the right-censored row (z units,
+    # x = k e^z); the log-space pieces lost eps x of relative accuracy here (wrong by 1e-3 at z = 30)
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 80
+    fam = lossfam.family("gamma", shape=k)
+    kk = mpmath.mpf(k)
+    for x0 in (4 * k + 49.0, 4 * k + 51.0, 300.0, 705.0, 2000.0, 1e13, 1e20):
+        v = x0 / k
+        g, h = fam.grad_hess(interval_target([v], [np.inf]), np.zeros(1))
+        x = kk * mpmath.mpf(v)
+        u = mpmath.expint(1 - kk, x) * x * mpmath.e ** x
+        r = x / u
+        c = r + kk - x
+        assert g[0] == pytest.approx(-float(r), rel=1e-13) and h[0] == pytest.approx(float(r * c), rel=1e-12)

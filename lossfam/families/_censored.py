@@ -51,6 +51,22 @@ approximation of the information), which is positive wherever the gradient is
 non-zero: a Newton step on such a row alone is then -1 / g, e.g. one scale
 unit on laplace's tails.
 
+Limits far in the tails
+-----------------------
+Where float64 cannot hold the terms above, the limits of the exact values are used:
+
+* a closed row whose log tails round to the same value (its bounds give one transformed point,
+  or the law is so far away that the difference of logs is lost): P = f(m) w (1 + O(w psi)) with
+  m the midpoint and w = hi - lo, so nll = -log f(m) - log w and the gradient and Hessian are the
+  exact row's at m (``_narrow_limit``);
+* a closed row whose far tail is below eps of its near one (log difference < -40) and whose
+  ratios are lost: P is the near tail to rounding, so it is the one-sided row at the near bound
+  (by the TailLaw's hazard where the family has one);
+* nll = +inf only where -log P itself exceeds float64 (P below e^-1.8e308), and then the
+  gradient and Hessian are -+inf and +inf only where the log tail has no finite value either
+  (e.g. weibull right-censored at k z > 709: g = -k e^(k z)).  NaN is never returned for legal
+  bounds and finite raw scores.
+
 Exact rows (lo == hi) use the family's own ``_nll`` and ``_grad_hess``, so a
 target with no censored row gives today's numbers bit for bit.
 
