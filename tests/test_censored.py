@@ -757,3 +757,31 @@ def test_gamma_right_censored_far_tail_against_mpmath(k):
         r = x / u
         c = r + kk - x
         assert g[0] == pytest.approx(-float(r), rel=1e-13) and h[0] == pytest.approx(float(r * c), rel=1e-12)
+
+
+@pytest.mark.parametrize("name,params,zl,zh", [
+    ("weibull", {"shape": 1.8}, 29.93, 32.47), ("gamma", {"shape": 2.5}, 30.0, 30.1),
+    ("gamma", {"shape": 2.5}, 100.0, 100.5), ("lognormal", {"scale": 0.6}, 28.46, 29.54),
+])
+def test_closed_intervals_far_in_the_upper_tail_against_mpmath(name, params, zl, zh):
+    # outside reference: mpmath at 60 digits, numerical derivatives (mpmath.diff) of
+    # -log(S(lo) - S(hi)) in raw (S by exp, gammainc, ncdf); bounds e^zl, e^zh at raw 0 (log y units)
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 60
+    fam = lossfam.family(name, **params)
+    lo, hi = float(np.exp(zl)), float(np.exp(zh))
+    p = mpmath.mpf(list(params.values())[0])
+
+    def sf(v, r):
+        if name == "weibull":
+            return mpmath.e ** (-((v / mpmath.e ** r) ** p))
+        if name == "gamma":
+            return mpmath.gammainc(p, p * v / mpmath.e ** r, mpmath.inf, regularized=True)
+        return mpmath.ncdf(-(mpmath.log(v) - r) / p)
+
+    def nll(r):
+        return -mpmath.log(sf(mpmath.mpf(lo), r) - sf(mpmath.mpf(hi), r))
+
+    g, h = fam.grad_hess(interval_target([lo], [hi]), np.zeros(1))
+    assert g[0] == pytest.approx(float(mpmath.diff(nll, 0)), rel=1e-12)
+    assert h[0] == pytest.approx(float(mpmath.diff(nll, 0, 2)), rel=1e-10)

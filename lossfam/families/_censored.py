@@ -59,9 +59,10 @@ Where float64 cannot hold the terms above, the limits of the exact values are us
   or the law is so far away that the difference of logs is lost): P = f(m) w (1 + O(w psi)) with
   m the midpoint and w = hi - lo, so nll = -log f(m) - log w and the gradient and Hessian are the
   exact row's at m (``_narrow_limit``);
-* a closed row whose far tail is below eps of its near one (log difference < -40) and whose
-  ratios are lost: P is the near tail to rounding, so it is the one-sided row at the near bound
-  (by the TailLaw's hazard where the family has one);
+* a closed row whose far tail is below eps of its near one (log difference < -40): P is the
+  near tail to rounding (the far bound adds at most e^-40 times a ratio of hazards), so it is the
+  one-sided row at the near bound: by the TailLaw's hazard where the family has one (rows the
+  linear-space kernel cannot serve), else by the log-space terms where the ratios are lost;
 * nll = +inf only where -log P itself exceeds float64 (P below e^-1.8e308), and then the
   gradient and Hessian are -+inf and +inf only where the log tail has no finite value either
   (e.g. weibull right-censored at k z > 709: g = -k e^(k z)).  NaN is never returned for legal
@@ -189,7 +190,9 @@ def interval_terms(fam, lo, hi, raw, derivatives=True, one_sided=None):
         if lost.any():
             g[lost], h[lost] = gm, hm
         if near.any():
-            swap = near & ~(np.isfinite(g) & np.isfinite(h))
+            # the log-space ratios far in a tail lose eps |log P| (all digits where log P ~ -1e13):
+            # the TailLaw's one-sided hazards, where given, replace them outright
+            swap = near if one_sided is not None else near & ~(np.isfinite(g) & np.isfinite(h))
             g[swap], h[swap] = gn[swap[near]], hn[swap[near]]
         # a one-sided row whose tail is below e^-1.8e308 (log P = -inf): its score and curvature
         # exceed float64 too (d/draw of -log S -> -inf as log S -> -inf): the limits -+inf, +inf
