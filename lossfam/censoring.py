@@ -127,7 +127,8 @@ class IntervalTarget:
         lo, hi = self.lower, self.upper
         with np.errstate(invalid="ignore"):
             mid = 0.5 * lo + 0.5 * hi
-        return np.where(np.isfinite(lo), np.where(np.isfinite(hi), mid, lo), hi)
+        # y itself on exact rows: halving a subnormal y first would round it to 0
+        return np.where(np.isfinite(lo), np.where(np.isfinite(hi), np.where(lo == hi, lo, mid), lo), hi)
 
 
 def _from_valid(lo, hi) -> IntervalTarget:

@@ -596,3 +596,192 @@ def test_closed_forms_serve_the_declared_parameters_only():
     assert isinstance(lossfam.family("student_t", df=3.0)._tail_law()[0], OddStudentTTails)
     for df in (4.5, 0.5, 62.0, 11.0, 59.0):
         assert type(lossfam.family("student_t", df=df)._tail_law()[0]).__name__ == "StudentTTails"
+
+
+# ---------------------------------------------------------------------------- no NaN far in the tails
+def _censoring_families():
+    from lossfam.families._censored import _has_pieces
+    out = []
+    for name in lossfam.available(scores="one"):
+        fam = lossfam.family(name)
+        if fam.support_edges is not None and _has_pieces(fam):
+            out.append(name)
+    return out
+
+
+#: every continuous one-score family with a censored likelihood
+ALL_CENSORING = _censoring_families()
+
+
+@st.composite
+def far_case(draw, name):
+    """A family of ``name`` (parameters from 0.1 to 10, integers 1 to 7 included: the closed forms),
+    raw scores over +-1e3 (log links) or up to +-1e300 (identity links), and exact, right-, left-
+    and interval-censored rows with bounds anywhere in the support, far tails and tiny values
+    included."""
+    cls = type(lossfam.family(name))
+    params = {k: draw(st.one_of(st.floats(0.1, 10.0), st.integers(1, 7).map(float)))
+              for k in cls.param_domains}
+    fam = cls(**params)
+    pos = fam.support_edges[0] == 0
+    n = draw(st.integers(1, 8))
+    if pos:
+        mag = st.floats(-323.0, 307.0).map(lambda u: 10.0 ** u)
+        point = st.one_of(mag, st.floats(1e-3, 1e3), st.sampled_from([5e-324, 1e-300, 1e300, 1.7e308]))
+        score = st.floats(-1e3, 1e3)
+    else:
+        mag = st.tuples(st.sampled_from([-1.0, 1.0]), st.floats(-300.0, 300.0)).map(lambda p: p[0] * 10.0 ** p[1])
+        point = st.one_of(mag, st.floats(-1e3, 1e3), st.sampled_from([-1.7e308, 1.7e308, 0.0]))
+        score = st.one_of(st.floats(-1e3, 1e3), mag)
+    a = np.array(draw(st.lists(point, min_size=n, max_size=n)))
+    b = np.array(draw(st.lists(point, min_size=n, max_size=n)))
+    raw = np.array(draw(st.lists(score, min_size=n, max_size=n)))
+    kind = np.array(draw(st.lists(st.integers(0, 3), min_size=n, max_size=n)))
+    lo, hi = np.minimum(a, b), np.maximum(a, b)
+    open_lo = 0.0 if pos else -np.inf
+    lo = np.where(kind == 1, open_lo, np.where(kind == 3, a, lo))
+    hi = np.where(kind == 2, np.inf, np.where(kind == 3, a, hi))
+    return fam, interval_target(lo, hi), raw
+
+
+@pytest.mark.parametrize("name", ALL_CENSORING)
+def test_censored_math_is_never_nan_far_in_the_tails(name):
+    # Promise: legal bounds and raw scores give no NaN.  The nll is finite except +inf where -log P
+    # itself exceeds float64 (P = e^-nll below e^-1.8e308), and the gradient and Hessian are finite
+    # except +-inf where the exact value exceeds float64 (e.g. weibull right-censored rows, where
+    # g = -k e^(k z) overflows for k z > 709); the Hessian is >= 0 (the surrogate g^2 where the
+    # exact one is not positive).  All three are finite on rows whose standardised distance from the
+    # bulk is moderate (|z| <= 1e100 on identity links, |k (log v - raw)| <= 600 on log links;
+    # exact rows are the family's own kernel, fuzzed in test_fuzz_families).
+    @settings(max_examples=150, deadline=None, derandomize=True,
+              suppress_health_check=[HealthCheck.too_slow, HealthCheck.filter_too_much])
+    @given(far_case(name))
+    def check(case):
+        fam, t, raw = case
+        with np.errstate(all="ignore"):
+            nll = fam.nll(t, raw)
+            g, h = fam.grad_hess(t, raw)
+        rows = (fam.params, t.lower.tolist(), t.upper.tolist(), raw.tolist())
+        assert not np.isnan(nll).any(), ("nll", nll, *rows)
+        assert not np.isnan(g).any(), ("g", g, *rows)
+        assert not np.isnan(h).any(), ("h", h, *rows)
+        assert np.all(nll > -np.inf) and np.all(h >= 0), (nll, h, *rows)
+        # a bound's standardised distance from the law's bulk
+        pos = fam.support_edges[0] == 0
+        spread = fam.params.get("scale", 1.0)
+        with np.errstate(all="ignore"):
+            far = np.zeros(t.size, bool)
+            for v in (t.lower, t.upper):
+                inside = np.isfinite(v) & (v > 0 if pos else True)
+                if pos:
+                    k = max(fam.params.get("shape", 1.0), 1.0 / spread)
+                    d = k * np.abs(np.log(np.where(inside, v, 1.0)) - raw)
+                    far |= inside & ~(d <= 600.0)
+                else:
+                    far |= inside & ~(np.abs((v - raw) / spread) <= 1e100)
+        near = ~far & ~t.exact  # exact rows: the family's own kernel, fuzzed on its own
+        assert np.all(np.isfinite(nll[near])), ("nll", nll, *rows)
+        assert np.all(np.isfinite(g[near])) and np.all(np.isfinite(h[near])), (g, h, *rows)
+
+    check()
+
+
+@pytest.mark.parametrize("df", [0.3, 1.0, 2.5, 4.0, 9.0])
+def test_student_t_far_tail_against_mpmath(df):
+    # outside reference: mpmath at 50 digits, F0(z) = I_x(nu/2, 1/2) / 2 with x = nu / (nu + z^2)
+    # (scipy.stats.t.logcdf returns -inf once F0 underflows, e.g. df = 2 at z = -1e155)
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 50
+    fam = lossfam.family("student_t", df=df)
+    for z in (-3e8, -1e155, -1.7e308):
+        zz = mpmath.mpf(z)
+        x = df / (df + zz * zz)
+        ref = mpmath.log(mpmath.betainc(mpmath.mpf(df) / 2, mpmath.mpf(1) / 2, 0, x, regularized=True) / 2)
+        left = fam.nll(interval_target([-np.inf], [z]), np.zeros(1))[0]
+        right = fam.nll(interval_target([-z], [np.inf]), np.zeros(1))[0]
+        assert left == pytest.approx(-float(ref), rel=1e-12) and right == pytest.approx(-float(ref), rel=1e-12)
+        g, h = fam.grad_hess(interval_target([-np.inf], [z]), np.zeros(1))
+        assert np.isfinite(g[0]) and np.isfinite(h[0]) and h[0] >= 0
+
+
+def test_intervals_whose_log_tails_round_equal_or_underflow():
+    # gaussian [-1, 0] at raw -1e15: P = S(z_lo) (1 - e^(-1e15)) is S(z_lo) to rounding, z_lo = 1e15 - 1:
+    # the right-censored row's g = -r(z_lo), r = z + 1/z - ... (the Mills ratio, A&S 26.2.12, recalled
+    # from memory), h = r (r - z) -> 1
+    fam = lossfam.family("gaussian")
+    g, h = fam.grad_hess(interval_target([-1.0], [0.0]), np.array([-1e15]))
+    assert g[0] == pytest.approx(-(1e15 - 1.0), rel=1e-14) and h[0] == pytest.approx(1.0, rel=1e-9)
+    # at raw -1e16 the two bounds give the same z: P = f(m) w to rounding (m the midpoint, w = 1)
+    t = interval_target([-1.0], [0.0])
+    nll = fam.nll(t, np.array([-1e16]))[0]
+    assert nll == pytest.approx(0.5 * (1e16 - 0.5) ** 2 + 0.5 * np.log(2 * np.pi), rel=1e-15)
+    g, h = fam.grad_hess(t, np.array([-1e16]))
+    assert g[0] == pytest.approx(-1e16, rel=1e-15) and h[0] == 1.0
+    # gaussian [1.7e214, 3.9e245] at raw 4.85: -log P ~ z^2 / 2 exceeds float64 (+inf); the gradient
+    # is the hazard at the near bound, -z_lo (finite)
+    t = interval_target([1.7e214], [3.9e245])
+    assert fam.nll(t, np.array([4.85]))[0] == np.inf
+    g, h = fam.grad_hess(t, np.array([4.85]))
+    assert g[0] == pytest.approx(-1.7e214, rel=1e-14) and h[0] == pytest.approx(1.0, rel=1e-9)
+    # laplace [-1e200, 1e200] at raw 1e300: log F(hi) and log F(lo) round equal; -log P = |z_hi| + log 2
+    # to rounding (1e300), g = 1 / s
+    lap = lossfam.family("laplace", scale=2.0)
+    t = interval_target([-1e200], [1e200])
+    assert lap.nll(t, np.array([1e300]))[0] == pytest.approx(0.5e300, rel=1e-15)
+    g, h = lap.grad_hess(t, np.array([1e300]))
+    assert g[0] == 0.5 and np.isfinite(h[0]) and h[0] >= 0
+    # a subnormal width: P = f(0) 5e-324 (student_t df = 1: f(0) = 1 / pi)
+    t1 = lossfam.family("student_t", df=1.0)
+    assert t1.nll(interval_target([0.0], [5e-324]), np.zeros(1))[0] == pytest.approx(np.log(np.pi) - np.log(5e-324), rel=1e-12)
+    # weibull [1, 10] at raw -355: -log P = (e^355)^2 exceeds float64, and so do g and h: the limits
+    w = lossfam.family("weibull", shape=2.0)
+    t = interval_target([1.0], [10.0])
+    assert w.nll(t, np.array([-355.0]))[0] == np.inf
+    assert w.grad_hess(t, np.array([-355.0]))[0][0] == -np.inf and w.grad_hess(t, np.array([-355.0]))[1][0] == np.inf
+
+
+@pytest.mark.parametrize("k", [0.3, 2.5, 9.3, 29.5])
+def test_gamma_right_censored_far_tail_against_mpmath(k):
+    # outside reference: mpmath at 80 digits, Gamma(k, x) = x^k E_(1-k)(x) (mpmath.expint): the
+    # hazard r = x^k e^-x / Gamma(k, x) and c = r + k - x of the right-censored row (z units,
+    # x = k e^z); the log-space pieces lost eps x of relative accuracy here (wrong by 1e-3 at z = 30)
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 80
+    fam = lossfam.family("gamma", shape=k)
+    kk = mpmath.mpf(k)
+    for x0 in (4 * k + 49.0, 4 * k + 51.0, 300.0, 705.0, 2000.0, 1e13, 1e20):
+        v = x0 / k
+        g, h = fam.grad_hess(interval_target([v], [np.inf]), np.zeros(1))
+        x = kk * mpmath.mpf(v)
+        u = mpmath.expint(1 - kk, x) * x * mpmath.e ** x
+        r = x / u
+        c = r + kk - x
+        assert g[0] == pytest.approx(-float(r), rel=1e-13) and h[0] == pytest.approx(float(r * c), rel=1e-12)
+
+
+@pytest.mark.parametrize("name,params,zl,zh", [
+    ("weibull", {"shape": 1.8}, 29.93, 32.47), ("gamma", {"shape": 2.5}, 30.0, 30.1),
+    ("gamma", {"shape": 2.5}, 100.0, 100.5), ("lognormal", {"scale": 0.6}, 28.46, 29.54),
+])
+def test_closed_intervals_far_in_the_upper_tail_against_mpmath(name, params, zl, zh):
+    # outside reference: mpmath at 60 digits, numerical derivatives (mpmath.diff) of
+    # -log(S(lo) - S(hi)) in raw (S by exp, gammainc, ncdf); bounds e^zl, e^zh at raw 0 (log y units)
+    mpmath = pytest.importorskip("mpmath")
+    mpmath.mp.dps = 60
+    fam = lossfam.family(name, **params)
+    lo, hi = float(np.exp(zl)), float(np.exp(zh))
+    p = mpmath.mpf(list(params.values())[0])
+
+    def sf(v, r):
+        if name == "weibull":
+            return mpmath.e ** (-((v / mpmath.e ** r) ** p))
+        if name == "gamma":
+            return mpmath.gammainc(p, p * v / mpmath.e ** r, mpmath.inf, regularized=True)
+        return mpmath.ncdf(-(mpmath.log(v) - r) / p)
+
+    def nll(r):
+        return -mpmath.log(sf(mpmath.mpf(lo), r) - sf(mpmath.mpf(hi), r))
+
+    g, h = fam.grad_hess(interval_target([lo], [hi]), np.zeros(1))
+    assert g[0] == pytest.approx(float(mpmath.diff(nll, 0)), rel=1e-12)
+    assert h[0] == pytest.approx(float(mpmath.diff(nll, 0, 2)), rel=1e-10)

@@ -51,6 +51,23 @@ approximation of the information), which is positive wherever the gradient is
 non-zero: a Newton step on such a row alone is then -1 / g, e.g. one scale
 unit on laplace's tails.
 
+Limits far in the tails
+-----------------------
+Where float64 cannot hold the terms above, the limits of the exact values are used:
+
+* a closed row whose log tails round to the same value (its bounds give one transformed point,
+  or the law is so far away that the difference of logs is lost): P = f(m) w (1 + O(w psi)) with
+  m the midpoint and w = hi - lo, so nll = -log f(m) - log w and the gradient and Hessian are the
+  exact row's at m (``_narrow_limit``);
+* a closed row whose far tail is below eps of its near one (log difference < -40): P is the
+  near tail to rounding (the far bound adds at most e^-40 times a ratio of hazards), so it is the
+  one-sided row at the near bound: by the TailLaw's hazard where the family has one (rows the
+  linear-space kernel cannot serve), else by the log-space terms where the ratios are lost;
+* nll = +inf only where -log P itself exceeds float64 (P below e^-1.8e308), and then the
+  gradient and Hessian are -+inf and +inf only where the log tail has no finite value either
+  (e.g. weibull right-censored at k z > 709: g = -k e^(k z)).  NaN is never returned for legal
+  bounds and finite raw scores.
+
 Exact rows (lo == hi) use the family's own ``_nll`` and ``_grad_hess``, so a
 target with no censored row gives today's numbers bit for bit.
 
@@ -127,8 +144,12 @@ def _pieces_at(fam, v, raw, mask, lower):
     return log_f, log_s, log_d, e
 
 
-def interval_terms(fam, lo, hi, raw, derivatives=True):
-    """(nll, gradient, Hessian) of rows lo < hi (gradient and Hessian None unless ``derivatives``)."""
+def interval_terms(fam, lo, hi, raw, derivatives=True, one_sided=None):
+    """(nll, gradient, Hessian) of rows lo < hi (gradient and Hessian None unless ``derivatives``).
+
+    ``one_sided(lo, hi, raw)`` -> (g, h), if given, serves closed rows far in a tail (P equal to its
+    near tail to rounding) whose log-space ratios are lost; by default the log-space terms of the
+    one-sided row."""
     has_lo, has_hi = open_sides(fam, lo, hi)
     f_lo, s_lo, d_lo, e_lo = _pieces_at(fam, lo, raw, has_lo, True)
     f_hi, s_hi, d_hi, e_hi = _pieces_at(fam, hi, raw, has_hi, False)
@@ -140,6 +161,21 @@ def interval_terms(fam, lo, hi, raw, derivatives=True):
                         np.where(np.isneginf(s_hi), -np.inf, s_hi - s_lo))
         log_p = top + log1mexp(np.minimum(diff, 0.0))
         nll = -log_p
+        closed = has_lo & has_hi
+        # a closed row whose tails round to the same value (or underflow): the narrow-interval limit
+        lost = closed & ~np.isfinite(log_p) & np.isfinite(top)
+        if lost.any():
+            mid, gm, hm = _narrow_limit(fam, lo[lost], hi[lost], raw[lost], derivatives)
+            nll[lost] = mid
+        # a closed row far in a tail (its near tail underflows in log space, or the far one is below
+        # eps of it): P = (near tail) (1 - e^diff) = the near tail to rounding, the one-sided row
+        near = closed & ~lost & (np.isneginf(top) | (diff < -40.0))
+        if derivatives and near.any():
+            lo_n, hi_n = np.where(lower_side, -np.inf, lo)[near], np.where(lower_side, hi, np.inf)[near]
+            if one_sided is None:
+                _, gn, hn = interval_terms(fam, lo_n, hi_n, raw[near])
+            else:
+                gn, hn = one_sided(lo_n, hi_n, raw[near])
         if not derivatives:
             return nll, None, None
         a = np.exp(d_hi - log_p)
@@ -151,6 +187,52 @@ def interval_terms(fam, lo, hi, raw, derivatives=True):
         sur = ~(h > ROUNDING * size)
         if sur.any():
             h[sur] = g[sur] * g[sur]
+        if lost.any():
+            g[lost], h[lost] = gm, hm
+        if near.any():
+            # the log-space ratios far in a tail lose eps |log P| (all digits where log P ~ -1e13):
+            # the TailLaw's one-sided hazards, where given, replace them outright
+            swap = near if one_sided is not None else near & ~(np.isfinite(g) & np.isfinite(h))
+            g[swap], h[swap] = gn[swap[near]], hn[swap[near]]
+        # a one-sided row whose tail is below e^-1.8e308 (log P = -inf): its score and curvature
+        # exceed float64 too (d/draw of -log S -> -inf as log S -> -inf): the limits -+inf, +inf
+        beyond = ~closed & np.isneginf(log_p)
+        if beyond.any():
+            g[beyond] = np.where(has_lo[beyond], -np.inf, np.inf)
+            h[beyond] = np.inf
+    return nll, g, h
+
+
+def _near_side(fam, law, s, lo, hi, raw):
+    """(g, h) of one-sided rows (lo = -inf: left-censored at hi; else right-censored at lo) by the
+    TailLaw's hazard ratios, the log-space terms where those defer."""
+    g = np.empty(lo.size)
+    h = np.empty(lo.size)
+    for right, idx in ((True, np.flatnonzero(np.isfinite(lo))), (False, np.flatnonzero(~np.isfinite(lo)))):
+        if idx.size:
+            t = _transformed(law, lo[idx] if right else hi[idx])
+            g[idx], h[idx], _ = _one_sided(law, s, t, raw[idx], right)
+    redo = np.isnan(g) | np.isnan(h)
+    if redo.any():
+        _, g[redo], h[redo] = interval_terms(fam, lo[redo], hi[redo], raw[redo])
+    return g, h
+
+
+def _narrow_limit(fam, lo, hi, raw, derivatives=True):
+    r"""(nll, g, h) of closed rows lo < hi whose log tails cannot be told apart in float64 (the
+    bounds round to the same transformed point, or both tails underflow): P = f(m) w (1 + O(w psi))
+    with m the midpoint and w = hi - lo, so nll = -log f(m) - log w, and the gradient and Hessian
+    are the exact row's at m (the O(w psi) terms are below the rounding of the log tails that lost
+    them)."""
+    with np.errstate(over="ignore", divide="ignore", invalid="ignore"):
+        w = hi - lo  # exact for subnormal widths; halves only where it overflows
+        wide = ~np.isfinite(w)
+        log_w = np.where(wide, np.log(0.5 * hi - 0.5 * lo) + _LOG2, np.log(np.where(wide, 1.0, w)))
+        mid = np.where(wide, 0.5 * lo + 0.5 * hi, lo + 0.5 * np.where(wide, 0.0, w))
+        nll = fam._nll(mid, raw) - log_w
+        if not derivatives:
+            return nll, None, None
+        g, h = fam._grad_hess(mid, raw)
     return nll, g, h
 
 
@@ -531,11 +613,15 @@ def censored_grad_hess(fam, target, raw):
                     gb, hb, redo = _one_sided(law, s, rows.t_lo[kind][blk], rb, True)
                 else:
                     gb, hb, redo = _one_sided(law, s, rows.t_hi[kind][blk], rb, False)
+                lost = np.isnan(gb) | np.isnan(hb)  # a ratio of two underflowed tails: the log-space terms
+                if lost.any():
+                    redo = lost if redo is None else (redo | lost)
                 if redo is not None and redo.any():
                     k = np.flatnonzero(redo)
                     lo_k = rows.lo[kind][blk][k] if kind != "left" else np.full(k.size, -np.inf)
                     hi_k = rows.hi[kind][blk][k] if kind != "right" else np.full(k.size, np.inf)
-                    _, gb[k], hb[k] = interval_terms(fam, lo_k, hi_k, rb[k])
+                    _, gb[k], hb[k] = interval_terms(fam, lo_k, hi_k, rb[k],
+                                                     one_sided=lambda l, u, r: _near_side(fam, law, s, l, u, r))
                 g[ib] = gb
                 h[ib] = hb
         void = rows.idx["void"]

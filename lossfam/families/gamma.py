@@ -92,6 +92,36 @@ class LogGammaLaw(TailLaw):
     def sf(self, z):
         return gammaincc(self.k, self._x(z))
 
+    #: beyond x = FAR_SLOPE k + FAR_X the right-censored ratios come from the asymptotic series
+    FAR_SLOPE = 4.0
+    FAR_X = 50.0
+    TERMS = 40
+
+    def right(self, z):
+        """(r, c) of right-censored rows: the generic ratio, and far in the upper tail (where the
+        log-space pieces are numbers near -x and their difference loses eps x) the asymptotic
+        series Gamma(k, x) = x^(k-1) e^-x (1 + V), V = sum_j (k-1)...(k-j) / x^j (Abramowitz and
+        Stegun, Handbook of Mathematical Functions, eq. 6.5.32, recalled from memory; terms shrink
+        the 41st term is below 40! / 50^40 ~ 1e-20 of the sum beyond x = 4k + 50):  r = x / (1 + V), and with W = x V,
+        c = r + k - x = k - W / (1 + V)  (no difference of terms of the size of x)."""
+        r, c = TailLaw.right(self, z)
+        with np.errstate(over="ignore", invalid="ignore"):
+            x = self._x(z)
+            far = x > self.FAR_SLOPE * self.k + self.FAR_X
+            if far.any():
+                xf = x[far]
+                k = self.k
+                term = np.ones(xf.shape)
+                w = np.ones(xf.shape)  # W / (k - 1): 1 + (k-2)/x + (k-2)(k-3)/x^2 + ...
+                for j in range(2, self.TERMS + 1):
+                    term = term * ((k - j) / xf)
+                    w += term
+                w *= k - 1.0
+                one_v = 1.0 + w / xf
+                r[far] = xf / one_v
+                c[far] = k - w / one_v
+        return r, c
+
 
 #: the largest integer shape served in closed form (IntegerGammaLaw): its cost grows with the shape
 INTEGER_SHAPE_MAX = 30

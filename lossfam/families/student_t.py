@@ -68,6 +68,53 @@ from .laplace import weighted_quantile
 DF_RANGE = (0.05, 1e6)
 
 
+#: beyond this |z| the censored pieces use the far-tail forms (_log_t_tail, _log1p_sq, _t_score)
+_T_FAR = 1e8
+#: beyond this |z|, z^2 is near overflow: log1p(z^2 / nu) and psi are written without z^2
+_T_HUGE = 1e100
+
+
+def _log1p_sq(z, nu):
+    """log(1 + z^2 / nu), written 2 log|z| - log nu + log1p(nu / z^2) for |z| > 1e100 (z^2 may overflow)."""
+    z = np.asarray(z, dtype=float)
+    with np.errstate(over="ignore", divide="ignore"):
+        a = np.abs(z)
+        big = a > _T_HUGE
+        safe = np.where(big, a, 1.0)
+        return np.where(big, 2.0 * np.log(safe) - np.log(nu) + np.log1p(nu / (safe * safe)), np.log1p(z * z / nu))
+
+
+def _t_score(z, nu):
+    """psi(z) = -(nu + 1) z / (nu + z^2), written -(nu + 1) / (z + nu / z) for |z| > 1e100 (no inf / inf)."""
+    z = np.asarray(z, dtype=float)
+    big = np.abs(z) > _T_HUGE
+    safe = np.where(big, z, 1.0)
+    return np.where(big, -(nu + 1.0) / (safe + nu / safe), -(nu + 1.0) * z / (nu + z * z))
+
+
+def _log_t_tail(z, nu):
+    r"""log F0(z) of Student's t with nu df, by scipy.stats.t.logcdf for z >= -_T_FAR; below, where
+    F0 underflows (scipy then returns -inf), from F0(z) = I_x(nu/2, 1/2) / 2 with x = nu / (nu + z^2)
+    and I_x(a, b) = x^a (1 - x)^b 2F1(a + b, 1; a + 1; x) / (a B(a, b)) (the hypergeometric form
+    of the incomplete beta function; scipy.special.hyp2f1, betaln), log x = log nu - log(nu + z^2)
+    by ``_log1p_sq``: log F0 = -log 2 + a log x + b log1p(-x) + log 2F1 - log a - log B(a, b)."""
+    from scipy.special import betaln, hyp2f1
+
+    z = np.asarray(z, dtype=float)
+    out = np.empty(z.shape)
+    far = z < -_T_FAR
+    near = ~far
+    if near.any():
+        out[near] = stats.t.logcdf(z[near], nu)
+    if far.any():
+        a, b = 0.5 * nu, 0.5
+        log_x = -_log1p_sq(z[far], nu)
+        x = np.exp(log_x)
+        out[far] = (-np.log(2.0) + a * log_x + b * np.log1p(-x) + np.log(hyp2f1(a + b, 1.0, a + 1.0, x))
+                    - np.log(a) - betaln(a, b))
+    return out
+
+
 def _log_norm(nu):
     """lgamma(nu/2) - lgamma((nu+1)/2) + log(nu pi)/2, the nll's constant.
 
@@ -558,9 +605,9 @@ class StudentT(Family):
     def _tail_pieces(self, v, raw):
         nu, s = self.df, self.scale
         return location_scale_pieces(
-            (v - raw) / s, s, lambda z: stats.t.logcdf(z, nu), lambda z: stats.t.logsf(z, nu),
-            lambda z: -0.5 * (nu + 1.0) * np.log1p(z * z / nu) - _log_norm(nu),
-            lambda z: -(nu + 1.0) * z / (nu + z * z))
+            (v - raw) / s, s, lambda z: _log_t_tail(z, nu), lambda z: _log_t_tail(-z, nu),
+            lambda z: -0.5 * (nu + 1.0) * _log1p_sq(z, nu) - _log_norm(nu),
+            lambda z: _t_score(z, nu))
 
     def _tail_law(self):
         return _tails_for(float(self.df)), self.scale
