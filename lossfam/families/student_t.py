@@ -175,6 +175,19 @@ class StudentTTails(TailLaw):
     def cdf(self, z):
         return stdtr(self.nu, z)
 
+    def _hazard_curvature(self, z, w, r):
+        """r + psi(z), psi = -(nu + 1) z w / nu the score (w = nu / (nu + z^2)), set to 0 where
+        it is not above the rounding of its two terms (as the generic ratios do); ``w`` is
+        overwritten."""
+        psi = np.multiply(z, w, out=w)
+        psi *= -(self.nu + 1.0) / self.nu
+        ch = r + psi
+        np.abs(psi, out=psi)
+        psi += r
+        psi *= ROUNDING
+        np.copyto(ch, 0.0, where=~(ch > psi))
+        return ch
+
 
 #: the largest even df served in closed form (EvenStudentTTails; its cost grows with df / 2), and
 #: the largest odd df (OddStudentTTails, whose direct form loses up to a factor 550 at df = 9)
@@ -265,14 +278,7 @@ class EvenStudentTTails(StudentTTails):
         r = np.where(z >= 0, pos, neg)
         r *= c
         r *= self.k
-        psi = np.multiply(z, w, out=w)
-        psi *= -(self.nu + 1.0) / self.nu
-        ch = r + psi
-        np.abs(psi, out=psi)
-        psi += r
-        psi *= ROUNDING
-        np.copyto(ch, 0.0, where=~(ch > psi))
-        return r, ch
+        return r, self._hazard_curvature(z, w, r)
 
 
 class OddStudentTTails(StudentTTails):
@@ -362,14 +368,7 @@ class OddStudentTTails(StudentTTails):
                 rt = (np.pi * self.k) * w[tail][up] / scs[up]  # scs = s c sum
                 idx = np.flatnonzero(tail)[up]
                 r[idx] = rt
-        psi = np.multiply(z, w, out=w)
-        psi *= -(self.nu + 1.0) / self.nu
-        ch = r + psi
-        np.abs(psi, out=psi)
-        psi += r
-        psi *= ROUNDING
-        np.copyto(ch, 0.0, where=~(ch > psi))
-        return r, ch
+        return r, self._hazard_curvature(z, w, r)
 
 
 def _angles(nu, root_nu, z):
