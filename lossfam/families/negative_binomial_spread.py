@@ -316,11 +316,21 @@ class NegativeBinomialSpread(SeveralScoreFamily):
             if np.any(big):  # lgamma(y + 1) - B(y, r) + y log(alpha + 1/mu) + r log(1 + alpha mu)
                 yb = y[big]
                 slope = np.logaddexp(r1[big], -r0[big])
-                out[big] = _lgamma1_plus(yb, slope) - _log_rising_over_power(yb, r1[big]) + r_soft[big]
+                vb = _lgamma1_plus(yb, slope) - _log_rising_over_power(yb, r1[big]) + r_soft[big]
+                # r log(1 + alpha mu) = +inf only where mu itself is beyond float64 (r >= 20): the
+                # nll (>= 0, a mass is at most 1) is then +inf, also where the Stirling part's
+                # y (log y - log mu) went to -inf beside it (no inf - inf)
+                vb[np.isposinf(r_soft[big])] = np.inf
+                out[big] = vb
             if np.any(tiny):  # log C(y, r) = log r - log y for y > 0 (r < 1e-299)
                 yt = y[tiny]
                 lead = np.where(yt > 0, r1[tiny] + np.log(np.where(yt > 0, yt, 1.0)), 0.0)
                 out[tiny] = lead + y_soft[tiny] + r_soft[tiny]
+            # y log(1 + 1/(alpha mu)) or r log(1 + alpha mu) beyond float64 (a mean or size far
+            # outside float64 beside a huge count): the mass at y is below e^-1.8e308 and the nll
+            # +inf, also where another term overflowed beside it (inf - inf)
+            over = np.isnan(out) & (np.isposinf(y_soft) | np.isposinf(r_soft))
+            out[over] = np.inf
         return out
 
     def _derivatives(self, y, raw, hessian=True):
@@ -490,7 +500,15 @@ def _expected_c(fam, raw):
         out[narrow] = _exact_window(fam, raw[narrow], lo[narrow], width[narrow].astype(np.int64))[0]
     wide = ~narrow & ~near_normal & ~poisson & ~outside
     if np.any(wide):
-        out[wide] = _wide_window(fam, raw[wide], lo[wide], hi[wide])
+        with np.errstate(over="ignore", invalid="ignore"):
+            got = _wide_window(fam, raw[wide], lo[wide], hi[wide])
+        # a window whose trapezoid sums leave float64 (alpha mu astronomically large, the window
+        # spanning ~1e100 counts and more): the mixing-law stand-in, as for the rows without a window
+        lost = ~np.isfinite(got)
+        if np.any(lost):
+            q = expit(t[wide][lost])
+            got[lost] = q * q * _f(r[wide][lost])
+        out[wide] = got
     return out
 
 
@@ -519,8 +537,16 @@ def _exact_window(fam, raw, lo, terms):
             break
         s = slice(0, active)
         ys, a_s = y[s], alpha[s]
-        ay1 = 1.0 + a_s * ys
-        u[s] += a_s * (mu[s] - 2.0 * ys - a_s * ys * ys) / (ay1 * ay1 * am1[s])
+        with np.errstate(over="ignore", invalid="ignore"):
+            ay1 = 1.0 + a_s * ys
+            step = a_s * (mu[s] - 2.0 * ys - a_s * ys * ys) / (ay1 * ay1 * am1[s])
+        # the same step is 1/(1 + alpha y)^2 - 1/(1 + alpha mu) (expand the common denominator);
+        # that form where alpha y or alpha^2 y^2 overflows (inf / inf above)
+        off = ~np.isfinite(step)
+        if np.any(off):
+            with np.errstate(over="ignore"):
+                step[off] = 1.0 / np.square(ay1[off]) - expit(-t[s][off])
+        u[s] += step
         log_p[s] += np.log((y[s] + r[s]) / (y[s] + 1.0)) + log_q[s]
         y[s] += 1.0
         prev[s] = phi[s]
