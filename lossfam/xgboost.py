@@ -419,20 +419,25 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, run.best, fit_info(twin, rule, guard))
 
 
+
+def _refuse_owned(params, engine_kwargs, extra, whose, fixes):
+    """A copy of ``params``; refuses the parameters and keyword arguments lossfam sets itself."""
+    params = dict(params or {})
+    owned = sorted(k for k in ("objective", "base_score", "boost_from_average", "obj", *extra) if k in params)
+    if owned:
+        raise ValueError(f"params {owned} are set by lossfam.xgboost.train{whose} (the family fixes {fixes})")
+    for key in ("obj", "maximize"):
+        if key in engine_kwargs:
+            raise ValueError(f"{key}= is set by lossfam.xgboost.train")
+    return params
+
 class _Call:
     """The arguments of one ``train`` call, checked, with lossfam's own keywords taken out."""
 
     def __init__(self, xgb, params, dtrain, num_boost_round, evals, nuisance_set, engine_kwargs):
         if not isinstance(dtrain, xgb.DMatrix):
             raise TypeError(f"train expects an xgboost.DMatrix, got {type(dtrain).__name__}")
-        params = dict(params or {})
-        owned = sorted(k for k in ("objective", "base_score", "boost_from_average", "obj") if k in params)
-        if owned:
-            raise ValueError(f"params {owned} are set by lossfam.xgboost.train (the family fixes the objective and "
-                             "the baseline)")
-        for key in ("obj", "maximize"):
-            if key in engine_kwargs:
-                raise ValueError(f"{key}= is set by lossfam.xgboost.train")
+        params = _refuse_owned(params, engine_kwargs, (), "", "the objective and the baseline")
         rounds = int(num_boost_round)
         if rounds < 0:
             raise ValueError(f"num_boost_round must be >= 0, got {num_boost_round}")
@@ -836,15 +841,8 @@ def train_several(family, params, dtrain, num_boost_round=100, *, evals=(), curv
     fam = _as_family(family)
     if not isinstance(dtrain, xgb.DMatrix):
         raise TypeError(f"train expects an xgboost.DMatrix, got {type(dtrain).__name__}")
-    params = dict(params or {})
-    owned = sorted(k for k in ("objective", "base_score", "boost_from_average", "obj", "num_target", "num_class",
-                               "multi_strategy") if k in params)
-    if owned:
-        raise ValueError(f"params {owned} are set by lossfam.xgboost.train for {fam.name} (the family fixes the "
-                         "objective, the baseline and the outputs; pass multi_strategy= as an argument)")
-    for key in ("obj", "maximize"):
-        if key in engine_kwargs:
-            raise ValueError(f"{key}= is set by lossfam.xgboost.train")
+    params = _refuse_owned(params, engine_kwargs, ("num_target", "num_class", "multi_strategy"), f" for {fam.name}",
+                           "the objective, the baseline and the outputs; pass multi_strategy= as an argument")
     curvature = _several.check_curvature(fam, curvature)
     strategy = MULTI_STRATEGY_DEFAULT if multi_strategy is None else multi_strategy
     if strategy not in ("one_output_per_tree", "multi_output_tree"):
