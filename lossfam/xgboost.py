@@ -419,7 +419,6 @@ def train(family, params, dtrain, num_boost_round=100, *, evals=(), step_limit=S
     return BoostedFit(_ENGINE, run.booster, fam, plan.baseline, fitted, run.best, fit_info(twin, rule, guard))
 
 
-
 def _refuse_owned(params, engine_kwargs, extra, whose, fixes):
     """A copy of ``params``; refuses the parameters and keyword arguments lossfam sets itself."""
     params = dict(params or {})
@@ -430,6 +429,7 @@ def _refuse_owned(params, engine_kwargs, extra, whose, fixes):
         if key in engine_kwargs:
             raise ValueError(f"{key}= is set by lossfam.xgboost.train")
     return params
+
 
 class _Call:
     """The arguments of one ``train`` call, checked, with lossfam's own keywords taken out."""
