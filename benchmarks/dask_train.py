@@ -165,6 +165,12 @@ def main():
                     print("  steps, median s (share of engine time): " + ", ".join(
                         f"{k} {steps[k]:.3f} ({100 * steps_share[k]:.1f}%)" for k in STEPS if steps[k] > 0)
                         + f"; trained check: {info['trained_check']}; load %.1f" % os.getloadavg()[0], flush=True)
+                    if "refit_detail" in info:  # one worker's figures (the last training)
+                        r = info["refit_detail"]
+                        print(f"  refit (one worker, last training): {r['seconds']:.3f} s, of which reductions "
+                              f"{r['reduce_seconds']:.3f} s ({r['reductions']}); trees read by pred_leaf "
+                              f"{r['by_prediction']}, rows of the other trees read by it {r['rows_by_prediction']}",
+                              flush=True)
     print("load average after (1, 5, 15 min): %.2f %.2f %.2f" % os.getloadavg())
     used = [k for k in STEPS if any(c[2][k] > 0 for c in cells)]
     print("\nlossfam's steps: median seconds (share of the engine's training time)")

@@ -54,6 +54,7 @@ class _Worker:
         self.tables = []
         self.reductions = 0
         self.seconds = 0.0
+        self.reduce_seconds = 0.0  # of which in the reductions (waiting for the other workers included)
         self.margins = None  # XGBoost's cached margins at the last objective call (float32)
         self.margin_trees = 0  # the number of trees those margins hold
         self.by_prediction = 0  # trees whose leaves were read by pred_leaf
@@ -176,7 +177,14 @@ def catch_up(obj, st, margins=None):
         if leaves is None:
             leaves = np.asarray(tree.predict(st.dtrain, pred_leaf=True), dtype=np.intp).reshape(-1)
             st.by_prediction += 1
-        values, has, reductions = cluster.leaf_quantiles(_reduce, rank, world, leaves, st.y - st.raw, st.w, n_nodes,
+        def reduce(a, op=collective.Op.SUM):
+            r0 = time.perf_counter()
+            try:
+                return _reduce(a, op)
+            finally:
+                st.reduce_seconds += time.perf_counter() - r0
+
+        values, has, reductions = cluster.leaf_quantiles(reduce, rank, world, leaves, st.y - st.raw, st.w, n_nodes,
                                                      obj.level, obj.definition)
         table = np.where(has, obj.eta * values, 0.0).astype(np.float32).astype(np.float64)
         st.tables.append(table)
@@ -209,18 +217,26 @@ class RefitCallback(xgb.callback.TrainingCallback):
         catch_up(self.objective, st)
         out = _write_leaf_values(xgb, model, st.tables)
         # read (and removed) by the client: the refit's share of the engine's training call
-        out.set_attr(lossfam_refit_seconds=repr(st.seconds), lossfam_refit_reductions=str(st.reductions),
-                     lossfam_refit_by_prediction=str(st.by_prediction))
+        out.set_attr(**{f"lossfam_refit_{k}": repr(v) for k, v in _timing(st).items()})
         return out
 
 
+def _timing(st):
+    return {"seconds": st.seconds, "reductions": st.reductions, "reduce_seconds": st.reduce_seconds,
+            "by_prediction": st.by_prediction, "rows_by_prediction": st.rows_by_prediction}
+
+
 def take_timing(booster):
-    """(seconds, reductions, trees read by pred_leaf) of the workers' refit (this worker's), removed
-    from the booster."""
-    secs, rounds = booster.attr("lossfam_refit_seconds"), booster.attr("lossfam_refit_reductions")
-    by_prediction = booster.attr("lossfam_refit_by_prediction")
-    booster.set_attr(lossfam_refit_seconds=None, lossfam_refit_reductions=None, lossfam_refit_by_prediction=None)
-    return float(secs or 0.0), int(rounds or 0), int(by_prediction or 0)
+    """The workers' refit (this worker's figures), removed from the booster: seconds, of which
+    ``reduce_seconds`` in the reductions (waits for the other workers included), reductions, trees
+    whose leaves were read by pred_leaf (``by_prediction``: the last tree, and trees whose margins
+    could not tell the leaves apart) and rows of the other trees read by it."""
+    out = {}
+    for k in ("seconds", "reductions", "reduce_seconds", "by_prediction", "rows_by_prediction"):
+        v = booster.attr(f"lossfam_refit_{k}")
+        booster.set_attr(**{f"lossfam_refit_{k}": None})
+        out[k] = (float if "seconds" in k else int)(v or 0)
+    return out
 
 
 def make(rule, level, eta, definition, baseline):

@@ -743,11 +743,11 @@ def _train_cluster(fam, params, data, num_boost_round, evals, step_limit, native
                          verbose_eval=engine_kwargs.get("verbose_eval", True))
     booster = out["booster"]
     if callbacks:  # the refit ran inside the engine's call: its seconds are lossfam's
-        secs, reductions, by_prediction = _xgboost_refit.take_timing(booster)
-        plan.stats["seconds"]["refit"] = secs
-        plan.stats["seconds"]["trees"] -= secs
-        plan.stats["refit_passes"] = reductions
-        plan.stats["refit_leaves_by_prediction"] = by_prediction
+        timing = _xgboost_refit.take_timing(booster)
+        plan.stats["seconds"]["refit"] = timing["seconds"]
+        plan.stats["seconds"]["trees"] -= timing["seconds"]
+        plan.stats["refit_passes"] = timing["reductions"]
+        plan.stats["refit_detail"] = timing
     if engine_kwargs.get("evals_result") is not None:
         engine_kwargs["evals_result"].update(out["history"])
     best = _best_iteration(booster) if early_stopping_rounds else None

@@ -1164,7 +1164,7 @@ def cluster_info(plan, client, metrics):
         "partitions": int(plan.y.numblocks[0]), "workers": len(client.scheduler_info().get("workers", {})),
         "baseline_passes": int(stats.get("passes", 0)), "nuisance_passes": int(stats.get("nuisance_passes", 0)),
         "refit_passes": int(stats.get("refit_passes", 0)),
-        "refit_leaves_by_prediction": int(stats.get("refit_leaves_by_prediction", 0)),
+        **({"refit_detail": stats["refit_detail"]} if "refit_detail" in stats else {}),
         "gathered_rows": int(stats.get("gathered", 0)), "valid_metrics": metrics,
         "trained_check": stats.get("trained_check"), "kept_scores": stats.get("kept"),
         **({"valid_curves": stats["valid_curves"], "rounds_trained": stats["rounds_trained"]}
