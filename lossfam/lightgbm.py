@@ -130,6 +130,7 @@ _ENGINE = "lightgbm"
 _LR_NAMES = ("learning_rate", "shrinkage_rate", "eta")
 _THREAD_NAMES = ("num_threads", "num_thread", "nthread", "nthreads", "n_jobs")
 _OBJECTIVE_NAMES = ("objective", "objective_type", "app", "application", "loss")
+_LEAVES_NAMES = ("num_leaves", "num_leaf", "max_leaves", "max_leaf", "max_leaf_nodes")
 
 
 def _lgb():
@@ -828,24 +829,47 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, engine=_ENGINE,
                                 drop_unit_weights=True)
     fam = plan.family
-    guard, twin = cluster.cluster_path(fam, _ENGINE, "LightGBM", step_limit, native, params)
+    guard, twin = cluster.cluster_path(fam, _ENGINE, "LightGBM", step_limit, native, params,
+                                       refits=("median", "quantile"))
     rule = facts.leaf_rule(fam)
     valids = [plan.start_for(v, f"valid_sets[{k}]") for k, v in enumerate(valid_sets)]
+    refit = None
     if twin is not None:
         params.update(twin)
+    elif rule in ("median", "quantile"):
+        refit = _cluster_refit(ldask, fam, params, plan)
+        params["objective"] = refit.objective
     else:
         params["objective"] = _Objective(fam, guard, check_start=False)
     params.setdefault("metric", "None")
     params.setdefault("verbosity", -1)
     est = ldask.DaskLGBMRegressor(client=client, n_estimators=int(num_boost_round), **params)
-    kept, factory, keep = _keeping(ldask, client, plan, params["objective"], bool(fam.params) and nuisance_set is None)
+    targets = bool(fam.params) and nuisance_set is None
+    if refit is None:
+        kept, factory, keep = _keeping(ldask, client, plan, params["objective"], targets)
+    else:  # the workers keep their own raw scores with the refit leaves (LightGBM's buffer lacks the edits)
+        kept = cluster.KeptRows(client, refit.spec.token, plan.y.chunks[0][0])
+        factory, keep = refit.module.RefitRegressor, (targets,)
     try:
         with cluster.timed(plan.stats, "trees"):
-            if kept is None:
+            if refit is not None:
+                # the leaf refit on the workers (lossfam._lightgbm_refit): leaves renewed to the residual
+                # quantile of the rows of every worker before each round, reductions by distributed Variables
+                try:
+                    est._lgb_dask_fit(model_factory=factory, X=plan.X, y=plan.y, sample_weight=plan.weight,
+                                      init_score=plan.start, refit=refit.spec, keep=(kept.token, *keep))
+                finally:
+                    refit.module.drop_variables(client, refit.spec.token)
+            elif kept is None:
                 est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
             else:  # the same training, by a model factory that keeps each worker's trained scores
                 est._lgb_dask_fit(model_factory=factory, X=plan.X, y=plan.y, sample_weight=plan.weight,
                                   init_score=plan.start, keep=(kept.token, *keep))
+        if refit is not None:  # the refit ran inside the engine's call: its seconds are lossfam's
+            secs, reductions = refit.module.take_timing(est)
+            plan.stats["seconds"]["refit"] = secs
+            plan.stats["seconds"]["trees"] -= secs
+            plan.stats["refit_passes"] = reductions
         with cluster.timed(plan.stats, "model"):
             booster = _lgb().Booster(model_str=est.booster_.model_to_string())
         best = None
@@ -876,6 +900,48 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     finally:
         if kept is not None:
             kept.drop()
+
+
+class _ClusterRefit:
+    """The client's side of a leaf refit on the cluster: the workers' ``Spec``, their objective, the module."""
+
+    def __init__(self, module, spec):
+        self.module, self.spec = module, spec
+        self.objective = module.Growth(spec.token)
+
+
+def _cluster_refit(ldask, fam, params, plan):
+    """Check that a median / quantile refit can run on the cluster with these parameters; its ``_ClusterRefit``.
+
+    As on one machine, LightGBM's built-in metrics would see the unedited scores (refused).  One tree
+    per round on all rows, split by rows over the workers: no bagging, ``tree_learner`` data or voting
+    (feature-parallel workers each hold all rows, which the sums would count once per worker).  The
+    refit needs ``lightgbm.dask``'s private ``model_factory`` argument."""
+    import inspect
+
+    if str(params.get("metric", "None")).lower() not in ("none", "na", "null", "custom", ""):
+        raise ValueError(f"{fam.name} refits leaves and keeps its own scores; LightGBM's built-in metrics "
+                         "would see the unedited ones: drop params['metric']")
+    fraction = float(_param(params, ("bagging_fraction", "sub_row", "subsample", "bagging"), 1.0))
+    freq = int(_param(params, ("bagging_freq", "subsample_freq"), 0))
+    learner = str(_param(params, ("tree_learner", "tree", "tree_type", "tree_learner_type"), "data")).lower()
+    if (fraction < 1.0 and freq > 0) or learner in ("feature", "feature_parallel"):
+        raise ValueError(f"{fam.name} refits leaves on the cluster: one tree per round on all rows, split by rows "
+                         "(no bagging; tree_learner 'data' or 'voting')")
+    fit_parts = getattr(ldask.DaskLGBMRegressor, "_lgb_dask_fit", None)
+    try:
+        takes_factory = fit_parts is not None and "model_factory" in inspect.signature(fit_parts).parameters
+    except (TypeError, ValueError):
+        takes_factory = False
+    if not takes_factory:
+        raise ValueError(f"{fam.name} refits leaves on the cluster through lightgbm.dask's model_factory, which this "
+                         "lightgbm version does not take: train with native=True and the default step_limit")
+    from . import _lightgbm_refit
+
+    spec = _lightgbm_refit.Spec(facts.leaf_rule(fam), facts.leaf_level(fam), float(_param(params, _LR_NAMES, 0.1)),
+                                facts.renewal_definition(_ENGINE, weighted=plan.weight is not None),
+                                int(_param(params, _LEAVES_NAMES, 31)))
+    return _ClusterRefit(_lightgbm_refit, spec)
 
 
 def _keeping(ldask, client, plan, objective, targets):
