@@ -199,7 +199,7 @@ class _Worker:
             values, has, k = cluster.leaf_quantiles(red, red.rank, red.world, leaves, self.y - self.raw, self.w,
                                                     n_leaves, sp.level, sp.definition)
             table = np.zeros(n_leaves)
-            own = np.unique(leaves)
+            own = np.flatnonzero(np.bincount(leaves, minlength=n_leaves))  # (no sort of the rows)
             for j in own[~has[own]]:  # leaves whose rows all weigh 0 keep LightGBM's value (as on one machine)
                 table[j] = booster.get_leaf_output(t, int(j))
             table[has] = sp.learning_rate * values[has]

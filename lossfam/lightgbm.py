@@ -25,13 +25,17 @@ lightgbm is imported on first use; ``import lossfam`` never imports it.
 On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
 grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
 ``init_score``; lossfam's own steps run on the workers
-(``lossfam._boost.cluster``).  Native twins and the Python objective only (no
-refit path); ``valid_sets`` are scored after training, and one
+(``lossfam._boost.cluster``).  Native twins, the Python objective, and the
+refit path for median / quantile leaves (``lossfam._lightgbm_refit``: per round,
+the exact residual quantile of each leaf over the rows of all workers, summed
+over ``distributed.Variable``; line-search leaves are refused); ``valid_sets``
+are scored after training, and one
 ``lightgbm.early_stopping`` callback is honoured by scoring every round on all
 valid rows afterwards and cutting the model at the best one.  The check of the
 trained scores and the nuisance fit read the trained scores LightGBM leaves on
-each worker (``lossfam._lightgbm_keep``) instead of predicting every training
-row, unless the model was cut or a worker lacks them.
+each worker (``lossfam._lightgbm_keep``; on the refit path the worker's own
+scores with the renewed leaves) instead of predicting every training row,
+unless the model was cut or a worker lacks them.
 
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian

@@ -418,6 +418,82 @@ def test_leaf_quantiles_across_workers_equal_one_machine(monkeypatch):
                     np.testing.assert_array_equal(values[has], ref[has], err_msg=f"{definition} q={q} world={world}")
 
 
+def _refit_variables(client, expect):
+    """The LightGBM refit's Variables on the scheduler (sorted names), polled up to 5 s until they are
+    ``expect``: a delete reaches the scheduler on the client's batched stream, shortly after."""
+    import time
+
+    from lossfam import _lightgbm_refit as lr
+
+    for _ in range(100):
+        got = sorted(client.run_on_scheduler(lambda dask_scheduler=None: [
+            n for n in dask_scheduler.extensions["variables"].variables if str(n).startswith(lr.PREFIX)]))
+        if got == expect:
+            break
+        time.sleep(0.05)
+    return got
+
+
+def test_lightgbm_refit_allreduce_over_variables(client):
+    """The LightGBM refit's reduction over distributed Variables: three threads as workers each get the
+    same bits, the sum in rank order, for a sequence of arrays of varying shapes; each step's old
+    variables are gone, ``drop_variables`` removes the last; a worker whose peer never comes stops
+    with a clear error after its timeout."""
+    import threading
+    import uuid
+
+    from lossfam import _lightgbm_refit as lr
+
+    def names(expect):
+        return _refit_variables(client, expect)
+
+    world, token = 3, uuid.uuid4().hex
+    rng = np.random.default_rng(3)
+    arrays = [[rng.normal(size=k) * 10.0 ** rng.integers(-8, 8, k) for k in (1, 5, 300, 7)] for _ in range(world)]
+    out = [None] * world
+
+    def run(rank):
+        reduce = lr.Allreduce(token, rank, world, timeout=60, client=client)
+        out[rank] = [reduce(a) for a in arrays[rank]]
+    threads = [threading.Thread(target=run, args=(r,)) for r in range(world)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    for s in range(4):
+        expect = (arrays[0][s] + arrays[1][s]) + arrays[2][s]
+        for rank in range(world):
+            assert out[rank][s].tobytes() == expect.tobytes(), (s, rank)
+    last = [f"{lr.PREFIX}-{token}-3-{r}" for r in range(world)]
+    assert names(last) == last  # the last step's only
+    lr.drop_variables(client, token)
+    assert names([]) == []
+
+    lonely = lr.Allreduce(uuid.uuid4().hex, 0, 2, timeout=0.5, client=client)
+    with pytest.raises(RuntimeError, match="worker 0 of 2 waited 0.5 s for worker 1's value at reduction 0"):
+        lonely(np.ones(3))
+    lr.drop_variables(client, lonely.token)
+    assert names([]) == []
+
+
+def test_lightgbm_refit_ranks_from_the_network_parameters():
+    """Each worker's rank is its entry in LightGBM's ``machines`` (by its listen port, and its host where
+    workers share a port); anything ambiguous is an error, not a guess."""
+    from lossfam._lightgbm_refit import rank_of
+
+    machines = "127.0.0.1:40001,127.0.0.1:40007,127.0.0.1:40003"
+    assert [rank_of({"machines": machines, "local_listen_port": p, "num_machines": 3})
+            for p in (40001, 40007, 40003)] == [(0, 3), (1, 3), (2, 3)]
+    shared = "alpha:12400,beta:12400"
+    assert rank_of({"machines": shared, "local_listen_port": 12400}, "tcp://beta:39000") == (1, 2)
+    with pytest.raises(RuntimeError, match="not exactly one entry"):
+        rank_of({"machines": shared, "local_listen_port": 12400})
+    with pytest.raises(RuntimeError, match="not exactly one entry"):
+        rank_of({"machines": machines, "local_listen_port": 40002})
+    with pytest.raises(RuntimeError, match="no 'machines'"):
+        rank_of({"local_listen_port": 40002})
+
+
 @pytest.mark.parametrize("small", [False, True])
 def test_leaf_quantiles_equal_the_sorted_selection(monkeypatch, small):
     """The selection with its first cut by histogram returns, bit for bit, the leaf values of the
@@ -537,8 +613,7 @@ def test_refit_path_on_the_cluster(engine, case, client, tmp_path):
         assert info["trained_check"] == "kept" and info["kept_scores"] == "used"
         assert not hasattr(fit.booster, "lossfam_refit_")
         assert _store_sizes(client) == [0, 0]
-        assert client.run_on_scheduler(lambda dask_scheduler=None: [
-            n for n in dask_scheduler.extensions["variables"].variables if str(n).startswith("lossfam")]) == []
+        assert _refit_variables(client, []) == []
     # the nuisance fit at the trained raw scores: the family's own fit on those rows, or (the user family's
     # generic fit stops about 2e-5 short) a scale of no larger mean nll
     train_raw = fit.predict_raw(X, o)
