@@ -47,6 +47,8 @@ from ._lightgbm_keep import KeepingRegressor
 
 #: seconds a worker waits for another worker's value at one reduction before it gives up
 REDUCE_TIMEOUT = 600.0
+#: while waiting, every this many seconds a worker looks whether the training was stopped (``abort``)
+POLL = 1.0
 #: names of this module's distributed Variables start with this (then the training's token)
 PREFIX = "lossfam-lgb-refit"
 
@@ -75,6 +77,39 @@ class Allreduce:
     def name(self, step, rank):
         return f"{PREFIX}-{self.token}-{step}-{rank}"
 
+    def abort_as(self, why):
+        """Tell the other workers this training stopped (they stop waiting within ``POLL`` seconds)."""
+        if self.world > 1 and self._stopped() is None:
+            abort(self.client, self.token, why)
+
+    def _stopped(self):
+        from distributed import Variable
+
+        try:
+            return Variable(f"{PREFIX}-{self.token}-abort", self.client).get(timeout=0.001)
+        except (TimeoutError, OSError):
+            return None
+
+    def _wait(self, s, r):
+        """Worker r's value of step s: waits in slices of ``POLL`` s, stops when the training was
+        stopped or after ``timeout`` s."""
+        from distributed import Variable
+
+        deadline = time.monotonic() + self.timeout
+        while True:
+            left = deadline - time.monotonic()
+            try:
+                return Variable(self.name(s, r), self.client).get(timeout=max(min(POLL, left), 0.001))
+            except (TimeoutError, OSError) as exc:
+                who = self._stopped()
+                if who is not None:
+                    raise RuntimeError(f"leaf refit on the LightGBM cluster: worker {self.rank} stopped at reduction {s}: "
+                                       f"the training was stopped ({who})") from None
+                if time.monotonic() >= deadline:
+                    raise RuntimeError(
+                        f"leaf refit on the LightGBM cluster: worker {self.rank} of {self.world} waited {self.timeout:g} s "
+                        f"for worker {r}'s value at reduction {s}; that worker failed or stalls") from exc
+
     def __call__(self, a):
         from distributed import Variable
 
@@ -90,12 +125,7 @@ class Allreduce:
             if r == self.rank:
                 parts.append(a)
                 continue
-            try:
-                got = Variable(self.name(s, r), client).get(timeout=self.timeout)
-            except (TimeoutError, OSError) as exc:
-                raise RuntimeError(
-                    f"leaf refit on the LightGBM cluster: worker {self.rank} of {self.world} waited {self.timeout:g} s "
-                    f"for worker {r}'s value at reduction {s}; that worker failed or stalls") from exc
+            got = self._wait(s, r)
             part = np.frombuffer(got, dtype=np.float64)
             if part.size != a.size:
                 raise RuntimeError(f"leaf refit on the LightGBM cluster: worker {r} sent {part.size} numbers at "
@@ -109,11 +139,28 @@ class Allreduce:
         return total
 
 
-def drop_variables(client, token):
-    """Remove the Variables a training left on the scheduler (the last step's, or more after a failure)."""
+def abort(client, token, who):
+    """Mark the training ``token`` as stopped (``who``: why, shown to the waiting workers); never raises."""
+    from distributed import Variable
+
+    try:
+        Variable(f"{PREFIX}-{token}-abort", client).set(str(who))
+    except Exception:  # (the marker only shortens the others' wait; their timeout still holds)
+        pass
+
+
+def drop_variables(client, token, failed=False):
+    """Remove the Variables a training left on the scheduler (the last step's, or more after a failure).
+
+    ``failed``: the training raised; first mark it stopped and give workers still waiting at a
+    reduction ``2 POLL`` seconds to see the mark and end their task (else each would hold its
+    worker until ``REDUCE_TIMEOUT``)."""
     from distributed import Variable
 
     prefix = f"{PREFIX}-{token}-"
+    if failed:
+        abort(client, token, "by the client after an error")
+        time.sleep(2 * POLL)
 
     def names(dask_scheduler=None):
         ext = dask_scheduler.extensions.get("variables")
@@ -273,6 +320,9 @@ class RefitRegressor(KeepingRegressor):
             super().fit(X, y, sample_weight=sample_weight, init_score=init_score, **kwargs)
             booster = self.booster_
             st.catch_up(booster)  # the last tree
+        except BaseException as exc:  # the others would wait for this worker's next value: tell them
+            reduce.abort_as(f"worker {rank} failed: {type(exc).__name__}: {exc}"[:300])
+            raise
         finally:
             _STATE.pop(key, None)
         if keep is not None and address is not None:

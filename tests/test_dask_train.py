@@ -474,6 +474,53 @@ def test_lightgbm_refit_allreduce_over_variables(client):
         lonely(np.ones(3))
     lr.drop_variables(client, lonely.token)
     assert names([]) == []
+    # a training stopped by the client (after another worker's error): the waiting worker ends soon
+    waiting, caught = lr.Allreduce(uuid.uuid4().hex, 1, 2, timeout=120, client=client), []
+
+    def wait():
+        try:
+            waiting(np.ones(3))
+        except RuntimeError as exc:
+            caught.append(str(exc))
+    t = threading.Thread(target=wait)
+    t.start()
+    lr.drop_variables(client, waiting.token, failed=True)
+    t.join(timeout=60)
+    assert not t.is_alive() and len(caught) == 1 and "worker 1 stopped at reduction 0" in caught[0], caught
+    assert names([]) == []
+
+
+def test_lightgbm_refit_stops_every_worker_when_one_fails(client):
+    """A worker failing inside the cluster refit: the training raises its error at once (not after the
+    others' reduction timeout), the other worker's task ends, and the cluster trains again afterwards
+    with nothing left on the scheduler."""
+    import time
+
+    addresses = sorted(client.scheduler_info()["workers"])
+
+    def fail_at(n):
+        from lossfam._boost import cluster as cl
+
+        original, calls = cl.leaf_quantiles, [0]
+
+        def failing(*a, **k):
+            calls[0] += 1
+            if calls[0] == n:
+                cl.leaf_quantiles = original
+                raise RuntimeError("injected failure")
+            return original(*a, **k)
+        cl.leaf_quantiles = failing
+    X, y, w, _ = _delays(81, 2000)
+    data = lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w))
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    client.run(fail_at, 5, workers=addresses[:1])
+    t0 = time.perf_counter()
+    with pytest.raises(RuntimeError, match="injected failure|training was stopped"):
+        lfl.train(fam, PARAMS["lightgbm"], data, 10, native=False, client=client)
+    assert time.perf_counter() - t0 < 60
+    assert _refit_variables(client, []) == []
+    fit = lfl.train(fam, PARAMS["lightgbm"], data, 10, native=False, client=client)
+    assert fit.booster.num_trees() == 10 and _store_sizes(client) == [0, 0]
 
 
 def test_lightgbm_refit_ranks_from_the_network_parameters():
