@@ -205,13 +205,15 @@ def rank_of(params, address=None):
 
 
 class Spec:
-    """What every worker needs (picklable): the training's token, the leaf rule and level, the
-    learning rate, LightGBM's renewal definition, an upper bound on the leaves per tree
-    (``num_leaves``), the reduction timeout."""
+    """What every worker needs (picklable): the training's token, the leaf rule and level (of the
+    growth gradients; ``leaf_level``: of the leaves' quantile, default the same), the learning rate,
+    LightGBM's renewal definition, an upper bound on the leaves per tree (``num_leaves``), the
+    reduction timeout."""
 
-    def __init__(self, rule, level, learning_rate, definition, max_leaves, timeout=None):
+    def __init__(self, rule, level, learning_rate, definition, max_leaves, timeout=None, leaf_level=None):
         self.token = uuid.uuid4().hex
         self.rule, self.level, self.learning_rate = rule, float(level), float(learning_rate)
+        self.leaf_level = self.level if leaf_level is None else float(leaf_level)
         self.definition, self.max_leaves = definition, int(max_leaves)
         self.timeout = REDUCE_TIMEOUT if timeout is None else float(timeout)
 
@@ -244,7 +246,7 @@ class _Worker:
             if leaves.size and leaves.max() >= n_leaves:  # (num_leaves bounds every tree: LightGBM's own limit)
                 raise RuntimeError(f"tree {t} has leaf {leaves.max()}, above num_leaves={n_leaves}")
             values, has, k = cluster.leaf_quantiles(red, red.rank, red.world, leaves, self.y - self.raw, self.w,
-                                                    n_leaves, sp.level, sp.definition)
+                                                    n_leaves, sp.leaf_level, sp.definition)
             table = np.zeros(n_leaves)
             own = np.flatnonzero(np.bincount(leaves, minlength=n_leaves))  # (no sort of the rows)
             for j in own[~has[own]]:  # leaves whose rows all weigh 0 keep LightGBM's value (as on one machine)

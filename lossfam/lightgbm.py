@@ -944,9 +944,13 @@ def _cluster_refit(ldask, fam, params, plan):
                          "lightgbm version does not take: train with native=True and the default step_limit")
     from . import _lightgbm_refit
 
-    spec = _lightgbm_refit.Spec(facts.leaf_rule(fam), facts.leaf_level(fam), float(_param(params, _LR_NAMES, 0.1)),
-                                facts.renewal_definition(_ENGINE, weighted=plan.weight is not None),
-                                int(_param(params, _LEAVES_NAMES, 31)))
+    definition = facts.renewal_definition(_ENGINE, weighted=plan.weight is not None)
+    level = facts.leaf_level(fam)
+    # LightGBM's unit-weight renewal takes its quantile level as a float (as local training's refit does,
+    # ``lossfam._boost.leaves.engine_leaf_table``); its weighted rule is lossfam's midpoint at the level itself
+    leaf_level = float(np.float32(level)) if definition == "linear" else level
+    spec = _lightgbm_refit.Spec(facts.leaf_rule(fam), level, float(_param(params, _LR_NAMES, 0.1)), definition,
+                                int(_param(params, _LEAVES_NAMES, 31)), leaf_level=leaf_level)
     return _ClusterRefit(_lightgbm_refit, spec)
 
 

@@ -592,6 +592,8 @@ def _replayed_leaves(engine, fit, fam, X, y, w, o):
     level, definition = facts.leaf_level(fam), facts.renewal_definition(engine, weighted=w is not None)
     out = []
     if engine == "lightgbm":
+        if definition == "linear":  # LightGBM's unit-weight renewal: its level is a float
+            level = float(np.float32(level))
         b, lr = fit.booster, PARAMS[engine]["learning_rate"]
         raw = fit.baseline + o
         for t in range(b.num_trees()):
@@ -678,6 +680,59 @@ def test_refit_path_on_the_cluster(engine, case, client, tmp_path):
     np.testing.assert_array_equal(back.predict_raw(Xt, ot), fit.predict_raw(Xt, ot))
     if engine == "xgboost":
         assert back.booster.attr("lossfam_refit_seconds") is None
+
+
+def _leaf_values(engine, booster):
+    """Per tree, its leaf values (LightGBM: by leaf index; XGBoost: float32, by node id, leaves only)."""
+    if engine == "lightgbm":
+        return lfl._leaf_tables(booster)
+    import json
+
+    trees = json.loads(bytes(booster.save_raw("json")))["learner"]["gradient_booster"]["model"]["trees"]
+    return [np.asarray(t["split_conditions"], dtype=np.float32)[np.asarray(t["left_children"]) == -1] for t in trees]
+
+
+@pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
+def test_refit_on_the_cluster_grows_the_local_model(engine, client):
+    """Where the workers bin the features as one machine does (few distinct values) and the rows carry
+    no weights (the gradient sums are then exact in any order), the custom path on the cluster grows
+    local training's custom-path model: every row in the same leaf of every tree, and every leaf the
+    local value, on LightGBM to 2 ulp (local training interpolates the quantile in LightGBM's order
+    of operations, the cluster's selection in lossfam's: the same definition at LightGBM's float
+    level), on XGBoost to 16 float32 ulp of the raw scores (local training follows XGBoost's float32
+    arithmetic, its scores float32 sums of the leaves; the cluster's workers keep their scores in
+    float64 and select in float64, so the leaves differ by ulps of the scores: at most 1.1e-6 here)."""
+    rng = np.random.default_rng(5)
+    X = rng.integers(0, 8, size=(N_TRAIN, 4)).astype(float)
+    # targets and offsets in float32: XGBoost's local DMatrix keeps its labels and base_margin so, while
+    # the cluster's start reads the float64 ones (its engine start differs by a float32 ulp otherwise)
+    f32 = np.float32
+    y = (np.exp(0.3 * X[:, 0] - 0.2 * X[:, 1]) * rng.gamma(2.0, 1.5, N_TRAIN)).astype(f32).astype(np.float64)
+    o = (0.3 * rng.normal(size=N_TRAIN)).astype(f32).astype(np.float64)
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    data = lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o))
+    if engine == "lightgbm":
+        local = lfl.train(fam, dict(PARAMS[engine], num_threads=1, verbosity=-1), lgb.Dataset(X, y), ROUNDS, offset=o,
+                          native=False)
+        fit = lfl.train(fam, PARAMS[engine], data, ROUNDS, native=False, client=client)
+        leaves = [b.predict(X, pred_leaf=True) for b in (local.booster, fit.booster)]
+    else:
+        local = lfx.train(fam, PARAMS[engine], xgb.DMatrix(X, y, base_margin=o), ROUNDS, native=False,
+                          verbose_eval=False)
+        fit = lfx.train(fam, PARAMS[engine], data, ROUNDS, native=False, client=client, verbose_eval=False)
+        leaves = [b.predict(xgb.DMatrix(X), pred_leaf=True) for b in (local.booster, fit.booster)]
+    assert fit.baseline == local.baseline
+    np.testing.assert_array_equal(leaves[1], leaves[0])
+    mine, theirs = _leaf_values(engine, fit.booster), _leaf_values(engine, local.booster)
+    assert len(mine) == len(theirs) == ROUNDS
+    for t, (a, b) in enumerate(zip(mine, theirs)):
+        if engine == "lightgbm":
+            np.testing.assert_array_max_ulp(a, b, maxulp=2)
+        else:
+            np.testing.assert_allclose(a, b, rtol=0, atol=16 * np.spacing(np.float32(abs(local.baseline))),
+                                       err_msg=f"tree {t}")
+    if engine == "lightgbm":
+        assert sum(np.array_equal(a, b) for a, b in zip(mine, theirs)) >= ROUNDS // 2  # most trees bit for bit
 
 
 # ----------------------------------------------------------------------------- LightGBM's kept training scores
