@@ -29,8 +29,13 @@ others' (a read waits until the variable exists, at most ``REDUCE_TIMEOUT``
 seconds, then a clear error).  Once a worker has read every value of step s,
 every worker has finished reading step s - 1, so each deletes its own s - 1
 variable then; the client removes what is left at the end (``drop_variables``),
-also after a failure.  The data sent per reduction is what
-``leaf_quantiles`` reduces: O(leaves) numbers, never rows.
+also after a failure.  A worker that fails sets ``<prefix>-abort`` (so does the
+client after an error), and a worker waiting at a reduction looks for it every
+``POLL`` seconds and stops, so that no worker holds its thread until the
+timeout.  The data sent per reduction is what ``leaf_quantiles`` reduces:
+O(leaves) numbers, never rows.  A worker's rank is its entry in LightGBM's
+``machines`` list (``rank_of``); before the first tree the workers check that
+their ranks are distinct (one reduction).
 """
 from __future__ import annotations
 
