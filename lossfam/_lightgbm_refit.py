@@ -20,19 +20,20 @@ factory.  Its ``fit`` runs LightGBM's rounds with two additions:
 
 After the last round the last tree is refit; with ``keep`` the worker's refit
 raw scores (not LightGBM's buffer) are kept for the check and the nuisance fit
-(``cluster.keep_scores``), and the refit's seconds and reductions ride on the
-returned model (``take_timing`` reads and removes them).
+(``cluster.keep_scores``), and the refit's seconds, reductions and the number of
+workers ride on the returned model (``finish`` reads and removes them).
 
 The reduction (``Allreduce``) is built on ``distributed.Variable``: at step s
 each worker sets its array, as bytes, under ``<prefix>-s-<rank>`` and reads the
 others' (a read waits until the variable exists, at most ``REDUCE_TIMEOUT``
 seconds, then a clear error).  Once a worker has read every value of step s,
 every worker has finished reading step s - 1, so each deletes its own s - 1
-variable then; the client removes what is left at the end (``drop_variables``),
-also after a failure.  A worker that fails sets ``<prefix>-abort`` (so does the
-client after an error), and a worker waiting at a reduction looks for it every
-``POLL`` seconds and stops, so that no worker holds its thread until the
-timeout.  The data sent per reduction is what ``leaf_quantiles`` reduces:
+variable then; the client deletes the last step's at the end (``finish``).  A
+worker that fails deletes its own last two and sets ``<prefix>-abort`` (so does
+the client after an error, ``stop``, which deletes the mark again later), and a
+worker waiting at a reduction looks for the mark every ``POLL`` seconds and
+stops (deleting its own), so that no worker holds its thread until the timeout.
+Only the public ``distributed.Variable`` is used.  The data sent per reduction is what ``leaf_quantiles`` reduces:
 O(leaves) numbers, never rows.  A worker's rank is its entry in LightGBM's
 ``machines`` list (``rank_of``); before the first tree the workers check that
 their ranks are distinct (one reduction).
@@ -82,6 +83,17 @@ class Allreduce:
     def name(self, step, rank):
         return f"{PREFIX}-{self.token}-{step}-{rank}"
 
+    def drop_own(self):
+        """Delete this worker's variables of the last two steps (after a failure; never raises)."""
+        from distributed import Variable
+
+        for s in (self.step - 2, self.step - 1):
+            if s >= 0 and self.world > 1:
+                try:
+                    Variable(self.name(s, self.rank), self.client).delete()
+                except Exception:  # (a leftover variable is a few bytes on the scheduler)
+                    pass
+
     def abort_as(self, why):
         """Tell the other workers this training stopped (they stop waiting within ``POLL`` seconds)."""
         if self.world > 1 and self._stopped() is None:
@@ -124,18 +136,22 @@ class Allreduce:
         s = self.step
         self.step += 1
         client = self.client
-        Variable(self.name(s, self.rank), client).set(a.tobytes())
-        parts = []
-        for r in range(self.world):
-            if r == self.rank:
-                parts.append(a)
-                continue
-            got = self._wait(s, r)
-            part = np.frombuffer(got, dtype=np.float64)
-            if part.size != a.size:
-                raise RuntimeError(f"leaf refit on the LightGBM cluster: worker {r} sent {part.size} numbers at "
-                                   f"reduction {s}, worker {self.rank} {a.size}; the workers are out of step")
-            parts.append(part)
+        try:
+            Variable(self.name(s, self.rank), client).set(a.tobytes())
+            parts = []
+            for r in range(self.world):
+                if r == self.rank:
+                    parts.append(a)
+                    continue
+                got = self._wait(s, r)
+                part = np.frombuffer(got, dtype=np.float64)
+                if part.size != a.size:
+                    raise RuntimeError(f"leaf refit on the LightGBM cluster: worker {r} sent {part.size} numbers at "
+                                       f"reduction {s}, worker {self.rank} {a.size}; the workers are out of step")
+                parts.append(part)
+        except BaseException:
+            self.drop_own()
+            raise
         if s > 0:  # every worker has set step s, so each has read all of step s - 1
             Variable(self.name(s - 1, self.rank), client).delete()
         total = parts[0].copy()
@@ -154,25 +170,31 @@ def abort(client, token, who):
         pass
 
 
-def drop_variables(client, token, failed=False):
-    """Remove the Variables a training left on the scheduler (the last step's, or more after a failure).
-
-    ``failed``: the training raised; first mark it stopped and give workers still waiting at a
-    reduction ``2 POLL`` seconds to see the mark and end their task (else each would hold its
-    worker until ``REDUCE_TIMEOUT``)."""
+def stop(client, token):
+    """After a failed training: mark it stopped, give the workers still waiting at a reduction
+    ``2 POLL`` seconds to see the mark and end their task (each deletes its own variables), then
+    delete the mark."""
     from distributed import Variable
 
-    prefix = f"{PREFIX}-{token}-"
-    if failed:
-        abort(client, token, "by the client after an error")
-        time.sleep(2 * POLL)
+    abort(client, token, "by the client after an error")
+    time.sleep(2 * POLL)
+    Variable(f"{PREFIX}-{token}-abort", client).delete()
 
-    def names(dask_scheduler=None):
-        ext = dask_scheduler.extensions.get("variables")
-        return [] if ext is None else [n for n in list(ext.variables) if str(n).startswith(prefix)]
 
-    for n in client.run_on_scheduler(names):
-        Variable(n, client).delete()
+def finish(client, token, model):
+    """After a training: delete the workers' variables of the last step and return (seconds,
+    reductions) of the refit on the worker that returned ``model`` (every reduction of the training,
+    the ranks' check included), removed from it."""
+    from distributed import Variable
+
+    got = model.__dict__.pop("lossfam_refit_", None)
+    if got is None:
+        return 0.0, 0
+    secs, steps, world = got
+    if steps > 0 and world > 1:
+        for r in range(world):
+            Variable(f"{PREFIX}-{token}-{steps - 1}-{r}", client).delete()
+    return float(secs), int(steps)
 
 
 def rank_of(params, address=None):
@@ -329,6 +351,7 @@ class RefitRegressor(KeepingRegressor):
             st.catch_up(booster)  # the last tree
         except BaseException as exc:  # the others would wait for this worker's next value: tell them
             reduce.abort_as(f"worker {rank} failed: {type(exc).__name__}: {exc}"[:300])
+            reduce.drop_own()
             raise
         finally:
             _STATE.pop(key, None)
@@ -337,15 +360,5 @@ class RefitRegressor(KeepingRegressor):
             cluster.keep_scores(token, st.raw, st.y if targets else None, st.w if targets else None,
                                 booster.current_iteration())
         # read (and removed) by the client: the refit's share of the engine's training call
-        self.lossfam_refit_ = (st.seconds, reduce.step, st.reductions)
+        self.lossfam_refit_ = (st.seconds, reduce.step, world)
         return self
-
-
-def take_timing(model):
-    """(seconds, reductions) the refit took on the worker that returned ``model`` (every reduction of
-    the training, the ranks' check included), removed from it."""
-    got = model.__dict__.pop("lossfam_refit_", None)
-    if got is None:
-        return 0.0, 0
-    secs, reductions, _ = got
-    return float(secs), int(reductions)

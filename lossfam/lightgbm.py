@@ -859,20 +859,19 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
             if refit is not None:
                 # the leaf refit on the workers (lossfam._lightgbm_refit): leaves renewed to the residual
                 # quantile of the rows of every worker before each round, reductions by distributed Variables
-                failed = True
                 try:
                     est._lgb_dask_fit(model_factory=factory, X=plan.X, y=plan.y, sample_weight=plan.weight,
                                       init_score=plan.start, refit=refit.spec, keep=(kept.token, *keep))
-                    failed = False
-                finally:
-                    refit.module.drop_variables(client, refit.spec.token, failed=failed)
+                except BaseException:
+                    refit.module.stop(client, refit.spec.token)
+                    raise
             elif kept is None:
                 est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
             else:  # the same training, by a model factory that keeps each worker's trained scores
                 est._lgb_dask_fit(model_factory=factory, X=plan.X, y=plan.y, sample_weight=plan.weight,
                                   init_score=plan.start, keep=(kept.token, *keep))
         if refit is not None:  # the refit ran inside the engine's call: its seconds are lossfam's
-            secs, reductions = refit.module.take_timing(est)
+            secs, reductions = refit.module.finish(client, refit.spec.token, est)
             plan.stats["seconds"]["refit"] = secs
             plan.stats["seconds"]["trees"] -= secs
             plan.stats["refit_passes"] = reductions

@@ -437,8 +437,9 @@ def _refit_variables(client, expect):
 def test_lightgbm_refit_allreduce_over_variables(client):
     """The LightGBM refit's reduction over distributed Variables: three threads as workers each get the
     same bits, the sum in rank order, for a sequence of arrays of varying shapes; each step's old
-    variables are gone, ``drop_variables`` removes the last; a worker whose peer never comes stops
-    with a clear error after its timeout."""
+    variables are gone, ``finish`` removes the last; a worker whose peer never comes stops with a
+    clear error after its timeout and deletes its own; a worker waiting when the client ``stop``s the
+    training ends within a second or two."""
     import threading
     import uuid
 
@@ -466,14 +467,18 @@ def test_lightgbm_refit_allreduce_over_variables(client):
             assert out[rank][s].tobytes() == expect.tobytes(), (s, rank)
     last = [f"{lr.PREFIX}-{token}-3-{r}" for r in range(world)]
     assert names(last) == last  # the last step's only
-    lr.drop_variables(client, token)
+
+    class Model:
+        pass
+    returned = Model()
+    returned.lossfam_refit_ = (0.5, 4, world)  # (what the worker leaves on the model: seconds, steps, workers)
+    assert lr.finish(client, token, returned) == (0.5, 4) and not hasattr(returned, "lossfam_refit_")
     assert names([]) == []
 
     lonely = lr.Allreduce(uuid.uuid4().hex, 0, 2, timeout=0.5, client=client)
     with pytest.raises(RuntimeError, match="worker 0 of 2 waited 0.5 s for worker 1's value at reduction 0"):
         lonely(np.ones(3))
-    lr.drop_variables(client, lonely.token)
-    assert names([]) == []
+    assert names([]) == []  # a worker that fails deletes its own
     # a training stopped by the client (after another worker's error): the waiting worker ends soon
     waiting, caught = lr.Allreduce(uuid.uuid4().hex, 1, 2, timeout=120, client=client), []
 
@@ -484,7 +489,7 @@ def test_lightgbm_refit_allreduce_over_variables(client):
             caught.append(str(exc))
     t = threading.Thread(target=wait)
     t.start()
-    lr.drop_variables(client, waiting.token, failed=True)
+    lr.stop(client, waiting.token)
     t.join(timeout=60)
     assert not t.is_alive() and len(caught) == 1 and "worker 1 stopped at reduction 0" in caught[0], caught
     assert names([]) == []
