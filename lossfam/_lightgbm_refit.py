@@ -33,10 +33,10 @@ worker that fails deletes its own last two and sets ``<prefix>-abort`` (so does
 the client after an error, ``stop``, which deletes the mark again later), and a
 worker waiting at a reduction looks for the mark every ``POLL`` seconds and
 stops (deleting its own), so that no worker holds its thread until the timeout.
-Only the public ``distributed.Variable`` is used.  The data sent per reduction is what ``leaf_quantiles`` reduces:
-O(leaves) numbers, never rows.  A worker's rank is its entry in LightGBM's
-``machines`` list (``rank_of``); before the first tree the workers check that
-their ranks are distinct (one reduction).
+Only the public ``distributed.Variable`` is used.  The data sent per reduction
+is what ``leaf_quantiles`` reduces: O(leaves) numbers, never rows.  A worker's
+rank is its entry in LightGBM's ``machines`` list (``rank_of``); before the
+first tree the workers check that their ranks are distinct (one reduction).
 """
 from __future__ import annotations
 
