@@ -25,13 +25,17 @@ lightgbm is imported on first use; ``import lossfam`` never imports it.
 On a Dask cluster (``train`` given a ``lossfam.ClusterData``): the trees are
 grown by ``lightgbm.dask.DaskLGBMRegressor`` with the starting scores as its
 ``init_score``; lossfam's own steps run on the workers
-(``lossfam._boost.cluster``).  Native twins and the Python objective only (no
-refit path); ``valid_sets`` are scored after training, and one
+(``lossfam._boost.cluster``).  Native twins, the Python objective, and the
+refit path for median / quantile leaves (``lossfam._lightgbm_refit``: per round,
+the exact residual quantile of each leaf over the rows of all workers, summed
+over ``distributed.Variable``; line-search leaves are refused); ``valid_sets``
+are scored after training, and one
 ``lightgbm.early_stopping`` callback is honoured by scoring every round on all
 valid rows afterwards and cutting the model at the best one.  The check of the
 trained scores and the nuisance fit read the trained scores LightGBM leaves on
-each worker (``lossfam._lightgbm_keep``) instead of predicting every training
-row, unless the model was cut or a worker lacks them.
+each worker (``lossfam._lightgbm_keep``; on the refit path the worker's own
+scores with the renewed leaves) instead of predicting every training row,
+unless the model was cut or a worker lacks them.
 
 Native twins (``native=True``, the default).  Families declare the built-in
 objective whose gradients, Hessian and leaf rule equal theirs (gaussian
@@ -130,6 +134,7 @@ _ENGINE = "lightgbm"
 _LR_NAMES = ("learning_rate", "shrinkage_rate", "eta")
 _THREAD_NAMES = ("num_threads", "num_thread", "nthread", "nthreads", "n_jobs")
 _OBJECTIVE_NAMES = ("objective", "objective_type", "app", "application", "loss")
+_LEAVES_NAMES = ("num_leaves", "num_leaf", "max_leaves", "max_leaf", "max_leaf_nodes")
 
 
 def _lgb():
@@ -828,24 +833,48 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     plan = cluster.cluster_plan(client, fam, data, facts.leaf_level(fam), prefit=prefit, engine=_ENGINE,
                                 drop_unit_weights=True)
     fam = plan.family
-    guard, twin = cluster.cluster_path(fam, _ENGINE, "LightGBM", step_limit, native, params)
+    guard, twin = cluster.cluster_path(fam, _ENGINE, "LightGBM", step_limit, native, params,
+                                       refits=("median", "quantile"))
     rule = facts.leaf_rule(fam)
     valids = [plan.start_for(v, f"valid_sets[{k}]") for k, v in enumerate(valid_sets)]
+    refit = None
     if twin is not None:
         params.update(twin)
+    elif rule in ("median", "quantile"):
+        refit = _cluster_refit(ldask, fam, params, plan)
+        params["objective"] = refit.objective
     else:
         params["objective"] = _Objective(fam, guard, check_start=False)
     params.setdefault("metric", "None")
     params.setdefault("verbosity", -1)
     est = ldask.DaskLGBMRegressor(client=client, n_estimators=int(num_boost_round), **params)
-    kept, factory, keep = _keeping(ldask, client, plan, params["objective"], bool(fam.params) and nuisance_set is None)
+    targets = bool(fam.params) and nuisance_set is None
+    if refit is None:
+        kept, factory, keep = _keeping(ldask, client, plan, params["objective"], targets)
+    else:  # the workers keep their own raw scores with the refit leaves (LightGBM's buffer lacks the edits)
+        kept = cluster.KeptRows(client, refit.spec.token, plan.y.chunks[0][0])
+        factory, keep = refit.module.RefitRegressor, (targets,)
     try:
         with cluster.timed(plan.stats, "trees"):
-            if kept is None:
+            if refit is not None:
+                # the leaf refit on the workers (lossfam._lightgbm_refit): leaves renewed to the residual
+                # quantile of the rows of every worker before each round, reductions by distributed Variables
+                try:
+                    est._lgb_dask_fit(model_factory=factory, X=plan.X, y=plan.y, sample_weight=plan.weight,
+                                      init_score=plan.start, refit=refit.spec, keep=(kept.token, *keep))
+                except BaseException:
+                    refit.module.stop(client, refit.spec.token)
+                    raise
+            elif kept is None:
                 est.fit(plan.X, plan.y, sample_weight=plan.weight, init_score=plan.start)
             else:  # the same training, by a model factory that keeps each worker's trained scores
                 est._lgb_dask_fit(model_factory=factory, X=plan.X, y=plan.y, sample_weight=plan.weight,
                                   init_score=plan.start, keep=(kept.token, *keep))
+        if refit is not None:  # the refit ran inside the engine's call: its seconds are lossfam's
+            secs, reductions = refit.module.finish(client, refit.spec.token, est)
+            plan.stats["seconds"]["refit"] = secs
+            plan.stats["seconds"]["trees"] -= secs
+            plan.stats["refit_passes"] = reductions
         with cluster.timed(plan.stats, "model"):
             booster = _lgb().Booster(model_str=est.booster_.model_to_string())
         best = None
@@ -876,6 +905,52 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
     finally:
         if kept is not None:
             kept.drop()
+
+
+class _ClusterRefit:
+    """The client's side of a leaf refit on the cluster: the workers' ``Spec``, their objective, the module."""
+
+    def __init__(self, module, spec):
+        self.module, self.spec = module, spec
+        self.objective = module.Growth(spec.token)
+
+
+def _cluster_refit(ldask, fam, params, plan):
+    """Check that a median / quantile refit can run on the cluster with these parameters; its ``_ClusterRefit``.
+
+    As on one machine, LightGBM's built-in metrics would see the unedited scores (refused).  One tree
+    per round on all rows, split by rows over the workers: no bagging, ``tree_learner`` data or voting
+    (feature-parallel workers each hold all rows, which the sums would count once per worker).  The
+    refit needs ``lightgbm.dask``'s private ``model_factory`` argument."""
+    import inspect
+
+    if str(params.get("metric", "None")).lower() not in ("none", "na", "null", "custom", ""):
+        raise ValueError(f"{fam.name} refits leaves and keeps its own scores; LightGBM's built-in metrics "
+                         "would see the unedited ones: drop params['metric']")
+    fraction = float(_param(params, ("bagging_fraction", "sub_row", "subsample", "bagging"), 1.0))
+    freq = int(_param(params, ("bagging_freq", "subsample_freq"), 0))
+    learner = str(_param(params, ("tree_learner", "tree", "tree_type", "tree_learner_type"), "data")).lower()
+    if (fraction < 1.0 and freq > 0) or learner in ("feature", "feature_parallel"):
+        raise ValueError(f"{fam.name} refits leaves on the cluster: one tree per round on all rows, split by rows "
+                         "(no bagging; tree_learner 'data' or 'voting')")
+    fit_parts = getattr(ldask.DaskLGBMRegressor, "_lgb_dask_fit", None)
+    try:
+        takes_factory = fit_parts is not None and "model_factory" in inspect.signature(fit_parts).parameters
+    except (TypeError, ValueError):
+        takes_factory = False
+    if not takes_factory:
+        raise ValueError(f"{fam.name} refits leaves on the cluster through lightgbm.dask's model_factory, which this "
+                         "lightgbm version does not take: train with native=True and the default step_limit")
+    from . import _lightgbm_refit
+
+    definition = facts.renewal_definition(_ENGINE, weighted=plan.weight is not None)
+    level = facts.leaf_level(fam)
+    # LightGBM's unit-weight renewal takes its quantile level as a float (as local training's refit does,
+    # ``lossfam._boost.leaves.engine_leaf_table``); its weighted rule is lossfam's midpoint at the level itself
+    leaf_level = float(np.float32(level)) if definition == "linear" else level
+    spec = _lightgbm_refit.Spec(facts.leaf_rule(fam), level, float(_param(params, _LR_NAMES, 0.1)), definition,
+                                int(_param(params, _LEAVES_NAMES, 31)), leaf_level=leaf_level)
+    return _ClusterRefit(_lightgbm_refit, spec)
 
 
 def _keeping(ldask, client, plan, objective, targets):

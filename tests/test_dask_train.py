@@ -29,6 +29,7 @@ from lossfam import lightgbm as lfl  # noqa: E402
 from lossfam import xgboost as lfx  # noqa: E402
 from lossfam._boost import cluster  # noqa: E402
 from lossfam._boost.quantiles import sample_quantile  # noqa: E402
+from user_families import LogisticLineSearchErrors, LogisticMedianErrors  # noqa: E402
 
 PARTS = 16
 N_TRAIN, N_TEST = 8000, 4000
@@ -258,16 +259,32 @@ def test_cluster_baseline_equals_local(client, name):
     assert stats["passes"] <= 40
 
 
-def test_bad_rows_are_named_and_refit_is_refused(client):
+def _user_families_on(client):
+    """tests/ on the workers' path (the user families are pickled by reference) and the families registered."""
+    import os
+    import sys
+
+    here = os.path.dirname(os.path.abspath(__file__))
+    client.run(lambda d: None if d in sys.path else sys.path.insert(0, d), here)
+    for cls in (LogisticMedianErrors, LogisticLineSearchErrors):
+        lossfam.register(cls, replace=True)
+
+
+@pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
+def test_bad_rows_are_named_and_line_search_leaves_are_refused(engine, client):
     X, y, _, o = _claims(3, 1600)
     y[1234] = -1.0
+    mod = lfl if engine == "lightgbm" else lfx
     with pytest.raises(ValueError, match="rows 1200..1299"):
-        lfx.train("poisson", PARAMS["xgboost"], lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 5,
+        mod.train("poisson", PARAMS[engine], lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o)), 5,
                   client=client)
-    Xd, yd, wd, _ = _delays(3, 1600)
-    # LightGBM exposes no collective to Python: no leaf refit on its cluster; the message names the way out
-    with pytest.raises(ValueError, match="not run on a LightGBM Dask cluster.*xgboost.train refits"):
-        lfl.train("laplace", PARAMS["lightgbm"], lossfam.ClusterData(_dask(Xd), _dask(yd)), 5, native=False,
+    # median and quantile leaves are refit on the cluster; leaves set by a line search are not, and the
+    # message says which leaves are
+    _user_families_on(client)
+    Xd, yd, _, _ = _delays(3, 1600)
+    name = "LightGBM" if engine == "lightgbm" else "XGBoost"
+    with pytest.raises(ValueError, match=f"'line_search' rule .* not run on a {name} Dask cluster .*refits median"):
+        mod.train(LogisticLineSearchErrors(), PARAMS[engine], lossfam.ClusterData(_dask(Xd), _dask(yd)), 5,
                   client=client)
 
 
@@ -401,6 +418,134 @@ def test_leaf_quantiles_across_workers_equal_one_machine(monkeypatch):
                     np.testing.assert_array_equal(values[has], ref[has], err_msg=f"{definition} q={q} world={world}")
 
 
+def _refit_variables(client, expect):
+    """The LightGBM refit's Variables on the scheduler (sorted names), polled up to 5 s until they are
+    ``expect``: a delete reaches the scheduler on the client's batched stream, shortly after."""
+    import time
+
+    from lossfam import _lightgbm_refit as lr
+
+    for _ in range(100):
+        got = sorted(client.run_on_scheduler(lambda dask_scheduler=None: [
+            n for n in dask_scheduler.extensions["variables"].variables if str(n).startswith(lr.PREFIX)]))
+        if got == expect:
+            break
+        time.sleep(0.05)
+    return got
+
+
+def test_lightgbm_refit_allreduce_over_variables(client):
+    """The LightGBM refit's reduction over distributed Variables: three threads as workers each get the
+    same bits, the sum in rank order, for a sequence of arrays of varying shapes; each step's old
+    variables are gone, ``finish`` removes the last; a worker whose peer never comes stops with a
+    clear error after its timeout and deletes its own; a worker waiting when the client ``stop``s the
+    training ends within a second or two."""
+    import threading
+    import uuid
+
+    from lossfam import _lightgbm_refit as lr
+
+    def names(expect):
+        return _refit_variables(client, expect)
+
+    world, token = 3, uuid.uuid4().hex
+    rng = np.random.default_rng(3)
+    arrays = [[rng.normal(size=k) * 10.0 ** rng.integers(-8, 8, k) for k in (1, 5, 300, 7)] for _ in range(world)]
+    out = [None] * world
+
+    def run(rank):
+        reduce = lr.Allreduce(token, rank, world, timeout=60, client=client)
+        out[rank] = [reduce(a) for a in arrays[rank]]
+    threads = [threading.Thread(target=run, args=(r,)) for r in range(world)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    for s in range(4):
+        expect = (arrays[0][s] + arrays[1][s]) + arrays[2][s]
+        for rank in range(world):
+            assert out[rank][s].tobytes() == expect.tobytes(), (s, rank)
+    last = [f"{lr.PREFIX}-{token}-3-{r}" for r in range(world)]
+    assert names(last) == last  # the last step's only
+
+    class Model:
+        pass
+    returned = Model()
+    returned.lossfam_refit_ = (0.5, 4, world)  # (what the worker leaves on the model: seconds, steps, workers)
+    assert lr.finish(client, token, returned) == (0.5, 4) and not hasattr(returned, "lossfam_refit_")
+    assert names([]) == []
+
+    lonely = lr.Allreduce(uuid.uuid4().hex, 0, 2, timeout=0.5, client=client)
+    with pytest.raises(RuntimeError, match="worker 0 of 2 waited 0.5 s for worker 1's value at reduction 0"):
+        lonely(np.ones(3))
+    assert names([]) == []  # a worker that fails deletes its own
+    # a training stopped by the client (after another worker's error): the waiting worker ends soon
+    waiting, caught = lr.Allreduce(uuid.uuid4().hex, 1, 2, timeout=120, client=client), []
+
+    def wait():
+        try:
+            waiting(np.ones(3))
+        except RuntimeError as exc:
+            caught.append(str(exc))
+    t = threading.Thread(target=wait)
+    t.start()
+    lr.stop(client, waiting.token)
+    t.join(timeout=60)
+    assert not t.is_alive() and len(caught) == 1 and "worker 1 stopped at reduction 0" in caught[0], caught
+    assert names([]) == []
+
+
+def test_lightgbm_refit_stops_every_worker_when_one_fails(client):
+    """A worker failing inside the cluster refit: the training raises its error at once (not after the
+    others' reduction timeout), the other worker's task ends, and the cluster trains again afterwards
+    with nothing left on the scheduler."""
+    import time
+
+    addresses = sorted(client.scheduler_info()["workers"])
+
+    def fail_at(n):
+        from lossfam._boost import cluster as cl
+
+        original, calls = cl.leaf_quantiles, [0]
+
+        def failing(*a, **k):
+            calls[0] += 1
+            if calls[0] == n:
+                cl.leaf_quantiles = original
+                raise RuntimeError("injected failure")
+            return original(*a, **k)
+        cl.leaf_quantiles = failing
+    X, y, w, _ = _delays(81, 2000)
+    data = lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w))
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    client.run(fail_at, 5, workers=addresses[:1])
+    t0 = time.perf_counter()
+    with pytest.raises(RuntimeError, match="injected failure|training was stopped"):
+        lfl.train(fam, PARAMS["lightgbm"], data, 10, native=False, client=client)
+    assert time.perf_counter() - t0 < 60
+    assert _refit_variables(client, []) == []
+    fit = lfl.train(fam, PARAMS["lightgbm"], data, 10, native=False, client=client)
+    assert fit.booster.num_trees() == 10 and _store_sizes(client) == [0, 0]
+
+
+def test_lightgbm_refit_ranks_from_the_network_parameters():
+    """Each worker's rank is its entry in LightGBM's ``machines`` (by its listen port, and its host where
+    workers share a port); anything ambiguous is an error, not a guess."""
+    from lossfam._lightgbm_refit import rank_of
+
+    machines = "127.0.0.1:40001,127.0.0.1:40007,127.0.0.1:40003"
+    assert [rank_of({"machines": machines, "local_listen_port": p, "num_machines": 3})
+            for p in (40001, 40007, 40003)] == [(0, 3), (1, 3), (2, 3)]
+    shared = "alpha:12400,beta:12400"
+    assert rank_of({"machines": shared, "local_listen_port": 12400}, "tcp://beta:39000") == (1, 2)
+    with pytest.raises(RuntimeError, match="not exactly one entry"):
+        rank_of({"machines": shared, "local_listen_port": 12400})
+    with pytest.raises(RuntimeError, match="not exactly one entry"):
+        rank_of({"machines": machines, "local_listen_port": 40002})
+    with pytest.raises(RuntimeError, match="no 'machines'"):
+        rank_of({"local_listen_port": 40002})
+
+
 @pytest.mark.parametrize("small", [False, True])
 def test_leaf_quantiles_equal_the_sorted_selection(monkeypatch, small):
     """The selection with its first cut by histogram returns, bit for bit, the leaf values of the
@@ -440,48 +585,159 @@ def test_leaf_quantiles_equal_the_sorted_selection(monkeypatch, small):
         assert narrowed > 0
 
 
-@pytest.mark.parametrize("name, params, weighted", [("asymmetric_laplace", {"quantile": 0.9}, True),
-                                                    pytest.param("laplace", {}, False, marks=pytest.mark.slow)])
-def test_xgboost_refit_path_on_the_cluster(client, tmp_path, name, params, weighted):
-    """XGBoost's custom path (native=False) on the cluster: leaves renewed to the residual quantile of
-    the rows of all workers each round; the held-out loss is within 1% of local training's custom
-    path on the same rows in 16 partitions, and the model saves and loads like any other."""
-    fam = lossfam.family(name, **params)
+def _replayed_leaves(engine, fit, fam, X, y, w, o):
+    """Per tree of the cluster model: (its leaf values, the values local training's refit gives those
+    leaves): learning rate times the residual quantile of all training rows in each leaf, by the engine's
+    renewal definition (``grouped_quantile``, one machine), at the raw scores of the trees before it,
+    which are replayed here with the model's leaves.  XGBoost in its arithmetic: float32 labels,
+    weights, margins and leaves."""
+    from lossfam._boost import facts
+    from lossfam._boost.quantiles import grouped_quantile
+
+    level, definition = facts.leaf_level(fam), facts.renewal_definition(engine, weighted=w is not None)
+    out = []
+    if engine == "lightgbm":
+        if definition == "linear":  # LightGBM's unit-weight renewal: its level is a float
+            level = float(np.float32(level))
+        b, lr = fit.booster, PARAMS[engine]["learning_rate"]
+        raw = fit.baseline + o
+        for t in range(b.num_trees()):
+            leaves = np.asarray(b.predict(X, pred_leaf=True, start_iteration=t, num_iteration=1), dtype=np.intp).ravel()
+            n = int(leaves.max()) + 1
+            q, has = grouped_quantile(leaves, y - raw, w, level, n, definition)
+            got = np.array([b.get_leaf_output(t, j) for j in range(n)])
+            out.append((got[has], lr * q[has]))
+            raw = raw + got[leaves]
+        return out
+    import json
+
+    f32 = np.float32
+    trees = json.loads(bytes(fit.booster.save_raw("json")))["learner"]["gradient_booster"]["model"]["trees"]
+    raw = (fit.baseline + o).astype(f32).astype(np.float64)
+    y32, w32 = (None if v is None else v.astype(f32).astype(np.float64) for v in (y, w))
+    for t, tree in enumerate(trees):
+        leaves = np.asarray(fit.booster[t:t + 1].predict(xgb.DMatrix(X), pred_leaf=True), dtype=np.intp).ravel()
+        got = np.asarray(tree["split_conditions"], dtype=f32).astype(np.float64)
+        q, has = grouped_quantile(leaves, y32 - raw, w32, level, got.size, definition)
+        has &= np.asarray(tree["left_children"]) == -1
+        out.append((got[has], (PARAMS[engine]["eta"] * q[has]).astype(f32).astype(np.float64)))
+        raw = raw + got[leaves]
+    return out
+
+
+@pytest.mark.parametrize("case", ["asymmetric_laplace_0.9", "user_median",
+                                  pytest.param("laplace_unweighted", marks=pytest.mark.slow)])
+@pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
+def test_refit_path_on_the_cluster(engine, case, client, tmp_path):
+    """The custom path (native=False, or a user family without a twin) on the cluster: every leaf of
+    every tree is renewed to the residual quantile of the rows of all workers (the number local
+    training's refit computes for that tree on one machine, in the engine's arithmetic); the held-out
+    loss is within 1% of local training's custom path on the same weighted, offset rows in 16
+    partitions; the model saves and loads like any other, and nothing is left on the workers or the
+    scheduler."""
+    _user_families_on(client)
+    fam = {"user_median": LogisticMedianErrors(), "laplace_unweighted": lossfam.family("laplace")}.get(
+        case, lossfam.family("asymmetric_laplace", quantile=0.9))
     X, y, w, _ = _delays(41, N_TRAIN)
     Xt, yt, wt, _ = _delays(42, N_TEST)
-    w, wt = (w, wt) if weighted else (None, None)
-    local = lfx.train(fam, PARAMS["xgboost"], xgb.DMatrix(X, y, weight=w), ROUNDS, native=False, verbose_eval=False)
-    fit = lfx.train(fam, PARAMS["xgboost"], lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w)), ROUNDS,
-                    native=False, client=client, verbose_eval=False)
+    if case == "laplace_unweighted":  # the engines' unit-weight renewal definitions
+        w = wt = None
+    o, ot = (0.3 * np.random.default_rng(s).normal(size=n) for s, n in ((43, N_TRAIN), (44, N_TEST)))
+    if engine == "lightgbm":
+        local = lfl.train(fam, dict(PARAMS[engine], num_threads=1, verbosity=-1), lgb.Dataset(X, y, weight=w), ROUNDS,
+                          offset=o, native=False)
+        fit = lfl.train(fam, PARAMS[engine], lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w), offset=_dask(o)),
+                        ROUNDS, native=False, client=client)
+    else:
+        local = lfx.train(fam, PARAMS[engine], xgb.DMatrix(X, y, weight=w, base_margin=o), ROUNDS, native=False,
+                          verbose_eval=False)
+        fit = lfx.train(fam, PARAMS[engine], lossfam.ClusterData(_dask(X), _dask(y), weight=_dask(w), offset=_dask(o)),
+                        ROUNDS, native=False, client=client, verbose_eval=False)
     assert fit.info["objective"] == local.info["objective"] == "custom"
     assert fit.info["leaf_value"] == local.info["leaf_value"] == fam.leaf_value
     info = fit.info["cluster"]
     assert info["partitions"] >= 16 and info["refit_passes"] >= ROUNDS and "refit" in info["seconds"]
-    held_local, held = local.mean_loss(Xt, yt, weight=wt), fit.mean_loss(Xt, yt, weight=wt)
-    assert abs(held - held_local) <= 0.01 * held_local, (held, held_local)
-    # the first tree's leaves are eta times the residual quantile of all training rows in each leaf, by
-    # XGBoost's renewal definition, computed here on one machine: the same float32 numbers (the workers
-    # read the targets from XGBoost's DMatrix, which keeps them in single precision)
-    import json
-
-    from lossfam._boost import facts
-    from lossfam._boost.quantiles import grouped_quantile
-
-    tree = json.loads(bytes(fit.booster[0:1].save_raw("json")))["learner"]["gradient_booster"]["model"]["trees"][0]
-    is_leaf = np.asarray(tree["left_children"]) == -1
-    leaves = np.asarray(fit.booster[0:1].predict(xgb.DMatrix(X), pred_leaf=True), dtype=np.intp).reshape(-1)
-    y32 = y.astype(np.float32).astype(np.float64)
-    q, has = grouped_quantile(leaves, y32 - fit.baseline, w, facts.leaf_level(fam), is_leaf.size,
-                              facts.renewal_definition("xgboost", weighted=w is not None))
-    expect = (PARAMS["xgboost"]["eta"] * q).astype(np.float32)
-    got = np.asarray(tree["split_conditions"], dtype=np.float32)
-    assert has[is_leaf].all() and np.array_equal(got[is_leaf], expect[is_leaf])
-    assert fit.booster.num_boosted_rounds() == ROUNDS
-    path = tmp_path / "refit.json"
+    assert 0 < info["seconds"]["refit"] <= info["lossfam_seconds"]
+    # the trees differ from local training's (each worker bins its own rows), so the leaves are checked
+    # tree by tree against the one-machine refit of those trees
+    replay = _replayed_leaves(engine, fit, fam, X, y, w, o)
+    assert len(replay) == ROUNDS
+    for t, (got, expect) in enumerate(replay):
+        assert got.size >= 2, t
+        np.testing.assert_array_equal(got, expect, err_msg=f"tree {t}")
+    held_local, held = local.mean_loss(Xt, yt, weight=wt, offset=ot), fit.mean_loss(Xt, yt, weight=wt, offset=ot)
+    assert abs(held - held_local) <= 0.01 * abs(held_local), (held, held_local)
+    if engine == "lightgbm":  # the workers' own refit raw scores stood in for predicting the training rows
+        assert info["trained_check"] == "kept" and info["kept_scores"] == "used"
+        assert not hasattr(fit.booster, "lossfam_refit_")
+        assert _store_sizes(client) == [0, 0]
+        assert _refit_variables(client, []) == []
+    # the nuisance fit at the trained raw scores: the family's own fit on those rows, or (the user family's
+    # generic fit stops about 2e-5 short) a scale of no larger mean nll
+    train_raw = fit.predict_raw(X, o)
+    own = fam.fit_nuisance(y, train_raw, w)
+    assert fit.fitted_family.scale == pytest.approx(own.scale, rel=1e-7 if case != "user_median" else 1e-4)
+    nll = [float(np.average(f.nll(y, train_raw), weights=w)) for f in (fit.fitted_family, own)]
+    assert nll[0] <= nll[1] + 1e-12 * abs(nll[1]), nll
+    path = tmp_path / f"refit_{engine}.json"
     fit.save(path)
     back = lossfam.load(path)
-    np.testing.assert_array_equal(back.predict_raw(Xt), fit.predict_raw(Xt))
-    assert back.booster.attr("lossfam_refit_seconds") is None
+    np.testing.assert_array_equal(back.predict_raw(Xt, ot), fit.predict_raw(Xt, ot))
+    if engine == "xgboost":
+        assert back.booster.attr("lossfam_refit_seconds") is None
+
+
+def _leaf_values(engine, booster):
+    """Per tree, its leaf values (LightGBM: by leaf index; XGBoost: float32, by node id, leaves only)."""
+    if engine == "lightgbm":
+        return lfl._leaf_tables(booster)
+    import json
+
+    trees = json.loads(bytes(booster.save_raw("json")))["learner"]["gradient_booster"]["model"]["trees"]
+    return [np.asarray(t["split_conditions"], dtype=np.float32)[np.asarray(t["left_children"]) == -1] for t in trees]
+
+
+@pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
+def test_refit_on_the_cluster_grows_the_local_model(engine, client):
+    """Where the workers bin the features as one machine does (few distinct values) and the rows carry
+    no weights (the gradient sums are then exact in any order), the custom path on the cluster grows
+    local training's custom-path model: every row in the same leaf of every tree, and every leaf the
+    local value, on LightGBM to 2 ulp (local training interpolates the quantile in LightGBM's order
+    of operations, the cluster's selection in lossfam's: the same definition at LightGBM's float
+    level), on XGBoost to 16 float32 ulp of the raw scores (local training follows XGBoost's float32
+    arithmetic, its scores float32 sums of the leaves; the cluster's workers keep their scores in
+    float64 and select in float64, so the leaves differ by ulps of the scores: at most 1.1e-6 here)."""
+    rng = np.random.default_rng(5)
+    X = rng.integers(0, 8, size=(N_TRAIN, 4)).astype(float)
+    # targets and offsets in float32: XGBoost's local DMatrix keeps its labels and base_margin so, while
+    # the cluster's start reads the float64 ones (its engine start differs by a float32 ulp otherwise)
+    f32 = np.float32
+    y = (np.exp(0.3 * X[:, 0] - 0.2 * X[:, 1]) * rng.gamma(2.0, 1.5, N_TRAIN)).astype(f32).astype(np.float64)
+    o = (0.3 * rng.normal(size=N_TRAIN)).astype(f32).astype(np.float64)
+    fam = lossfam.family("asymmetric_laplace", quantile=0.9)
+    data = lossfam.ClusterData(_dask(X), _dask(y), offset=_dask(o))
+    if engine == "lightgbm":
+        local = lfl.train(fam, dict(PARAMS[engine], num_threads=1, verbosity=-1), lgb.Dataset(X, y), ROUNDS, offset=o,
+                          native=False)
+        fit = lfl.train(fam, PARAMS[engine], data, ROUNDS, native=False, client=client)
+        leaves = [b.predict(X, pred_leaf=True) for b in (local.booster, fit.booster)]
+    else:
+        local = lfx.train(fam, PARAMS[engine], xgb.DMatrix(X, y, base_margin=o), ROUNDS, native=False,
+                          verbose_eval=False)
+        fit = lfx.train(fam, PARAMS[engine], data, ROUNDS, native=False, client=client, verbose_eval=False)
+        leaves = [b.predict(xgb.DMatrix(X), pred_leaf=True) for b in (local.booster, fit.booster)]
+    assert fit.baseline == local.baseline
+    np.testing.assert_array_equal(leaves[1], leaves[0])
+    mine, theirs = _leaf_values(engine, fit.booster), _leaf_values(engine, local.booster)
+    assert len(mine) == len(theirs) == ROUNDS
+    for t, (a, b) in enumerate(zip(mine, theirs)):
+        if engine == "lightgbm":
+            np.testing.assert_array_max_ulp(a, b, maxulp=2)
+        else:
+            np.testing.assert_allclose(a, b, rtol=0, atol=16 * np.spacing(np.float32(abs(local.baseline))),
+                                       err_msg=f"tree {t}")
+    if engine == "lightgbm":
+        assert sum(np.array_equal(a, b) for a, b in zip(mine, theirs)) >= ROUNDS // 2  # most trees bit for bit
 
 
 # ----------------------------------------------------------------------------- LightGBM's kept training scores

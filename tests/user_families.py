@@ -32,3 +32,21 @@ class LogisticErrors(lossfam.Family):
 
     def _distribution(self, raw):
         return stats.logistic(loc=raw, scale=self.scale)
+
+
+@dataclasses.dataclass(frozen=True)
+class LogisticMedianErrors(LogisticErrors):
+    """Logistic errors whose tree leaves take the residual median (the law is symmetric: its median
+    is its location).  No engine twin: the engines train it on lossfam's custom path."""
+
+    name = "logistic_median_errors_test"
+    leaf_value = "median"
+
+
+@dataclasses.dataclass(frozen=True)
+class LogisticLineSearchErrors(LogisticErrors):
+    """Logistic errors whose tree leaves take the constant that minimises the nll in the leaf (a line
+    search); no engine twin."""
+
+    name = "logistic_line_search_errors_test"
+    leaf_value = "line_search"

@@ -1176,16 +1176,16 @@ def cluster_info(plan, client, metrics):
 
 
 def refuse_refit(fam, engine_name):
-    """The median / quantile leaf refit across workers needs a reduction between rounds: XGBoost's
-    Python package exposes its collective ``allreduce`` to the objective (``_xgboost_refit``),
-    LightGBM's exposes none of its network, so on a LightGBM cluster such leaves are refused."""
+    """Leaves that lossfam would set in Python by a rule the engine adapter does not run across
+    workers (the adapters refit median and quantile leaves there, ``_xgboost_refit`` and
+    ``_lightgbm_refit``, but not ``"line_search"`` leaves) are refused on a cluster."""
     twin = bool((fam.native_twins or {}).get(engine_name.lower()))
     how = (f"train with native=True and the default step_limit ({engine_name}'s built-in twin renews the leaves "
            "on the workers)" if twin else f"{fam.name} has no {engine_name} twin")
-    other = "; lossfam.xgboost.train refits these leaves on the cluster" if engine_name == "LightGBM" else ""
     raise ValueError(
-        f"{fam.name} would refit leaves in Python (native=False, a non-default step_limit or no native twin), "
-        f"which lossfam does not run on a {engine_name} Dask cluster: {how}{other}")
+        f"{fam.name} would set its leaves by the {facts.leaf_rule(fam)!r} rule in Python (native=False, a non-default "
+        f"step_limit or no native twin), which lossfam does not run on a {engine_name} Dask cluster (it refits median "
+        f"and quantile leaves there): {how}")
 
 
 # --------------------------------------------------------------------------- leaf refit across workers
