@@ -7,7 +7,10 @@ and hands every worker LightGBM's network parameters (``machines``,
 factory.  Its ``fit`` runs LightGBM's rounds with two additions:
 
 * before each round (a callback), the trees grown since the last one are
-  refit: per leaf, the residual quantile ``y - raw`` over the rows of every
+  refit.  The rows' leaves of the newest tree come from the change of
+  LightGBM's own training scores (``leaves_from_scores``: it adds each row's
+  leaf value to its float64 score; rows of leaves whose values it cannot tell
+  apart, and trees whose scores were not built so, by ``pred_leaf``); per leaf, the residual quantile ``y - raw`` over the rows of every
   worker, exact by selection (``lossfam._boost.cluster.leaf_quantiles``, the
   quantile definition LightGBM renews by, ``facts.renewal_definition``), times
   the learning rate, set with ``Booster.set_leaf_output``.  Every worker
@@ -49,7 +52,8 @@ import numpy as np
 
 from ._boost import cluster
 from ._boost.gradients import growth_gradients
-from ._lightgbm_keep import KeepingRegressor
+from ._boost.leaves import FLOAT64_UNIT, leaves_from_scores
+from ._lightgbm_keep import KeepingRegressor, training_scores
 
 #: seconds a worker waits for another worker's value at one reduction before it gives up
 REDUCE_TIMEOUT = 600.0
@@ -183,18 +187,18 @@ def stop(client, token):
 
 def finish(client, token, model):
     """After a training: delete the workers' variables of the last step and return (seconds,
-    reductions) of the refit on the worker that returned ``model`` (every reduction of the training,
-    the ranks' check included), removed from it."""
+    reductions, detail) of the refit on the worker that returned ``model`` (every reduction of the
+    training, the ranks' check included), removed from it; detail as ``_xgboost_refit.take_timing``."""
     from distributed import Variable
 
     got = model.__dict__.pop("lossfam_refit_", None)
     if got is None:
-        return 0.0, 0
-    secs, steps, world = got
+        return 0.0, 0, {}
+    secs, steps, world, detail = got
     if steps > 0 and world > 1:
         for r in range(world):
             Variable(f"{PREFIX}-{token}-{steps - 1}-{r}", client).delete()
-    return float(secs), int(steps)
+    return float(secs), int(steps), detail
 
 
 def rank_of(params, address=None):
@@ -257,22 +261,60 @@ class _Worker:
         self.done = 0
         self.reductions = 0
         self.seconds = 0.0
+        self.reduce_seconds = 0.0  # of which in the reductions (waits for the other workers included)
+        self.scores = None  # LightGBM's training scores at the last catch_up
+        self.score_trees = 0  # the trees those scores hold
+        self.by_prediction = 0  # trees whose leaves were read by pred_leaf on every row
+        self.rows_by_prediction = 0  # rows of the other trees read by pred_leaf
 
     def gradients(self):
         return growth_gradients(self.spec.rule, self.spec.level, self.y, self.raw, self.w)
 
-    def catch_up(self, booster):
-        """Refit every tree of ``booster`` not refit yet (all workers together)."""
+    def catch_up(self, booster, training=True):
+        """Refit every tree of ``booster`` not refit yet (all workers together).  ``training``: the
+        booster still holds its training data (a callback's; ``lightgbm.train`` returns a booster
+        rebuilt from its model string, whose training scores are gone)."""
         t0 = time.perf_counter()
-        sp, red = self.spec, self.reduce
-        while self.done < booster.num_trees():
+        sp = self.spec
+        n_trees = booster.num_trees()
+        scores = None
+        if training:
+            try:  # LightGBM's own training scores (original leaves; the Python objective's: raw scores)
+                scores = training_scores(booster)
+            except Exception:  # (LightGBM's C API changed: every tree by pred_leaf)
+                scores = None
+            if scores is not None and scores.size != self.y.size:
+                scores = None
+
+        def red(a):
+            r0 = time.perf_counter()
+            try:
+                return self.reduce(a)
+            finally:
+                self.reduce_seconds += time.perf_counter() - r0
+
+        while self.done < n_trees:
             t = self.done
-            leaves = np.asarray(booster.predict(self.X, pred_leaf=True, start_iteration=t, num_iteration=1),
-                                dtype=np.intp).reshape(-1)
+            leaves = None
+            if scores is not None and self.scores is not None and self.score_trees == t and t + 1 == n_trees:
+                n_t = int(booster.dump_model(start_iteration=t, num_iteration=1)["tree_info"][0]["num_leaves"])
+                values = [booster.get_leaf_output(t, j) for j in range(n_t)]
+
+                def read_rows(idx, t=t):
+                    self.rows_by_prediction += idx.size
+                    rows = self.X.iloc[idx] if hasattr(self.X, "iloc") else self.X[idx]
+                    return booster.predict(rows, pred_leaf=True, start_iteration=t, num_iteration=1)
+
+                leaves = leaves_from_scores(np.arange(n_t), values, self.scores, scores, read_rows, FLOAT64_UNIT)
+            if leaves is None:
+                leaves = np.asarray(booster.predict(self.X, pred_leaf=True, start_iteration=t, num_iteration=1),
+                                    dtype=np.intp).reshape(-1)
+                self.by_prediction += 1
             n_leaves = sp.max_leaves
             if leaves.size and leaves.max() >= n_leaves:  # (num_leaves bounds every tree: LightGBM's own limit)
                 raise RuntimeError(f"tree {t} has leaf {leaves.max()}, above num_leaves={n_leaves}")
-            values, has, k = cluster.leaf_quantiles(red, red.rank, red.world, leaves, self.y - self.raw, self.w,
+            values, has, k = cluster.leaf_quantiles(red, self.reduce.rank, self.reduce.world, leaves,
+                                                    self.y - self.raw, self.w,
                                                     n_leaves, sp.leaf_level, sp.definition)
             table = np.zeros(n_leaves)
             own = np.flatnonzero(np.bincount(leaves, minlength=n_leaves))  # (no sort of the rows)
@@ -284,6 +326,7 @@ class _Worker:
             self.raw += table[leaves]
             self.reductions += k
             self.done += 1
+        self.scores, self.score_trees = scores, n_trees
         self.seconds += time.perf_counter() - t0
 
 
@@ -348,7 +391,7 @@ class RefitRegressor(KeepingRegressor):
             self.set_params(objective=Growth(refit.token))
             super().fit(X, y, sample_weight=sample_weight, init_score=init_score, **kwargs)
             booster = self.booster_
-            st.catch_up(booster)  # the last tree
+            st.catch_up(booster, training=False)  # the last tree
         except BaseException as exc:  # the others would wait for this worker's next value: tell them
             reduce.abort_as(f"worker {rank} failed: {type(exc).__name__}: {exc}"[:300])
             reduce.drop_own()
@@ -360,5 +403,7 @@ class RefitRegressor(KeepingRegressor):
             cluster.keep_scores(token, st.raw, st.y if targets else None, st.w if targets else None,
                                 booster.current_iteration())
         # read (and removed) by the client: the refit's share of the engine's training call
-        self.lossfam_refit_ = (st.seconds, reduce.step, world)
+        self.lossfam_refit_ = (st.seconds, reduce.step, world, {
+            "seconds": st.seconds, "reductions": reduce.step, "reduce_seconds": st.reduce_seconds,
+            "by_prediction": st.by_prediction, "rows_by_prediction": st.rows_by_prediction})
         return self

@@ -16,9 +16,10 @@ the last tree and writes every refit leaf into the model (one JSON edit), which
 worker; they meet in ``_STATE`` (per process) under the training's key and the worker's rank.
 
 The rows' leaves of the newest tree are read from the change of XGBoost's cached margins
-(``leaves_from_margins``), which the objective receives anyway, instead of a ``pred_leaf``
-prediction of every row (about 4x slower at 5e5 rows); a tree whose leaves the change cannot tell
-apart is read by ``pred_leaf`` as before.  The tree's node count comes from its JSON, the same on
+(``lossfam._boost.leaves.leaves_from_scores``), which the objective receives anyway, instead of a
+``pred_leaf`` prediction of every row (about 4x slower at 5e5 rows); rows of leaves the change
+cannot tell apart are read by ``pred_leaf`` on a slice, and a tree whose margins were not built as
+assumed by ``pred_leaf`` on every row.  The tree's node count comes from its JSON, the same on
 every worker.
 """
 from __future__ import annotations
@@ -33,6 +34,7 @@ from xgboost import collective
 
 from ._boost import cluster
 from ._boost.gradients import growth_gradients
+from ._boost.leaves import FLOAT32_UNIT, leaves_from_scores
 
 _STATE: dict = {}
 
@@ -91,71 +93,6 @@ def tree_leaves(booster, t):
     return left.size, nodes, np.asarray(tree["split_conditions"], dtype=np.float32)[nodes]
 
 
-#: the most cells of the lookup table ``leaves_from_margins`` builds
-MARGIN_CELLS = 1 << 22
-#: above this share of rows needing ``pred_leaf``, the whole tree is read by it
-MARGIN_SHARE = 0.25
-
-
-def leaves_from_margins(nodes, values, before, after, read_rows):
-    """Each row's leaf node of the tree added between the float32 margins ``before`` and ``after``;
-    rows the change cannot place are read by ``read_rows(index) -> their leaf nodes`` (pred_leaf on
-    those rows).  None where the margins were not built as assumed (then read every row).
-
-    XGBoost adds each row's float32 leaf value to its cached float32 margin, so the exact change
-    d = after - before (float64) is the leaf value v up to the rounding of that sum:
-    |d - v| <= ulp(after) / 2 <= 2^-24 |after|; ``E`` is twice the largest such bound.  Leaf values
-    less than ``T`` >= 4E apart are put in one group (T larger when the values' range would need
-    more than ``MARGIN_CELLS`` cells); the groups' windows [first - E, last + E] then lie more than
-    T - 2E apart, so a table over cells of (T - 2E) / 2 names the one window a row's d can be in.
-    A row in a one-leaf group is that leaf's, checked: every such row must lie within E of its
-    leaf's value, else None.  Rows in groups of several leaves go to ``read_rows`` (the whole tree
-    when they are more than ``MARGIN_SHARE`` of the rows)."""
-    u64 = np.asarray(values, dtype=np.float64)
-    order = np.argsort(u64, kind="stable")
-    u, nodes = u64[order], np.asarray(nodes, dtype=np.intp)[order]
-    after = np.asarray(after, dtype=np.float32)
-    d = after.astype(np.float64)
-    d -= np.asarray(before, dtype=np.float32)
-    if u.size == 0 or d.size == 0 or not (np.isfinite(u).all() and np.isfinite(d.sum())):
-        return None
-    E = 2.0 * (2.0 ** -24 * float(max(after.max(), -after.min())) + 2.0 ** -150)
-    span = float(u[-1] - u[0]) + 2.0 * E
-    T = max(4.0 * E, 4.0 * span / MARGIN_CELLS)
-    group = np.r_[0, np.cumsum(np.diff(u) >= T)]
-    n_groups = int(group[-1]) + 1
-    first, last = np.searchsorted(group, np.arange(n_groups)), np.searchsorted(group, np.arange(n_groups), "right") - 1
-    cell = (T - 2.0 * E) / 2.0
-    lo = u[0] - E
-    n_cells = int(np.ceil(span / cell)) + 1
-    # each cell's group: the first whose window's end plus a cell reaches the cell's centre x.  A row's
-    # d in window g lies within cell / 2 of x; an earlier window ends >= 2 cells before d, so its end
-    # plus a cell stays below x, while g's end plus a cell is >= x + cell / 2
-    centres = lo + (np.arange(n_cells) + 0.5) * cell
-    table = np.minimum(np.searchsorted(u[last] + E + cell, centres), n_groups - 1)
-    table = table.astype(np.int16 if n_groups < 2 ** 15 else np.intp)
-    k = d - lo
-    k *= 1.0 / cell
-    np.clip(k, 0.0, n_cells - 1.0, out=k)
-    g = table[k.astype(np.intp)]
-    pos = first[g]  # the group's first leaf (its only one in a one-leaf group)
-    if n_groups == u.size:  # (every group one leaf: the usual case)
-        k = np.subtract(d, u[pos], out=k)
-        if not max(float(k.max()), -float(k.min())) <= E:
-            return None
-        return nodes[pos]
-    mine = (first == last)[g]
-    if not float(np.abs(d[mine] - u[pos[mine]]).max(initial=0.0)) <= E:
-        return None
-    out = nodes[pos]
-    unsure = np.flatnonzero(~mine)
-    if unsure.size > MARGIN_SHARE * d.size:
-        return None
-    if unsure.size:
-        out[unsure] = np.asarray(read_rows(unsure), dtype=np.intp).reshape(-1)
-    return out
-
-
 def catch_up(obj, st, margins=None):
     """Refit every tree of ``st.booster`` not refitted yet (all workers together); ``margins``:
     XGBoost's cached margins now (objective calls), to read the newest tree's leaves from."""
@@ -173,7 +110,7 @@ def catch_up(obj, st, margins=None):
                 st.rows_by_prediction += idx.size
                 return tree.predict(st.dtrain.slice(idx), pred_leaf=True)
 
-            leaves = leaves_from_margins(nodes, values, st.margins, margins, read_rows)
+            leaves = leaves_from_scores(nodes, values, st.margins, margins, read_rows, FLOAT32_UNIT)
         if leaves is None:
             leaves = np.asarray(tree.predict(st.dtrain, pred_leaf=True), dtype=np.intp).reshape(-1)
             st.by_prediction += 1

@@ -871,10 +871,12 @@ def _train_cluster(fam, params, data, num_boost_round, valid_sets, valid_names, 
                 est._lgb_dask_fit(model_factory=factory, X=plan.X, y=plan.y, sample_weight=plan.weight,
                                   init_score=plan.start, keep=(kept.token, *keep))
         if refit is not None:  # the refit ran inside the engine's call: its seconds are lossfam's
-            secs, reductions = refit.module.finish(client, refit.spec.token, est)
+            secs, reductions, detail = refit.module.finish(client, refit.spec.token, est)
             plan.stats["seconds"]["refit"] = secs
             plan.stats["seconds"]["trees"] -= secs
             plan.stats["refit_passes"] = reductions
+            if detail:
+                plan.stats["refit_detail"] = detail
         with cluster.timed(plan.stats, "model"):
             booster = _lgb().Booster(model_str=est.booster_.model_to_string())
         best = None

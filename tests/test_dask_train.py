@@ -471,8 +471,10 @@ def test_lightgbm_refit_allreduce_over_variables(client):
     class Model:
         pass
     returned = Model()
-    returned.lossfam_refit_ = (0.5, 4, world)  # (what the worker leaves on the model: seconds, steps, workers)
-    assert lr.finish(client, token, returned) == (0.5, 4) and not hasattr(returned, "lossfam_refit_")
+    # (what the worker leaves on the model: seconds, steps, workers, detail)
+    returned.lossfam_refit_ = (0.5, 4, world, {"by_prediction": 1})
+    assert lr.finish(client, token, returned) == (0.5, 4, {"by_prediction": 1})
+    assert not hasattr(returned, "lossfam_refit_")
     assert names([]) == []
 
     lonely = lr.Allreduce(uuid.uuid4().hex, 0, 2, timeout=0.5, client=client)
@@ -658,6 +660,10 @@ def test_refit_path_on_the_cluster(engine, case, client, tmp_path):
     info = fit.info["cluster"]
     assert info["partitions"] >= 16 and info["refit_passes"] >= ROUNDS and "refit" in info["seconds"]
     assert 0 < info["seconds"]["refit"] <= info["lossfam_seconds"]
+    # the rows' leaves came from the change of the engine's cached training scores, not from a
+    # prediction of every row, on all trees but the last (read after training) and a few whose leaf
+    # values lie too close together (the leaves are checked against one machine's below)
+    assert info["refit_detail"]["by_prediction"] <= 1 + ROUNDS // 4, info["refit_detail"]
     # the trees differ from local training's (each worker bins its own rows), so the leaves are checked
     # tree by tree against the one-machine refit of those trees
     replay = _replayed_leaves(engine, fit, fam, X, y, w, o)

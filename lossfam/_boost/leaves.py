@@ -150,3 +150,73 @@ class RowBag:
             self.mask = self.rng.random(self.n) < self.fraction
         base = np.ones(self.n) if w is None else w
         return np.where(self.mask, base, 0.0)
+
+
+#: the rounding unit of scores held in float32 (XGBoost's margins) and in float64 (LightGBM's scores)
+FLOAT32_UNIT, FLOAT64_UNIT = 2.0 ** -24, 2.0 ** -53
+#: the most cells of the lookup table ``leaves_from_scores`` builds
+SCORE_CELLS = 1 << 22
+#: above this share of rows needing ``read_rows``, the whole tree is read by the engine
+SCORE_SHARE = 0.25
+
+
+def leaves_from_scores(nodes, values, before, after, read_rows, unit):
+    """Each row's leaf node of the tree an engine added between its cached training scores
+    ``before`` and ``after``; rows the change cannot place are read by ``read_rows(index) -> their
+    leaf nodes`` (the engine's leaf prediction on those rows).  None where the scores were not built
+    as assumed (then the engine reads every row).
+
+    Both engines add each row's leaf value v to its cached score in the scores' own precision
+    (``unit``: 2^-24 for XGBoost's float32 margins, 2^-53 for LightGBM's float64 scores), so
+    after = fl(before + v) and |after - before - v| <= unit |after|; the change d is computed in
+    float64 (exact for float32 scores, else one more rounding, <= 2^-53 |d|).  ``E`` is twice the
+    largest such bound.  Leaf values less than ``T`` >= 4E apart are put in one group (T larger
+    when the values' range would need more than ``SCORE_CELLS`` cells); the groups' windows
+    [first - E, last + E] then lie at least T - 2E apart, so a table over cells of (T - 2E) / 2
+    names the one window a row's d can be in.  A row in a one-leaf group is that leaf's, checked:
+    every such row must lie within E of its leaf's value, else None.  Rows in groups of several
+    leaves go to ``read_rows`` (the whole tree, None, when they are more than ``SCORE_SHARE`` of
+    the rows)."""
+    u64 = np.asarray(values, dtype=np.float64)
+    order = np.argsort(u64, kind="stable")
+    u, nodes = u64[order], np.asarray(nodes, dtype=np.intp)[order]
+    after = np.asarray(after)
+    d = after.astype(np.float64)  # (a copy)
+    d -= np.asarray(before)
+    if u.size == 0 or d.size == 0 or not (np.isfinite(u).all() and np.isfinite(d.sum())):
+        return None
+    E = 2.0 * (unit * (float(max(after.max(), -after.min())) + float(max(d.max(), -d.min()))) + 2.0 ** -149)
+    span = float(u[-1] - u[0]) + 2.0 * E
+    T = max(4.0 * E, 4.0 * span / SCORE_CELLS)
+    group = np.r_[0, np.cumsum(np.diff(u) >= T)]
+    n_groups = int(group[-1]) + 1
+    first, last = np.searchsorted(group, np.arange(n_groups)), np.searchsorted(group, np.arange(n_groups), "right") - 1
+    cell = (T - 2.0 * E) / 2.0
+    lo = u[0] - E
+    n_cells = int(np.ceil(span / cell)) + 1
+    # each cell's group: the first whose window's end plus a cell reaches the cell's centre x.  A row's
+    # d in window g lies within cell / 2 of x; an earlier window ends >= 2 cells before d, so its end
+    # plus a cell stays below x, while g's end plus a cell is >= x + cell / 2
+    centres = lo + (np.arange(n_cells) + 0.5) * cell
+    table = np.minimum(np.searchsorted(u[last] + E + cell, centres), n_groups - 1)
+    table = table.astype(np.int16 if n_groups < 2 ** 15 else np.intp)
+    k = d - lo
+    k *= 1.0 / cell
+    np.clip(k, 0.0, n_cells - 1.0, out=k)
+    g = table[k.astype(np.intp)]
+    pos = first[g]  # the group's first leaf (its only one in a one-leaf group)
+    if n_groups == u.size:  # (every group one leaf: the usual case)
+        k = np.subtract(d, u[pos], out=k)
+        if not max(float(k.max()), -float(k.min())) <= E:
+            return None
+        return nodes[pos]
+    mine = (first == last)[g]
+    if not float(np.abs(d[mine] - u[pos[mine]]).max(initial=0.0)) <= E:
+        return None
+    out = nodes[pos]
+    unsure = np.flatnonzero(~mine)
+    if unsure.size > SCORE_SHARE * d.size:
+        return None
+    if unsure.size:
+        out[unsure] = np.asarray(read_rows(unsure), dtype=np.intp).reshape(-1)
+    return out
