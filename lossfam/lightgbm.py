@@ -924,8 +924,6 @@ def _cluster_refit(ldask, fam, params, plan):
     per round on all rows, split by rows over the workers: no bagging, ``tree_learner`` data or voting
     (feature-parallel workers each hold all rows, which the sums would count once per worker).  The
     refit needs ``lightgbm.dask``'s private ``model_factory`` argument."""
-    import inspect
-
     if str(params.get("metric", "None")).lower() not in ("none", "na", "null", "custom", ""):
         raise ValueError(f"{fam.name} refits leaves and keeps its own scores; LightGBM's built-in metrics "
                          "would see the unedited ones: drop params['metric']")
@@ -935,12 +933,7 @@ def _cluster_refit(ldask, fam, params, plan):
     if (fraction < 1.0 and freq > 0) or learner in ("feature", "feature_parallel"):
         raise ValueError(f"{fam.name} refits leaves on the cluster: one tree per round on all rows, split by rows "
                          "(no bagging; tree_learner 'data' or 'voting')")
-    fit_parts = getattr(ldask.DaskLGBMRegressor, "_lgb_dask_fit", None)
-    try:
-        takes_factory = fit_parts is not None and "model_factory" in inspect.signature(fit_parts).parameters
-    except (TypeError, ValueError):
-        takes_factory = False
-    if not takes_factory:
+    if not _takes_model_factory(ldask):
         raise ValueError(f"{fam.name} refits leaves on the cluster through lightgbm.dask's model_factory, which this "
                          "lightgbm version does not take: train with native=True and the default step_limit")
     from . import _lightgbm_refit
@@ -955,6 +948,17 @@ def _cluster_refit(ldask, fam, params, plan):
     return _ClusterRefit(_lightgbm_refit, spec)
 
 
+def _takes_model_factory(ldask):
+    """Whether ``lightgbm.dask``'s private ``_lgb_dask_fit`` takes a ``model_factory`` (lightgbm 4.x)."""
+    import inspect
+
+    fit_parts = getattr(ldask.DaskLGBMRegressor, "_lgb_dask_fit", None)
+    try:
+        return fit_parts is not None and "model_factory" in inspect.signature(fit_parts).parameters
+    except (TypeError, ValueError):
+        return False
+
+
 def _keeping(ldask, client, plan, objective, targets):
     """(``cluster.KeptRows``, the model factory, its ``keep`` arguments after the token) when this
     training can keep LightGBM's own trained scores on the workers (``lossfam._lightgbm_keep``),
@@ -962,15 +966,9 @@ def _keeping(ldask, client, plan, objective, targets):
     ``plan.stats["kept"]``: ``lightgbm.dask``'s private ``_lgb_dask_fit`` takes no
     ``model_factory`` (its internals changed), or the objective's output cannot be turned back
     into raw scores to rounding."""
-    import inspect
     import uuid
 
-    fit_parts = getattr(ldask.DaskLGBMRegressor, "_lgb_dask_fit", None)
-    try:
-        takes_factory = fit_parts is not None and "model_factory" in inspect.signature(fit_parts).parameters
-    except (TypeError, ValueError):
-        takes_factory = False
-    if not takes_factory:
+    if not _takes_model_factory(ldask):
         plan.stats["kept"] = "lightgbm.dask takes no model_factory"
         return None, None, None
     from . import _lightgbm_keep

@@ -259,19 +259,26 @@ def test_cluster_baseline_equals_local(client, name):
     assert stats["passes"] <= 40
 
 
-def _user_families_on(client):
-    """tests/ on the workers' path (the user families are pickled by reference) and the families registered."""
+@pytest.fixture
+def user_families(client):
+    """tests/ on the workers' path (the user families are pickled by reference) and the families
+    registered for the test (the registry as it was afterwards: other tests list the families)."""
     import os
     import sys
 
     here = os.path.dirname(os.path.abspath(__file__))
     client.run(lambda d: None if d in sys.path else sys.path.insert(0, d), here)
+    was = set(lossfam.available())
     for cls in (LogisticMedianErrors, LogisticLineSearchErrors):
         lossfam.register(cls, replace=True)
+    yield
+    for cls in (LogisticMedianErrors, LogisticLineSearchErrors):
+        if cls.name not in was:
+            lossfam.unregister(cls.name)
 
 
 @pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
-def test_bad_rows_are_named_and_line_search_leaves_are_refused(engine, client):
+def test_bad_rows_are_named_and_line_search_leaves_are_refused(engine, client, user_families):
     X, y, _, o = _claims(3, 1600)
     y[1234] = -1.0
     mod = lfl if engine == "lightgbm" else lfx
@@ -280,7 +287,6 @@ def test_bad_rows_are_named_and_line_search_leaves_are_refused(engine, client):
                   client=client)
     # median and quantile leaves are refit on the cluster; leaves set by a line search are not, and the
     # message says which leaves are
-    _user_families_on(client)
     Xd, yd, _, _ = _delays(3, 1600)
     name = "LightGBM" if engine == "lightgbm" else "XGBoost"
     with pytest.raises(ValueError, match=f"'line_search' rule .* not run on a {name} Dask cluster .*refits median"):
@@ -630,14 +636,13 @@ def _replayed_leaves(engine, fit, fam, X, y, w, o):
 @pytest.mark.parametrize("case", ["asymmetric_laplace_0.9", "user_median",
                                   pytest.param("laplace_unweighted", marks=pytest.mark.slow)])
 @pytest.mark.parametrize("engine", ["lightgbm", "xgboost"])
-def test_refit_path_on_the_cluster(engine, case, client, tmp_path):
+def test_refit_path_on_the_cluster(engine, case, client, tmp_path, user_families):
     """The custom path (native=False, or a user family without a twin) on the cluster: every leaf of
     every tree is renewed to the residual quantile of the rows of all workers (the number local
     training's refit computes for that tree on one machine, in the engine's arithmetic); the held-out
     loss is within 1% of local training's custom path on the same weighted, offset rows in 16
     partitions; the model saves and loads like any other, and nothing is left on the workers or the
     scheduler."""
-    _user_families_on(client)
     fam = {"user_median": LogisticMedianErrors(), "laplace_unweighted": lossfam.family("laplace")}.get(
         case, lossfam.family("asymmetric_laplace", quantile=0.9))
     X, y, w, _ = _delays(41, N_TRAIN)
