@@ -205,27 +205,36 @@ def test_engine_start_is_the_local_one(client, engine):
     """Where each engine's built-in quantile objective starts (lossfam._boost.facts.engine_start: its
     own sample quantile in single precision, HF 7 / HF 6 without weights, the inverted cdf or the
     midpoint with them), computed on the cluster from exact order statistics: the local number, bit
-    for bit, on targets with ties, with and without weights and an offset."""
+    for bit, on targets with ties, with and without weights and an offset.  Local training starts
+    from the labels as the engine keeps them (float32; the targets here, 0.1 apart, are not exact in
+    float32, so with an offset the order of the roundings shows)."""
     from lossfam._boost import facts
 
     rng = np.random.default_rng(9)
     n = 2400
-    y = np.round(rng.gamma(2.0, 1.5, n), 1)  # many ties
-    o = 0.1 * rng.integers(0, 3, n)
     w = rng.uniform(0.5, 2.0, n)
-    for tau in (0.9, 0.23):
-        fam = lossfam.family("asymmetric_laplace", quantile=tau)
-        for weight, offset in ((None, None), (None, o), (w, o)):
-            local = facts.engine_start(fam, engine, y, weight, offset)
-            stats = {"passes": 0, "gathered": 0}
-            wd = _dask(weight)
-            yd, od = _dask(y), _dask(offset)
-            got = cluster.engine_start(client, fam, engine, yd, wd, od, stats, n)
-            if local is None:  # the engine falls back to the family's baseline: the exact midpoint quantile
-                assert got is None
-                local = fam.baseline(y, weight, offset=offset)
-                got = cluster.weighted_quantile(client, yd if od is None else yd - od, wd, tau)
-            assert got == local, (engine, tau, weight is None, offset is None)
+    y1 = np.round(rng.gamma(2.0, 1.5, n), 1)  # many ties
+    o1 = 0.1 * rng.integers(0, 3, n)
+    y2 = 1000.0 + rng.gamma(2.0, 1.5, n)  # large targets, offsets near them: float32's rounding of the targets
+    o2 = 1000.0 + 0.1 * rng.integers(0, 3, n)  # is far above that of their difference
+    for y, o in ((y1, o1), (y2, o2)):
+        data = {"xgboost": lambda: xgb.DMatrix(np.zeros((n, 1)), y), "lightgbm": lambda: lgb.Dataset(
+            np.zeros((n, 1)), y, free_raw_data=False).construct()}[engine]()
+        y_engine = np.asarray(data.get_label(), dtype=np.float64)  # (what local training reads back)
+        assert np.array_equal(y_engine, y.astype(np.float32)) and not np.array_equal(y_engine, y)
+        for tau in (0.9, 0.23):
+            fam = lossfam.family("asymmetric_laplace", quantile=tau)
+            for weight, offset in ((None, None), (None, o), (w, o)):
+                local = facts.engine_start(fam, engine, y_engine, weight, offset)
+                stats = {"passes": 0, "gathered": 0}
+                wd = _dask(weight)
+                yd, od = _dask(y), _dask(offset)
+                got = cluster.engine_start(client, fam, engine, yd, wd, od, stats, n)
+                if local is None:  # the engine falls back to the family's baseline: the exact midpoint quantile
+                    assert got is None
+                    local = fam.baseline(y, weight, offset=offset)
+                    got = cluster.weighted_quantile(client, yd if od is None else yd - od, wd, tau)
+                assert got == local, (engine, tau, weight is None, offset is None, y is y2)
 
 
 def _smooth_families():

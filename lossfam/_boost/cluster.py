@@ -468,14 +468,17 @@ def weighted_quantile(client, v, w, q, stats=None, total=None):
 def engine_start(client, fam, engine, y, w, o, stats, n):
     """``facts.engine_start`` on the cluster: where ``engine``'s built-in median / quantile objective
     starts (its sample quantile of ``y - o`` in single precision), from exact order statistics found
-    by selection; None where the engine falls back to the family's baseline (or for other families)."""
+    by selection; None where the engine falls back to the family's baseline (or for other families).
+    Both engines keep their labels in float32 (local training reads them back so): the targets are
+    rounded to float32 before the offset is taken off, as on one machine."""
     level = facts.leaf_level(fam)
     if level is None or engine is None:
         return None
     definition = facts.renewal_definition(engine, weighted=w is not None)
     if definition == "midpoint":
         return None
-    v = (y if o is None else y - o).astype(np.float32)
+    y32 = y.astype(np.float32).astype(np.float64)
+    v = (y32 if o is None else y32 - o).astype(np.float32)
     inf = math.inf
     if definition == "lower":
         w32 = None if w is None else w.astype(np.float32).astype(np.float64)
