@@ -395,6 +395,14 @@ class RefitRegressor(KeepingRegressor):
         except BaseException as exc:  # the others would wait for this worker's next value: tell them
             reduce.abort_as(f"worker {rank} failed: {type(exc).__name__}: {exc}"[:300])
             reduce.drop_own()
+            # lightgbm.dask frees LightGBM's network (per thread) only after a fit that succeeded: free it
+            # here, or the worker's next training can find it half set up ("initialize the network first")
+            try:
+                from lightgbm.basic import _LIB, _safe_call
+
+                _safe_call(_LIB.LGBM_NetworkFree())
+            except Exception:  # (nothing more to undo)
+                pass
             raise
         finally:
             _STATE.pop(key, None)

@@ -512,12 +512,21 @@ def test_lightgbm_refit_allreduce_over_variables(client):
     assert names([]) == []
 
 
-def test_lightgbm_refit_stops_every_worker_when_one_fails(client):
+@pytest.fixture
+def own_client():
+    """A cluster of this test's own (a failure injected into its workers cannot reach other tests)."""
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as lc, \
+            distributed.Client(lc) as c:
+        yield c
+
+
+def test_lightgbm_refit_stops_every_worker_when_one_fails(own_client):
     """A worker failing inside the cluster refit: the training raises its error at once (not after the
     others' reduction timeout), the other worker's task ends, and the cluster trains again afterwards
     with nothing left on the scheduler."""
     import time
 
+    client = own_client
     addresses = sorted(client.scheduler_info()["workers"])
 
     def fail_at(n):
@@ -541,6 +550,9 @@ def test_lightgbm_refit_stops_every_worker_when_one_fails(client):
         lfl.train(fam, PARAMS["lightgbm"], data, 10, native=False, client=client)
     assert time.perf_counter() - t0 < 60
     assert _refit_variables(client, []) == []
+    while any(client.processing().values()) and time.perf_counter() - t0 < 60:  # (the other task's end)
+        time.sleep(0.1)
+    assert not any(client.processing().values())
     fit = lfl.train(fam, PARAMS["lightgbm"], data, 10, native=False, client=client)
     assert fit.booster.num_trees() == 10 and _store_sizes(client) == [0, 0]
 
