@@ -171,7 +171,8 @@ def leaves_from_scores(nodes, values, before, after, read_rows, unit):
     after = fl(before + v) and |after - before - v| <= unit |after|; the change d is computed in
     float64 (exact for float32 scores, else one more rounding, <= 2^-53 |d|).  ``E`` is twice the
     largest such bound.  Leaf values less than ``T`` >= 4E apart are put in one group (T larger
-    when the values' range would need more than ``SCORE_CELLS`` cells); the groups' windows
+    when the values' range would need more than ``SCORE_CELLS`` cells, or more than four per row
+    and 2^20); the groups' windows
     [first - E, last + E] then lie at least T - 2E apart, so a table over cells of (T - 2E) / 2
     names the one window a row's d can be in.  A row in a one-leaf group is that leaf's, checked:
     every such row must lie within E of its leaf's value, else None.  Rows in groups of several
@@ -187,7 +188,7 @@ def leaves_from_scores(nodes, values, before, after, read_rows, unit):
         return None
     E = 2.0 * (unit * (float(max(after.max(), -after.min())) + float(max(d.max(), -d.min()))) + 2.0 ** -149)
     span = float(u[-1] - u[0]) + 2.0 * E
-    T = max(4.0 * E, 4.0 * span / SCORE_CELLS)
+    T = max(4.0 * E, 4.0 * span / min(SCORE_CELLS, max(1 << 20, 4 * d.size)))
     group = np.r_[0, np.cumsum(np.diff(u) >= T)]
     n_groups = int(group[-1]) + 1
     first, last = np.searchsorted(group, np.arange(n_groups)), np.searchsorted(group, np.arange(n_groups), "right") - 1
@@ -197,9 +198,13 @@ def leaves_from_scores(nodes, values, before, after, read_rows, unit):
     # each cell's group: the first whose window's end plus a cell reaches the cell's centre x.  A row's
     # d in window g lies within cell / 2 of x; an earlier window ends >= 2 cells before d, so its end
     # plus a cell stays below x, while g's end plus a cell is >= x + cell / 2
-    centres = lo + (np.arange(n_cells) + 0.5) * cell
-    table = np.minimum(np.searchsorted(u[last] + E + cell, centres), n_groups - 1)
-    table = table.astype(np.int16 if n_groups < 2 ** 15 else np.intp)
+    # (cell i's centre is lo + (i + 1/2) cell: the cells up to group g's bound, counted without listing
+    # the centres; the cells beyond every bound go to the last group)
+    upto = np.floor((u[last] + E + cell - lo) / cell - 0.5) + 1.0
+    upto = np.clip(upto, 0, n_cells).astype(np.intp)
+    upto[-1] = n_cells
+    table = np.repeat(np.arange(n_groups, dtype=np.int16 if n_groups < 2 ** 15 else np.intp),
+                      np.diff(np.r_[0, upto]))
     k = d - lo
     k *= 1.0 / cell
     np.clip(k, 0.0, n_cells - 1.0, out=k)
