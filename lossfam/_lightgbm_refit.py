@@ -249,23 +249,19 @@ class Spec:
         self.timeout = REDUCE_TIMEOUT if timeout is None else float(timeout)
 
 
-class _Worker:
+class _Worker(cluster.RefitTally):
     """One worker's side of a refit training: its rows, its raw scores with refit leaves, its trees done."""
 
     def __init__(self, spec, X, y, w, init_score, reduce):
+        super().__init__()
         self.spec, self.X, self.reduce = spec, X, reduce
         self.y = np.asarray(y, dtype=np.float64).reshape(-1)
         self.w = None if w is None else np.asarray(w, dtype=np.float64).reshape(-1)
         self.raw = (np.zeros(self.y.size) if init_score is None
                     else np.array(init_score, dtype=np.float64).reshape(-1))
         self.done = 0
-        self.reductions = 0
-        self.seconds = 0.0
-        self.reduce_seconds = 0.0  # of which in the reductions (waits for the other workers included)
         self.scores = None  # LightGBM's training scores at the last catch_up
         self.score_trees = 0  # the trees those scores hold
-        self.by_prediction = 0  # trees whose leaves were read by pred_leaf on every row
-        self.rows_by_prediction = 0  # rows of the other trees read by pred_leaf
 
     def gradients(self):
         return growth_gradients(self.spec.rule, self.spec.level, self.y, self.raw, self.w)
@@ -286,13 +282,7 @@ class _Worker:
             if scores is not None and scores.size != self.y.size:
                 scores = None
 
-        def red(a):
-            r0 = time.perf_counter()
-            try:
-                return self.reduce(a)
-            finally:
-                self.reduce_seconds += time.perf_counter() - r0
-
+        red = self.timed(self.reduce)
         while self.done < n_trees:
             t = self.done
             leaves = None
@@ -411,7 +401,5 @@ class RefitRegressor(KeepingRegressor):
             cluster.keep_scores(token, st.raw, st.y if targets else None, st.w if targets else None,
                                 booster.current_iteration())
         # read (and removed) by the client: the refit's share of the engine's training call
-        self.lossfam_refit_ = (st.seconds, reduce.step, world, {
-            "seconds": st.seconds, "reductions": reduce.step, "reduce_seconds": st.reduce_seconds,
-            "by_prediction": st.by_prediction, "rows_by_prediction": st.rows_by_prediction})
+        self.lossfam_refit_ = (st.seconds, reduce.step, world, st.detail(reduce.step))
         return self

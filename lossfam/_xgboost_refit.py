@@ -48,19 +48,15 @@ def _key(obj):
     return obj.key, collective.get_rank()
 
 
-class _Worker:
+class _Worker(cluster.RefitTally):
     def __init__(self):
+        super().__init__()
         self.booster = None
         self.dtrain = None
         self.y = self.w = self.raw = None
         self.tables = []
-        self.reductions = 0
-        self.seconds = 0.0
-        self.reduce_seconds = 0.0  # of which in the reductions (waiting for the other workers included)
         self.margins = None  # XGBoost's cached margins at the last objective call (float32)
         self.margin_trees = 0  # the number of trees those margins hold
-        self.by_prediction = 0  # trees whose leaves were read by pred_leaf
-        self.rows_by_prediction = 0  # rows of the other trees read by pred_leaf
 
 
 class RefitObjective:
@@ -84,9 +80,9 @@ class RefitObjective:
         return growth_gradients(self.rule, self.level, st.y, st.raw, st.w)
 
 
-def tree_leaves(booster, t):
-    """(node count, leaf node ids, their float32 values) of tree ``t``, from its JSON."""
-    doc = json.loads(bytes(booster[t:t + 1].save_raw("json")))
+def tree_leaves(tree):
+    """(node count, leaf node ids, their float32 values) of a booster of one tree, from its JSON."""
+    doc = json.loads(bytes(tree.save_raw("json")))
     tree = doc["learner"]["gradient_booster"]["model"]["trees"][0]
     left = np.asarray(tree["left_children"], dtype=np.intp)
     nodes = np.flatnonzero(left == -1)
@@ -101,9 +97,10 @@ def catch_up(obj, st, margins=None):
     t0 = time.perf_counter()
     rank, world = collective.get_rank(), collective.get_world_size()
     n_trees = st.booster.num_boosted_rounds()
+    reduce = st.timed(_reduce)
     for t in range(len(st.tables), n_trees):
-        n_nodes, nodes, values = tree_leaves(st.booster, t)
         tree = st.booster[t:t + 1]
+        n_nodes, nodes, values = tree_leaves(tree)
         leaves = None
         if margins is not None and st.margins is not None and st.margin_trees == t and t + 1 == n_trees:
             def read_rows(idx, tree=tree):
@@ -114,13 +111,6 @@ def catch_up(obj, st, margins=None):
         if leaves is None:
             leaves = np.asarray(tree.predict(st.dtrain, pred_leaf=True), dtype=np.intp).reshape(-1)
             st.by_prediction += 1
-        def reduce(a, op=collective.Op.SUM):
-            r0 = time.perf_counter()
-            try:
-                return _reduce(a, op)
-            finally:
-                st.reduce_seconds += time.perf_counter() - r0
-
         values, has, reductions = cluster.leaf_quantiles(reduce, rank, world, leaves, st.y - st.raw, st.w, n_nodes,
                                                      obj.level, obj.definition)
         table = np.where(has, obj.eta * values, 0.0).astype(np.float32).astype(np.float64)
@@ -154,13 +144,8 @@ class RefitCallback(xgb.callback.TrainingCallback):
         catch_up(self.objective, st)
         out = _write_leaf_values(xgb, model, st.tables)
         # read (and removed) by the client: the refit's share of the engine's training call
-        out.set_attr(**{f"lossfam_refit_{k}": repr(v) for k, v in _timing(st).items()})
+        out.set_attr(**{f"lossfam_refit_{k}": repr(v) for k, v in st.detail().items()})
         return out
-
-
-def _timing(st):
-    return {"seconds": st.seconds, "reductions": st.reductions, "reduce_seconds": st.reduce_seconds,
-            "by_prediction": st.by_prediction, "rows_by_prediction": st.rows_by_prediction}
 
 
 def take_timing(booster):
@@ -169,7 +154,7 @@ def take_timing(booster):
     whose leaves were read by pred_leaf (``by_prediction``: the last tree, and trees whose margins
     could not tell the leaves apart) and rows of the other trees read by it."""
     out = {}
-    for k in ("seconds", "reductions", "reduce_seconds", "by_prediction", "rows_by_prediction"):
+    for k in cluster.RefitTally().detail():
         v = booster.attr(f"lossfam_refit_{k}")
         booster.set_attr(**{f"lossfam_refit_{k}": None})
         out[k] = (float if "seconds" in k else int)(v or 0)

@@ -43,7 +43,7 @@ def _rounds(engine, X, y, w, shift, rounds=12):
         b = xgb.train({"max_depth": 4, "eta": 0.5, "nthread": 1, "tree_method": "hist"}, d, rounds, obj=obj)
 
         def tree(t):
-            _, nodes, values = tree_leaves(b, t)
+            _, nodes, values = tree_leaves(b[t:t + 1])
             return nodes, values, lambda idx: b[t:t + 1].predict(d.slice(idx), pred_leaf=True)
         return seen, tree, FLOAT32_UNIT
     lgb = pytest.importorskip("lightgbm")

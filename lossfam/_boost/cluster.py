@@ -1192,6 +1192,38 @@ def refuse_refit(fam, engine_name):
 
 
 # --------------------------------------------------------------------------- leaf refit across workers
+class RefitTally:
+    """One worker's figures of a cluster leaf refit (both engines' ``_xgboost_refit`` /
+    ``_lightgbm_refit`` workers): seconds, of which in the reductions (waits for the other workers
+    included), reductions, trees whose leaves were read by the engine's leaf prediction on every
+    row, and rows of the other trees read by it (``leaves.leaves_from_scores``)."""
+
+    def __init__(self):
+        self.seconds = 0.0
+        self.reduce_seconds = 0.0
+        self.reductions = 0
+        self.by_prediction = 0
+        self.rows_by_prediction = 0
+
+    def timed(self, reduce):
+        """``reduce`` with its seconds added to ``reduce_seconds``."""
+        import time
+
+        def call(*args):
+            t0 = time.perf_counter()
+            try:
+                return reduce(*args)
+            finally:
+                self.reduce_seconds += time.perf_counter() - t0
+        return call
+
+    def detail(self, reductions=None):
+        """The figures as ``fit.info["cluster"]["refit_detail"]`` has them."""
+        return {"seconds": self.seconds, "reductions": self.reductions if reductions is None else int(reductions),
+                "reduce_seconds": self.reduce_seconds, "by_prediction": self.by_prediction,
+                "rows_by_prediction": self.rows_by_prediction}
+
+
 #: a query's bracket rows are gathered once at most this many remain over all workers (fewer when
 #: the gather of all queries from all workers would pass ``LEAF_NUMBERS``)
 LEAF_GATHER = 256

@@ -172,9 +172,8 @@ def leaves_from_scores(nodes, values, before, after, read_rows, unit):
     float64 (exact for float32 scores, else one more rounding, <= 2^-53 |d|).  ``E`` is twice the
     largest such bound.  Leaf values less than ``T`` >= 4E apart are put in one group (T larger
     when the values' range would need more than ``SCORE_CELLS`` cells, or more than four per row
-    and 2^20); the groups' windows
-    [first - E, last + E] then lie at least T - 2E apart, so a table over cells of (T - 2E) / 2
-    names the one window a row's d can be in.  A row in a one-leaf group is that leaf's, checked:
+    and 2^20); the groups' windows [first - E, last + E] then lie at least T - 2E apart, so a
+    table over cells of (T - 2E) / 2 names the one window a row's d can be in.  A row in a one-leaf group is that leaf's, checked:
     every such row must lie within E of its leaf's value, else None.  Rows in groups of several
     leaves go to ``read_rows`` (the whole tree, None, when they are more than ``SCORE_SHARE`` of
     the rows)."""
